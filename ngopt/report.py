@@ -1,0 +1,608 @@
+"""Figures and a text summary from a diagnostics log.
+
+    python -m ngopt.report run.jsonl --out DIR
+
+writes into DIR (only the figures the log has data for):
+
+=========================  ==========================================================
+file                       message
+=========================  ==========================================================
+``spectra_<layer>.png``    each Kronecker factor's eigenvalue spectrum over training
+                           (steps across, eigenvalues up, log colour for the count
+                           per bin) against the damping added to that factor
+``conditioning.png``       condition numbers per layer, damped block and raw factors
+``damping.png``            lambda over steps and its split between the two factors
+``update.png``             gradient and update norms, their cosine, trust scaling, KL
+``loss.png``               loss and the quadratic model's reduction ratio
+``time.png``               where the optimizer's time goes, per step and in total
+``probe.png``              Fisher-probe errors and angles per layer (when logged)
+``summary.txt``            plain-text summary with warnings
+=========================  ==========================================================
+
+A CSV log works too, without the spectra (CSV leaves lists out).
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import re
+import sys
+from numbers import Real
+from pathlib import Path
+
+import numpy as np
+
+from .diagnostics_log import read_log
+
+__all__ = ["write_report", "summarize", "main"]
+
+CONDITION_WARNING = 1e8          # damped condition number called ill-conditioned
+SKIPPED_WARNING_FRACTION = 0.05  # share of skipped steps called "many"
+PROBE_ANGLE_WARNING_DEG = 45.0   # angle between directions called "far apart"
+TIME_KEYS = ("statistics", "inversion", "precondition", "fallback", "extra_backward")
+FACTORS = (("in", "input factor A"), ("out", "output-gradient factor G"))
+
+
+# --------------------------------------------------------------------------
+# reading series out of records
+# --------------------------------------------------------------------------
+
+def _number(value) -> float:
+    if isinstance(value, Real) and not isinstance(value, bool):
+        return float(value)
+    return math.nan
+
+
+def _get(record: dict, path: tuple):
+    node = record
+    for key in path:
+        if not isinstance(node, dict) or key not in node:
+            return None
+        node = node[key]
+    return node
+
+
+def series(records: list, *path: str) -> tuple[np.ndarray, np.ndarray]:
+    """Steps and values of one key over the records (NaN where missing)."""
+    steps = np.array([r["step"] for r in records], dtype=float)
+    values = np.array([_number(_get(r, path)) for r in records], dtype=float)
+    return steps, values
+
+
+def one_record_per_step(records: list) -> list:
+    """Keep the last record of each step (probe records repeat a step)."""
+    by_step = {}
+    for record in records:
+        by_step[record["step"]] = record
+    return [by_step[step] for step in sorted(by_step)]
+
+
+def layer_names(records: list) -> list:
+    names: dict = {}
+    for record in records:
+        for name in (record.get("layers") or {}):
+            names.setdefault(name, None)
+    return list(names)
+
+
+def _has_data(values: np.ndarray) -> bool:
+    return bool(np.isfinite(values).any())
+
+
+# --------------------------------------------------------------------------
+# figures
+# --------------------------------------------------------------------------
+
+def _pyplot():
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def _layer_colours(names: list) -> dict:
+    plt = _pyplot()
+    cmap = plt.get_cmap("tab10" if len(names) <= 10 else "tab20")
+    return {name: cmap(i % cmap.N) for i, name in enumerate(names)}
+
+
+def _safe_name(name: str) -> str:
+    return re.sub(r"[^A-Za-z0-9_.-]+", "_", name) or "layer"
+
+
+def _save(fig, path: Path) -> Path:
+    fig.savefig(path, dpi=110, bbox_inches="tight")
+    _pyplot().close(fig)
+    return path
+
+
+def _spectrum_columns(records: list, layer: str, prefix: str):
+    """(steps, spectra, damping) for one factor, one column per inversion."""
+    by_inversion: dict = {}
+    for record in records:
+        entry = (record.get("layers") or {}).get(layer) or {}
+        spectrum = entry.get(f"{prefix}_eigenvalues")
+        if isinstance(spectrum, list) and spectrum:
+            key = entry.get("inversion_step", record["step"])
+            by_inversion[key] = (np.asarray(spectrum, dtype=float), _number(entry.get(f"{prefix}_damping")))
+    steps = sorted(by_inversion)
+    return (np.asarray(steps, dtype=float), [by_inversion[s][0] for s in steps],
+            np.asarray([by_inversion[s][1] for s in steps], dtype=float))
+
+
+def _column_edges(steps: np.ndarray) -> np.ndarray:
+    """Edges so that each column spans from its step to the next one."""
+    if steps.size == 1:
+        return np.array([steps[0] - 0.5, steps[0] + 0.5])
+    width = np.median(np.diff(steps))
+    return np.concatenate([steps, [steps[-1] + width]])
+
+
+def plot_spectra(records: list, layer: str, path: Path):
+    """Eigenvalue density of A and G over training, with the damping of each."""
+    columns = {prefix: _spectrum_columns(records, layer, prefix) for prefix, _ in FACTORS}
+    if not any(len(spectra) for _, spectra, _ in columns.values()):
+        return None
+    plt = _pyplot()
+    from matplotlib.colors import LogNorm
+    from matplotlib.ticker import FuncFormatter
+
+    fig, axes = plt.subplots(1, 2, figsize=(12, 4.5), constrained_layout=True)
+    for ax, (prefix, label) in zip(axes, FACTORS):
+        steps, spectra, damping = columns[prefix]
+        if not spectra:
+            ax.text(0.5, 0.5, "no spectra logged", ha="center", va="center", transform=ax.transAxes)
+            ax.set_axis_off()
+            continue
+        top = max(float(s.max()) for s in spectra)
+        floor = top * 1e-12 if top > 0 else 1e-12
+        clipped = [np.clip(s, floor, None) for s in spectra]
+        low = min(float(s.min()) for s in clipped)
+        lo, hi = math.floor(math.log10(low)), math.ceil(math.log10(max(top, floor * 10)))
+        decades = np.linspace(lo, hi, 6 * (hi - lo) + 1)  # six bins per decade
+        counts = np.stack([np.histogram(np.log10(s), bins=decades)[0] for s in clipped], axis=1)
+        counts = np.ma.masked_equal(counts, 0)
+        mesh = ax.pcolormesh(_column_edges(steps), 10.0 ** decades, counts, cmap="viridis",
+                             norm=LogNorm(vmin=1, vmax=max(int(counts.max()), 2)), shading="flat")
+        ax.set_yscale("log")
+        if _has_data(damping):
+            ax.step(steps, damping, where="post", color="crimson", linestyle="--", linewidth=1.8,
+                    label="damping added to the diagonal")
+            ax.legend(loc="lower left", fontsize=8)
+        dim = spectra[-1].size
+        ax.set_title(f"{label} ({dim}x{dim})")
+        ax.set_xlabel("optimizer step (inversion)")
+        ax.set_ylabel("eigenvalue (factor units, log scale)")
+        bar = fig.colorbar(mesh, ax=ax, label="eigenvalues per bin (log scale)")
+        count_labels = FuncFormatter(lambda value, _: f"{value:g}")
+        bar.ax.yaxis.set_major_formatter(count_labels)
+        bar.ax.yaxis.set_minor_formatter(count_labels)
+    fig.suptitle(f"Layer {layer}: factor spectra over training; eigenvalues under the dashed line "
+                 "are dominated by damping")
+    return _save(fig, path)
+
+
+def _plot_per_layer(ax, records, names, colours, key, **style):
+    drawn = False
+    for name in names:
+        steps, values = series(records, "layers", name, key)
+        if _has_data(values):
+            ax.plot(steps, values, color=colours[name], **style)
+            drawn = True
+    return drawn
+
+
+def _layer_legend(ax, names, colours, title="layer"):
+    from matplotlib.lines import Line2D
+
+    handles = [Line2D([], [], color=colours[n], label=n) for n in names]
+    return ax.legend(handles=handles, title=title, fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
+
+
+def _style_legend(ax, styles, loc="lower right"):
+    from matplotlib.lines import Line2D
+
+    handles = [Line2D([], [], color="0.3", linestyle=ls, label=label) for ls, label in styles]
+    ax.add_artist(ax.legend(handles=handles, fontsize=8, loc=loc))
+
+
+def plot_conditioning(records: list, path: Path):
+    names = layer_names(records)
+    if not names:
+        return None
+    plt = _pyplot()
+    colours = _layer_colours(names)
+    fig, (left, right) = plt.subplots(1, 2, figsize=(13, 4.5), constrained_layout=True)
+    _plot_per_layer(left, records, names, colours, "condition", marker=".")
+    left.axhline(CONDITION_WARNING, color="black", linestyle=":", linewidth=1)
+    _style_legend(left, [(":", f"warning level {CONDITION_WARNING:.0e}")])
+    left.set_title("damped curvature block")
+    _plot_per_layer(right, records, names, colours, "in_condition", linestyle="-")
+    _plot_per_layer(right, records, names, colours, "out_condition", linestyle="--")
+    _style_legend(right, [("-", "input factor A"), ("--", "output-gradient factor G")])
+    right.set_title("undamped factors (gaps: eigenvalue <= 0, condition infinite)")
+    for ax in (left, right):
+        ax.set_yscale("log")
+        ax.set_xlabel("optimizer step")
+        ax.set_ylabel("condition number (eig max / eig min)")
+        ax.grid(True, which="major", alpha=0.3)
+    _layer_legend(right, names, colours)
+    fig.suptitle("Conditioning per layer: how far damping brings the raw factors' condition numbers down")
+    return _save(fig, path)
+
+
+def plot_damping(records: list, path: Path):
+    steps, lam = series(records, "update", "damping")
+    names = layer_names(records)
+    if not _has_data(lam) and not names:
+        return None
+    plt = _pyplot()
+    colours = _layer_colours(names)
+    fig, (top, bottom) = plt.subplots(2, 1, figsize=(10, 7), sharex=True, constrained_layout=True)
+    top.plot(steps, lam, color="black", marker=".", label=r"$\lambda$")
+    top.set_ylabel(r"damping $\lambda$ (curvature units)")
+    top.set_title(r"Tikhonov damping $\lambda$")
+    top.legend(fontsize=8)
+    drawn = _plot_per_layer(bottom, records, names, colours, "in_damping", linestyle="-")
+    drawn |= _plot_per_layer(bottom, records, names, colours, "out_damping", linestyle="--")
+    if drawn:
+        _style_legend(bottom, [("-", r"added to A: $\pi\sqrt{\lambda}$"), ("--", r"added to G: $\sqrt{\lambda}/\pi$")])
+        _layer_legend(bottom, names, colours)
+    bottom.set_title("split between the factors of each layer")
+    bottom.set_ylabel("added to the diagonal (factor units)")
+    bottom.set_xlabel("optimizer step")
+    for ax in (top, bottom):
+        if _has_data(lam) and (np.nan_to_num(lam) > 0).any():
+            ax.set_yscale("log")
+        ax.grid(True, alpha=0.3)
+    fig.suptitle("Damping over training and how each layer splits it between A and G")
+    return _save(fig, path)
+
+
+def _line_panel(ax, steps, values, label, ylabel, colour, log=False):
+    ax.plot(steps, values, marker=".", color=colour, label=label)
+    if log and (np.nan_to_num(values) > 0).any():
+        ax.set_yscale("log")
+    ax.set_ylabel(ylabel)
+    ax.legend(fontsize=8)
+    ax.grid(True, alpha=0.3)
+
+
+def plot_update(records: list, path: Path):
+    steps, grad = series(records, "update", "grad_norm")
+    _, upd = series(records, "update", "update_norm")
+    _, cosine = series(records, "update", "cosine")
+    _, trust = series(records, "update", "trust_scale")
+    _, kl = series(records, "update", "kl_estimate")
+    if not any(_has_data(v) for v in (grad, upd, cosine, trust, kl)):
+        return None
+    plt = _pyplot()
+    fig, axes = plt.subplots(4, 1, figsize=(10, 10), sharex=True, constrained_layout=True)
+    axes[0].plot(steps, grad, marker=".", label="gradient norm")
+    _line_panel(axes[0], steps, upd, "preconditioned update norm", "Euclidean norm", "tab:orange", log=True)
+    _line_panel(axes[1], steps, cosine, "cos(gradient, update)", "cosine (1 = plain gradient)", "tab:green")
+    axes[1].axhline(0.0, color="black", linewidth=0.8)
+    axes[1].set_ylim(min(-0.05, float(np.nanmin(cosine)) - 0.05) if _has_data(cosine) else -0.05, 1.05)
+    _line_panel(axes[2], steps, trust, "trust-bound scale", "scale (1 = bound inactive)", "tab:purple")
+    axes[2].set_ylim(0.0, 1.05)
+    _line_panel(axes[3], steps, kl, "KL estimate of the step", "KL (nats)", "tab:brown", log=True)
+    axes[3].set_xlabel("optimizer step")
+    fig.suptitle("The step against the gradient: size, direction, trust-bound scaling and KL")
+    return _save(fig, path)
+
+
+def plot_loss(records: list, path: Path):
+    steps, loss = series(records, "update", "loss")
+    _, ratio = series(records, "update", "reduction_ratio")
+    _, predicted = series(records, "update", "predicted_change")
+    if not any(_has_data(v) for v in (loss, ratio, predicted)):
+        return None
+    plt = _pyplot()
+    fig, (top, bottom) = plt.subplots(2, 1, figsize=(10, 7), sharex=True, constrained_layout=True)
+    if _has_data(loss):
+        top.plot(steps, loss, marker=".", label="training loss of the step")
+        if (np.nan_to_num(loss) > 0).all():
+            top.set_yscale("log")
+        top.legend(fontsize=8)
+    else:
+        top.text(0.5, 0.5, "no loss recorded (pass a closure to step())", ha="center",
+                 va="center", transform=top.transAxes)
+    top.set_ylabel("loss (as defined by loss_fn)")
+    top.set_title("loss")
+    if _has_data(ratio):
+        bottom.plot(steps, ratio, marker=".", color="tab:orange", label=r"reduction ratio $\rho$")
+        bottom.axhspan(0.25, 0.75, color="tab:green", alpha=0.15, label=r"$1/4 \leq \rho \leq 3/4$: damping kept")
+        bottom.axhline(1.0, color="black", linestyle=":", linewidth=1, label=r"model exact ($\rho = 1$)")
+        bottom.legend(fontsize=8)
+    else:
+        bottom.text(0.5, 0.5, "no reduction ratio recorded (needs step(closure))", ha="center",
+                    va="center", transform=bottom.transAxes)
+    bottom.set_ylabel("actual / predicted change")
+    bottom.set_xlabel("optimizer step")
+    bottom.set_title("quadratic model's reduction ratio")
+    for ax in (top, bottom):
+        ax.grid(True, alpha=0.3)
+    fig.suptitle("Loss and how well the quadratic model predicts each step")
+    return _save(fig, path)
+
+
+def time_split(record: dict) -> dict:
+    """Cumulative seconds per category, with 'other' = the rest of step_total."""
+    times = record.get("time") or {}
+    split = {key: _number(times.get(key)) for key in TIME_KEYS if math.isfinite(_number(times.get(key)))}
+    total = _number(times.get("step_total"))
+    if math.isfinite(total):
+        split["other step work"] = max(total - sum(split.values()), 0.0)
+    log_seconds = _number(record.get("log_seconds"))
+    if math.isfinite(log_seconds):
+        split["diagnostics logging"] = log_seconds
+    return split
+
+
+def plot_time(records: list, path: Path):
+    if not records or not time_split(records[-1]):
+        return None
+    plt = _pyplot()
+    final = time_split(records[-1])
+    keys = list(final)
+    steps = np.array([r["step"] for r in records], dtype=float)
+    cumulative = np.array([[time_split(r).get(k, math.nan) for k in keys] for r in records])
+    fig, (left, right) = plt.subplots(1, 2, figsize=(13, 4.5), constrained_layout=True,
+                                      gridspec_kw={"width_ratios": [3, 2]})
+    cmap = plt.get_cmap("tab10")
+    colours = [cmap(i) for i in range(len(keys))]
+    if len(records) > 1:
+        per_step = np.diff(np.nan_to_num(cumulative), axis=0) / np.diff(steps)[:, None]
+        left.stackplot(steps[1:], np.clip(per_step, 0, None).T * 1e3, labels=keys, colors=colours, step="pre")
+        left.set_xlabel("optimizer step")
+        left.set_ylabel("milliseconds per step (between records)")
+        left.legend(fontsize=8, loc="upper left")
+        left.grid(True, alpha=0.3)
+    else:
+        left.text(0.5, 0.5, "one record: no per-step rate", ha="center", va="center", transform=left.transAxes)
+    left.set_title("time per step")
+    totals = np.array([final[k] for k in keys])
+    grand = totals.sum() if totals.sum() > 0 else 1.0
+    right.barh(keys, totals, color=colours)
+    for y, seconds in enumerate(totals):
+        right.text(seconds, y, f" {seconds:.3g} s ({100 * seconds / grand:.0f}%)", va="center", fontsize=8)
+    right.invert_yaxis()
+    right.set_xlabel("cumulative seconds")
+    right.set_xlim(0, totals.max() * 1.4 if totals.max() > 0 else 1)
+    right.set_title(f"total up to step {records[-1]['step']}")
+    largest = keys[int(np.argmax(totals))]
+    fig.suptitle(f"Where the optimizer's time goes: most in {largest} ({100 * final[largest] / grand:.0f}%)")
+    return _save(fig, path)
+
+
+def last_probe(records: list):
+    for record in reversed(records):
+        if isinstance(record.get("probe"), dict):
+            return record["step"], record["probe"]
+    return None
+
+
+def plot_probe(records: list, path: Path):
+    found = last_probe(records)
+    if found is None or not (found[1].get("layers") or {}):
+        return None
+    step, probe = found
+    layers = probe["layers"]
+    names = list(layers)
+    plt = _pyplot()
+    fig, (left, right) = plt.subplots(1, 2, figsize=(12, 4.5), constrained_layout=True)
+    x = np.arange(len(names))
+    width = 0.38
+    for offset, kind, label in ((-width / 2, "kron", "Kronecker A (x) G"), (width / 2, "diag", "diagonal")):
+        errors = [_number(layers[n].get(f"{kind}_error")) for n in names]
+        angles = [_number(layers[n].get(f"{kind}_angle_deg")) for n in names]
+        left.bar(x + offset, errors, width, label=label)
+        right.bar(x + offset, angles, width, label=label)
+    left.set_ylabel("relative Frobenius error ||F_approx - F|| / ||F||")
+    left.set_title("curvature block error")
+    right.set_ylabel("angle to the exact natural gradient (degrees)")
+    right.set_title("natural-gradient direction error")
+    right.axhline(PROBE_ANGLE_WARNING_DEG, color="black", linestyle=":", linewidth=1,
+                  label=f"warning level {PROBE_ANGLE_WARNING_DEG:.0f} deg")
+    for ax in (left, right):
+        ax.set_xticks(x, names, rotation=30, ha="right")
+        ax.set_xlabel("layer")
+        ax.legend(fontsize=8)
+        ax.grid(True, axis="y", alpha=0.3)
+    fig.suptitle(f"Fisher probe at step {step}: how close each approximation is to the exact per-layer Fisher")
+    return _save(fig, path)
+
+
+# --------------------------------------------------------------------------
+# text summary
+# --------------------------------------------------------------------------
+
+def _condition_warnings(records: list) -> list:
+    tail = records[-max(1, math.ceil(len(records) / 4)):]
+    found = []
+    for name in layer_names(records):
+        values = [_number(_get(r, ("layers", name, "condition"))) for r in tail]
+        values = [v for v in values if v == v]
+        if values and min(values) > CONDITION_WARNING:
+            lam = _number(_get(tail[-1], ("update", "damping")))
+            found.append(f"layer {name}: the damped condition number stays above {CONDITION_WARNING:.0e} "
+                         f"over the last {len(tail)} records (final {values[-1]:.3g}) with damping "
+                         f"lambda = {lam:.3g}; raise the damping or check this layer's inputs")
+    return found
+
+
+def _skip_warnings(record: dict) -> list:
+    steps = record.get("step", 0) or 0
+    skipped = record.get("skipped_steps", 0) or 0
+    if steps and skipped / steps > SKIPPED_WARNING_FRACTION:
+        reasons = ", ".join(f"{k}: {v}" for k, v in (record.get("skip_reasons") or {}).items() if v)
+        return [f"{skipped} of {steps} steps were skipped ({100 * skipped / steps:.1f}%; {reasons or 'no reason given'})"]
+    return []
+
+
+def _update_warnings(records: list) -> list:
+    found = []
+    _, cosine = series(records, "update", "cosine")
+    bad = int(np.sum(np.nan_to_num(cosine, nan=1.0) <= 0))
+    if bad:
+        found.append(f"{bad} records have cosine <= 0 between gradient and update: the step did not "
+                     "point downhill (the preconditioner should be positive definite)")
+    _, trust = series(records, "update", "trust_scale")
+    trust = trust[np.isfinite(trust)]
+    if trust.size and np.median(trust) < 0.5:
+        found.append(f"the KL trust bound shrinks most steps (median scale {np.median(trust):.3g}): "
+                     "the effective step size is well below lr")
+    return found
+
+
+def _probe_warnings(records: list) -> list:
+    found = last_probe(records)
+    if found is None:
+        return []
+    step, probe = found
+    messages = []
+    angle = _number(probe.get("empirical_vs_sampled_angle_deg"))
+    if angle > PROBE_ANGLE_WARNING_DEG:
+        messages.append(f"at step {step} the empirical Fisher turns the step {angle:.0f} degrees away "
+                        "from the sampled Fisher: prefer fisher='sampled' or 'exact'")
+    for name, entry in (probe.get("layers") or {}).items():
+        kron_angle = _number(entry.get("kron_angle_deg"))
+        if kron_angle > PROBE_ANGLE_WARNING_DEG:
+            messages.append(f"layer {name}: the Kronecker direction is {kron_angle:.0f} degrees from the "
+                            f"exact natural gradient at step {step}")
+    return messages
+
+
+def _format_table(rows: list) -> list:
+    widths = [max(len(str(row[i])) for row in rows) for i in range(len(rows[0]))]
+    return ["  " + "  ".join(str(cell).ljust(w) for cell, w in zip(row, widths)).rstrip() for row in rows]
+
+
+def _layer_table(record: dict) -> list:
+    rows = [("layer", "kind", "A dim", "G dim", "cond damped", "cond A", "cond G", "eig A min..max", "eig G min..max")]
+    for name, e in (record.get("layers") or {}).items():
+        rows.append((name, f"{e.get('block', '?')}/{e.get('curvature', '?')}", e.get("in_dim", "-"),
+                     e.get("out_dim", "-"), f"{_number(e.get('condition')):.3g}",
+                     f"{_number(e.get('in_condition')):.3g}", f"{_number(e.get('out_condition')):.3g}",
+                     f"{_number(e.get('in_eig_min')):.2e}..{_number(e.get('in_eig_max')):.2e}",
+                     f"{_number(e.get('out_eig_min')):.2e}..{_number(e.get('out_eig_max')):.2e}"))
+    return _format_table(rows) if len(rows) > 1 else ["  (no curvature blocks)"]
+
+
+def _time_lines(record: dict) -> list:
+    split = time_split(record)
+    total = sum(split.values())
+    if total <= 0:
+        return ["  (no timing)"]
+    return [f"  {key:<20} {seconds:9.3f} s  {100 * seconds / total:5.1f}%" for key, seconds in split.items()]
+
+
+def _logging_cost_line(records: list) -> str:
+    final = records[-1]
+    log_seconds = _number(final.get("log_seconds"))
+    step_total = _number(_get(final, ("time", "step_total")))
+    if not math.isfinite(log_seconds):
+        return "logging cost: not recorded"
+    per_record = log_seconds / max(len(records) - 1, 1)
+    share = f", {100 * log_seconds / step_total:.2f}% of the time in step()" if step_total > 0 else ""
+    return f"logging cost: {log_seconds:.4f} s in total, {1e3 * per_record:.2f} ms per record{share}"
+
+
+def _probe_lines(records: list) -> list:
+    found = last_probe(records)
+    if found is None:
+        return []
+    step, probe = found
+    lines = [f"Fisher probe (step {step}, {probe.get('batch_size', '?')} examples):"]
+    rows = [("layer", "params", "kron error", "kron angle", "diag error", "diag angle")]
+    for name, e in (probe.get("layers") or {}).items():
+        rows.append((name, e.get("params", "-"), f"{_number(e.get('kron_error')):.3g}",
+                     f"{_number(e.get('kron_angle_deg')):.1f} deg", f"{_number(e.get('diag_error')):.3g}",
+                     f"{_number(e.get('diag_angle_deg')):.1f} deg"))
+    if len(rows) > 1:
+        lines += _format_table(rows)
+    skipped = probe.get("skipped_layers") or {}
+    lines += [f"  {name}: not probed ({why})" for name, why in skipped.items()]
+    angle = _number(probe.get("empirical_vs_sampled_angle_deg"))
+    if angle == angle:
+        lines.append(f"  empirical vs sampled Fisher: direction angle {angle:.1f} deg, relative error "
+                     f"{_number(probe.get('empirical_vs_sampled_error')):.3g}")
+    return lines
+
+
+def summarize(records: list, source: str = "log") -> tuple[str, list]:
+    """The text summary and the list of warnings."""
+    if not records:
+        raise ValueError(f"{source}: the log holds no records")
+    final = records[-1]
+    warnings_found = (_condition_warnings(records) + _skip_warnings(final)
+                      + _update_warnings(records) + _probe_warnings(records))
+    update = final.get("update") or {}
+    wall = [r.get("wall_time") for r in records if isinstance(r.get("wall_time"), Real)]
+    lines = [f"ngopt diagnostics report for {source}",
+             f"records: {len(records)} (steps {records[0]['step']} .. {final['step']})"
+             + (f", {wall[-1] - wall[0]:.1f} s of wall time between first and last" if len(wall) > 1 else ""),
+             f"final: loss {_number(update.get('loss')):.4g}, damping {_number(update.get('damping')):.3g}, "
+             f"lr {_number(update.get('lr')):.3g}",
+             f"skipped steps: {final.get('skipped_steps', 0)} of {final['step']}",
+             _logging_cost_line(records), "",
+             f"curvature blocks at step {final['step']}:", *_layer_table(final), "",
+             "time split (cumulative):", *_time_lines(final)]
+    probe = _probe_lines(records)
+    if probe:
+        lines += ["", *probe]
+    lines += ["", "warnings:"] + ([f"  - {w}" for w in warnings_found] or ["  (none)"])
+    return "\n".join(lines) + "\n", warnings_found
+
+
+# --------------------------------------------------------------------------
+# command line
+# --------------------------------------------------------------------------
+
+def write_report(log_path, out_dir) -> dict:
+    """Write all figures and summary.txt; returns {"figures": [...], "summary": path, "warnings": [...]}."""
+    log_path = Path(log_path)
+    if not log_path.is_file():
+        raise FileNotFoundError(f"diagnostics log not found: {log_path}")
+    all_records = read_log(log_path)
+    records = one_record_per_step(all_records)
+    text, found = summarize(records, str(log_path))
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    figures = [plot_spectra(records, name, out_dir / f"spectra_{_safe_name(name)}.png")
+               for name in layer_names(records)]
+    figures += [plot_conditioning(records, out_dir / "conditioning.png"),
+                plot_damping(records, out_dir / "damping.png"),
+                plot_update(records, out_dir / "update.png"),
+                plot_loss(records, out_dir / "loss.png"),
+                plot_time(records, out_dir / "time.png"),
+                plot_probe(all_records, out_dir / "probe.png")]
+    summary_path = out_dir / "summary.txt"
+    summary_path.write_text(text, encoding="utf-8")
+    return {"figures": [p for p in figures if p is not None], "summary": summary_path, "warnings": found}
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(prog="python -m ngopt.report",
+                                     description="Plots and a text summary from an ngopt diagnostics log.")
+    parser.add_argument("log", help="diagnostics log written by ngopt.log_diagnostics (.jsonl or .csv)")
+    parser.add_argument("--out", required=True, help="directory for the PNG figures and summary.txt")
+    args = parser.parse_args(argv)
+    try:
+        result = write_report(args.log, args.out)
+    except (ValueError, FileNotFoundError) as error:
+        print(f"error: {error}", file=sys.stderr)
+        return 2
+    for figure in result["figures"]:
+        print(figure)
+    print(result["summary"])
+    for warning in result["warnings"]:
+        print(f"warning: {warning}", file=sys.stderr)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
