@@ -61,7 +61,8 @@ key                                meaning                                      
 ``update.reduction_ratio``         actual / predicted loss change (only with a closure), else null    1
 ``update.damping``                 Tikhonov damping lambda in use                                     curvature
 ``update.lr``                      step size                                                          1
-``update.loss``                    loss of the step (when the optimizer saw it), else null            loss
+``update.loss``                    loss of the step: the optimizer's (``step(closure)``), else the    loss
+                                   latest value given to ``handle.note_loss(loss)``, else null
 ``time.statistics``                curvature statistics refreshes, cumulative                         s
 ``time.inversion``                 inversions / eigendecompositions of the factors, cumulative        s
 ``time.precondition``              applying the inverses to the gradients, cumulative                 s
@@ -88,6 +89,10 @@ key                                meaning                                      
 ``layers.<name>.in_eigenvalues``   full spectrum of A, ascending (JSONL / TensorBoard only)           A units
 ``layers.<name>.out_eigenvalues``  full spectrum of G, ascending (JSONL / TensorBoard only)           G units
 ``layers.<name>.inversion_step``   step at which the eigenvalue figures were computed                 steps
+``layers.<name>.diag_min``         smallest entry of the diagonal Fisher (``curvature='diag'``)       curvature
+``layers.<name>.diag_max``         largest entry of the diagonal Fisher (``curvature='diag'``)        curvature
+``layers.<name>.diag_mean``        mean entry of the diagonal Fisher (``curvature='diag'``)           curvature
+``layers.<name>.diag_values``      all diagonal entries, ascending (JSONL / TensorBoard only)         curvature
 ``probe.*``                        result of ``ngopt.fisher_probe.probe_fisher_quality``, written     see there
                                    by ``handle.log_probe(result)``
 =================================  =================================================================  ==========
@@ -390,8 +395,8 @@ class LoggerWriter:
 
 def _probe_line(probe: dict) -> str:
     layers = probe.get("layers") or {}
-    parts = [f"{name}: kron err {_format(entry.get('kron_error'))}, "
-             f"angle {_format(entry.get('kron_angle_deg'), '.1f')} deg"
+    parts = [f"{name}: block error {_format(entry.get('block_error'))}, "
+             f"angle {_format(entry.get('block_angle_deg'), '.1f')} deg"
              for name, entry in layers.items()]
     return "; ".join(parts) or "no layer small enough"
 
@@ -435,6 +440,7 @@ class DiagnosticsLog:
             self._restore_spectra = (getattr(opt, "track_spectra", False),)
             opt.track_spectra = True
         self._last_logged_step = None
+        self._noted_loss = None
         # Count steps ourselves so that steps without a record cost one
         # addition, not a snapshot; resynchronised at every record.
         self._step = int(opt.diagnostics().get("step", 0))
@@ -454,6 +460,9 @@ class DiagnosticsLog:
 
     def _write(self, snapshot: dict, extra: dict | None = None) -> None:
         record = to_plain(snapshot)
+        update = record.setdefault("update", {})
+        if update.get("loss") is None and self._noted_loss is not None:
+            update["loss"] = float(self._noted_loss)  # the only sync with the device, once per record
         record["wall_time"] = time.time()
         record["log_seconds"] = self.log_seconds
         if extra:
@@ -464,6 +473,15 @@ class DiagnosticsLog:
         self._last_logged_step = record.get("step")
 
     # -- public -------------------------------------------------------------
+    def note_loss(self, loss) -> None:
+        """Remember the training loss of the current step for ``update.loss``.
+
+        In the plain loop the optimizer never sees the loss; call this after
+        ``loss.backward()``. Only the latest value is kept and it is read
+        (``float()``) when a record is written, so it costs nothing in between.
+        """
+        self._noted_loss = loss.detach() if hasattr(loss, "detach") else loss
+
     def log_probe(self, result: dict) -> None:
         """Write a record now: the current snapshot plus ``"probe": result``."""
         self._check_open()

@@ -41,7 +41,6 @@ CONDITION_WARNING = 1e8          # damped condition number called ill-conditione
 SKIPPED_WARNING_FRACTION = 0.05  # share of skipped steps called "many"
 PROBE_ANGLE_WARNING_DEG = 45.0   # angle between directions called "far apart"
 TIME_KEYS = ("statistics", "inversion", "precondition", "fallback", "extra_backward")
-FACTORS = (("in", "input factor A"), ("out", "output-gradient factor G"))
 
 
 # --------------------------------------------------------------------------
@@ -86,6 +85,11 @@ def layer_names(records: list) -> list:
     return list(names)
 
 
+def _text(value, spec: str = ".3g") -> str:
+    number = _number(value)
+    return "-" if math.isnan(number) else format(number, spec)
+
+
 def _has_data(values: np.ndarray) -> bool:
     return bool(np.isfinite(values).any())
 
@@ -119,15 +123,18 @@ def _save(fig, path: Path) -> Path:
     return path
 
 
-def _spectrum_columns(records: list, layer: str, prefix: str):
+def _spectrum_columns(records: list, layer: str, values_key: str, damping_path: tuple):
     """(steps, spectra, damping) for one factor, one column per inversion."""
     by_inversion: dict = {}
     for record in records:
         entry = (record.get("layers") or {}).get(layer) or {}
-        spectrum = entry.get(f"{prefix}_eigenvalues")
+        spectrum = entry.get(values_key)
         if isinstance(spectrum, list) and spectrum:
             key = entry.get("inversion_step", record["step"])
-            by_inversion[key] = (np.asarray(spectrum, dtype=float), _number(entry.get(f"{prefix}_damping")))
+            if key is None:
+                key = record["step"]
+            damping = _number(_get(record, damping_path))
+            by_inversion[key] = (np.asarray(spectrum, dtype=float), damping)
     steps = sorted(by_inversion)
     return (np.asarray(steps, dtype=float), [by_inversion[s][0] for s in steps],
             np.asarray([by_inversion[s][1] for s in steps], dtype=float))
@@ -141,46 +148,56 @@ def _column_edges(steps: np.ndarray) -> np.ndarray:
     return np.concatenate([steps, [steps[-1] + width]])
 
 
-def plot_spectra(records: list, layer: str, path: Path):
-    """Eigenvalue density of A and G over training, with the damping of each."""
-    columns = {prefix: _spectrum_columns(records, layer, prefix) for prefix, _ in FACTORS}
-    if not any(len(spectra) for _, spectra, _ in columns.values()):
-        return None
-    plt = _pyplot()
+def _spectrum_panels(layer: str) -> list:
+    """(values key, damping path, panel title) for the Kronecker factors and the diagonal."""
+    return [("in_eigenvalues", ("layers", layer, "in_damping"), "input factor A"),
+            ("out_eigenvalues", ("layers", layer, "out_damping"), "output-gradient factor G"),
+            ("diag_values", ("update", "damping"), "diagonal Fisher entries")]
+
+
+def _draw_spectrum(fig, ax, steps, spectra, damping, title):
     from matplotlib.colors import LogNorm
     from matplotlib.ticker import FuncFormatter
 
-    fig, axes = plt.subplots(1, 2, figsize=(12, 4.5), constrained_layout=True)
-    for ax, (prefix, label) in zip(axes, FACTORS):
-        steps, spectra, damping = columns[prefix]
-        if not spectra:
-            ax.text(0.5, 0.5, "no spectra logged", ha="center", va="center", transform=ax.transAxes)
-            ax.set_axis_off()
-            continue
-        top = max(float(s.max()) for s in spectra)
-        floor = top * 1e-12 if top > 0 else 1e-12
-        clipped = [np.clip(s, floor, None) for s in spectra]
-        low = min(float(s.min()) for s in clipped)
-        lo, hi = math.floor(math.log10(low)), math.ceil(math.log10(max(top, floor * 10)))
-        decades = np.linspace(lo, hi, 6 * (hi - lo) + 1)  # six bins per decade
-        counts = np.stack([np.histogram(np.log10(s), bins=decades)[0] for s in clipped], axis=1)
-        counts = np.ma.masked_equal(counts, 0)
-        mesh = ax.pcolormesh(_column_edges(steps), 10.0 ** decades, counts, cmap="viridis",
-                             norm=LogNorm(vmin=1, vmax=max(int(counts.max()), 2)), shading="flat")
-        ax.set_yscale("log")
-        if _has_data(damping):
-            ax.step(steps, damping, where="post", color="crimson", linestyle="--", linewidth=1.8,
-                    label="damping added to the diagonal")
-            ax.legend(loc="lower left", fontsize=8)
-        dim = spectra[-1].size
-        ax.set_title(f"{label} ({dim}x{dim})")
-        ax.set_xlabel("optimizer step (inversion)")
-        ax.set_ylabel("eigenvalue (factor units, log scale)")
-        bar = fig.colorbar(mesh, ax=ax, label="eigenvalues per bin (log scale)")
-        count_labels = FuncFormatter(lambda value, _: f"{value:g}")
-        bar.ax.yaxis.set_major_formatter(count_labels)
-        bar.ax.yaxis.set_minor_formatter(count_labels)
-    fig.suptitle(f"Layer {layer}: factor spectra over training; eigenvalues under the dashed line "
+    top = max(float(s.max()) for s in spectra)
+    floor = top * 1e-12 if top > 0 else 1e-12  # zero and round-off negative eigenvalues land here
+    clipped = [np.clip(s, floor, None) for s in spectra]
+    low = min(float(s.min()) for s in clipped)
+    lo, hi = math.floor(math.log10(low)), math.ceil(math.log10(max(top, floor * 10)))
+    decades = np.linspace(lo, hi, 6 * (hi - lo) + 1)  # six bins per decade
+    counts = np.stack([np.histogram(np.log10(s), bins=decades)[0] for s in clipped], axis=1)
+    counts = np.ma.masked_equal(counts, 0)
+    mesh = ax.pcolormesh(_column_edges(steps), 10.0 ** decades, counts, cmap="viridis",
+                         norm=LogNorm(vmin=1, vmax=max(int(counts.max()), 2)), shading="flat")
+    ax.set_yscale("log")
+    if _has_data(damping):
+        ax.step(steps, damping, where="post", color="crimson", linestyle="--", linewidth=1.8,
+                label="damping added to the diagonal")
+        ax.legend(loc="lower left", fontsize=8)
+    ax.set_title(f"{title} ({spectra[-1].size} values)")
+    ax.set_xlabel("optimizer step (inversion)")
+    ax.set_ylabel("eigenvalue (factor units, log scale)")
+    bar = fig.colorbar(mesh, ax=ax, label="eigenvalues per bin (log scale)")
+    count_labels = FuncFormatter(lambda value, _: f"{value:g}")
+    bar.ax.yaxis.set_major_formatter(count_labels)
+    bar.ax.yaxis.set_minor_formatter(count_labels)
+
+
+def plot_spectra(records: list, layer: str, path: Path):
+    """Eigenvalue density of each factor over training, with the damping added to it."""
+    panels = []
+    for values_key, damping_path, title in _spectrum_panels(layer):
+        steps, spectra, damping = _spectrum_columns(records, layer, values_key, damping_path)
+        if spectra:
+            panels.append((steps, spectra, damping, title))
+    if not panels:
+        return None
+    plt = _pyplot()
+    fig, axes = plt.subplots(1, len(panels), figsize=(6 * len(panels), 4.5), constrained_layout=True,
+                             squeeze=False)
+    for ax, (steps, spectra, damping, title) in zip(axes[0], panels):
+        _draw_spectrum(fig, ax, steps, spectra, damping, title)
+    fig.suptitle(f"Layer {layer}: spectra over training; values under the dashed line "
                  "are dominated by damping")
     return _save(fig, path)
 
@@ -396,7 +413,9 @@ def plot_probe(records: list, path: Path):
     fig, (left, right) = plt.subplots(1, 2, figsize=(12, 4.5), constrained_layout=True)
     x = np.arange(len(names))
     width = 0.38
-    for offset, kind, label in ((-width / 2, "kron", "Kronecker A (x) G"), (width / 2, "diag", "diagonal")):
+    kinds = {layers[n].get("curvature") for n in names}
+    block_label = "optimizer's block (Kronecker A (x) G)" if kinds == {"kfac"} else "optimizer's block"
+    for offset, kind, label in ((-width / 2, "block", block_label), (width / 2, "diag", "diagonal of the exact Fisher")):
         errors = [_number(layers[n].get(f"{kind}_error")) for n in names]
         angles = [_number(layers[n].get(f"{kind}_angle_deg")) for n in names]
         left.bar(x + offset, errors, width, label=label)
@@ -469,9 +488,9 @@ def _probe_warnings(records: list) -> list:
         messages.append(f"at step {step} the empirical Fisher turns the step {angle:.0f} degrees away "
                         "from the sampled Fisher: prefer fisher='sampled' or 'exact'")
     for name, entry in (probe.get("layers") or {}).items():
-        kron_angle = _number(entry.get("kron_angle_deg"))
-        if kron_angle > PROBE_ANGLE_WARNING_DEG:
-            messages.append(f"layer {name}: the Kronecker direction is {kron_angle:.0f} degrees from the "
+        block_angle = _number(entry.get("block_angle_deg"))
+        if block_angle > PROBE_ANGLE_WARNING_DEG:
+            messages.append(f"layer {name}: the optimizer's direction is {block_angle:.0f} degrees from the "
                             f"exact natural gradient at step {step}")
     return messages
 
@@ -517,19 +536,20 @@ def _probe_lines(records: list) -> list:
         return []
     step, probe = found
     lines = [f"Fisher probe (step {step}, {probe.get('batch_size', '?')} examples):"]
-    rows = [("layer", "params", "kron error", "kron angle", "diag error", "diag angle")]
+    rows = [("layer", "params", "block error", "block angle", "diag error", "diag angle", "emp/sampled angle")]
     for name, e in (probe.get("layers") or {}).items():
-        rows.append((name, e.get("params", "-"), f"{_number(e.get('kron_error')):.3g}",
-                     f"{_number(e.get('kron_angle_deg')):.1f} deg", f"{_number(e.get('diag_error')):.3g}",
-                     f"{_number(e.get('diag_angle_deg')):.1f} deg"))
+        rows.append((name, e.get("params", "-"), f"{_number(e.get('block_error')):.3g}",
+                     f"{_number(e.get('block_angle_deg')):.1f} deg", f"{_number(e.get('diag_error')):.3g}",
+                     f"{_number(e.get('diag_angle_deg')):.1f} deg",
+                     f"{_number(e.get('empirical_vs_sampled_angle_deg')):.1f} deg"))
     if len(rows) > 1:
         lines += _format_table(rows)
     skipped = probe.get("skipped_layers") or {}
     lines += [f"  {name}: not probed ({why})" for name, why in skipped.items()]
     angle = _number(probe.get("empirical_vs_sampled_angle_deg"))
     if angle == angle:
-        lines.append(f"  empirical vs sampled Fisher: direction angle {angle:.1f} deg, relative error "
-                     f"{_number(probe.get('empirical_vs_sampled_error')):.3g}")
+        lines.append(f"  all probed layers together: optimizer's direction {_number(probe.get('block_angle_deg')):.1f} "
+                     f"deg from the exact natural gradient; empirical vs sampled Fisher {angle:.1f} deg apart")
     return lines
 
 
@@ -545,8 +565,8 @@ def summarize(records: list, source: str = "log") -> tuple[str, list]:
     lines = [f"ngopt diagnostics report for {source}",
              f"records: {len(records)} (steps {records[0]['step']} .. {final['step']})"
              + (f", {wall[-1] - wall[0]:.1f} s of wall time between first and last" if len(wall) > 1 else ""),
-             f"final: loss {_number(update.get('loss')):.4g}, damping {_number(update.get('damping')):.3g}, "
-             f"lr {_number(update.get('lr')):.3g}",
+             f"final: loss {_text(update.get('loss'), '.4g')}, damping {_text(update.get('damping'))}, "
+             f"lr {_text(update.get('lr'))}",
              f"skipped steps: {final.get('skipped_steps', 0)} of {final['step']}",
              _logging_cost_line(records), "",
              f"curvature blocks at step {final['step']}:", *_layer_table(final), "",

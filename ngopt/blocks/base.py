@@ -1,0 +1,93 @@
+"""The protocol every curvature block follows.
+
+A block owns one layer's curvature.  Its life per refresh:
+
+1. :meth:`add_capture` receives the layer's input rows ``a`` and output-gradient
+   rows ``g`` from the capture hooks, with the factor ``scale`` that undoes the
+   loss reduction (and averages Monte Carlo draws);
+2. :meth:`batch_statistics` turns the pending captures into this batch's
+   statistics;
+3. :meth:`blend` mixes them into the running average (the first refresh sets
+   them outright);
+4. :meth:`prepare_inverse` builds what :meth:`precondition` needs, with its diagnostics.
+
+Steps 2-4 return new tensors instead of writing them, so that the optimizer can
+check everything for NaN/Inf and then :meth:`commit` it all at once: a step
+that is skipped leaves the block untouched.  Persistent tensors live in the
+optimizer's per-parameter state of the layer's weight, so ``state_dict()``
+carries them.
+"""
+from __future__ import annotations
+
+from typing import Dict, List, Optional, Tuple
+
+import torch
+
+from .layers import LayerAdapter
+
+Tensors = Dict[str, torch.Tensor]
+
+
+class CurvatureBlock:
+    curvature = "block"
+    statistic_keys: Tuple[str, ...] = ()
+    inverse_keys: Tuple[str, ...] = ()
+
+    def __init__(self, layer: LayerAdapter, state: dict):
+        self.layer = layer
+        self.state = state
+        self.pending: List[Tuple[torch.Tensor, torch.Tensor, float]] = []
+        self.info: dict = {}  # latest diagnostics of this block (plain Python numbers)
+
+    # -- capture -------------------------------------------------------------------------
+    def add_capture(self, input_rows: torch.Tensor, grad_rows: torch.Tensor, scale: float) -> None:
+        self.pending.append((input_rows, grad_rows, scale))
+
+    def clear_pending(self) -> None:
+        self.pending.clear()
+
+    # -- statistics ----------------------------------------------------------------------
+    @property
+    def has_statistics(self) -> bool:
+        return all(key in self.state for key in self.statistic_keys)
+
+    @property
+    def has_inverse(self) -> bool:
+        return all(key in self.state for key in self.inverse_keys)
+
+    def batch_statistics(self, num_forwards: int) -> Optional[Tensors]:
+        raise NotImplementedError
+
+    def blend(self, batch: Tensors, ema: float) -> Tensors:
+        """``ema * old + (1 - ema) * batch``; the first refresh takes ``batch`` as it is."""
+        if not self.has_statistics:
+            return {key: value.clone() for key, value in batch.items()}
+        return {key: self.state[key].mul(ema).add_(batch[key], alpha=1.0 - ema) for key in batch}
+
+    def prepare_inverse(self, statistics: Tensors, damping: float,
+                        want_spectrum: bool) -> Tuple[Tensors, dict]:
+        """New inverse tensors and the diagnostics that came with them (traces, damping, spectra)."""
+        raise NotImplementedError
+
+    def commit(self, tensors: Tensors) -> None:
+        self.state.update(tensors)
+
+    # -- the step -----------------------------------------------------------------------
+    def precondition(self, grad_matrix: torch.Tensor, damping: float, tensors=None) -> torch.Tensor:
+        """``C^-1 grad`` as a gradient matrix; ``tensors`` (default: the block's state) holds the inverse."""
+        raise NotImplementedError
+
+    def damped_product(self, matrix: torch.Tensor, damping: float) -> torch.Tensor:
+        """``C v`` for the damped curvature ``C`` of this block, ``v`` given as a gradient matrix."""
+        raise NotImplementedError
+
+    def dense_curvature(self, damping: float = 0.0) -> torch.Tensor:
+        """The block's (undamped unless asked) Fisher approximation as a dense matrix.
+
+        Ordering: the column-major ``vec`` of the ``[d_out, d_in(+bias)]`` gradient
+        matrix, i.e. ``grad_matrix.T.reshape(-1)``.
+        """
+        raise NotImplementedError
+
+    def describe(self) -> str:
+        return f"{self.layer.kind} {self.curvature} [{self.layer.out_dim} x {self.layer.in_dim}]"

@@ -1,0 +1,81 @@
+"""Kronecker-factored curvature (K-FAC; KFC for convolutions).
+
+With rows ``a`` (inputs, bias as a trailing 1) and ``g`` (output gradients as
+the user's loss scales them, ``g = c dl/ds``), the block keeps
+
+    A = mean over rows of a a^T              (input factor,  d_in x d_in)
+    G = (1/c) sum over rows of g g^T         (output factor, d_out x d_out)
+
+so that ``A (x) G`` approximates the Fisher of ``L = c sum_n l_n`` (Martens &
+Grosse 2015, eq. 1-3; Grosse & Martens 2016 for the position count of
+convolutions, which this scaling reproduces).  The natural-gradient direction of
+a gradient matrix ``V`` is ``(A_d (x) G_d)^-1 vec(V) = vec(G_d^-1 V A_d^-1)``.
+"""
+from __future__ import annotations
+
+import torch
+
+from ..linalg import damped_inverse, factored_damping, to_cpu64
+from .base import CurvatureBlock, Tensors
+
+
+class KroneckerBlock(CurvatureBlock):
+    curvature = "kfac"
+    statistic_keys = ("factor_in", "factor_out")
+    inverse_keys = ("inverse_in", "inverse_out")
+
+    def batch_statistics(self, num_forwards):
+        if not self.pending:
+            return None
+        d_in, d_out = self.layer.in_dim, self.layer.out_dim
+        ref = self.layer.weight
+        factor_in = torch.zeros(d_in, d_in, dtype=ref.dtype, device=ref.device)
+        factor_out = torch.zeros(d_out, d_out, dtype=ref.dtype, device=ref.device)
+        rows = 0
+        for input_rows, grad_rows, scale in self.pending:
+            a = input_rows.reshape(-1, d_in)
+            g = grad_rows.reshape(-1, d_out)
+            factor_in.addmm_(a.T, a)
+            factor_out.addmm_(g.T, g, alpha=scale)
+            rows += a.shape[0]
+        return {"factor_in": factor_in / rows, "factor_out": factor_out / num_forwards}
+
+    def prepare_inverse(self, statistics, damping, want_spectrum):
+        factor_in = to_cpu64(statistics["factor_in"])
+        factor_out = to_cpu64(statistics["factor_out"])
+        trace_in, trace_out = float(factor_in.trace()), float(factor_out.trace())
+        shift_in, shift_out = factored_damping(trace_in, factor_in.shape[0], trace_out,
+                                               factor_out.shape[0], damping)
+        inv_in = damped_inverse(factor_in, shift_in, want_spectrum)
+        inv_out = damped_inverse(factor_out, shift_out, want_spectrum)
+        ref = self.layer.weight
+        info = {
+            "in_trace": trace_in, "out_trace": trace_out,
+            "in_damping": shift_in, "out_damping": shift_out,
+            "in_eigenvalues": inv_in.eigenvalues, "out_eigenvalues": inv_out.eigenvalues,
+            "used_eig_fallback": inv_in.used_fallback or inv_out.used_fallback,
+        }
+        return {"inverse_in": inv_in.inverse.to(device=ref.device, dtype=ref.dtype),
+                "inverse_out": inv_out.inverse.to(device=ref.device, dtype=ref.dtype)}, info
+
+    def precondition(self, grad_matrix, damping, tensors=None):
+        tensors = self.state if tensors is None else tensors
+        return tensors["inverse_out"] @ grad_matrix @ tensors["inverse_in"]
+
+    def _damped_factors(self, damping):
+        factor_in, factor_out = self.state["factor_in"], self.state["factor_out"]
+        shift_in, shift_out = factored_damping(float(factor_in.trace()), factor_in.shape[0],
+                                               float(factor_out.trace()), factor_out.shape[0], damping)
+        eye_in = torch.eye(factor_in.shape[0], dtype=factor_in.dtype, device=factor_in.device)
+        eye_out = torch.eye(factor_out.shape[0], dtype=factor_out.dtype, device=factor_out.device)
+        return factor_in + shift_in * eye_in, factor_out + shift_out * eye_out
+
+    def damped_product(self, matrix, damping):
+        damped_in, damped_out = self._damped_factors(damping)
+        return damped_out @ matrix @ damped_in
+
+    def dense_curvature(self, damping=0.0):
+        if damping:
+            damped_in, damped_out = self._damped_factors(damping)
+            return torch.kron(damped_in, damped_out)
+        return torch.kron(self.state["factor_in"], self.state["factor_out"])

@@ -1,0 +1,185 @@
+"""Forward and backward hooks that record what the curvature blocks need.
+
+On a forward pass of the whole model that is due a refresh (training mode,
+gradients enabled), every supported layer records its input rows ``a`` and
+keeps a handle on its own output.  The output gradients ``g`` then come from
+one of three Fisher sources:
+
+* ``empirical``: the gradients of the user's loss, caught by tensor hooks
+  during the user's own ``backward()``;
+* ``sampled``: when the user's ``backward()`` reaches the model output, a hook
+  runs one extra backward pass from the output with ``c * grad_f l(f, y~)``
+  for targets ``y~`` drawn from the model (one batched pass for several draws);
+* ``exact``: the same extra pass with the columns of the output Fisher's square
+  root, which gives the expectation over the predictive distribution exactly.
+
+The extra pass asks ``torch.autograd.grad`` for the gradients of the layer
+outputs only, so it neither accumulates into ``.grad`` nor changes what the
+user's backward computes.  Each layer hands the rest of the network a copy of
+its output, which keeps the tensor we differentiate with respect to safe from
+in-place operations downstream (``ReLU(inplace=True)``).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Callable, Dict, List, Optional
+
+import torch
+from torch import nn
+
+from .blocks.base import CurvatureBlock
+from .likelihoods import OutputLikelihood, empirical_reduction_scale
+
+_COLUMNS_PER_PASS = 32
+
+
+@dataclass
+class LayerCall:
+    block: CurvatureBlock
+    input_rows: torch.Tensor
+    output: torch.Tensor
+    grad_rows: Optional[torch.Tensor] = None
+    scale: float = 1.0
+
+
+@dataclass
+class ForwardRecord:
+    calls: List[LayerCall] = field(default_factory=list)
+    done: bool = False
+
+
+class FisherSource:
+    """Output-gradient vectors for the ``sampled`` and ``exact`` Fisher."""
+
+    def __init__(self, mode: str, likelihood: OutputLikelihood, num_samples: int,
+                 generator_for: Callable[[torch.device], torch.Generator]):
+        self.mode = mode
+        self.likelihood = likelihood
+        self.num_samples = num_samples
+        self.generator_for = generator_for
+
+    def output_vectors(self, output: torch.Tensor):
+        """``(V, scale)``: vectors ``[K, *output.shape]`` and the factor ``s`` with ``G = s sum g g^T``."""
+        c = self.likelihood.reduction_scale(output)
+        if self.mode == "sampled":
+            generator = self.generator_for(output.device)
+            vectors = self.likelihood.sampled_output_grads(output, generator, self.num_samples)
+            return vectors, 1.0 / (c * self.num_samples)
+        return self.likelihood.exact_output_grad_columns(output), 1.0 / c
+
+
+def batched_output_grads(output: torch.Tensor, targets: List[torch.Tensor],
+                         vectors: torch.Tensor) -> List[Optional[torch.Tensor]]:
+    """Backpropagate each of ``vectors`` from ``output`` to ``targets``; results ``[K, *target.shape]``."""
+    pieces: List[List[Optional[torch.Tensor]]] = []
+    for start in range(0, vectors.shape[0], _COLUMNS_PER_PASS):
+        chunk = vectors[start:start + _COLUMNS_PER_PASS]
+        try:
+            grads = torch.autograd.grad(output, targets, grad_outputs=chunk, retain_graph=True,
+                                        allow_unused=True, is_grads_batched=True)
+        except RuntimeError:
+            # Some operations have no batching rule: fall back to one pass per vector.
+            per_vector = [torch.autograd.grad(output, targets, grad_outputs=v, retain_graph=True,
+                                              allow_unused=True) for v in chunk]
+            grads = [None if parts[0] is None else torch.stack(parts)
+                     for parts in zip(*per_vector)]
+        pieces.append(list(grads))
+    merged = []
+    for per_target in zip(*pieces):
+        merged.append(None if per_target[0] is None else torch.cat(per_target))
+    return merged
+
+
+class CaptureHooks:
+    """Installs the hooks on ``model`` and collects finished records for the optimizer."""
+
+    def __init__(self, model: nn.Module, blocks: Dict[nn.Module, CurvatureBlock],
+                 source: Optional[FisherSource], loss_fn=None):
+        self.blocks = blocks
+        self.source = source          # None means the empirical Fisher
+        self.loss_fn = loss_fn
+        self.armed = True
+        self.records: List[ForwardRecord] = []
+        self._current: Optional[ForwardRecord] = None
+        self._handles = [model.register_forward_pre_hook(self._model_pre_hook)]
+        for module in blocks:
+            self._handles.append(module.register_forward_hook(self._layer_hook))
+        # Last, so that it runs after the layer hooks even when the model is itself a layer.
+        self._handles.append(model.register_forward_hook(self._model_post_hook))
+
+    def remove(self) -> None:
+        for handle in self._handles:
+            handle.remove()
+        self._handles.clear()
+
+    # -- hooks ------------------------------------------------------------------------------
+    def _model_pre_hook(self, model, inputs):
+        if self.armed and model.training and torch.is_grad_enabled() and self._current is None:
+            self._current = ForwardRecord()
+
+    def _layer_hook(self, module, inputs, output):
+        record = self._current
+        if record is None or not module.training or not isinstance(output, torch.Tensor) \
+                or not output.requires_grad:
+            return None
+        block = self.blocks[module]
+        call = LayerCall(block, block.layer.input_rows(inputs[0].detach()), output)
+        record.calls.append(call)
+        if self.source is None:
+            scale = 1.0 / empirical_reduction_scale(self.loss_fn, call.input_rows.shape[0])
+            output.register_hook(lambda grad, call=call, scale=scale: self._empirical_grad(call, grad, scale))
+        return output.clone()
+
+    def _model_post_hook(self, model, inputs, output):
+        record, self._current = self._current, None
+        if record is None or not record.calls:
+            return None
+        self.records.append(record)
+        if self.source is not None:
+            if not isinstance(output, torch.Tensor):
+                raise TypeError(f"fisher={self.source.mode!r} needs the model to return the tensor the loss "
+                                f"is applied to; it returned {type(output).__name__}. "
+                                "Use fisher='empirical' or wrap the model so it returns that tensor.")
+            if output.requires_grad:
+                output.register_hook(lambda grad, record=record, output=output:
+                                     self._extra_backward(record, output))
+        return None
+
+    def _empirical_grad(self, call: LayerCall, grad: torch.Tensor, scale: float):
+        if call.grad_rows is None:
+            call.grad_rows = call.block.layer.output_rows(grad.detach().unsqueeze(0))
+            call.scale = scale
+        return None
+
+    def _extra_backward(self, record: ForwardRecord, output: torch.Tensor):
+        if record.done:  # the extra pass itself reaches the output too
+            return None
+        record.done = True
+        vectors, scale = self.source.output_vectors(output.detach())
+        grads = batched_output_grads(output, [call.output for call in record.calls], vectors)
+        for call, grad in zip(record.calls, grads):
+            if grad is not None:
+                call.grad_rows = call.block.layer.output_rows(grad.detach())
+                call.scale = scale
+        return None
+
+    # -- hand-over ----------------------------------------------------------------------------
+    def hand_over(self) -> Dict[CurvatureBlock, int]:
+        """Give every finished layer call to its block; returns forwards seen per block."""
+        forwards: Dict[CurvatureBlock, int] = {}
+        for record in self.records:
+            seen = set()
+            for call in record.calls:
+                if call.grad_rows is None:
+                    continue
+                call.block.add_capture(call.input_rows, call.grad_rows, call.scale)
+                seen.add(call.block)
+            for block in seen:
+                forwards[block] = forwards.get(block, 0) + 1
+        self.records.clear()
+        return forwards
+
+    def discard(self) -> None:
+        self.records.clear()
+        for block in self.blocks.values():
+            block.clear_pending()

@@ -1,0 +1,327 @@
+"""How good is the curvature approximation? Compare it with the exact per-layer Fisher.
+
+    result = probe_fisher_quality(opt, model, loss_fn, inputs, targets)
+    handle.log_probe(result)          # optional: into the diagnostics log
+
+For every curvature block with at most ``max_params`` parameters, on one probe
+batch (x_n, y_n), n = 1..N, at the current weights:
+
+* the exact per-layer Fisher of the loss L = c sum_n l_n as the user defined it
+  (c = 1/#terms for ``reduction='mean'``, 1 for ``'sum'``)
+
+      F = c sum_n J_n^T H_n J_n,
+
+  J_n the Jacobian of the model output f_n in the layer's parameters
+  (``torch.func.jacrev``), H_n the Hessian of the per-term loss in f_n
+  (``torch.func.hessian``), which for these criteria is the output Fisher
+  E_{y~p(y|f_n)}[grad l grad l^T]: softmax cross-entropy diag(p) - p p^T,
+  squared error 2 I, sigmoid binary cross-entropy diag(s (1 - s));
+* against the optimizer's block ``C = block.dense_curvature()`` (A (x) G for
+  K-FAC, the diagonal for ``curvature='diag'``) and against the diagonal of F:
+  relative Frobenius error ||C - F||_F / ||F||_F, and the angle between the
+  damped natural-gradient directions (C + lambda I)^-1 g and (F + lambda I)^-1 g,
+  g the layer gradient on the probe batch (same damping on both sides, so the
+  angle is the approximation's alone); ``step_angle_deg`` compares instead the
+  direction the optimizer takes, with its own damping (factored for K-FAC);
+* the empirical Fisher (1/c) sum_n J_n^T u_n u_n^T J_n, u_n = dL_n/df_n with
+  the observed targets, against the sampled Fisher, the same with targets drawn
+  from the model's predictive distribution (``samples`` draws per example): relative
+  Frobenius error and angle between their damped directions. ``warnings.warn``
+  when that angle exceeds ``warn_angle_deg`` (Kunstner, Balles & Hennig 2019 on
+  why the empirical Fisher can point the step elsewhere).
+
+The optimizer's statistics are running averages over earlier batches, so the
+block error mixes the factorization error with estimation noise and staleness;
+for the pure factorization error take one step on the probe batch with
+``stats_ema=0`` first.
+
+The probe runs the model in ``eval()`` mode (restored afterwards) so that the
+optimizer's capture hooks record nothing; with dropout or batch norm that is a
+slightly different function from the training one.
+"""
+from __future__ import annotations
+
+import math
+import warnings
+from typing import Optional
+
+import torch
+from torch import nn
+from torch.func import functional_call, hessian, jacrev, vmap
+
+__all__ = ["probe_fisher_quality", "exact_layer_fisher", "relative_frobenius_error", "direction_angle_deg"]
+
+SUPPORTED_LOSSES = (nn.MSELoss, nn.CrossEntropyLoss, nn.BCEWithLogitsLoss)
+
+
+# --------------------------------------------------------------------------
+# small measures
+# --------------------------------------------------------------------------
+
+def relative_frobenius_error(approx: torch.Tensor, exact: torch.Tensor) -> float:
+    """||approx - exact||_F / ||exact||_F (inf when exact is zero and approx is not)."""
+    reference = float(torch.linalg.matrix_norm(exact))
+    difference = float(torch.linalg.matrix_norm(approx - exact))
+    if reference == 0.0:
+        return 0.0 if difference == 0.0 else math.inf
+    return difference / reference
+
+
+def direction_angle_deg(u: torch.Tensor, v: torch.Tensor) -> float:
+    """Angle between two vectors in degrees (0 = same direction, 180 = opposite)."""
+    nu, nv = float(u.norm()), float(v.norm())
+    if nu == 0.0 or nv == 0.0:
+        return math.nan
+    cosine = float(torch.dot(u.flatten(), v.flatten())) / (nu * nv)
+    return math.degrees(math.acos(max(-1.0, min(1.0, cosine))))
+
+
+def damped_direction(curvature: torch.Tensor, grad: torch.Tensor, damping: float) -> torch.Tensor:
+    """(curvature + damping I)^-1 grad."""
+    eye = torch.eye(curvature.shape[0], dtype=curvature.dtype, device=curvature.device)
+    return torch.linalg.solve(curvature + damping * eye, grad)
+
+
+# --------------------------------------------------------------------------
+# the loss: reduction scale, per-term Hessian, sampled targets
+# --------------------------------------------------------------------------
+
+def _check_loss(loss_fn) -> None:
+    if type(loss_fn) not in SUPPORTED_LOSSES:
+        names = ", ".join(f"nn.{cls.__name__}" for cls in SUPPORTED_LOSSES)
+        raise ValueError(f"loss_fn must be one of {names} (their Hessian is their Fisher); "
+                         f"got {type(loss_fn).__name__}")
+    if loss_fn.reduction not in ("mean", "sum"):
+        raise ValueError(f"loss_fn.reduction must be 'mean' or 'sum', got {loss_fn.reduction!r}")
+    if getattr(loss_fn, "weight", None) is not None or getattr(loss_fn, "pos_weight", None) is not None \
+            or getattr(loss_fn, "label_smoothing", 0.0):
+        raise ValueError("loss_fn: class weights, pos_weight and label_smoothing are not supported by the probe")
+
+
+def _per_example_scale(loss_fn, outputs: torch.Tensor) -> float:
+    """Factor s with L = s * sum_n loss_fn(f_n[None], y_n[None]): 1/N for 'mean', 1 for 'sum'."""
+    return 1.0 / outputs.shape[0] if loss_fn.reduction == "mean" else 1.0
+
+
+def _reduction_scale(loss_fn, outputs: torch.Tensor) -> float:
+    """c in L = c sum over terms: a term is an example for cross-entropy, an element otherwise."""
+    if loss_fn.reduction == "sum":
+        return 1.0
+    terms = outputs.shape[0] if isinstance(loss_fn, nn.CrossEntropyLoss) else outputs.numel()
+    return 1.0 / terms
+
+
+def _sample_targets(loss_fn, outputs: torch.Tensor, generator: torch.Generator) -> torch.Tensor:
+    """Targets drawn from the model's predictive distribution p(y | f)."""
+    if isinstance(loss_fn, nn.CrossEntropyLoss):
+        return torch.multinomial(torch.softmax(outputs, dim=1), 1, generator=generator).squeeze(1)
+    if isinstance(loss_fn, nn.BCEWithLogitsLoss):
+        uniform = torch.rand(outputs.shape, generator=generator, dtype=outputs.dtype)
+        return (uniform < torch.sigmoid(outputs)).to(outputs.dtype)
+    # squared error (y - f)^2 is the negative log-likelihood of N(f, 1/2) up to a constant
+    noise = torch.randn(outputs.shape, generator=generator, dtype=outputs.dtype)
+    return outputs + noise / math.sqrt(2.0)
+
+
+# --------------------------------------------------------------------------
+# per-layer Jacobians and Fisher matrices
+# --------------------------------------------------------------------------
+
+def _layer_parameters(module: nn.Module) -> dict:
+    names = {"weight": module.weight}
+    if getattr(module, "bias", None) is not None and module.bias.requires_grad:
+        names["bias"] = module.bias
+    return names
+
+
+def _block_order(jacobian: dict, module: nn.Module) -> torch.Tensor:
+    """[N, D, *param] Jacobians -> [N, D, P] in the blocks' ordering.
+
+    The blocks flatten the [d_out, d_in (+1 for the bias)] gradient matrix
+    column-major (``matrix.T.reshape(-1)``), weight columns first, bias last.
+    """
+    weight = jacobian["weight"]
+    n, d = weight.shape[:2]
+    matrix = weight.reshape(n, d, module.weight.shape[0], -1)
+    if "bias" in jacobian:
+        matrix = torch.cat([matrix, jacobian["bias"].unsqueeze(-1)], dim=-1)
+    return matrix.transpose(-1, -2).reshape(n, d, -1)
+
+
+def layer_jacobian(model: nn.Module, module: nn.Module, inputs: torch.Tensor) -> tuple:
+    """(outputs [N, D], Jacobian [N, D, P]) of the model outputs in one layer's parameters."""
+    prefix = next(name for name, m in model.named_modules() if m is module)
+    own = {(f"{prefix}.{k}" if prefix else k): v.detach() for k, v in _layer_parameters(module).items()}
+
+    def forward(layer_params):
+        return functional_call(model, layer_params, (inputs,), strict=False)
+
+    outputs = forward(own).detach()
+    if outputs.dim() != 2:
+        raise ValueError(f"the probe needs model outputs shaped [batch, features]; got {tuple(outputs.shape)}")
+    jac = jacrev(forward)(own)
+    jac = {key.rsplit(".", 1)[-1]: value for key, value in jac.items()}
+    return outputs, _block_order(jac, module).to(torch.float64)
+
+
+def output_hessians(loss_fn, outputs: torch.Tensor, targets: torch.Tensor) -> torch.Tensor:
+    """[N, D, D]: Hessian of loss_fn on one example (a batch of one) in its output."""
+    def one(f, y):
+        return loss_fn(f.unsqueeze(0), y.unsqueeze(0))
+
+    return vmap(hessian(one))(outputs, targets).to(torch.float64)
+
+
+def output_gradients(loss_fn, outputs: torch.Tensor, targets: torch.Tensor) -> torch.Tensor:
+    """[N, D]: u_n = dL/df_n of the batch loss."""
+    f = outputs.detach().clone().requires_grad_(True)
+    (grad,) = torch.autograd.grad(loss_fn(f, targets), f)
+    return grad.to(torch.float64)
+
+
+def exact_layer_fisher(model: nn.Module, module: nn.Module, loss_fn, inputs: torch.Tensor,
+                       targets: torch.Tensor) -> torch.Tensor:
+    """The exact Fisher block F = c sum_n J_n^T H_n J_n of one layer, in the blocks' ordering."""
+    _check_loss(loss_fn)
+    outputs, jac = layer_jacobian(model, module, inputs)
+    return _exact_from(loss_fn, outputs, targets, jac)
+
+
+def _exact_from(loss_fn, outputs, targets, jac) -> torch.Tensor:
+    hess = output_hessians(loss_fn, outputs, targets) * _per_example_scale(loss_fn, outputs)
+    return torch.einsum("ndp,nde,neq->pq", jac, hess, jac)
+
+
+def _outer_fisher(loss_fn, outputs, jac, grads) -> torch.Tensor:
+    """(1/c) sum_n (J_n^T u_n)(J_n^T u_n)^T for output gradients u_n of the batch loss."""
+    per_example = torch.einsum("ndp,nd->np", jac, grads)
+    return per_example.T @ per_example / _reduction_scale(loss_fn, outputs)
+
+
+# --------------------------------------------------------------------------
+# the probe
+# --------------------------------------------------------------------------
+
+def _group_damping(opt, weight: torch.Tensor) -> float:
+    for group in opt.param_groups:
+        if any(p is weight for p in group["params"]):
+            return float(group["damping"])
+    raise ValueError("the optimizer has no param group holding this layer's weight")
+
+
+def _probe_layer(opt, block, model, loss_fn, inputs, targets, generator, samples):
+    module = block.layer.module
+    damping = _group_damping(opt, block.layer.weight)
+    outputs, jac = layer_jacobian(model, module, inputs)
+    exact = _exact_from(loss_fn, outputs, targets, jac)
+    grad = torch.einsum("ndp,nd->p", jac, output_gradients(loss_fn, outputs, targets))
+    approx = block.dense_curvature().detach().to(device="cpu", dtype=torch.float64)
+    approx_damped = block.dense_curvature(damping).detach().to(device="cpu", dtype=torch.float64)
+    diagonal = torch.diag(torch.diagonal(exact))
+    empirical = _outer_fisher(loss_fn, outputs, jac, output_gradients(loss_fn, outputs, targets))
+    sampled = sum(_outer_fisher(loss_fn, outputs, jac,
+                                output_gradients(loss_fn, outputs, _sample_targets(loss_fn, outputs, generator)))
+                  for _ in range(samples)) / samples
+    directions = {
+        "exact": damped_direction(exact, grad, damping),
+        "block": damped_direction(approx, grad, damping),
+        "step": torch.linalg.solve(approx_damped, grad),
+        "diag": damped_direction(diagonal, grad, damping),
+        "empirical": damped_direction(empirical, grad, damping),
+        "sampled": damped_direction(sampled, grad, damping),
+    }
+    entry = {
+        "params": int(exact.shape[0]), "curvature": block.curvature, "damping": damping,
+        "exact_trace": float(torch.trace(exact)),
+        "block_error": relative_frobenius_error(approx, exact),
+        "block_angle_deg": direction_angle_deg(directions["block"], directions["exact"]),
+        "step_angle_deg": direction_angle_deg(directions["step"], directions["exact"]),
+        "diag_error": relative_frobenius_error(diagonal, exact),
+        "diag_angle_deg": direction_angle_deg(directions["diag"], directions["exact"]),
+        "empirical_vs_sampled_error": relative_frobenius_error(empirical, sampled),
+        "empirical_vs_sampled_angle_deg": direction_angle_deg(directions["empirical"], directions["sampled"]),
+        "sampled_vs_exact_angle_deg": direction_angle_deg(directions["sampled"], directions["exact"]),
+    }
+    return entry, directions
+
+
+def probe_fisher_quality(opt, model: nn.Module, loss_fn, inputs: torch.Tensor, targets: torch.Tensor, *,
+                         max_params: int = 4096, samples: int = 8, seed: int = 0,
+                         warn_angle_deg: float = 45.0, layers: Optional[list] = None) -> dict:
+    """Exact per-layer Fisher on a probe batch against the optimizer's approximation.
+
+    Args:
+        opt: an ``ngopt.NaturalGradient`` whose blocks hold statistics.
+        model: the model the optimizer trains.
+        loss_fn: ``nn.MSELoss``, ``nn.CrossEntropyLoss`` or ``nn.BCEWithLogitsLoss``.
+        inputs, targets: the probe batch (model outputs must be [batch, features]).
+        max_params: layers with more parameters are skipped (F is max_params^2 floats).
+        samples: targets drawn per example for the sampled Fisher.
+        seed: seed of the private generator for those draws.
+        warn_angle_deg: warn when the empirical Fisher turns the damped
+            natural-gradient direction further than this from the sampled one.
+        layers: names of the blocks to probe (default: all small enough).
+
+    Returns:
+        a plain dict: ``step``, ``batch_size``, ``layers`` {name: entry}, ``skipped_layers``
+        {name: reason}, and over all probed layers together ``empirical_vs_sampled_angle_deg``,
+        ``block_angle_deg``, ``step_angle_deg``. Entry keys (errors are relative Frobenius
+        errors, angles in degrees): ``params``, ``curvature``, ``damping``, ``exact_trace``,
+        ``block_error``, ``block_angle_deg``, ``step_angle_deg``,
+        ``diag_error``, ``diag_angle_deg``, ``empirical_vs_sampled_error``,
+        ``empirical_vs_sampled_angle_deg``, ``sampled_vs_exact_angle_deg``.
+    """
+    _check_loss(loss_fn)
+    _check_probe_arguments(max_params, samples, warn_angle_deg)
+    blocks = getattr(opt, "blocks", None)
+    if not isinstance(blocks, dict):
+        raise TypeError(f"opt must be an ngopt.NaturalGradient (with .blocks); got {type(opt).__name__}")
+    if layers is not None:
+        unknown = [name for name in layers if name not in blocks]
+        if unknown:
+            raise ValueError(f"layers: unknown block names {unknown}; the optimizer has {list(blocks)}")
+    generator = torch.Generator().manual_seed(seed)
+    result = {"step": int(opt.diagnostics()["step"]), "batch_size": int(inputs.shape[0]),
+              "layers": {}, "skipped_layers": {}}
+    joined = {"exact": [], "block": [], "step": [], "empirical": [], "sampled": []}
+    was_training = {m: m.training for m in model.modules()}
+    model.eval()  # the optimizer's capture hooks record nothing in eval mode
+    try:
+        for name, block in blocks.items():
+            if layers is not None and name not in layers:
+                continue
+            size = sum(p.numel() for p in _layer_parameters(block.layer.module).values())
+            if size > max_params:
+                result["skipped_layers"][name] = f"{size} parameters > max_params={max_params}"
+                continue
+            if not block.has_statistics:
+                result["skipped_layers"][name] = "no curvature statistics yet"
+                continue
+            entry, directions = _probe_layer(opt, block, model, loss_fn, inputs, targets, generator, samples)
+            result["layers"][name] = entry
+            for key in joined:
+                joined[key].append(directions[key])
+    finally:
+        for module, mode in was_training.items():
+            module.train(mode)
+    if result["layers"]:
+        whole = {key: torch.cat(parts) for key, parts in joined.items()}
+        result["block_angle_deg"] = direction_angle_deg(whole["block"], whole["exact"])
+        result["step_angle_deg"] = direction_angle_deg(whole["step"], whole["exact"])
+        result["empirical_vs_sampled_angle_deg"] = direction_angle_deg(whole["empirical"], whole["sampled"])
+        angle = result["empirical_vs_sampled_angle_deg"]
+        if angle > warn_angle_deg:
+            warnings.warn(f"the empirical Fisher turns the natural-gradient step {angle:.0f} degrees away from "
+                          f"the sampled Fisher on this probe batch (threshold {warn_angle_deg:g}); it is not the "
+                          "curvature here: prefer fisher='sampled' or 'exact'", stacklevel=2)
+    return result
+
+
+def _check_probe_arguments(max_params, samples, warn_angle_deg) -> None:
+    for name, value in (("max_params", max_params), ("samples", samples)):
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise TypeError(f"{name} must be an int, got {type(value).__name__}")
+        if value < 1:
+            raise ValueError(f"{name} must be >= 1, got {value}")
+    if not isinstance(warn_angle_deg, (int, float)) or not 0.0 <= warn_angle_deg <= 180.0:
+        raise ValueError(f"warn_angle_deg must be a number in [0, 180], got {warn_angle_deg!r}")

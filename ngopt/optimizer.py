@@ -1,0 +1,473 @@
+"""``NaturalGradient``: a ``torch.optim.Optimizer`` that preconditions by a per-layer Fisher.
+
+The optimizer only schedules and composes: capture hooks (``capture.py``)
+record layer inputs and output gradients, curvature blocks (``blocks/``) turn
+them into statistics, inverses and preconditioned directions, and the step rule
+(``step_control.py``, ``fallback.py``) scales and applies the update.
+
+One ``step()``:
+
+1. every ``stats_every`` steps the forward/backward just run was recorded;
+   its statistics are blended into the running averages (the first refresh
+   sets them outright);
+2. every ``invert_every`` steps the damped factors are inverted on the CPU in
+   float64;
+3. each block's gradient (plus ``weight_decay * w``) is preconditioned,
+   ``delta = C^-1 grad``; the KL trust bound scales all blocks of a group by
+   ``nu``; heavy-ball momentum ``buf = momentum * buf + nu * delta``;
+   ``w -= lr * buf``;
+4. parameters outside any block take the fallback rule.
+
+Nothing is written until everything is known to be finite: a step with a
+non-finite loss, gradient, statistic or update leaves weights and curvature
+state untouched and is counted in ``diagnostics()["skipped_steps"]``.
+"""
+from __future__ import annotations
+
+import math
+import time
+import warnings
+from collections import ChainMap
+from typing import Callable, Dict, List, Optional
+
+import torch
+from torch import nn
+
+from . import fallback as fallback_rules
+from .blocks.base import CurvatureBlock
+from .blocks.diagonal import DiagonalBlock
+from .blocks.kronecker import KroneckerBlock
+from .blocks.layers import adapter_for
+from .capture import CaptureHooks, FisherSource
+from .likelihoods import likelihood_for
+from .spectra import block_summary
+from .step_control import kl_trust_scale, levenberg_marquardt_damping, reduction_ratio
+from .validation import check_arguments
+
+CURVATURES = {"kfac": KroneckerBlock, "diag": DiagonalBlock}
+SKIP_REASONS = ("nonfinite_loss", "nonfinite_gradient", "nonfinite_statistics", "nonfinite_update")
+TIME_KEYS = ("statistics", "inversion", "precondition", "fallback", "step_total")
+DEFAULT_FALLBACK_LR_SCALE = {"sgd": 1.0, "adam": 1e-2}
+
+
+class NaturalGradient(torch.optim.Optimizer):
+    """Natural-gradient descent with Kronecker-factored (or diagonal) Fisher blocks.
+
+    See the README for every option; the short version:
+
+    Args:
+        model: the ``nn.Module`` being trained. Its ``nn.Linear`` and ``nn.Conv2d``
+            (groups=1) layers get curvature blocks; other parameters use ``fallback``.
+        loss_fn: the training criterion object with its own reduction (needed for
+            ``fisher='sampled'`` and ``'exact'``).
+        lr: step size on the preconditioned direction (per group).
+        momentum: heavy-ball momentum on the preconditioned update (per group).
+        weight_decay: L2 term added to the gradient before preconditioning (per group).
+        damping: Tikhonov damping ``lambda`` added to the curvature (per group).
+        fisher: ``'sampled'``, ``'exact'`` or ``'empirical'``.
+        curvature: ``'kfac'`` or ``'diag'``.
+        stats_every: steps between curvature-statistics refreshes.
+        invert_every: steps between inversions of the factors.
+        stats_ema: weight of the old statistics in the running average.
+        trust_kl: bound on the step's KL divergence under the quadratic model (None: off).
+        adapt_damping: Levenberg-Marquardt adaptation of ``damping``; needs ``step(closure)``.
+        fallback: ``'sgd'`` or ``'adam'`` for parameters outside any block (per group).
+        fallback_lr_scale: the fallback rule's step is ``lr * fallback_lr_scale``
+            (default 1 for ``'sgd'``, 1e-2 for ``'adam'``; per group).
+        fisher_samples: Monte Carlo draws per example for ``fisher='sampled'``.
+        damping_range: bounds for ``adapt_damping``.
+        adapt_every: steps between Levenberg-Marquardt updates of ``damping``.
+        param_groups: optional list of dicts as in ``torch.optim`` (``{"params": [...], "lr": ...}``)
+            over the model's parameters; by default one group holds them all.
+        seed: seed of the private generator used for sampled targets
+            (default ``torch.initial_seed()``; the global RNG is never consumed).
+    """
+
+    def __init__(self, model: nn.Module, loss_fn=None, *, lr: float = 0.3, momentum: float = 0.5,
+                 weight_decay: float = 0.0, damping: float = 1e-2, fisher: str = "sampled",
+                 curvature: str = "kfac", stats_every: int = 10, invert_every: int = 20,
+                 stats_ema: float = 0.9, trust_kl: Optional[float] = 1e-2, adapt_damping: bool = False,
+                 fallback: str = "sgd", fallback_lr_scale: Optional[float] = None, fisher_samples: int = 1,
+                 damping_range=(1e-6, 1e2), adapt_every: int = 5, param_groups=None,
+                 seed: Optional[int] = None):
+        check_arguments(model=model, loss_fn=loss_fn, lr=lr, momentum=momentum, weight_decay=weight_decay,
+                        damping=damping, fisher=fisher, curvature=curvature, stats_every=stats_every,
+                        invert_every=invert_every, stats_ema=stats_ema, trust_kl=trust_kl,
+                        adapt_damping=adapt_damping, fallback=fallback, fallback_lr_scale=fallback_lr_scale,
+                        fisher_samples=fisher_samples, damping_range=damping_range, adapt_every=adapt_every,
+                        seed=seed)
+        source = None
+        if fisher != "empirical":
+            if loss_fn is None:
+                raise ValueError(f"loss_fn: fisher={fisher!r} needs the training criterion "
+                                 "(e.g. nn.CrossEntropyLoss()); pass loss_fn or use fisher='empirical'")
+            source = FisherSource(fisher, likelihood_for(loss_fn), fisher_samples, self._generator_for)
+        else:
+            warnings.warn("fisher='empirical' uses the loss gradients themselves: it is not the curvature in "
+                          "general and can point steps the wrong way near and far from a minimum "
+                          "(Kunstner et al. 2019). Prefer fisher='sampled'.", stacklevel=2)
+        if damping < 1e-6:
+            warnings.warn(f"damping={damping:g} is very small: near-singular factors then make huge steps; "
+                          "values around 1e-3..1e-1 are the usual range", stacklevel=2)
+
+        defaults = dict(lr=lr, momentum=momentum, weight_decay=weight_decay, damping=damping,
+                        trust_kl=trust_kl, fallback=fallback, fallback_lr_scale=fallback_lr_scale)
+        groups = param_groups if param_groups is not None else [{"params": list(model.parameters())}]
+        super().__init__(groups, defaults)
+        for group in self.param_groups:
+            check_arguments(**{key: group[key] for key in defaults})
+            if group["fallback_lr_scale"] is None:
+                group["fallback_lr_scale"] = DEFAULT_FALLBACK_LR_SCALE[group["fallback"]]
+
+        self.model = getattr(model, "module", model) if _is_wrapper(model) else model
+        self.fisher = fisher
+        self.curvature = curvature
+        self.stats_every = stats_every
+        self.invert_every = invert_every
+        self.stats_ema = stats_ema
+        self.adapt_damping = adapt_damping
+        self.damping_range = tuple(float(x) for x in damping_range)
+        self.adapt_every = adapt_every
+        self.track_spectra = False
+        self._seed = int(torch.initial_seed() if seed is None else seed)
+        self._generator: Optional[torch.Generator] = None
+        self._steps = 0
+        self._skipped = {reason: 0 for reason in SKIP_REASONS}
+        self._times = {key: 0.0 for key in TIME_KEYS}
+        self._last_update: dict = {}
+        self._warned_uninitialised = False
+
+        self.blocks: Dict[str, CurvatureBlock] = self._build_blocks(CURVATURES[curvature])
+        self._hooks = CaptureHooks(self.model, {b.layer.module: b for b in self.blocks.values()}, source,
+                                   loss_fn)
+        self._hooks.armed = True
+
+    # ------------------------------------------------------------------ construction
+    def _build_blocks(self, block_class) -> Dict[str, CurvatureBlock]:
+        group_of = {p: i for i, g in enumerate(self.param_groups) for p in g["params"]}
+        blocks: Dict[str, CurvatureBlock] = {}
+        for name, module in self.model.named_modules():
+            layer = adapter_for(module, name or type(module).__name__)
+            if layer is None or not layer.weight.requires_grad or layer.weight not in group_of:
+                continue
+            if layer.has_bias and not layer.bias.requires_grad:
+                layer.bias = None  # a frozen bias is left alone; the block covers the weight only
+            if layer.has_bias and group_of.get(layer.bias) != group_of[layer.weight]:
+                raise ValueError(f"param_groups: {name}.weight and {name}.bias must be in the same group")
+            blocks[layer.name] = block_class(layer, self.state[layer.weight])
+        self._block_group = {b: group_of[b.layer.weight] for b in blocks.values()}
+        self._block_params = {p for b in blocks.values() for p in b.layer.params()}
+        return blocks
+
+    def _generator_for(self, device: torch.device) -> torch.Generator:
+        if self._generator is None or self._generator.device != device:
+            self._generator = torch.Generator(device=device)
+            self._generator.manual_seed(self._seed)
+        return self._generator
+
+    def __repr__(self) -> str:
+        lines = [f"NaturalGradient(fisher={self.fisher!r}, curvature={self.curvature!r}, "
+                 f"stats_every={self.stats_every}, invert_every={self.invert_every}, "
+                 f"stats_ema={self.stats_ema}, adapt_damping={self.adapt_damping})"]
+        for i, group in enumerate(self.param_groups):
+            settings = ", ".join(f"{k}={group[k]}" for k in ("lr", "momentum", "weight_decay", "damping",
+                                                               "trust_kl", "fallback"))
+            lines.append(f"  group {i}: {settings}")
+        for name, block in self.blocks.items():
+            lines.append(f"  {name}: {block.describe()}")
+        others = [p for g in self.param_groups for p in g["params"] if p not in self._block_params]
+        if others:
+            count = sum(p.numel() for p in others)
+            lines.append(f"  fallback rule: {len(others)} tensors, {count} parameters")
+        return "\n".join(lines)
+
+    # ------------------------------------------------------------------ the step
+    @torch.no_grad()
+    def step(self, closure: Optional[Callable[[], torch.Tensor]] = None):
+        """One natural-gradient step; returns ``closure()``'s loss when a closure is given."""
+        if self.adapt_damping and closure is None:
+            raise ValueError("adapt_damping=True needs step(closure): the closure re-evaluates the loss on the "
+                             "same batch to measure the reduction ratio")
+        loss = None
+        if closure is not None:
+            with torch.enable_grad():
+                loss = closure()
+        started = time.perf_counter()
+        step_index = self._steps
+        reason = self._attempt(loss, step_index)
+        if reason is not None:
+            self._skip(reason)
+        elif self.adapt_damping and (step_index + 1) % self.adapt_every == 0:
+            self._adapt_damping(closure, loss)
+        self._steps += 1
+        self._hooks.armed = self._statistics_due(self._steps)
+        self._times["step_total"] += time.perf_counter() - started
+        return loss
+
+    def _statistics_due(self, step_index: int) -> bool:
+        return step_index % self.stats_every == 0 or not all(b.has_statistics for b in self.blocks.values())
+
+    def _attempt(self, loss, step_index: int) -> Optional[str]:
+        """Compute the whole step, then write it; return a skip reason instead of writing."""
+        if loss is not None and isinstance(loss, torch.Tensor) and not bool(torch.isfinite(loss).all()):
+            self._hooks.discard()
+            return "nonfinite_loss"
+        grads = [p.grad for g in self.param_groups for p in g["params"] if p.grad is not None]
+        if grads and not bool(torch.isfinite(torch.stack(torch._foreach_norm(grads))).all()):
+            self._hooks.discard()
+            return "nonfinite_gradient"
+
+        tick = time.perf_counter()
+        statistics = self._new_statistics()
+        self._times["statistics"] += time.perf_counter() - tick
+        if statistics is None:
+            return "nonfinite_statistics"
+        tick = time.perf_counter()
+        inverses = self._new_inverses(statistics, step_index)
+        self._times["inversion"] += time.perf_counter() - tick
+        if inverses is None:
+            return "nonfinite_statistics"
+
+        tick = time.perf_counter()
+        directions = self._block_directions(statistics, inverses)
+        self._times["precondition"] += time.perf_counter() - tick
+        if directions is None:
+            return "nonfinite_update"
+
+        for block, tensors in statistics.items():
+            block.commit(tensors)
+        for block, (tensors, info) in inverses.items():
+            block.commit(tensors)
+            block.info = dict(info, inversion_step=step_index)
+        self._apply_block_updates(directions)
+        tick = time.perf_counter()
+        self._apply_fallback()
+        self._times["fallback"] += time.perf_counter() - tick
+        return None
+
+    def _new_statistics(self) -> Optional[Dict[CurvatureBlock, dict]]:
+        forwards = self._hooks.hand_over()
+        statistics = {}
+        for block, count in forwards.items():
+            batch = block.batch_statistics(count)
+            block.clear_pending()
+            if batch is not None:
+                statistics[block] = block.blend(batch, self.stats_ema)
+        tensors = [t for stats in statistics.values() for t in stats.values()]
+        if tensors and not bool(torch.isfinite(torch.stack(torch._foreach_norm(tensors))).all()):
+            return None
+        return statistics
+
+    def _new_inverses(self, statistics, step_index: int):
+        due = step_index % self.invert_every == 0
+        inverses = {}
+        for block in self.blocks.values():
+            fresh = block in statistics
+            if not ((due and (fresh or block.has_statistics)) or (fresh and not block.has_inverse)):
+                continue
+            stats = statistics[block] if fresh else block.state
+            damping = self.param_groups[self._block_group[block]]["damping"]
+            tensors, info = block.prepare_inverse(stats, damping, self.track_spectra)
+            if tensors and not bool(torch.isfinite(torch.stack(torch._foreach_norm(list(tensors.values())))).all()):
+                return None
+            inverses[block] = (tensors, info)
+        return inverses
+
+    def _block_directions(self, statistics, inverses):
+        """``{block: (grad_matrix, nu * delta)}`` for every block with a gradient, or None if non-finite."""
+        directions = {}
+        per_group: Dict[int, List] = {}
+        for block in self.blocks.values():
+            layer = block.layer
+            if layer.weight.grad is None:
+                continue
+            group = self.param_groups[self._block_group[block]]
+            weight_grad = layer.weight.grad
+            bias_grad = layer.bias.grad if layer.has_bias else None
+            if group["weight_decay"]:
+                weight_grad = weight_grad.add(layer.weight, alpha=group["weight_decay"])
+                if bias_grad is not None:
+                    bias_grad = bias_grad.add(layer.bias, alpha=group["weight_decay"])
+            grad_matrix = layer.gradient_matrix(weight_grad, bias_grad)
+            view = ChainMap(inverses[block][0] if block in inverses else {},
+                            statistics.get(block, {}), block.state)
+            if all(key in view for key in block.inverse_keys):
+                delta = block.precondition(grad_matrix, group["damping"], view)
+            else:
+                self._warn_uninitialised(layer.name)
+                delta = grad_matrix
+            directions[block] = (grad_matrix, delta)
+            per_group.setdefault(self._block_group[block], []).append(block)
+        if not directions:
+            self._last_update = {}
+            return directions
+
+        # One reduction for all the scalars the step needs: <delta, g>, |delta|^2, |g|^2 per block.
+        order = list(directions)
+        sums = torch.stack([torch.stack([(d * g).sum(), (d * d).sum(), (g * g).sum()])
+                            for g, d in (directions[b] for b in order)]).double().cpu()
+        if not bool(torch.isfinite(sums).all()):
+            return None
+        per_block = dict(zip(order, sums.tolist()))
+        self._record_update(per_group, per_block)
+        scaled = {}
+        for index, blocks in per_group.items():
+            nu = self._last_update["trust_scale_by_group"][index]
+            for block in blocks:
+                grad_matrix, delta = directions[block]
+                scaled[block] = (grad_matrix, delta.mul_(nu) if nu != 1.0 else delta)
+        return scaled
+
+    def _record_update(self, per_group, per_block) -> None:
+        dot = sum(v[0] for v in per_block.values())
+        delta_sq = sum(v[1] for v in per_block.values())
+        grad_sq = sum(v[2] for v in per_block.values())
+        scales, kl, predicted, update_sq = {}, 0.0, 0.0, 0.0
+        for index, blocks in per_group.items():
+            group = self.param_groups[index]
+            group_dot = sum(per_block[b][0] for b in blocks)
+            nu = kl_trust_scale(group_dot, group["lr"], group["trust_kl"])
+            scales[index] = nu
+            step = group["lr"] * nu
+            kl += 0.5 * step * step * group_dot
+            predicted += -step * group_dot + 0.5 * step * step * group_dot
+            update_sq += nu * nu * sum(per_block[b][1] for b in blocks)
+        denom = math.sqrt(delta_sq * grad_sq)
+        group0 = self.param_groups[0]
+        self._last_update = {
+            "grad_norm": math.sqrt(grad_sq), "update_norm": math.sqrt(update_sq),
+            "cosine": dot / denom if denom > 0 else 0.0,
+            "trust_scale": min(scales.values()), "trust_scale_by_group": scales,
+            "kl_estimate": kl, "predicted_change": predicted, "reduction_ratio": None,
+            "damping": group0["damping"], "lr": group0["lr"],
+        }
+
+    def _apply_block_updates(self, directions) -> None:
+        for block, (_, delta) in directions.items():
+            group = self.param_groups[self._block_group[block]]
+            weight_part, bias_part = block.layer.split_matrix(delta)
+            for param, part in ((block.layer.weight, weight_part), (block.layer.bias, bias_part)):
+                if part is None or param.grad is None:
+                    continue
+                self._momentum_step(param, part, group["momentum"], group["lr"])
+
+    def _momentum_step(self, param, direction, momentum, lr) -> None:
+        state = self.state[param]
+        if momentum:
+            buf = state.get("momentum_buffer")
+            if buf is None:
+                buf = state["momentum_buffer"] = direction.clone()
+            else:
+                buf.mul_(momentum).add_(direction)
+            direction = buf
+        param.add_(direction, alpha=-lr)
+
+    def _apply_fallback(self) -> None:
+        for group in self.param_groups:
+            params = [p for p in group["params"] if p.grad is not None and p not in self._block_params]
+            if not params:
+                continue
+            grads = [p.grad for p in params]
+            states = [self.state[p] for p in params]
+            if group["fallback"] == "adam":
+                directions = fallback_rules.adam_directions(params, grads, states,
+                                                            weight_decay=group["weight_decay"])
+            else:
+                directions = fallback_rules.sgd_directions(params, grads, states, momentum=group["momentum"],
+                                                           weight_decay=group["weight_decay"])
+            step = group["lr"] * group["fallback_lr_scale"]
+            torch._foreach_add_(params, directions, alpha=-step)
+
+    def _warn_uninitialised(self, name: str) -> None:
+        if not self._warned_uninitialised:
+            warnings.warn(f"{name}: no curvature statistics yet (no recorded training forward/backward); "
+                          "taking a plain gradient step for it", stacklevel=4)
+            self._warned_uninitialised = True
+
+    def _skip(self, reason: str) -> None:
+        self._skipped[reason] += 1
+        if sum(self._skipped.values()) == 1:
+            warnings.warn(f"step {self._steps} skipped ({reason.replace('_', ' ')}); weights and curvature "
+                          "state left unchanged. Further skips are counted in diagnostics()['skipped_steps'].",
+                          stacklevel=3)
+
+    # ------------------------------------------------------------------ damping adaptation
+    def _adapt_damping(self, closure, loss_before) -> None:
+        """Levenberg-Marquardt: compare the loss change with the quadratic model's prediction."""
+        predicted = self._model_change()
+        armed, self._hooks.armed = self._hooks.armed, False
+        try:
+            with torch.enable_grad():
+                loss_after = closure()
+        finally:
+            self._hooks.armed = armed
+        rho = reduction_ratio(float(loss_before), float(loss_after), predicted)
+        for group in self.param_groups:
+            group["damping"] = levenberg_marquardt_damping(group["damping"], rho, self.adapt_every,
+                                                           self.damping_range)
+        self._last_update["reduction_ratio"] = rho
+        self._last_update["damping"] = self.param_groups[0]["damping"]
+
+    def _model_change(self) -> float:
+        """``M(delta) = grad^T delta + delta^T C delta / 2`` for the update just applied (blocks only)."""
+        total = 0.0
+        for block in self.blocks.values():
+            layer = block.layer
+            if layer.weight.grad is None or not block.has_inverse or "momentum_buffer" not in self.state[layer.weight]:
+                continue
+            group = self.param_groups[self._block_group[block]]
+            bias_buf = self.state[layer.bias].get("momentum_buffer") if layer.has_bias else None
+            delta = -group["lr"] * layer.gradient_matrix(self.state[layer.weight]["momentum_buffer"], bias_buf)
+            grad = layer.gradient_matrix(layer.weight.grad, layer.bias.grad if layer.has_bias else None)
+            curved = block.damped_product(delta, group["damping"])
+            total += float((grad * delta).sum() + 0.5 * (delta * curved).sum())
+        return total
+
+    # ------------------------------------------------------------------ hooks, diagnostics, state
+    def register_step_hook(self, fn: Callable[["NaturalGradient"], None]):
+        """Call ``fn(optimizer)`` after every ``step()`` (skipped ones included); returns a removable handle."""
+        return self.register_step_post_hook(lambda optimizer, args, kwargs: fn(optimizer))
+
+    def diagnostics(self) -> dict:
+        """A plain-dict snapshot of the latest curvature diagnostics (keys documented in the README)."""
+        layers = {name: block_summary(block, self.param_groups[self._block_group[block]]["damping"],
+                                      with_spectra=self.track_spectra)
+                  for name, block in self.blocks.items()}
+        update = {k: v for k, v in self._last_update.items() if k != "trust_scale_by_group"}
+        update.setdefault("reduction_ratio", None)
+        return {"step": self._steps, "skipped_steps": sum(self._skipped.values()),
+                "skip_reasons": dict(self._skipped), "layers": layers, "update": update,
+                "time": dict(self._times)}
+
+    def state_dict(self) -> dict:
+        state = super().state_dict()
+        state["natural_gradient"] = {
+            "steps": self._steps, "skipped": dict(self._skipped), "seed": self._seed,
+            "generator_state": None if self._generator is None else self._generator.get_state(),
+            "generator_device": None if self._generator is None else str(self._generator.device),
+        }
+        return state
+
+    def load_state_dict(self, state_dict: dict) -> None:
+        state_dict = dict(state_dict)
+        extra = state_dict.pop("natural_gradient", None)
+        super().load_state_dict(state_dict)
+        for block in self.blocks.values():
+            block.state = self.state[block.layer.weight]
+        if extra is not None:
+            self._steps = int(extra["steps"])
+            self._skipped.update(extra["skipped"])
+            self._seed = int(extra["seed"])
+            self._generator = None
+            if extra["generator_state"] is not None:
+                self._generator = torch.Generator(device=extra["generator_device"])
+                self._generator.set_state(extra["generator_state"].to(torch.uint8).cpu())
+        self._hooks.armed = self._statistics_due(self._steps)
+
+    def remove_hooks(self) -> None:
+        """Detach the capture hooks from the model (the optimizer then only preconditions)."""
+        self._hooks.remove()
+
+
+def _is_wrapper(model: nn.Module) -> bool:
+    return isinstance(model, (nn.DataParallel, nn.parallel.DistributedDataParallel))

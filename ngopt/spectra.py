@@ -1,0 +1,70 @@
+"""Per-block curvature summaries for ``NaturalGradient.diagnostics()``.
+
+Eigenvalues come from the inversion when spectra tracking is on (the
+inversion then uses an eigendecomposition, so they cost nothing extra);
+otherwise they are computed here on demand, once per inversion.
+"""
+from __future__ import annotations
+
+import math
+
+import torch
+
+from .blocks.base import CurvatureBlock
+from .linalg import factored_damping, to_cpu64
+
+
+def condition_number(smallest: float, largest: float) -> float:
+    return largest / smallest if smallest > 0 else math.inf
+
+
+def _spectra(block: CurvatureBlock):
+    info = block.info
+    if info.get("in_eigenvalues") is None or info.get("_spectra_of") != info.get("inversion_step"):
+        info["in_eigenvalues"] = torch.linalg.eigvalsh(to_cpu64(block.state["factor_in"]))
+        info["out_eigenvalues"] = torch.linalg.eigvalsh(to_cpu64(block.state["factor_out"]))
+    info["_spectra_of"] = info.get("inversion_step")
+    return info["in_eigenvalues"], info["out_eigenvalues"]
+
+
+def _kronecker_summary(block, damping, with_spectra) -> dict:
+    eig_in, eig_out = _spectra(block)
+    trace_in, trace_out = float(eig_in.sum()), float(eig_out.sum())
+    shift_in, shift_out = factored_damping(trace_in, eig_in.numel(), trace_out, eig_out.numel(), damping)
+    summary = {}
+    for side, eig, shift, trace in (("in", eig_in, shift_in, trace_in), ("out", eig_out, shift_out, trace_out)):
+        low, high = float(eig[0]), float(eig[-1])
+        summary.update({
+            f"{side}_eig_min": low, f"{side}_eig_max": high,
+            f"{side}_condition": condition_number(low, high),
+            f"{side}_condition_damped": condition_number(max(low, 0.0) + shift, max(high, 0.0) + shift),
+            f"{side}_trace": trace, f"{side}_damping": shift,
+        })
+        if with_spectra:
+            summary[f"{side}_eigenvalues"] = eig.tolist()
+    summary["condition"] = summary["in_condition_damped"] * summary["out_condition_damped"]
+    return summary
+
+
+def _diagonal_summary(block, damping, with_spectra) -> dict:
+    diagonal = block.state["fisher_diagonal"].detach().double().cpu().flatten()
+    low, high = float(diagonal.min()), float(diagonal.max())
+    summary = {"diag_min": low, "diag_max": high, "diag_mean": float(diagonal.mean()),
+               "condition": condition_number(max(low, 0.0) + damping, max(high, 0.0) + damping)}
+    if with_spectra:
+        summary["diag_values"] = diagonal.sort().values.tolist()
+    return summary
+
+
+def block_summary(block: CurvatureBlock, damping: float, with_spectra: bool = False) -> dict:
+    """Plain-number summary of one block: sizes, spectra, damping and condition numbers."""
+    summary = {"block": block.layer.kind, "curvature": block.curvature,
+               "in_dim": block.layer.in_dim, "out_dim": block.layer.out_dim,
+               "condition": math.nan, "inversion_step": block.info.get("inversion_step")}
+    if not block.has_statistics:
+        return summary
+    if block.curvature == "kfac":
+        summary.update(_kronecker_summary(block, damping, with_spectra))
+    else:
+        summary.update(_diagonal_summary(block, damping, with_spectra))
+    return summary

@@ -1,0 +1,100 @@
+"""Argument checks at the door: each names the argument and the allowed values."""
+from __future__ import annotations
+
+import math
+import numbers
+
+from torch import nn
+
+CHOICES = {"fisher": ("sampled", "exact", "empirical"), "curvature": ("kfac", "diag"),
+           "fallback": ("sgd", "adam")}
+PLANNED = {"curvature": {"ekfac": "curvature='ekfac' (eigenvalue-corrected K-FAC) is not available yet; "
+                                  "use 'kfac' or 'diag'"}}
+
+
+def _real(name, value, *, low=None, high=None, low_open=False, high_open=False, optional=False):
+    if value is None and optional:
+        return
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
+        raise TypeError(f"{name} must be a real number{' or None' if optional else ''}, "
+                        f"got {type(value).__name__}")
+    if not math.isfinite(value):
+        raise ValueError(f"{name} must be finite, got {value}")
+    if low is not None and (value < low or (low_open and value == low)):
+        raise ValueError(f"{name} must be {'>' if low_open else '>='} {low}, got {value}")
+    if high is not None and (value > high or (high_open and value == high)):
+        raise ValueError(f"{name} must be {'<' if high_open else '<='} {high}, got {value}")
+
+
+def _integer(name, value, *, low):
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
+        raise TypeError(f"{name} must be an int, got {type(value).__name__}")
+    if value < low:
+        raise ValueError(f"{name} must be >= {low}, got {value}")
+
+
+def _choice(name, value):
+    if not isinstance(value, str):
+        raise TypeError(f"{name} must be a string, one of {CHOICES[name]}; got {type(value).__name__}")
+    if value in PLANNED.get(name, {}):
+        raise ValueError(f"{name}: {PLANNED[name][value]}")
+    if value not in CHOICES[name]:
+        raise ValueError(f"{name} must be one of {CHOICES[name]}, got {value!r}")
+
+
+CHECKS = {
+    "lr": lambda v: _real("lr", v, low=0.0, low_open=True),
+    "momentum": lambda v: _real("momentum", v, low=0.0, high=1.0, high_open=True),
+    "weight_decay": lambda v: _real("weight_decay", v, low=0.0),
+    "damping": lambda v: _real("damping", v, low=0.0, low_open=True),
+    "stats_ema": lambda v: _real("stats_ema", v, low=0.0, high=1.0, high_open=True),
+    "trust_kl": lambda v: _real("trust_kl", v, low=0.0, low_open=True, optional=True),
+    "fallback_lr_scale": lambda v: _real("fallback_lr_scale", v, low=0.0, optional=True),
+    "stats_every": lambda v: _integer("stats_every", v, low=1),
+    "invert_every": lambda v: _integer("invert_every", v, low=1),
+    "fisher_samples": lambda v: _integer("fisher_samples", v, low=1),
+    "adapt_every": lambda v: _integer("adapt_every", v, low=1),
+    "fisher": lambda v: _choice("fisher", v),
+    "curvature": lambda v: _choice("curvature", v),
+    "fallback": lambda v: _choice("fallback", v),
+}
+
+
+def _check_model(model):
+    if not isinstance(model, nn.Module):
+        raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
+
+
+def _check_loss_fn(loss_fn):
+    if loss_fn is not None and not callable(loss_fn):
+        raise TypeError(f"loss_fn must be a callable criterion (e.g. nn.CrossEntropyLoss()) or None, "
+                        f"got {type(loss_fn).__name__}")
+
+
+def _check_flag(name, value):
+    if not isinstance(value, bool):
+        raise TypeError(f"{name} must be True or False, got {type(value).__name__}")
+
+
+def _check_damping_range(value):
+    if not isinstance(value, (tuple, list)) or len(value) != 2:
+        raise TypeError(f"damping_range must be a pair (low, high), got {value!r}")
+    low, high = value
+    _real("damping_range[0]", low, low=0.0, low_open=True)
+    _real("damping_range[1]", high, low=0.0, low_open=True)
+    if low > high:
+        raise ValueError(f"damping_range must have low <= high, got {value!r}")
+
+
+def _check_seed(value):
+    if value is not None and (isinstance(value, bool) or not isinstance(value, numbers.Integral)):
+        raise TypeError(f"seed must be an int or None, got {type(value).__name__}")
+
+
+def check_arguments(**arguments) -> None:
+    """Validate every given argument; raise ``TypeError``/``ValueError`` naming the first bad one."""
+    special = {"model": _check_model, "loss_fn": _check_loss_fn, "damping_range": _check_damping_range,
+               "seed": _check_seed, "adapt_damping": lambda v: _check_flag("adapt_damping", v)}
+    for name, value in arguments.items():
+        check = special.get(name) or CHECKS[name]
+        check(value)
