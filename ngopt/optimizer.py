@@ -129,6 +129,8 @@ class NaturalGradient(torch.optim.Optimizer):
         self.damping_range = tuple(float(x) for x in damping_range)
         self.adapt_every = adapt_every
         self.track_spectra = False
+        # Set by ngopt.distributed to share statistics and inversions across ranks; None = one process.
+        self.communicator = None
         self._seed = int(torch.initial_seed() if seed is None else seed)
         self._generator: Optional[torch.Generator] = None
         self._steps = 0
@@ -247,30 +249,38 @@ class NaturalGradient(torch.optim.Optimizer):
 
     def _new_statistics(self) -> Optional[Dict[CurvatureBlock, dict]]:
         forwards = self._hooks.hand_over()
-        statistics = {}
-        for block, count in forwards.items():
-            batch = block.batch_statistics(count)
+        batches = {}
+        for block in self.blocks.values():
+            if block in forwards:
+                batch = block.batch_statistics(forwards[block])
+                if batch is not None:
+                    batches[block] = batch
             block.clear_pending()
-            if batch is not None:
-                statistics[block] = block.blend(batch, self.stats_ema)
+        if self.communicator is not None:
+            batches = self.communicator.average_statistics(self, batches)
+        statistics = {block: block.blend(batch, self.stats_ema) for block, batch in batches.items()}
         tensors = [t for stats in statistics.values() for t in stats.values()]
         if tensors and not bool(torch.isfinite(torch.stack(torch._foreach_norm(tensors))).all()):
             return None
         return statistics
 
     def _new_inverses(self, statistics, step_index: int):
+        """``{block: (tensors, info)}`` for the blocks due an inversion, or None if non-finite."""
         due = step_index % self.invert_every == 0
-        inverses = {}
+        jobs = []
         for block in self.blocks.values():
             fresh = block in statistics
-            if not ((due and (fresh or block.has_statistics)) or (fresh and not block.has_inverse)):
-                continue
-            stats = statistics[block] if fresh else block.state
-            damping = self.param_groups[self._block_group[block]]["damping"]
-            tensors, info = block.prepare_inverse(stats, damping, self.track_spectra)
-            if tensors and not bool(torch.isfinite(torch.stack(torch._foreach_norm(list(tensors.values())))).all()):
-                return None
-            inverses[block] = (tensors, info)
+            if (due and (fresh or block.has_statistics)) or (fresh and not block.has_inverse):
+                damping = self.param_groups[self._block_group[block]]["damping"]
+                jobs.append((block, statistics[block] if fresh else block.state, damping))
+        if self.communicator is not None:
+            inverses = self.communicator.invert(self, jobs)
+        else:
+            inverses = {block: block.prepare_inverse(stats, damping, self.track_spectra)
+                        for block, stats, damping in jobs}
+        tensors = [t for new, _ in inverses.values() for t in new.values()]
+        if tensors and not bool(torch.isfinite(torch.stack(torch._foreach_norm(tensors))).all()):
+            return None
         return inverses
 
     def _block_directions(self, statistics, inverses):
