@@ -174,6 +174,10 @@ def _draw_spectrum(fig, ax, steps, spectra, damping, title):
         ax.step(steps, damping, where="post", color="crimson", linestyle="--", linewidth=1.8,
                 label="damping added to the diagonal")
         ax.legend(loc="lower left", fontsize=8)
+    clipped_now = int(np.sum(spectra[-1] <= floor))
+    if clipped_now:
+        ax.text(0.99, 0.02, f"{clipped_now} values <= 1e-12 x max (zero or round-off) drawn in the bottom row",
+                ha="right", va="bottom", fontsize=7, transform=ax.transAxes)
     ax.set_title(f"{title} ({spectra[-1].size} values)")
     ax.set_xlabel("optimizer step (inversion)")
     ax.set_ylabel("eigenvalue (factor units, log scale)")
