@@ -21,6 +21,7 @@ in-place operations downstream (``ReLU(inplace=True)``).
 """
 from __future__ import annotations
 
+import time
 from dataclasses import dataclass, field
 from typing import Callable, Dict, List, Optional
 
@@ -99,6 +100,7 @@ class CaptureHooks:
         self.source = source          # None means the empirical Fisher
         self.loss_fn = loss_fn
         self.armed = True
+        self.seconds = {"capture": 0.0, "extra_backward": 0.0}  # time spent inside the user's passes
         self.records: List[ForwardRecord] = []
         self._current: Optional[ForwardRecord] = None
         self._handles = [model.register_forward_pre_hook(self._model_pre_hook)]
@@ -122,13 +124,16 @@ class CaptureHooks:
         if record is None or not module.training or not isinstance(output, torch.Tensor) \
                 or not output.requires_grad:
             return None
+        started = time.perf_counter()
         block = self.blocks[module]
         call = LayerCall(block, block.layer.input_rows(inputs[0].detach()), output)
         record.calls.append(call)
         if self.source is None:
             scale = 1.0 / empirical_reduction_scale(self.loss_fn, call.input_rows.shape[0])
             output.register_hook(lambda grad, call=call, scale=scale: self._empirical_grad(call, grad, scale))
-        return output.clone()
+        copy = output.clone()
+        self.seconds["capture"] += time.perf_counter() - started
+        return copy
 
     def _model_post_hook(self, model, inputs, output):
         record, self._current = self._current, None
@@ -155,12 +160,14 @@ class CaptureHooks:
         if record.done:  # the extra pass itself reaches the output too
             return None
         record.done = True
+        started = time.perf_counter()
         vectors, scale = self.source.output_vectors(output.detach())
         grads = batched_output_grads(output, [call.output for call in record.calls], vectors)
         for call, grad in zip(record.calls, grads):
             if grad is not None:
                 call.grad_rows = call.block.layer.output_rows(grad.detach())
                 call.scale = scale
+        self.seconds["extra_backward"] += time.perf_counter() - started
         return None
 
     # -- hand-over ----------------------------------------------------------------------------

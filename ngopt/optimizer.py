@@ -447,7 +447,7 @@ class NaturalGradient(torch.optim.Optimizer):
         update.setdefault("reduction_ratio", None)
         return {"step": self._steps, "skipped_steps": sum(self._skipped.values()),
                 "skip_reasons": dict(self._skipped), "layers": layers, "update": update,
-                "time": dict(self._times)}
+                "time": dict(self._times, **self._hooks.seconds)}
 
     def state_dict(self) -> dict:
         state = super().state_dict()

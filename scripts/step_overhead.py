@@ -1,0 +1,83 @@
+"""Per-step wall time of NaturalGradient (default refresh intervals) over torch.optim.SGD's.
+
+An MLP of width d (3 hidden layers of d units, 10 classes) on random data, batch B.
+Arithmetic floor of the ratio: forward+backward cost ~6 B d^2 flops per d x d
+layer and preconditioning ~4 d^3 per step, so ratio >= 1 + 2d / (3B) once
+statistics and inversions are amortized.
+
+    python scripts/step_overhead.py --width 256 --batches 256 1024
+"""
+from __future__ import annotations
+
+import argparse
+import statistics
+import time
+
+import torch
+from torch import nn
+
+import ngopt
+
+
+def make_mlp(width: int, depth: int = 3, classes: int = 10) -> nn.Module:
+    layers = []
+    for _ in range(depth):
+        layers += [nn.Linear(width, width), nn.Tanh()]
+    return nn.Sequential(*layers, nn.Linear(width, classes))
+
+
+def time_steps(make_optimizer, width: int, batch: int, steps: int, warmup: int, seed: int = 0):
+    torch.manual_seed(seed)
+    model = make_mlp(width)
+    loss_fn = nn.CrossEntropyLoss()
+    optimizer = make_optimizer(model, loss_fn)
+    inputs = torch.randn(batch, width)
+    targets = torch.randint(0, 10, (batch,))
+    times = []
+    for _ in range(warmup + steps):
+        start = time.perf_counter()
+        optimizer.zero_grad()
+        loss_fn(model(inputs), targets).backward()
+        optimizer.step()
+        times.append(time.perf_counter() - start)
+    return times[warmup:], sum(times), optimizer
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--width", type=int, default=256)
+    parser.add_argument("--batches", type=int, nargs="+", default=[256, 1024])
+    parser.add_argument("--steps", type=int, default=200, help="timed steps (a multiple of invert_every)")
+    parser.add_argument("--warmup", type=int, default=20)
+    parser.add_argument("--threads", type=int, default=2)
+    parser.add_argument("--rounds", type=int, default=3, help="alternate SGD/ngopt runs this many times")
+    args = parser.parse_args(argv)
+    torch.set_num_threads(args.threads)
+
+    def sgd(model, loss_fn):
+        return torch.optim.SGD(model.parameters(), lr=0.01, momentum=0.9)
+
+    def natural(model, loss_fn):
+        return ngopt.NaturalGradient(model, loss_fn, lr=0.01)
+
+    print(f"width {args.width}, threads {args.threads}, {args.steps} timed steps x {args.rounds} rounds")
+    print(f"{'batch':>6} {'sgd ms':>8} {'ngopt ms':>9} {'ratio(mean)':>11} {'ratio(median)':>13} {'floor':>6}  ngopt split (% of its step)")
+    for batch in args.batches:
+        sgd_times, ng_times, optimizer = [], [], None
+        for _ in range(args.rounds):  # interleave so that machine noise hits both alike
+            sgd_times += time_steps(sgd, args.width, batch, args.steps, args.warmup)[0]
+            times, wall, optimizer = time_steps(natural, args.width, batch, args.steps, args.warmup)
+            ng_times += times
+        # The optimizer's own clocks cover every step of its last run, warm-up included.
+        split = optimizer.diagnostics()["time"]
+        share = {k: 100 * split[k] / wall for k in ("statistics", "inversion", "precondition")}
+        floor = 1 + 2 * args.width / (3 * batch)
+        mean_ratio = statistics.mean(ng_times) / statistics.mean(sgd_times)
+        median_ratio = statistics.median(ng_times) / statistics.median(sgd_times)
+        print(f"{batch:>6} {1e3 * statistics.mean(sgd_times):>8.2f} {1e3 * statistics.mean(ng_times):>9.2f} "
+              f"{mean_ratio:>11.2f} {median_ratio:>13.2f} {floor:>6.2f}  "
+              + ", ".join(f"{k} {v:.0f}%" for k, v in share.items()))
+
+
+if __name__ == "__main__":
+    main()
