@@ -197,6 +197,8 @@ class NaturalGradient(torch.optim.Optimizer):
         started = time.perf_counter()
         step_index = self._steps
         reason = self._attempt(loss, step_index)
+        if loss is not None and self._last_update:
+            self._last_update["loss"] = float(loss)
         if reason is not None:
             self._skip(reason)
         elif self.adapt_damping and (step_index + 1) % self.adapt_every == 0:
@@ -349,7 +351,7 @@ class NaturalGradient(torch.optim.Optimizer):
             "cosine": dot / denom if denom > 0 else 0.0,
             "trust_scale": min(scales.values()), "trust_scale_by_group": scales,
             "kl_estimate": kl, "predicted_change": predicted, "reduction_ratio": None,
-            "damping": group0["damping"], "lr": group0["lr"],
+            "damping": group0["damping"], "lr": group0["lr"], "loss": None,
         }
 
     def _apply_block_updates(self, directions) -> None:

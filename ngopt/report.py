@@ -175,10 +175,8 @@ def _draw_spectrum(fig, ax, steps, spectra, damping, title):
                 label="damping added to the diagonal")
         ax.legend(loc="lower left", fontsize=8)
     clipped_now = int(np.sum(spectra[-1] <= floor))
-    if clipped_now:
-        ax.text(0.99, 0.02, f"{clipped_now} values <= 1e-12 x max (zero or round-off) drawn in the bottom row",
-                ha="right", va="bottom", fontsize=7, transform=ax.transAxes)
-    ax.set_title(f"{title} ({spectra[-1].size} values)")
+    note = f"\n{clipped_now} of them ~0 (below 1e-12 x max), drawn in the bottom row" if clipped_now else ""
+    ax.set_title(f"{title} ({spectra[-1].size} values){note}", fontsize=10)
     ax.set_xlabel("optimizer step (inversion)")
     ax.set_ylabel("eigenvalue (factor units, log scale)")
     bar = fig.colorbar(mesh, ax=ax, label="eigenvalues per bin (log scale)")
@@ -366,6 +364,8 @@ def time_split(record: dict) -> dict:
 def plot_time(records: list, path: Path):
     if not records or not time_split(records[-1]):
         return None
+    # probe records fall between the regular ones; their short intervals would show as spikes
+    records = [r for r in records[:-1] if "probe" not in r] + records[-1:]
     plt = _pyplot()
     final = time_split(records[-1])
     keys = list(final)
