@@ -39,7 +39,8 @@ class DiagonalBlock(CurvatureBlock):
             return None
         total = None
         for input_rows, grad_rows, scale in self.pending:
-            term = per_example_square_sum(input_rows, grad_rows) * scale
+            dtype = self.layer.weight.dtype
+            term = per_example_square_sum(input_rows.to(dtype), grad_rows.to(dtype)) * scale
             total = term if total is None else total + term
         return {"fisher_diagonal": total / num_forwards}
 

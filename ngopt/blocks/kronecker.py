@@ -33,8 +33,9 @@ class KroneckerBlock(CurvatureBlock):
         factor_out = torch.zeros(d_out, d_out, dtype=ref.dtype, device=ref.device)
         rows = 0
         for input_rows, grad_rows, scale in self.pending:
-            a = input_rows.reshape(-1, d_in)
-            g = grad_rows.reshape(-1, d_out)
+            # Rows may come in a lower precision (autocast); statistics accumulate in the weight's dtype.
+            a = input_rows.reshape(-1, d_in).to(ref.dtype)
+            g = grad_rows.reshape(-1, d_out).to(ref.dtype)
             factor_in.addmm_(a.T, a)
             factor_out.addmm_(g.T, g, alpha=scale)
             rows += a.shape[0]
