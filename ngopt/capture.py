@@ -22,6 +22,7 @@ in-place operations downstream (``ReLU(inplace=True)``).
 from __future__ import annotations
 
 import time
+import warnings
 from dataclasses import dataclass, field
 from typing import Callable, Dict, List, Optional
 
@@ -32,6 +33,8 @@ from .blocks.base import CurvatureBlock
 from .likelihoods import OutputLikelihood, empirical_reduction_scale
 
 _COLUMNS_PER_PASS = 32
+# Above this many output-Fisher columns per example, fisher="exact" costs more than it is usually worth.
+EXACT_COLUMNS_WARNING = 64
 
 
 @dataclass
@@ -58,6 +61,7 @@ class FisherSource:
         self.likelihood = likelihood
         self.num_samples = num_samples
         self.generator_for = generator_for
+        self._warned_cost = False
 
     def output_vectors(self, output: torch.Tensor):
         """``(V, scale)``: vectors ``[K, *output.shape]`` and the factor ``s`` with ``G = s sum g g^T``."""
@@ -66,7 +70,12 @@ class FisherSource:
             generator = self.generator_for(output.device)
             vectors = self.likelihood.sampled_output_grads(output, generator, self.num_samples)
             return vectors, 1.0 / (c * self.num_samples)
-        return self.likelihood.exact_output_grad_columns(output), 1.0 / c
+        columns = self.likelihood.exact_output_grad_columns(output)
+        if columns.shape[0] > EXACT_COLUMNS_WARNING and not self._warned_cost:
+            warnings.warn(f"fisher='exact' backpropagates {columns.shape[0]} vectors per refresh for this output "
+                          f"{tuple(output.shape)}; fisher='sampled' costs one", stacklevel=2)
+            self._warned_cost = True
+        return columns, 1.0 / c
 
 
 def batched_output_grads(output: torch.Tensor, targets: List[torch.Tensor],
