@@ -53,7 +53,8 @@ key                                meaning                                      
 ``wall_time``                      time the record was taken (``time.time()``)                        s (epoch)
 ``log_seconds``                    time spent by this logger before this record, cumulative           s
 ``update.grad_norm``               norm of the gradient of the curvature-block parameters             loss/param
-``update.update_norm``             norm of the preconditioned update of those parameters              param
+``update.update_norm``             norm of the preconditioned update nu C^-1 g of those parameters    param / lr
+                                   (before the step size lr and momentum)
 ``update.cosine``                  cosine between gradient and preconditioned direction               1
 ``update.trust_scale``             factor the KL bound applied to the step (1 = not limited)          1
 ``update.kl_estimate``             KL divergence of the step under the quadratic model                nats
@@ -67,8 +68,10 @@ key                                meaning                                      
 ``time.inversion``                 inversions / eigendecompositions of the factors, cumulative        s
 ``time.precondition``              applying the inverses to the gradients, cumulative                 s
 ``time.fallback``                  fallback rule for parameters outside the blocks, cumulative        s
-``time.extra_backward``            extra backward passes for the sampled/exact Fisher, cumulative     s
-``time.step_total``                whole ``step()`` calls, cumulative                                 s
+``time.step_total``                whole ``step()`` calls, cumulative (includes the four above)       s
+``time.capture``                   capture hooks inside the user's forward/backward, cumulative       s
+``time.extra_backward``            extra backward passes for the sampled/exact Fisher (inside the     s
+                                   user's ``backward()``), cumulative
 ``layers.<name>.block``            layer kind of the curvature block (``linear``, ``conv2d``)         --
 ``layers.<name>.curvature``        curvature kind (``kfac``, ``diag``)                                --
 ``layers.<name>.in_dim``           size of the input factor A (bias column included)                  rows

@@ -40,7 +40,9 @@ __all__ = ["write_report", "summarize", "main"]
 CONDITION_WARNING = 1e8          # damped condition number called ill-conditioned
 SKIPPED_WARNING_FRACTION = 0.05  # share of skipped steps called "many"
 PROBE_ANGLE_WARNING_DEG = 45.0   # angle between directions called "far apart"
-TIME_KEYS = ("statistics", "inversion", "precondition", "fallback", "extra_backward")
+STEP_TIME_KEYS = ("statistics", "inversion", "precondition", "fallback")  # parts of time.step_total
+OUTSIDE_STEP_LABELS = {"capture": "capture hooks (in forward/backward)",
+                       "extra_backward": "extra backward (sampled/exact Fisher)"}
 
 
 # --------------------------------------------------------------------------
@@ -349,12 +351,20 @@ def plot_loss(records: list, path: Path):
 
 
 def time_split(record: dict) -> dict:
-    """Cumulative seconds per category, with 'other' = the rest of step_total."""
+    """Cumulative seconds per category.
+
+    The parts of ``step()`` plus "other step work" (the rest of ``step_total``),
+    then the time spent in the user's forward/backward passes (capture hooks,
+    extra backward) and in this logger.
+    """
     times = record.get("time") or {}
-    split = {key: _number(times.get(key)) for key in TIME_KEYS if math.isfinite(_number(times.get(key)))}
+    split = {key: _number(times[key]) for key in STEP_TIME_KEYS if math.isfinite(_number(times.get(key)))}
     total = _number(times.get("step_total"))
     if math.isfinite(total):
         split["other step work"] = max(total - sum(split.values()), 0.0)
+    for key, value in times.items():
+        if key not in STEP_TIME_KEYS and key != "step_total" and math.isfinite(_number(value)):
+            split[OUTSIDE_STEP_LABELS.get(key, key)] = _number(value)
     log_seconds = _number(record.get("log_seconds"))
     if math.isfinite(log_seconds):
         split["diagnostics logging"] = log_seconds
@@ -520,7 +530,8 @@ def _time_lines(record: dict) -> list:
     total = sum(split.values())
     if total <= 0:
         return ["  (no timing)"]
-    return [f"  {key:<20} {seconds:9.3f} s  {100 * seconds / total:5.1f}%" for key, seconds in split.items()]
+    width = max(len(key) for key in split)
+    return [f"  {key:<{width}} {seconds:9.3f} s  {100 * seconds / total:5.1f}%" for key, seconds in split.items()]
 
 
 def _logging_cost_line(records: list) -> str:
