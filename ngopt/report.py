@@ -318,8 +318,7 @@ def plot_update(records: list, path: Path):
 def plot_loss(records: list, path: Path):
     steps, loss = series(records, "update", "loss")
     _, ratio = series(records, "update", "reduction_ratio")
-    _, predicted = series(records, "update", "predicted_change")
-    if not any(_has_data(v) for v in (loss, ratio, predicted)):
+    if not any(_has_data(v) for v in (loss, ratio)):
         return None
     plt = _pyplot()
     fig, (top, bottom) = plt.subplots(2, 1, figsize=(10, 7), sharex=True, constrained_layout=True)
@@ -329,7 +328,7 @@ def plot_loss(records: list, path: Path):
             top.set_yscale("log")
         top.legend(fontsize=8)
     else:
-        top.text(0.5, 0.5, "no loss recorded (pass a closure to step())", ha="center",
+        top.text(0.5, 0.5, "no loss recorded (use step(closure) or handle.note_loss(loss))", ha="center",
                  va="center", transform=top.transAxes)
     top.set_ylabel("loss (as defined by loss_fn)")
     top.set_title("loss")
