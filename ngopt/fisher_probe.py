@@ -161,7 +161,8 @@ def layer_jacobian(model: nn.Module, module: nn.Module, inputs: torch.Tensor) ->
         raise ValueError(f"the probe needs model outputs shaped [batch, features]; got {tuple(outputs.shape)}")
     jac = jacrev(forward)(own)
     jac = {key.rsplit(".", 1)[-1]: value for key, value in jac.items()}
-    return outputs, _block_order(jac, module).to(torch.float64)
+    # the other layers' parameters still require grad; nothing here is meant to be differentiated
+    return outputs, _block_order(jac, module).detach().to(torch.float64)
 
 
 def output_hessians(loss_fn, outputs: torch.Tensor, targets: torch.Tensor) -> torch.Tensor:
