@@ -140,13 +140,25 @@ _TEXT_TO_NONFINITE = {"Infinity": math.inf, "-Infinity": -math.inf, "NaN": math.
 # plain values
 # --------------------------------------------------------------------------
 
+def _all_finite_floats(values: list) -> bool:
+    return all(type(v) is float for v in values) and all(map(math.isfinite, values))
+
+
 def to_plain(value: Any) -> Any:
     """Turn tensors, numpy values and tuples into plain Python types."""
+    kind = type(value)
+    if kind is float or kind is int or kind is str or kind is bool or value is None:
+        return value
+    if kind is dict:
+        return {str(k): to_plain(v) for k, v in value.items()}
+    if kind is list or kind is tuple:
+        # spectra are long lists of floats: keep the common case cheap
+        return list(value) if all(type(v) is float for v in value) else [to_plain(v) for v in value]
     if isinstance(value, dict):
         return {str(k): to_plain(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
         return [to_plain(v) for v in value]
-    if isinstance(value, (bool, str)) or value is None:
+    if isinstance(value, (bool, str)):
         return value
     if hasattr(value, "tolist"):  # torch.Tensor, numpy arrays and scalars
         return to_plain(value.tolist())
@@ -161,7 +173,7 @@ def _encode_nonfinite(value: Any) -> Any:
     if isinstance(value, dict):
         return {k: _encode_nonfinite(v) for k, v in value.items()}
     if isinstance(value, list):
-        return [_encode_nonfinite(v) for v in value]
+        return value if _all_finite_floats(value) else [_encode_nonfinite(v) for v in value]
     if isinstance(value, float) and not math.isfinite(value):
         return "NaN" if math.isnan(value) else _NONFINITE_TO_TEXT[value]
     return value
@@ -171,7 +183,7 @@ def _decode_nonfinite(value: Any) -> Any:
     if isinstance(value, dict):
         return {k: _decode_nonfinite(v) for k, v in value.items()}
     if isinstance(value, list):
-        return [_decode_nonfinite(v) for v in value]
+        return value if _all_finite_floats(value) else [_decode_nonfinite(v) for v in value]
     if isinstance(value, str) and value in _TEXT_TO_NONFINITE:
         return _TEXT_TO_NONFINITE[value]
     return value

@@ -338,7 +338,7 @@ def plot_loss(records: list, path: Path):
         bottom.axhline(1.0, color="black", linestyle=":", linewidth=1, label=r"model exact ($\rho = 1$)")
         bottom.legend(fontsize=8)
     else:
-        bottom.text(0.5, 0.5, "no reduction ratio recorded (needs step(closure))", ha="center",
+        bottom.text(0.5, 0.5, "no reduction ratio recorded (needs adapt_damping=True and step(closure))", ha="center",
                     va="center", transform=bottom.transAxes)
     bottom.set_ylabel("actual / predicted change")
     bottom.set_xlabel("optimizer step")
@@ -389,7 +389,7 @@ def plot_time(records: list, path: Path):
         left.stackplot(steps[1:], np.clip(per_step, 0, None).T * 1e3, labels=keys, colors=colours, step="pre")
         left.set_xlabel("optimizer step")
         left.set_ylabel("milliseconds per step (between records)")
-        left.legend(fontsize=8, loc="upper left")
+        left.legend(fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.15), ncol=3)
         left.grid(True, alpha=0.3)
     else:
         left.text(0.5, 0.5, "one record: no per-step rate", ha="center", va="center", transform=left.transAxes)

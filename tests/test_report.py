@@ -153,3 +153,27 @@ def test_diagonal_curvature_spectra_figure(tmp_path, curvature):
     result = write_report(log, tmp_path / "out")
     assert_png(tmp_path / "out" / "spectra_0.png")
     assert tmp_path / "out" / "spectra_0.png" in result["figures"]
+
+
+def test_reduction_ratio_figure_from_a_closure_run(tmp_path):
+    torch.manual_seed(3)
+    x, y = torch.randn(64, 4), torch.randn(64, 2)
+    model = nn.Sequential(nn.Linear(4, 8), nn.Tanh(), nn.Linear(8, 2))
+    loss_fn = nn.MSELoss()
+    opt = ngopt.NaturalGradient(model, loss_fn, lr=0.5, momentum=0.5, adapt_damping=True, adapt_every=2)
+
+    def closure():
+        opt.zero_grad()
+        loss = loss_fn(model(x), y)
+        loss.backward()
+        return loss
+
+    with log_diagnostics(opt, tmp_path / "run.jsonl", every=2):
+        for _ in range(12):
+            opt.step(closure)
+    records = [json.loads(line) for line in (tmp_path / "run.jsonl").read_text().splitlines()]
+    assert all(isinstance(r["update"]["reduction_ratio"], float) for r in records)
+    assert all(isinstance(r["update"]["loss"], float) for r in records)
+    result = write_report(tmp_path / "run.jsonl", tmp_path / "out")
+    assert tmp_path / "out" / "loss.png" in result["figures"]
+    assert_png(tmp_path / "out" / "loss.png")
