@@ -183,12 +183,12 @@ class CaptureHooks:
     def hand_over(self) -> Dict[CurvatureBlock, int]:
         """Give every finished layer call to its block; returns forwards seen per block."""
         forwards: Dict[CurvatureBlock, int] = {}
-        for record in self.records:
+        for index, record in enumerate(self.records):
             seen = set()
             for call in record.calls:
                 if call.grad_rows is None:
                     continue
-                call.block.add_capture(call.input_rows, call.grad_rows, call.scale)
+                call.block.add_capture(call.input_rows, call.grad_rows, call.scale, index)
                 seen.add(call.block)
             for block in seen:
                 forwards[block] = forwards.get(block, 0) + 1

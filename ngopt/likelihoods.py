@@ -136,6 +136,10 @@ class CrossEntropy(OutputLikelihood):
         prob = torch.softmax(output.detach(), dim=1)
         classes = prob.shape[1]
         flat = prob.movedim(1, -1).reshape(-1, classes)
+        if not bool(torch.isfinite(flat).all()):
+            # Non-finite logits: hand back non-finite gradients so the step is skipped, not crashed.
+            return torch.full((num_samples,) + output.shape, float("nan"), dtype=output.dtype,
+                              device=output.device)
         draws = torch.multinomial(flat, num_samples, replacement=True, generator=generator)  # [terms, S]
         onehot = torch.nn.functional.one_hot(draws.T, classes).to(prob.dtype)              # [S, terms, C]
         onehot = onehot.reshape((num_samples,) + prob.movedim(1, -1).shape).movedim(-1, 2)

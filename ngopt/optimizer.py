@@ -95,7 +95,7 @@ class NaturalGradient(torch.optim.Optimizer):
                         invert_every=invert_every, stats_ema=stats_ema, trust_kl=trust_kl,
                         adapt_damping=adapt_damping, fallback=fallback, fallback_lr_scale=fallback_lr_scale,
                         fisher_samples=fisher_samples, damping_range=damping_range, adapt_every=adapt_every,
-                        seed=seed)
+                        seed=seed, param_groups=param_groups)
         source = None
         if fisher != "empirical":
             if loss_fn is None:
@@ -188,6 +188,7 @@ class NaturalGradient(torch.optim.Optimizer):
     def step(self, closure: Optional[Callable[[], torch.Tensor]] = None):
         """One natural-gradient step; returns ``closure()``'s loss when a closure is given."""
         if self.adapt_damping and closure is None:
+            self._hooks.discard()  # the refused step must not leave its batch behind for the next one
             raise ValueError("adapt_damping=True needs step(closure): the closure re-evaluates the loss on the "
                              "same batch to measure the reduction ratio")
         loss = None

@@ -63,6 +63,8 @@ CHECKS = {
 def _check_model(model):
     if not isinstance(model, nn.Module):
         raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
+    if next(model.parameters(), None) is None:
+        raise ValueError("model has no parameters to optimize")
 
 
 def _check_loss_fn(loss_fn):
@@ -87,14 +89,29 @@ def _check_damping_range(value):
 
 
 def _check_seed(value):
-    if value is not None and (isinstance(value, bool) or not isinstance(value, numbers.Integral)):
+    if value is None:
+        return
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
         raise TypeError(f"seed must be an int or None, got {type(value).__name__}")
+    if not 0 <= value < 2 ** 63:
+        raise ValueError(f"seed must be in [0, 2**63), got {value}")
+
+
+def _check_param_groups(value):
+    if value is None:
+        return
+    if isinstance(value, (dict, str, bytes)) or not isinstance(value, (list, tuple)):
+        raise TypeError("param_groups must be a list of dicts like [{'params': [...], 'lr': ...}], "
+                        f"got {type(value).__name__}")
+    for index, group in enumerate(value):
+        if not isinstance(group, dict) or "params" not in group:
+            raise TypeError(f"param_groups[{index}] must be a dict with a 'params' entry, got {group!r:.60}")
 
 
 def check_arguments(**arguments) -> None:
     """Validate every given argument; raise ``TypeError``/``ValueError`` naming the first bad one."""
     special = {"model": _check_model, "loss_fn": _check_loss_fn, "damping_range": _check_damping_range,
-               "seed": _check_seed, "adapt_damping": lambda v: _check_flag("adapt_damping", v)}
+               "seed": _check_seed, "param_groups": _check_param_groups, "adapt_damping": lambda v: _check_flag("adapt_damping", v)}
     for name, value in arguments.items():
         check = special.get(name) or CHECKS[name]
         check(value)

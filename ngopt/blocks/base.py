@@ -36,12 +36,14 @@ class CurvatureBlock:
     def __init__(self, layer: LayerAdapter, state: dict):
         self.layer = layer
         self.state = state
-        self.pending: List[Tuple[torch.Tensor, torch.Tensor, float]] = []
+        # (input rows, grad rows, scale, index of the model forward the call belongs to)
+        self.pending: List[Tuple[torch.Tensor, torch.Tensor, float, int]] = []
         self.info: dict = {}  # latest diagnostics of this block (plain Python numbers)
 
     # -- capture -------------------------------------------------------------------------
-    def add_capture(self, input_rows: torch.Tensor, grad_rows: torch.Tensor, scale: float) -> None:
-        self.pending.append((input_rows, grad_rows, scale))
+    def add_capture(self, input_rows: torch.Tensor, grad_rows: torch.Tensor, scale: float,
+                    forward: int = 0) -> None:
+        self.pending.append((input_rows, grad_rows, scale, forward))
 
     def clear_pending(self) -> None:
         self.pending.clear()

@@ -32,7 +32,7 @@ class KroneckerBlock(CurvatureBlock):
         factor_in = torch.zeros(d_in, d_in, dtype=ref.dtype, device=ref.device)
         factor_out = torch.zeros(d_out, d_out, dtype=ref.dtype, device=ref.device)
         rows = 0
-        for input_rows, grad_rows, scale in self.pending:
+        for input_rows, grad_rows, scale, _ in self.pending:
             # Rows may come in a lower precision (autocast); statistics accumulate in the weight's dtype.
             a = input_rows.reshape(-1, d_in).to(ref.dtype)
             g = grad_rows.reshape(-1, d_out).to(ref.dtype)
