@@ -1,0 +1,453 @@
+"""ngopt.distributed across real processes: 2 ranks on loopback (gloo), spawned by the tests.
+
+Every job is a pair of ``python this_file.py JOB RANK WORLD PORT DIR`` processes that
+meet on ``127.0.0.1`` at an ephemeral port, with a short process-group timeout; the
+parent kills whatever is still running after ``JOB_SECONDS`` (a hard wall-clock bound),
+so no test can hang.  One "train" job runs every training scenario and writes each
+rank's results; the tests compare them with single-process runs done here.
+
+References:
+* a data-parallel run whose ranks hold halves of the batch must end where one process
+  with the whole batch ends: gradients are averaged by DDP and the curvature statistics
+  by ngopt, so every step is the same computation regrouped (float64: to ~1e-12;
+  float32: to float32 rounding, amplified by the damped inverses);
+* the greedy owner assignment only changes *where* an inversion runs, so sharded and
+  replicated inversions must agree bit for bit on one machine (same inputs, same kernels).
+"""
+from __future__ import annotations
+
+import datetime
+import os
+import re
+import socket
+import subprocess
+import sys
+import time
+import warnings
+from pathlib import Path
+
+import pytest
+import torch
+from torch import nn
+
+import ngopt
+
+WORLD = 2
+JOB_SECONDS = 60            # hard bound on one spawned job
+GROUP_TIMEOUT_SECONDS = 10  # the process group's own timeout inside the jobs
+FAULT_TIMEOUT_SECONDS = 3   # share_curvature(timeout=...) in the fault jobs
+STEPS = 6
+CHECKPOINT_STEP = 3
+GLOBAL_BATCH = 24
+SETTINGS = dict(lr=0.3, momentum=0.5, damping=1e-2, stats_every=2, invert_every=3, stats_ema=0.9, trust_kl=1e-2)
+
+
+# ---------------------------------------------------------------------------------------- shared by jobs and tests
+def build_model(dtype):
+    """Three Kronecker blocks of different costs, so that both ranks own inversions."""
+    torch.manual_seed(0)
+    return nn.Sequential(nn.Linear(8, 12), nn.Tanh(), nn.Linear(12, 12), nn.Tanh(), nn.Linear(12, 5)).to(dtype)
+
+
+def batches(dtype, regression=False):
+    generator = torch.Generator().manual_seed(1)
+    out = []
+    for _ in range(STEPS):
+        x = torch.randn(GLOBAL_BATCH, 8, generator=generator, dtype=dtype)
+        y = (torch.randn(GLOBAL_BATCH, 5, generator=generator, dtype=dtype) if regression
+             else torch.randint(0, 5, (GLOBAL_BATCH,), generator=generator))
+        out.append((x, y))
+    return out
+
+
+def make_optimizer(model, loss_fn, **overrides):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the empirical-Fisher advice is not what is tested here
+        return ngopt.NaturalGradient(model, loss_fn, **dict(SETTINGS, **overrides))
+
+
+def train(model, opt, loss_fn, data, rows, start=0, stop=STEPS, after_backward=None):
+    for x, y in data[start:stop]:
+        opt.zero_grad()
+        loss_fn(model(x[rows]), y[rows]).backward()
+        if after_backward is not None:
+            after_backward()
+        opt.step()
+
+
+def weights(model):
+    return [p.detach().clone() for p in model.parameters()]
+
+
+def single_process(dtype, fisher="exact", curvature="kfac", regression=False, start_from=None):
+    """The reference: one process, the whole batch, no communicator."""
+    model = build_model(dtype)
+    loss_fn = nn.MSELoss() if regression else nn.CrossEntropyLoss()
+    opt = make_optimizer(model, loss_fn, fisher=fisher, curvature=curvature)
+    start = 0
+    if start_from is not None:
+        model.load_state_dict(start_from["model"])
+        opt.load_state_dict(start_from["optimizer"])
+        start = CHECKPOINT_STEP
+    train(model, opt, loss_fn, batches(dtype, regression), slice(None), start=start)
+    return weights(model)
+
+
+# ---------------------------------------------------------------------------------------- inside the jobs
+def _rank_rows(rank, world):
+    share = GLOBAL_BATCH // world
+    return slice(rank * share, (rank + 1) * share)
+
+
+def _ddp_run(rank, world, dtype, fisher="exact", curvature="kfac", shard=True, checkpoint=None, spectra=False,
+             **overrides):
+    import ngopt.distributed as nd
+    model = build_model(dtype)
+    wrapped = nn.parallel.DistributedDataParallel(model)
+    loss_fn = nn.CrossEntropyLoss()
+    opt = make_optimizer(wrapped, loss_fn, fisher=fisher, curvature=curvature, **overrides)
+    nd.share_curvature(opt, shard_inversions=shard)
+    opt.track_spectra = spectra
+    data, rows = batches(dtype), _rank_rows(rank, world)
+    if checkpoint is not None:
+        train(wrapped, opt, loss_fn, data, rows, stop=CHECKPOINT_STEP)
+        nd.save_on_rank0({"model": model.state_dict(), "optimizer": opt.state_dict()}, checkpoint)
+        train(wrapped, opt, loss_fn, data, rows, start=CHECKPOINT_STEP)
+    else:
+        train(wrapped, opt, loss_fn, data, rows)
+    return model, opt
+
+
+def _plain_run(rank, world, dtype):
+    """No DDP: the loop averages gradients itself with ngopt.distributed.average_gradients."""
+    import ngopt.distributed as nd
+    model = build_model(dtype)
+    nd.broadcast_parameters(model)
+    loss_fn = nn.MSELoss()
+    opt = make_optimizer(model, loss_fn, fisher="empirical")
+    nd.share_curvature(opt)
+    train(model, opt, loss_fn, batches(dtype, regression=True), _rank_rows(rank, world),
+          after_backward=lambda: nd.average_gradients(model))
+    return model, opt
+
+
+def _sampled_resume(rank, world):
+    """6 steps in one go vs 3 steps, a state_dict round trip into fresh objects, 3 more steps."""
+    import ngopt.distributed as nd
+    dtype, rows = torch.float64, _rank_rows(rank, world)
+    runs = []
+    for stop_at in (None, CHECKPOINT_STEP):
+        model = build_model(dtype)
+        wrapped = nn.parallel.DistributedDataParallel(model)
+        loss_fn = nn.CrossEntropyLoss()
+        opt = make_optimizer(wrapped, loss_fn, fisher="sampled", seed=7)
+        nd.share_curvature(opt)
+        data = batches(dtype)
+        if stop_at is None:
+            train(wrapped, opt, loss_fn, data, rows)
+        else:
+            train(wrapped, opt, loss_fn, data, rows, stop=stop_at)
+            saved = {"model": model.state_dict(), "optimizer": opt.state_dict()}
+            model = build_model(dtype)
+            wrapped = nn.parallel.DistributedDataParallel(model)
+            opt = make_optimizer(wrapped, loss_fn, fisher="sampled", seed=0)
+            model.load_state_dict(saved["model"])
+            opt.load_state_dict(saved["optimizer"])
+            nd.share_curvature(opt)
+            train(wrapped, opt, loss_fn, data, rows, start=stop_at)
+        runs.append(weights(model))
+    return runs
+
+
+def _adaptive_damping_run(rank, world):
+    import ngopt.distributed as nd
+    model = build_model(torch.float64)
+    wrapped = nn.parallel.DistributedDataParallel(model)
+    loss_fn = nn.CrossEntropyLoss()
+    opt = make_optimizer(wrapped, loss_fn, fisher="exact", adapt_damping=True, adapt_every=2)
+    nd.share_curvature(opt)
+    rows, history = _rank_rows(rank, world), []
+    for x, y in batches(torch.float64):
+        def closure():
+            opt.zero_grad()
+            loss = loss_fn(wrapped(x[rows]), y[rows])
+            loss.backward()
+            return loss
+        opt.step(closure)
+        history.append(opt.param_groups[0]["damping"])
+    return model, history
+
+
+def _mismatched_setup(rank):
+    """Rank 1 builds a wider layer: share_curvature must refuse on both ranks."""
+    import ngopt.distributed as nd
+    torch.manual_seed(0)
+    model = nn.Sequential(nn.Linear(8, 12 + rank), nn.Tanh(), nn.Linear(12 + rank, 5))
+    opt = make_optimizer(model, nn.CrossEntropyLoss())
+    try:
+        nd.share_curvature(opt)
+    except ValueError as exc:
+        return str(exc)
+    return None
+
+
+def job_train(rank, world, out_dir):
+    import ngopt.distributed as nd
+    results, sync = {}, {}
+    runs = {
+        "ddp_exact_f32_sharded": dict(dtype=torch.float32, shard=True, spectra=True,
+                                      checkpoint=str(out_dir / "checkpoint.pt")),
+        "ddp_exact_f32_replicated": dict(dtype=torch.float32, shard=False, spectra=True),
+        "ddp_exact_f64_sharded": dict(dtype=torch.float64, shard=True),
+        "ddp_exact_f64_replicated": dict(dtype=torch.float64, shard=False),
+        "ddp_diag_f64": dict(dtype=torch.float64, curvature="diag"),
+    }
+    diagnostics = {}
+    for name, options in runs.items():
+        model, opt = _ddp_run(rank, world, **options)
+        results[name] = weights(model)
+        sync[name] = nd.max_parameter_difference(model)
+        diagnostics[name] = {layer: {k: v for k, v in entry.items() if "eigenvalues" not in k}
+                             for layer, entry in opt.diagnostics()["layers"].items()}
+        results[name + "_summary"] = opt.communicator.summary()
+    model, _ = _plain_run(rank, world, torch.float64)
+    results["plain_empirical_f64"] = weights(model)
+    sync["plain_empirical_f64"] = nd.max_parameter_difference(model)
+    results["sampled_resume"] = _sampled_resume(rank, world)
+    model, history = _adaptive_damping_run(rank, world)
+    results["adaptive_damping"] = (weights(model), history)
+    sync["adaptive_damping"] = nd.max_parameter_difference(model)
+    results["mismatch_error"] = _mismatched_setup(rank)
+    results["sync"] = sync
+    results["diagnostics"] = diagnostics
+    torch.save(results, out_dir / f"rank{rank}.pt")
+
+
+def job_fault(rank, world, out_dir, mode):
+    """Rank 1 fails at step 2, between its backward and ``step()``; rank 0 must fail clearly and soon."""
+    import ngopt.distributed as nd
+    model = build_model(torch.float32)
+    loss_fn = nn.CrossEntropyLoss()
+    wrapped = nn.parallel.DistributedDataParallel(model) if mode.endswith("_ddp") else model
+    opt = make_optimizer(wrapped, loss_fn, fisher="exact", stats_every=1)
+    nd.share_curvature(opt, timeout=FAULT_TIMEOUT_SECONDS)
+    rows = _rank_rows(rank, world)
+    for step, (x, y) in enumerate(batches(torch.float32)):
+        started = time.monotonic()
+        try:
+            opt.zero_grad()
+            loss_fn(wrapped(x[rows]), y[rows]).backward()
+            if wrapped is model:
+                nd.average_gradients(model, timeout=FAULT_TIMEOUT_SECONDS)
+            if rank == 1 and step == 2:
+                _inject_fault(mode)
+            opt.step()
+        except Exception as exc:
+            print(f"FAILED after {time.monotonic() - started:.2f} s at step {step}: "
+                  f"{type(exc).__name__}: {exc}", flush=True)
+            os._exit(1)  # the usual exit would wait on the broken process group
+    print("FINISHED", flush=True)
+
+
+def _inject_fault(mode):
+    if mode == "raise":
+        raise RuntimeError("injected failure on rank 1")
+    if mode == "exit_ddp":
+        os._exit(3)
+    if mode == "stall":
+        time.sleep(10 * JOB_SECONDS)  # the parent kills it
+
+
+def worker_main(argv):
+    job, rank, world, port, out_dir = argv[:5]
+    rank, world, out_dir = int(rank), int(world), Path(out_dir)
+    import torch.distributed as dist
+    torch.set_num_threads(1)
+    dist.init_process_group("gloo", init_method=f"tcp://127.0.0.1:{port}", rank=rank, world_size=world,
+                            timeout=datetime.timedelta(seconds=GROUP_TIMEOUT_SECONDS))
+    if job == "train":
+        job_train(rank, world, out_dir)
+    else:
+        job_fault(rank, world, out_dir, argv[5])
+    dist.barrier()  # nobody tears the group down while a peer still talks
+    dist.destroy_process_group()
+
+
+# ---------------------------------------------------------------------------------------- the parent side
+def _free_port():
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return sock.getsockname()[1]
+
+
+class Job:
+    """``WORLD`` worker processes of one job, started at once; :meth:`finish` waits (bounded) and kills leftovers."""
+
+    def __init__(self, job, out_dir, *extra, wait_for=None):
+        env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONUNBUFFERED="1", PYTHONWARNINGS="ignore")
+        if Path("/sys/class/net/lo").exists():
+            env["GLOO_SOCKET_IFNAME"] = "lo"  # keep gloo's own sockets on loopback as well
+        port = _free_port()
+        self.out_dir = out_dir
+        self.wait_for = range(WORLD) if wait_for is None else wait_for
+        self.logs = [out_dir / f"{job}{'-'.join(('',) + extra)}-rank{r}.log" for r in range(WORLD)]
+        self.deadline = time.monotonic() + JOB_SECONDS
+        self.procs = []
+        for rank, log in enumerate(self.logs):
+            with open(log, "w") as stream:
+                self.procs.append(subprocess.Popen(
+                    [sys.executable, __file__, job, str(rank), str(WORLD), str(port), str(out_dir), *extra],
+                    stdout=stream, stderr=subprocess.STDOUT, env=env))
+        self._result = None
+
+    def finish(self):
+        """``(return codes, logs)``; a process killed at the deadline has a negative code."""
+        if self._result is None:
+            try:
+                for rank in self.wait_for:
+                    self.procs[rank].wait(timeout=max(0.1, self.deadline - time.monotonic()))
+            except subprocess.TimeoutExpired:
+                pass
+            finally:
+                self.kill()
+            self._result = ([proc.returncode for proc in self.procs], [log.read_text() for log in self.logs])
+        return self._result
+
+    def kill(self):
+        for proc in self.procs:
+            if proc.poll() is None:
+                proc.kill()
+            proc.wait()
+
+
+FAULT_MODES = ("raise", "exit_ddp", "stall")
+
+
+@pytest.fixture(scope="module")
+def jobs(tmp_path_factory):
+    """Every job of this module, running side by side (they spend most of their time importing torch)."""
+    started = {"train": Job("train", tmp_path_factory.mktemp("distributed_train"))}
+    for mode in FAULT_MODES:
+        started[mode] = Job("fault", tmp_path_factory.mktemp(f"distributed_{mode}"), mode, wait_for=[0])
+    yield started
+    for job in started.values():
+        job.finish()
+
+
+@pytest.fixture(scope="module")
+def trained(jobs):
+    job = jobs["train"]
+    codes, logs = job.finish()
+    assert codes == [0] * WORLD, "train job failed:\n" + "\n".join(logs)
+    ranks = [torch.load(job.out_dir / f"rank{r}.pt", weights_only=False) for r in range(WORLD)]
+    return ranks, job.out_dir
+
+
+def assert_same_weights(actual, expected, rtol, atol):
+    for got, want in zip(actual, expected):
+        torch.testing.assert_close(got, want, rtol=rtol, atol=atol)
+
+
+# Float32 tolerance: unit round-off 6e-8 (IEEE 754), amplified over 6 steps by damped inverses with
+# condition numbers up to ~1e2; the observed gap is ~3e-7 on weights of size ~0.3 (measured here).
+F32 = dict(rtol=1e-5, atol=2e-6)
+F64 = dict(rtol=1e-10, atol=1e-12)
+
+
+def test_ddp_two_ranks_match_one_process_float32(trained):
+    ranks, _ = trained
+    reference = single_process(torch.float32)
+    for rank in ranks:
+        assert_same_weights(rank["ddp_exact_f32_sharded"], reference, **F32)
+
+
+def test_ddp_two_ranks_match_one_process_float64(trained):
+    ranks, _ = trained
+    reference = single_process(torch.float64)
+    for rank in ranks:
+        assert_same_weights(rank["ddp_exact_f64_sharded"], reference, **F64)
+        assert_same_weights(rank["ddp_exact_f64_replicated"], reference, **F64)
+
+
+def test_plain_loop_with_average_gradients_matches_one_process(trained):
+    ranks, _ = trained
+    reference = single_process(torch.float64, fisher="empirical", regression=True)
+    for rank in ranks:
+        assert_same_weights(rank["plain_empirical_f64"], reference, **F64)
+
+
+def test_diagonal_curvature_matches_one_process(trained):
+    ranks, _ = trained
+    reference = single_process(torch.float64, curvature="diag")
+    for rank in ranks:
+        assert_same_weights(rank["ddp_diag_f64"], reference, **F64)
+
+
+def test_sharded_inversion_equals_everyone_inverting(trained):
+    ranks, _ = trained
+    for rank in ranks:
+        for sharded, replicated in (("ddp_exact_f32_sharded", "ddp_exact_f32_replicated"),
+                                    ("ddp_exact_f64_sharded", "ddp_exact_f64_replicated")):
+            for a, b in zip(rank[sharded], rank[replicated]):
+                assert torch.equal(a, b), f"{sharded} vs {replicated}"
+        # the info that came with the inverses (traces, damping, condition numbers) too
+        assert rank["diagnostics"]["ddp_exact_f32_sharded"] == rank["diagnostics"]["ddp_exact_f32_replicated"]
+    assert ranks[0]["diagnostics"] == ranks[1]["diagnostics"]
+    sharded = [r["ddp_exact_f32_sharded_summary"] for r in ranks]
+    replicated = [r["ddp_exact_f32_replicated_summary"] for r in ranks]
+    # 3 blocks, 2 inversion rounds: the owners split the work; replicated ranks each do all of it.
+    assert sum(s["inversions_here"] for s in sharded) == 3 * 2
+    assert all(s["inversions_here"] == 3 * 2 for s in replicated)
+    assert all(s["inverse_bytes"] > 0 for s in sharded) and all(s["inverse_bytes"] == 0 for s in replicated)
+
+
+def test_every_rank_holds_the_same_weights(trained):
+    ranks, _ = trained
+    for rank in ranks:
+        assert all(difference == 0.0 for difference in rank["sync"].values()), rank["sync"]
+
+
+def test_checkpoint_from_two_ranks_resumes_in_one_process(trained):
+    ranks, out_dir = trained
+    state = torch.load(out_dir / "checkpoint.pt", weights_only=True)
+    resumed = single_process(torch.float32, start_from=state)
+    assert_same_weights(resumed, ranks[0]["ddp_exact_f32_sharded"], **F32)
+
+
+def test_sampled_fisher_resume_repeats_the_draws(trained):
+    ranks, _ = trained
+    for rank in ranks:
+        straight, resumed = rank["sampled_resume"]
+        for a, b in zip(straight, resumed):
+            assert torch.equal(a, b)
+
+
+def test_adaptive_damping_stays_equal_on_all_ranks(trained):
+    ranks, _ = trained
+    (_, history0), (_, history1) = ranks[0]["adaptive_damping"], ranks[1]["adaptive_damping"]
+    assert history0 == history1
+    assert len(set(history0)) > 1  # the rule did move damping
+    assert ranks[0]["sync"]["adaptive_damping"] == 0.0
+
+
+def test_mismatched_models_are_refused_on_every_rank(trained):
+    ranks, _ = trained
+    for rank in ranks:
+        assert rank["mismatch_error"] is not None and "differ" in rank["mismatch_error"]
+
+
+@pytest.mark.parametrize("mode", FAULT_MODES)
+def test_a_failing_rank_makes_the_other_fail_fast(jobs, mode):
+    codes, logs = jobs[mode].finish()
+    assert codes[0] == 1, f"rank 0 should have stopped with an error by itself:\n{logs[0]}"
+    found = re.search(r"FAILED after ([0-9.]+) s at step 2: (\w+): (.*)", logs[0])
+    assert found, logs[0]
+    seconds, kind, message = float(found.group(1)), found.group(2), found.group(3)
+    # a closed connection is seen at once; a stalled peer after the communicator's timeout
+    assert seconds < FAULT_TIMEOUT_SECONDS + 5
+    assert kind == "CurvatureSyncError"
+    assert "statistics all-reduce at step 2" in message and "rank 0 of 2" in message
+
+
+if __name__ == "__main__":
+    worker_main(sys.argv[1:])
