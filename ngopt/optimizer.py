@@ -24,6 +24,7 @@ state untouched and is counted in ``diagnostics()["skipped_steps"]``.
 """
 from __future__ import annotations
 
+import contextlib
 import math
 import time
 import warnings
@@ -138,6 +139,7 @@ class NaturalGradient(torch.optim.Optimizer):
         self._times = {key: 0.0 for key in TIME_KEYS}
         self._last_update: dict = {}
         self._warned_uninitialised = False
+        self._applied: dict = {}
 
         self.blocks: Dict[str, CurvatureBlock] = self._build_blocks(CURVATURES[curvature])
         self._hooks = CaptureHooks(self.model, {b.layer.module: b for b in self.blocks.values()}, source,
@@ -356,15 +358,21 @@ class NaturalGradient(torch.optim.Optimizer):
         }
 
     def _apply_block_updates(self, directions) -> None:
+        self._applied = {}
         for block, (_, delta) in directions.items():
             group = self.param_groups[self._block_group[block]]
             weight_part, bias_part = block.layer.split_matrix(delta)
+            moved = []
             for param, part in ((block.layer.weight, weight_part), (block.layer.bias, bias_part)):
                 if part is None or param.grad is None:
+                    moved.append(None)
                     continue
-                self._momentum_step(param, part, group["momentum"], group["lr"])
+                moved.append(self._momentum_step(param, part, group["momentum"], group["lr"]))
+            if self.adapt_damping:  # the reduction ratio needs the change actually made
+                self._applied[block] = block.layer.gradient_matrix(*moved).mul(-group["lr"])
 
-    def _momentum_step(self, param, direction, momentum, lr) -> None:
+    def _momentum_step(self, param, direction, momentum, lr) -> torch.Tensor:
+        """``p -= lr * d`` with heavy-ball ``d``; returns ``d``."""
         state = self.state[param]
         if momentum:
             buf = state.get("momentum_buffer")
@@ -374,6 +382,7 @@ class NaturalGradient(torch.optim.Optimizer):
                 buf.mul_(momentum).add_(direction)
             direction = buf
         param.add_(direction, alpha=-lr)
+        return direction
 
     def _apply_fallback(self) -> None:
         for group in self.param_groups:
@@ -408,12 +417,8 @@ class NaturalGradient(torch.optim.Optimizer):
     def _adapt_damping(self, closure, loss_before) -> None:
         """Levenberg-Marquardt: compare the loss change with the quadratic model's prediction."""
         predicted = self._model_change()
-        armed, self._hooks.armed = self._hooks.armed, False
-        try:
-            with torch.enable_grad():
-                loss_after = closure()
-        finally:
-            self._hooks.armed = armed
+        with self.paused_capture(), torch.enable_grad():
+            loss_after = closure()
         rho = reduction_ratio(float(loss_before), float(loss_after), predicted)
         for group in self.param_groups:
             group["damping"] = levenberg_marquardt_damping(group["damping"], rho, self.adapt_every,
@@ -424,19 +429,29 @@ class NaturalGradient(torch.optim.Optimizer):
     def _model_change(self) -> float:
         """``M(delta) = grad^T delta + delta^T C delta / 2`` for the update just applied (blocks only)."""
         total = 0.0
-        for block in self.blocks.values():
+        for block, delta in self._applied.items():
             layer = block.layer
-            if layer.weight.grad is None or not block.has_inverse or "momentum_buffer" not in self.state[layer.weight]:
-                continue
             group = self.param_groups[self._block_group[block]]
-            bias_buf = self.state[layer.bias].get("momentum_buffer") if layer.has_bias else None
-            delta = -group["lr"] * layer.gradient_matrix(self.state[layer.weight]["momentum_buffer"], bias_buf)
             grad = layer.gradient_matrix(layer.weight.grad, layer.bias.grad if layer.has_bias else None)
             curved = block.damped_product(delta, group["damping"])
             total += float((grad * delta).sum() + 0.5 * (delta * curved).sum())
         return total
 
     # ------------------------------------------------------------------ hooks, diagnostics, state
+    @contextlib.contextmanager
+    def paused_capture(self):
+        """Within this block, forward passes record nothing (e.g. evaluation or probing in train mode)."""
+        armed, self._hooks.armed = self._hooks.armed, False
+        try:
+            yield
+        finally:
+            self._hooks.armed = armed
+
+    @property
+    def steps_taken(self) -> int:
+        """Number of ``step()`` calls so far, skipped ones included."""
+        return self._steps
+
     def register_step_hook(self, fn: Callable[["NaturalGradient"], None]):
         """Call ``fn(optimizer)`` after every ``step()`` (skipped ones included); returns a removable handle."""
         return self.register_step_post_hook(lambda optimizer, args, kwargs: fn(optimizer))
