@@ -30,6 +30,17 @@ rank of the process group:
   uninterrupted run's draws; another world size draws differently (same
   distribution, other numbers).
 
+* **step control** — the KL trust bound and momentum see only shared values
+  (averaged gradients, shared curvature).  With ``adapt_damping`` the
+  reduction ratio comes from each rank's own batch, so after every
+  Levenberg-Marquardt update the ranks take the first rank's damping (one
+  tiny broadcast).
+* **replicas** — every rank applies the same update, but a BLAS whose result
+  depends on memory alignment (MKL, unless ``MKL_CBWR=AUTO,STRICT``) can round
+  it differently on different ranks; the weights then differ by a random walk
+  of rounding errors (about 1e-7 after 25 steps of a 256-wide MLP here), which
+  ``resync_every`` resets by broadcasting the first rank's parameters.
+
 Gradients are averaged by ``DistributedDataParallel`` as usual; plain
 ``torch.distributed`` code calls :func:`average_gradients` after ``backward()``
 (and :func:`broadcast_parameters` once at the start).
@@ -70,7 +81,6 @@ from torch import nn
 
 from .blocks.base import CurvatureBlock
 
-FLOAT_BYTES = 4
 _HEADER_LENGTH_BYTES = 8
 
 
@@ -80,7 +90,7 @@ class CurvatureSyncError(RuntimeError):
 
 # ---------------------------------------------------------------------------------------- entry points
 def share_curvature(opt, process_group=None, shard_inversions: bool = True,
-                    timeout: Optional[float] = None) -> "CurvatureCommunicator":
+                    timeout: Optional[float] = None, resync_every: Optional[int] = None) -> "CurvatureCommunicator":
     """Make ``opt`` share its curvature work over ``process_group`` (default: the whole world).
 
     Call it on every rank, after ``torch.distributed.init_process_group`` and after
@@ -95,6 +105,10 @@ def share_curvature(opt, process_group=None, shard_inversions: bool = True,
             results; ``False`` makes every rank invert every block (no traffic).
         timeout: seconds to wait on each collective before raising
             :class:`CurvatureSyncError`; ``None`` uses the process group's timeout.
+        resync_every: every this many steps, copy the group's first rank's parameters and
+            buffers to the others (one broadcast).  Replicas otherwise drift apart by
+            rounding where the BLAS result depends on memory alignment (MKL unless
+            ``MKL_CBWR=AUTO,STRICT``); ``None`` never resynchronizes.
     Returns:
         the communicator, also set as ``opt.communicator``.
     """
@@ -105,12 +119,16 @@ def share_curvature(opt, process_group=None, shard_inversions: bool = True,
     if not isinstance(shard_inversions, bool):
         raise TypeError(f"shard_inversions must be a bool, got {type(shard_inversions).__name__}")
     _as_timedelta(timeout)
+    if resync_every is not None and (isinstance(resync_every, bool) or not isinstance(resync_every, int)):
+        raise TypeError(f"resync_every must be an int or None, got {type(resync_every).__name__}")
+    if resync_every is not None and resync_every < 1:
+        raise ValueError(f"resync_every must be >= 1 or None, got {resync_every}")
     if not dist.is_available() or not dist.is_initialized():
         raise RuntimeError("share_curvature needs an initialized process group: call "
                            "torch.distributed.init_process_group(...) first (torchrun sets the environment)")
     if isinstance(opt.communicator, CurvatureCommunicator):
         opt.communicator.close()
-    communicator = CurvatureCommunicator(opt, process_group, shard_inversions, timeout)
+    communicator = CurvatureCommunicator(opt, process_group, shard_inversions, timeout, resync_every)
     communicator.check_same_setup(opt)
     opt.communicator = communicator
     return communicator
@@ -120,7 +138,7 @@ class CurvatureCommunicator:
     """Averages statistics and shares inversions for one optimizer; see the module docstring."""
 
     def __init__(self, opt, process_group=None, shard_inversions: bool = True,
-                 timeout: Optional[float] = None):
+                 timeout: Optional[float] = None, resync_every: Optional[int] = None):
         self.group = process_group
         self.rank = dist.get_rank(process_group)
         self.world_size = dist.get_world_size(process_group)
@@ -133,9 +151,12 @@ class CurvatureCommunicator:
         self._own_generator_for = None if source is None else source.generator_for
         if source is not None:
             source.generator_for = self._sampler.generator_for
-        self._damping_hook = None
+        self.resync_every = resync_every
+        self._hooks = []
         if opt.adapt_damping and self.world_size > 1:
-            self._damping_hook = opt.register_step_post_hook(lambda o, args, kwargs: self._agree_on_damping(o))
+            self._hooks.append(opt.register_step_post_hook(lambda o, args, kwargs: self._agree_on_damping(o)))
+        if resync_every is not None and self.world_size > 1:
+            self._hooks.append(opt.register_step_post_hook(lambda o, args, kwargs: self._resync(o)))
         self.totals = {"statistics_exchanges": 0, "statistics_bytes": 0, "statistics_seconds": 0.0,
                        "inverse_exchanges": 0, "inverse_bytes": 0, "inverse_seconds": 0.0,
                        "inversions_here": 0}
@@ -183,8 +204,9 @@ class CurvatureCommunicator:
         """Detach from the optimizer: its own sampling generator and no hooks (``share_curvature`` calls it)."""
         if self._own_generator_for is not None:
             self._opt._hooks.source.generator_for = self._own_generator_for
-        if self._damping_hook is not None:
-            self._damping_hook.remove()
+        for handle in self._hooks:
+            handle.remove()
+        self._hooks.clear()
         if self._opt.communicator is self:
             self._opt.communicator = None
 
@@ -199,10 +221,15 @@ class CurvatureCommunicator:
         if opt._steps % opt.adapt_every != 0:
             return
         values = torch.tensor([g["damping"] for g in opt.param_groups], dtype=torch.float64, device=self.device)
-        self._wait(lambda: dist.broadcast(values, src=dist.get_global_rank(self.group, 0) if self.group else 0,
-                                          group=self.group, async_op=True), "damping broadcast", "")
+        self._wait(lambda: dist.broadcast(values, src=_first_rank(self.group), group=self.group, async_op=True),
+                   "damping broadcast", "")
         for group, value in zip(opt.param_groups, values.tolist()):
             group["damping"] = value
+
+    def _resync(self, opt) -> None:
+        if opt._steps % self.resync_every == 0:
+            broadcast_parameters(opt.model, src=_first_rank(self.group), process_group=self.group,
+                                 timeout=None if self.timeout is None else self.timeout.total_seconds())
 
     def average_scalars(self, *values: float) -> Tuple[float, ...]:
         """The mean over ranks of each value (one small all-reduce), e.g. the loss before and after a step."""
@@ -215,7 +242,7 @@ class CurvatureCommunicator:
     def summary(self) -> dict:
         """Counts, bytes and seconds of this rank's curvature exchanges so far (plain numbers)."""
         return dict(self.totals, rank=self.rank, world_size=self.world_size,
-                    shard_inversions=self.shard_inversions)
+                    shard_inversions=self.shard_inversions, resync_every=self.resync_every)
 
     def check_same_setup(self, opt) -> None:
         """Fail at once, on every rank, if the ranks' optimizers do not match (blocks, schedule, step)."""
@@ -670,6 +697,11 @@ def _communication_device(process_group) -> torch.device:
     if "nccl" in backend and torch.cuda.is_available():
         return torch.device("cuda", torch.cuda.current_device())
     return torch.device("cpu")
+
+
+def _first_rank(group) -> int:
+    """Global rank of the group's rank 0 (``broadcast`` takes global ranks)."""
+    return 0 if group is None else dist.get_global_rank(group, 0)
 
 
 def _parameters(params) -> Iterable[torch.Tensor]:

@@ -33,7 +33,7 @@ from torch import nn
 import ngopt
 
 WORLD = 2
-JOB_SECONDS = 60            # hard bound on one spawned job
+JOB_SECONDS = 120           # hard bound on one spawned job (generous: a loaded 2-core machine)
 GROUP_TIMEOUT_SECONDS = 10  # the process group's own timeout inside the jobs
 FAULT_TIMEOUT_SECONDS = 3   # share_curvature(timeout=...) in the fault jobs
 STEPS = 6
@@ -178,6 +178,24 @@ def _adaptive_damping_run(rank, world):
     return model, history
 
 
+def _resync_run(rank, world):
+    """Rank 1's weights are knocked off after step 1; resync_every=2 must restore rank 0's after step 2."""
+    import ngopt.distributed as nd
+    model = build_model(torch.float64)
+    wrapped = nn.parallel.DistributedDataParallel(model)
+    loss_fn = nn.CrossEntropyLoss()
+    opt = make_optimizer(wrapped, loss_fn, fisher="exact")
+    nd.share_curvature(opt, resync_every=2)
+    data, rows, differences = batches(torch.float64), _rank_rows(rank, world), []
+    for step in range(3):
+        train(wrapped, opt, loss_fn, data, rows, start=step, stop=step + 1)
+        if step == 0 and rank == 1:
+            with torch.no_grad():
+                model[0].weight.add_(1e-3)
+        differences.append(nd.max_parameter_difference(model))
+    return differences
+
+
 def _mismatched_setup(rank):
     """Rank 1 builds a wider layer: share_curvature must refuse on both ranks."""
     import ngopt.distributed as nd
@@ -218,6 +236,9 @@ def job_train(rank, world, out_dir):
     results["adaptive_damping"] = (weights(model), history)
     sync["adaptive_damping"] = nd.max_parameter_difference(model)
     results["mismatch_error"] = _mismatched_setup(rank)
+    results["resync"] = _resync_run(rank, world)
+    model, opt = _ddp_run(rank, world, torch.float32)
+    results["volume_from_sizes"] = nd.communication_volume(opt, world)
     results["sync"] = sync
     results["diagnostics"] = diagnostics
     torch.save(results, out_dir / f"rank{rank}.pt")
@@ -428,6 +449,24 @@ def test_adaptive_damping_stays_equal_on_all_ranks(trained):
     assert history0 == history1
     assert len(set(history0)) > 1  # the rule did move damping
     assert ranks[0]["sync"]["adaptive_damping"] == 0.0
+
+
+def test_resync_restores_rank_zeros_weights(trained):
+    ranks, _ = trained
+    after_knock, after_resync, after_next = ranks[0]["resync"]
+    assert after_knock == pytest.approx(1e-3, rel=1e-6)  # what rank 1 added
+    assert after_resync == 0.0 and after_next == 0.0
+
+
+def test_measured_statistics_bytes_match_the_formula(trained):
+    ranks, _ = trained
+    for rank in ranks:
+        summary, volume = rank["ddp_exact_f32_sharded_summary"], rank["volume_from_sizes"]
+        assert summary["statistics_bytes"] == summary["statistics_exchanges"] * volume["statistics_buffer_bytes"]
+    # the inverse buffers add a JSON header (names, shapes, plain info values) to the raw tensors
+    received = [r["ddp_exact_f32_sharded_summary"]["inverse_bytes"] / 2 for r in ranks]  # 2 exchanges
+    formula = ranks[0]["volume_from_sizes"]["inverse_bytes_per_rank"]
+    assert all(formula < got < formula + 2048 for got in received)
 
 
 def test_mismatched_models_are_refused_on_every_rank(trained):
