@@ -38,6 +38,15 @@ def train(model, loss_fn, opt, inputs, targets, steps):
         return float(loss_fn(model(inputs), targets))
 
 
+def zero_linear(inputs, outputs):
+    """A float64 ``nn.Linear`` starting from zero weights and bias (every p = 1/2 or 1/K)."""
+    model = nn.Linear(inputs, outputs).double()
+    with torch.no_grad():
+        model.weight.zero_()
+        model.bias.zero_()
+    return model
+
+
 def coefficients(layer):
     """``[bias, weights...]`` per output row, the column order of ``statsmodels.add_constant``."""
     weight = layer.weight.detach().numpy()
@@ -107,10 +116,7 @@ def test_logistic_regression_converges_to_statsmodels_maximum_likelihood():
     # statsmodels.api.Logit (Newton, tol 1e-12): maximum-likelihood coefficients.
     x, y = logistic_data(seed=30)
     fit = statsmodels_logit(x, y)
-    model = nn.Linear(3, 1).double()
-    with torch.no_grad():
-        model.weight.zero_()
-        model.bias.zero_()
+    model = zero_linear(3, 1)
     loss_fn = nn.BCEWithLogitsLoss()
     opt = exact_newton_like(model, loss_fn, damping=1e-10)
     inputs, targets = torch.as_tensor(x), torch.as_tensor(y)[:, None]
@@ -184,10 +190,7 @@ def test_kronecker_logistic_block_exact_where_weights_are_constant():
     information = -sm.Logit(y, sm.add_constant(x)).hessian(np.zeros(4))
     order = [1, 2, 3, 0]
     information = information[np.ix_(order, order)] / len(y)
-    model = nn.Linear(3, 1).double()
-    with torch.no_grad():
-        model.weight.zero_()
-        model.bias.zero_()
+    model = zero_linear(3, 1)
     loss_fn = nn.BCEWithLogitsLoss()
     opt = exact_newton_like(model, loss_fn, damping=1e-3)
     train(model, loss_fn, opt, torch.as_tensor(x), torch.as_tensor(y)[:, None], steps=1)
@@ -208,10 +211,7 @@ def test_softmax_regression_reaches_scikit_learn_unpenalized_loss():
     reference = LogisticRegression(C=np.inf, tol=1e-12, max_iter=10_000).fit(x, y)
     reference_loss = log_loss(y, reference.predict_proba(x))
 
-    model = nn.Linear(d, classes).double()
-    with torch.no_grad():
-        model.weight.zero_()
-        model.bias.zero_()
+    model = zero_linear(d, classes)
     loss_fn = nn.CrossEntropyLoss()
     opt = exact_newton_like(model, loss_fn, damping=1e-10)
     inputs = torch.as_tensor(x)
