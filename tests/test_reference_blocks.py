@@ -361,6 +361,7 @@ def conv_output_gradients(conv_model, inputs, targets, fisher):
     return pieces
 
 
+@pytest.mark.filterwarnings("ignore:Using padding='same' with even kernel lengths")  # torch's own note
 @pytest.mark.parametrize("settings", CONV_SETTINGS, ids=lambda s: ",".join(f"{k}={v}" for k, v in s.items()))
 @pytest.mark.parametrize("bias", [True, False])
 @pytest.mark.parametrize("fisher", ["empirical", "exact"])
