@@ -138,8 +138,7 @@ class CaptureHooks:
         call = LayerCall(block, block.layer.input_rows(inputs[0].detach()), output)
         record.calls.append(call)
         if self.source is None:
-            scale = 1.0 / empirical_reduction_scale(self.loss_fn, call.input_rows.shape[0])
-            output.register_hook(lambda grad, call=call, scale=scale: self._empirical_grad(call, grad, scale))
+            output.register_hook(lambda grad, call=call: self._empirical_grad(call, grad))
         copy = output.clone()
         self.seconds["capture"] += time.perf_counter() - started
         return copy
@@ -149,20 +148,21 @@ class CaptureHooks:
         if record is None or not record.calls:
             return None
         self.records.append(record)
-        if self.source is not None:
-            if not isinstance(output, torch.Tensor):
-                raise TypeError(f"fisher={self.source.mode!r} needs the model to return the tensor the loss "
-                                f"is applied to; it returned {type(output).__name__}. "
-                                "Use fisher='empirical' or wrap the model so it returns that tensor.")
-            if output.requires_grad:
-                output.register_hook(lambda grad, record=record, output=output:
-                                     self._extra_backward(record, output))
+        if self.source is None:
+            c = empirical_reduction_scale(self.loss_fn, output, record.calls[0].input_rows.shape[0])
+            for call in record.calls:
+                call.scale = 1.0 / c
+        elif not isinstance(output, torch.Tensor):
+            raise TypeError(f"fisher={self.source.mode!r} needs the model to return the tensor the loss "
+                            f"is applied to; it returned {type(output).__name__}. "
+                            "Use fisher='empirical' or wrap the model so it returns that tensor.")
+        elif output.requires_grad:
+            output.register_hook(lambda grad, record=record, output=output: self._extra_backward(record, output))
         return None
 
-    def _empirical_grad(self, call: LayerCall, grad: torch.Tensor, scale: float):
+    def _empirical_grad(self, call: LayerCall, grad: torch.Tensor):
         if call.grad_rows is None:
             call.grad_rows = call.block.layer.output_rows(grad.detach().unsqueeze(0))
-            call.scale = scale
         return None
 
     def _extra_backward(self, record: ForwardRecord, output: torch.Tensor):

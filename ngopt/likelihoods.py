@@ -199,12 +199,19 @@ def likelihood_for(loss_fn) -> OutputLikelihood:
                      "Use fisher='empirical' for other criteria.")
 
 
-def empirical_reduction_scale(loss_fn, batch_size: int) -> float:
-    """``c`` for the empirical Fisher: per-example gradients of a loss averaged over the batch.
+def empirical_reduction_scale(loss_fn, output, batch_size: int) -> float:
+    """``c`` for the empirical Fisher, so that it estimates the Fisher of ``L = c sum_n l_n``.
 
-    For ``reduction='sum'`` the per-example losses are summed (``c = 1``);
-    otherwise (``mean``, or an unknown criterion) the loss is taken to be the mean
-    of per-example losses over the leading dimension (``c = 1/batch``).
+    For a supported criterion this is the criterion's own ``c`` (``1/#terms`` for
+    ``mean``), which makes the empirical Fisher agree with the Fisher at the true
+    parameters (Casella & Berger: E[score score^T] = I).  For any other criterion the
+    loss is taken to be a mean over the leading (batch) dimension, or a sum when the
+    criterion says ``reduction='sum'``.
     """
+    if isinstance(output, torch.Tensor):
+        try:
+            return likelihood_for(loss_fn).reduction_scale(output)
+        except ValueError:
+            pass
     reduction = getattr(loss_fn, "reduction", "mean") if loss_fn is not None else "mean"
     return 1.0 if reduction == "sum" else 1.0 / batch_size
