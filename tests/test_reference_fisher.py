@@ -329,13 +329,7 @@ def test_poisson_score_identities_with_numpy_draws():
 
 
 # ----------------------------------------------------------------------------- several outputs per example
-@pytest.mark.parametrize("reduction", [
-    "sum",
-    pytest.param("mean", marks=pytest.mark.xfail(strict=True, reason=(
-        "BUG (ngopt/capture.py, empirical scale from likelihoods.empirical_reduction_scale): for a mean "
-        "reduction over N examples x O outputs the empirical Fisher is divided by c = 1/N instead of "
-        "the criterion's c = 1/(N O), so it comes out 1/O of the Fisher (measured ratio 0.34 for O = 3)"))),
-])
+@pytest.mark.parametrize("reduction", ["sum", "mean"])
 def test_empirical_fisher_matches_fisher_at_true_parameters_with_several_outputs(reduction):
     # Casella & Berger: at the true parameter E[score score^T] = I, so the empirical Fisher of a
     # well-specified model estimates the Fisher whatever the reduction.  Model: y ~ N(W x, I/2) with
