@@ -1,0 +1,242 @@
+"""Command line of the benchmark: ``python -m benchmarks [options]``."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import shlex
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Optional
+
+import torch
+
+from benchmarks import optimizers as optimizer_registry
+from benchmarks import plots, report, results, scaling
+from benchmarks.attachments import diagnostics_attacher, diagnostics_available
+from benchmarks.harness import TaskOutcome, benchmark_task
+from benchmarks.machine import machine_info
+from benchmarks.optimizers import GRID_DECADES, OptimizerSpec, resolve_optimizers
+from benchmarks.profiling import write_profile
+from benchmarks.tasks import TASKS, Task, resolve_tasks
+from benchmarks.training import load_average
+
+FULL_GRID, QUICK_GRID = 5, 3
+DEFAULT_SEEDS = 3
+SCALING_STEPS = {"quick": (2, 6), "full": (5, 30)}  # (warm-up, timed) steps per point
+
+
+@dataclass
+class Config:
+    tasks: list[Task]
+    specs: list[OptimizerSpec]
+    seeds: list[int]
+    grid_size: int
+    steps: dict[str, int]
+    steps_override: Optional[int]
+    quick: bool
+    threads: int
+    out: Optional[Path]
+    progress: bool
+    diagnostics_every: Optional[int]
+    profile: bool
+    scaling: bool
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="python -m benchmarks",
+        description="Compare ngopt.NaturalGradient with SGD (momentum 0.9) and Adam on small CPU "
+                    "tasks: equal lr-grid size, seeds, batches, initial weights, data order and "
+                    "step budget for every optimizer.")
+    parser.add_argument("--quick", action="store_true",
+                        help=f"short budget: each task's quick step count, {QUICK_GRID}-point lr grids "
+                             f"(default: full step counts, {FULL_GRID}-point grids)")
+    parser.add_argument("--tasks", help=f"comma-separated task names (default all: {', '.join(TASKS)})")
+    parser.add_argument("--optimizers", help="comma-separated optimizer names (default all: "
+                                             f"{', '.join(optimizer_registry.OPTIMIZERS)})")
+    parser.add_argument("--seeds", default=str(DEFAULT_SEEDS),
+                        help="number of seeds N (seeds 0..N-1) or a comma-separated list; the first "
+                             f"seed tunes the lr (default {DEFAULT_SEEDS})")
+    parser.add_argument("--steps", type=int, help="training steps per run for every task "
+                                                  "(default: each task's own budget)")
+    parser.add_argument("--grid", type=int, help="points in every optimizer's lr grid "
+                                                 f"(default {FULL_GRID}, {QUICK_GRID} with --quick)")
+    parser.add_argument("--threads", type=int, default=2, help="torch intra-op threads (default 2)")
+    parser.add_argument("--out", type=Path, help="write results.json, curves.csv, PNG plots and "
+                                                 "report.md into this folder")
+    parser.add_argument("--scaling", action="store_true",
+                        help="run the step-time scaling study (width 64..1024, batch 64..2048) "
+                             "instead of the tasks")
+    parser.add_argument("--diagnostics", type=int, metavar="EVERY",
+                        help="log ngopt's curvature diagnostics every EVERY steps into OUT/diagnostics "
+                             "(needs --out; slows ngopt, so its timings are then not comparable)")
+    parser.add_argument("--profile", action="store_true",
+                        help="after the benchmark, profile one ngopt run per task at its chosen lr "
+                             "with cProfile into OUT/profile_<task>_ngopt.txt (needs --out)")
+    parser.add_argument("--no-progress", action="store_true", help="no progress bars")
+    return parser
+
+
+def split_names(text: Optional[str]) -> Optional[list[str]]:
+    if text is None:
+        return None
+    return [name.strip() for name in text.split(",") if name.strip()]
+
+
+def parse_seeds(text: str) -> list[int]:
+    """"3" means seeds 0, 1, 2; "0,5,9" means those seeds."""
+    try:
+        values = [int(part) for part in text.split(",") if part.strip()]
+    except ValueError:
+        raise ValueError(f"seeds must be a count or a comma-separated list of integers, got {text!r}")
+    if len(values) == 1 and "," not in text:
+        if values[0] < 1:
+            raise ValueError(f"seeds must be at least 1, got {values[0]}")
+        return list(range(values[0]))
+    if not values or len(set(values)) != len(values):
+        raise ValueError(f"seeds must list distinct integers, got {text!r}")
+    return values
+
+
+def make_config(args: argparse.Namespace) -> Config:
+    """Check and resolve the options; every problem is a ValueError naming the option."""
+    tasks = resolve_tasks(split_names(args.tasks))
+    specs = resolve_optimizers(split_names(args.optimizers))
+    seeds = parse_seeds(args.seeds)
+    grid = args.grid if args.grid is not None else (QUICK_GRID if args.quick else FULL_GRID)
+    if grid < 1:
+        raise ValueError(f"--grid must be at least 1, got {grid}")
+    if args.steps is not None and args.steps < 1:
+        raise ValueError(f"--steps must be at least 1, got {args.steps}")
+    if args.threads < 1:
+        raise ValueError(f"--threads must be at least 1, got {args.threads}")
+    if args.diagnostics is not None and (args.diagnostics < 1 or args.out is None):
+        raise ValueError("--diagnostics needs a positive step interval and --out")
+    if args.profile and args.out is None:
+        raise ValueError("--profile needs --out")
+    steps = {task.name: args.steps or (task.quick_steps if args.quick else task.steps) for task in tasks}
+    return Config(tasks, specs, seeds, grid, steps, args.steps, args.quick, args.threads, args.out,
+                  not args.no_progress, args.diagnostics, args.profile, args.scaling)
+
+
+def natural_gradient_defaults() -> dict:
+    """NaturalGradient's default hyperparameters, as its param groups carry them."""
+    import ngopt
+
+    optimizer = ngopt.NaturalGradient(torch.nn.Linear(2, 1), torch.nn.MSELoss(), lr=1.0)
+    return json.loads(json.dumps(optimizer.defaults, default=repr))
+
+
+def settings_of(config: Config, argv: list[str]) -> dict:
+    settings = {
+        "command": "python -m benchmarks " + shlex.join(argv),
+        "quick": config.quick,
+        "tasks": [task.name for task in config.tasks],
+        "optimizers": [spec.name for spec in config.specs],
+        "seeds": config.seeds,
+        "grid_size": config.grid_size,
+        "grid_decades": GRID_DECADES,
+        "lr_grids": {spec.name: spec.lr_grid(config.grid_size) for spec in config.specs},
+        "steps": config.steps,
+        "threads": config.threads,
+        "diagnostics_every": config.diagnostics_every,
+    }
+    if any(spec.name == "ngopt" for spec in config.specs):
+        settings["ngopt_defaults"] = natural_gradient_defaults()
+    return settings
+
+
+def write_outputs(config: Config, results_dict: dict, outcomes: list[TaskOutcome]) -> None:
+    out = config.out
+    out.mkdir(parents=True, exist_ok=True)
+    results.write_json(results_dict, out / "results.json")
+    results.write_curves(outcomes, out / "curves.csv")
+    plot_files = {}
+    for outcome in outcomes:
+        name = f"loss_{outcome.task.name}.png"
+        plots.plot_task(outcome, out / name)
+        plot_files[outcome.task.name] = name
+    (out / "report.md").write_text(report.markdown_report(results_dict, plot_files, None))
+
+
+def check_ready(config: Config) -> None:
+    """Fail before any work if a chosen optimizer or logger cannot be had."""
+    names = {spec.name for spec in config.specs}
+    if config.scaling and not names & {"ngopt", "sgd"}:
+        raise ValueError("--scaling compares ngopt and sgd: --optimizers must include one of them")
+    if "ngopt" in names:
+        available, reason = optimizer_registry.natural_gradient_available()
+        if not available:
+            raise ValueError(f"optimizer ngopt: ngopt.NaturalGradient does not import ({reason}); "
+                             "run the baselines alone with --optimizers sgd,adam")
+    if config.diagnostics_every is not None and not diagnostics_available():
+        raise ValueError("--diagnostics needs ngopt.log_diagnostics, which this ngopt does not provide")
+
+
+def run_tasks(config: Config, argv: list[str]) -> dict:
+    attach_for = None
+    if config.diagnostics_every is not None:
+        attach_for = diagnostics_attacher(config.out / "diagnostics", config.diagnostics_every)
+    settings = settings_of(config, argv)
+    settings["load_average_start"] = load_average()
+    machine = machine_info()
+    outcomes = []
+    for task in config.tasks:
+        outcome = benchmark_task(task, config.specs, config.seeds, config.grid_size,
+                                 config.steps[task.name], progress=config.progress, attach_for=attach_for)
+        outcomes.append(outcome)
+        print("\n" + report.task_block(results.task_entry(outcome)) + "\n", flush=True)
+    settings["load_average_end"] = load_average()
+    results_dict = results.build_results(machine, settings, outcomes)
+    summary = report.console_summary(results_dict, with_tasks=False)
+    if summary:
+        print(summary, flush=True)
+    if config.out is not None:
+        write_outputs(config, results_dict, outcomes)
+        if config.profile and "ngopt" in {spec.name for spec in config.specs}:
+            for outcome in outcomes:
+                chosen = outcome.outcomes["ngopt"]
+                path = write_profile(outcome.task, chosen.spec, chosen.best_lr, config.seeds[0],
+                                     config.steps[outcome.task.name], config.out)
+                print(f"profile written to {path}")
+        print(f"results written to {config.out}/ (results.json, curves.csv, report.md, loss_*.png)")
+    return results_dict
+
+
+def run_scaling_study(config: Config, argv: list[str]) -> list[dict]:
+    specs = {spec.name: spec for spec in config.specs if spec.name in ("ngopt", "sgd")}
+    warmup, steps = SCALING_STEPS["quick" if config.quick else "full"]
+    steps = config.steps_override or steps
+    rows = scaling.run_scaling(specs, warmup, steps, progress=config.progress)
+    print("\n" + scaling.scaling_table(rows), flush=True)
+    if config.out is not None:
+        config.out.mkdir(parents=True, exist_ok=True)
+        command = "python -m benchmarks " + shlex.join(argv)
+        payload = {"machine": machine_info(), "command": command, "warmup_steps": warmup,
+                   "timed_steps": steps, "rows": rows}
+        results.write_json(results.finite_or_none(payload), config.out / "scaling.json")
+        scaling.write_scaling_csv(rows, config.out / "scaling.csv")
+        plots.plot_scaling(rows, config.out / "scaling.png")
+        (config.out / "scaling.md").write_text(
+            scaling.scaling_markdown(rows, command, "scaling.png", warmup, steps) + "\n")
+        print(f"scaling study written to {config.out}/ (scaling.json, scaling.csv, scaling.png, scaling.md)")
+    return rows
+
+
+def main(argv: Optional[list[str]] = None) -> int:
+    argv = sys.argv[1:] if argv is None else list(argv)
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        config = make_config(args)
+        check_ready(config)
+    except ValueError as error:
+        parser.error(str(error))  # exits with status 2 and the message
+    torch.set_num_threads(config.threads)
+    if config.scaling:
+        run_scaling_study(config, argv)
+    else:
+        run_tasks(config, argv)
+    return 0

@@ -1,0 +1,141 @@
+"""Offline data for the built-in benchmark tasks.
+
+Nothing here touches the network: scikit-learn ships the digits, the
+``mnist1d`` package generates its data set from templates on the fly, and the
+ill-conditioned regression is synthetic. Every loader returns a
+:class:`Split` of float32 (or int64 label) tensors and is cached, so a
+benchmark run builds each data set once.
+"""
+
+from __future__ import annotations
+
+import functools
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+
+# The train/test split of the digits is fixed (independent of the run seed) so
+# that every optimizer and seed sees the same training set.
+DIGITS_SPLIT_SEED = 0
+DIGITS_TRAIN_FRACTION = 0.8
+
+
+@dataclass(frozen=True)
+class Split:
+    """Training and test tensors of one data set."""
+
+    train_x: torch.Tensor
+    train_y: torch.Tensor
+    test_x: torch.Tensor
+    test_y: torch.Tensor
+
+
+def _to_split(train_x, train_y, test_x, test_y, label_dtype) -> Split:
+    return Split(
+        torch.as_tensor(np.ascontiguousarray(train_x), dtype=torch.float32),
+        torch.as_tensor(np.ascontiguousarray(train_y), dtype=label_dtype),
+        torch.as_tensor(np.ascontiguousarray(test_x), dtype=torch.float32),
+        torch.as_tensor(np.ascontiguousarray(test_y), dtype=label_dtype),
+    )
+
+
+@functools.lru_cache(maxsize=None)
+def _digits_arrays():
+    """Digits pixels scaled to [0, 1] (the raw values are 0..16), labels, and a fixed split."""
+    from sklearn.datasets import load_digits
+
+    digits = load_digits()
+    pixels = digits.data.astype(np.float64) / 16.0
+    order = np.random.RandomState(DIGITS_SPLIT_SEED).permutation(len(pixels))
+    n_train = int(DIGITS_TRAIN_FRACTION * len(pixels))
+    return pixels, digits.target.astype(np.int64), order[:n_train], order[n_train:]
+
+
+def digits_vectors() -> Split:
+    """Digits as 64-vectors with class labels (1437 train / 360 test)."""
+    pixels, labels, train, test = _digits_arrays()
+    return _to_split(pixels[train], labels[train], pixels[test], labels[test], torch.int64)
+
+
+def digits_images() -> Split:
+    """Digits as 1x8x8 images with class labels, same split as :func:`digits_vectors`."""
+    pixels, labels, train, test = _digits_arrays()
+    images = pixels.reshape(-1, 1, 8, 8)
+    return _to_split(images[train], labels[train], images[test], labels[test], torch.int64)
+
+
+def digits_reconstruction() -> Split:
+    """Digits as 64-vectors whose target is the input itself (autoencoding)."""
+    pixels, _, train, test = _digits_arrays()
+    return _to_split(pixels[train], pixels[train], pixels[test], pixels[test], torch.float32)
+
+
+@functools.lru_cache(maxsize=None)
+def mnist1d() -> Split:
+    """The mnist1d data set built by its package's own generator with its default arguments.
+
+    ``mnist1d.data.make_dataset`` draws from templates with a fixed seed (42 by
+    default), so the result is the same on every machine: 4000 training and
+    1000 test sequences of length 40 and ten classes. ``get_dataset`` is not
+    used because it tries a download first.
+    """
+    from mnist1d.data import get_dataset_args, make_dataset
+
+    state = np.random.get_state()  # the generator reseeds numpy's global RNG
+    try:
+        data = make_dataset(get_dataset_args())
+    finally:
+        np.random.set_state(state)
+    return _to_split(data["x"], data["y"], data["x_test"], data["y_test"], torch.int64)
+
+
+# Ill-conditioned regression: the numbers that define it.
+REGRESSION_FEATURES = 32
+REGRESSION_TRAIN = 2048
+REGRESSION_TEST = 1024
+REGRESSION_SCALE_DECADES = 3.0  # feature scales from 1 down to 1e-3
+REGRESSION_CORRELATION = 0.9  # neighbouring latent features correlate (rho^|i-j|)
+REGRESSION_NOISE_STD = 0.1
+REGRESSION_SEED = 1234
+
+
+def regression_design(n_features: int = REGRESSION_FEATURES) -> tuple[np.ndarray, np.ndarray]:
+    """Feature scales s and the latent covariance Sigma of the regression inputs.
+
+    Inputs are x = z * s with z ~ N(0, Sigma), Sigma_ij = rho^|i-j|, and s
+    log-spaced over ``REGRESSION_SCALE_DECADES`` decades, so the input
+    covariance diag(s) Sigma diag(s) has a condition number of roughly
+    10^(2 * decades) times cond(Sigma).
+    """
+    scales = np.logspace(0.0, -REGRESSION_SCALE_DECADES, n_features)
+    index = np.arange(n_features)
+    covariance = REGRESSION_CORRELATION ** np.abs(index[:, None] - index[None, :])
+    return scales, covariance
+
+
+@functools.lru_cache(maxsize=None)
+def ill_conditioned_regression() -> Split:
+    """Linear data y = x w* + noise whose features span orders of magnitude in scale.
+
+    The true weights are w*_j = u_j / s_j, so every latent direction carries a
+    comparable share of the signal: a method that ignores the small-scale
+    features cannot fit the data. The signal is normalized to unit variance on
+    the training set and the noise has standard deviation 0.1, so the best
+    achievable mean squared error is about 0.01 * (1 - d / n).
+    """
+    rng = np.random.RandomState(REGRESSION_SEED)
+    scales, covariance = regression_design()
+    chol = np.linalg.cholesky(covariance)
+    n_total = REGRESSION_TRAIN + REGRESSION_TEST
+    latent = rng.standard_normal((n_total, REGRESSION_FEATURES)) @ chol.T
+    inputs = latent * scales
+    weights = rng.standard_normal(REGRESSION_FEATURES) / scales
+    signal = inputs @ weights
+    signal_std = signal[:REGRESSION_TRAIN].std()
+    targets = signal / signal_std + REGRESSION_NOISE_STD * rng.standard_normal(n_total)
+    targets = targets[:, None]
+    return _to_split(
+        inputs[:REGRESSION_TRAIN], targets[:REGRESSION_TRAIN],
+        inputs[REGRESSION_TRAIN:], targets[REGRESSION_TRAIN:], torch.float32,
+    )

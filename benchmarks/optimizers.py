@@ -1,0 +1,86 @@
+"""The compared optimizers and their learning-rate grids.
+
+Each optimizer is built with nothing tuned but its learning rate: SGD with
+heavy-ball momentum 0.9, Adam with its defaults, NaturalGradient with its own
+defaults. Every grid spans the same number of decades around the learning
+rates usual for that method, with the same number of points, so that no
+optimizer gets a finer search than another.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Callable, Optional
+
+import numpy as np
+import torch
+from torch import nn
+
+from benchmarks.selection import select_by_name
+
+GRID_DECADES = 2.0  # width of every learning-rate grid, in powers of ten
+
+Builder = Callable[[nn.Module, nn.Module, float], torch.optim.Optimizer]
+
+
+@dataclass(frozen=True)
+class OptimizerSpec:
+    """How to build one optimizer from (model, loss, lr), and where its lr grid sits.
+
+    ``lr_centre`` is the geometric centre of the grid: a grid of n points is
+    ``lr_centre * 10 ** linspace(-GRID_DECADES / 2, GRID_DECADES / 2, n)``.
+    """
+
+    name: str
+    label: str
+    lr_centre: float
+    build: Builder
+
+    def lr_grid(self, size: int) -> list[float]:
+        if size < 1:
+            raise ValueError(f"lr grid size must be at least 1, got {size}")
+        if size == 1:
+            return [self.lr_centre]
+        exponents = np.linspace(-GRID_DECADES / 2, GRID_DECADES / 2, size)
+        return [float(self.lr_centre * 10.0 ** e) for e in exponents]
+
+
+def _sgd(model: nn.Module, loss_fn: nn.Module, lr: float) -> torch.optim.Optimizer:
+    return torch.optim.SGD(model.parameters(), lr=lr, momentum=0.9)
+
+
+def _adam(model: nn.Module, loss_fn: nn.Module, lr: float) -> torch.optim.Optimizer:
+    return torch.optim.Adam(model.parameters(), lr=lr)
+
+
+def _natural_gradient(model: nn.Module, loss_fn: nn.Module, lr: float) -> torch.optim.Optimizer:
+    import ngopt  # imported late: the baselines run without it
+
+    return ngopt.NaturalGradient(model, loss_fn, lr=lr)
+
+
+OPTIMIZERS: dict[str, OptimizerSpec] = {
+    spec.name: spec
+    for spec in [
+        # Natural-gradient steps are near unit scale (lr=1 is a damped Newton step).
+        OptimizerSpec("ngopt", "NaturalGradient (defaults)", 0.1, _natural_gradient),
+        OptimizerSpec("sgd", "SGD, momentum 0.9", 0.3, _sgd),
+        OptimizerSpec("adam", "Adam", 1e-2, _adam),
+    ]
+}
+
+
+def resolve_optimizers(names: Optional[list[str]]) -> list[OptimizerSpec]:
+    """The optimizers with the given names, in the order given (all for ``None``)."""
+    return select_by_name(OPTIMIZERS, names, "optimizers")
+
+
+def natural_gradient_available() -> tuple[bool, str]:
+    """Whether ``ngopt.NaturalGradient`` imports here, with the reason when it does not."""
+    try:
+        import ngopt
+
+        ngopt.NaturalGradient
+    except Exception as error:  # any import failure means: not usable here
+        return False, f"{type(error).__name__}: {error}"
+    return True, ""

@@ -1,0 +1,242 @@
+"""One timed training run: a task, an optimizer, a learning rate and a seed.
+
+What is timed is the training step alone: the closure (zero_grad, forward,
+loss, backward) and ``optimizer.step``, each step between two
+``time.perf_counter`` calls. Drawing the minibatch and every evaluation happen
+outside the timed region. The training loss is the loss on the whole training
+set, evaluated every ``eval_every`` steps in ``eval()`` mode under
+``torch.no_grad()`` (so no optimizer hook records anything); steps to target is
+the first evaluated step at which it is at or below the target, and seconds to
+target the summed step time up to and including that step.
+
+The seed fixes the initial weights (``torch.manual_seed`` right before the
+model is built, so every optimizer starts from the same weights) and the data
+order (a separate generator for the minibatch permutations, so an optimizer
+that draws random numbers, as a sampled Fisher does, cannot change the order).
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import resource
+import statistics
+import time
+from dataclasses import dataclass, field
+from typing import Callable, Iterator, Optional
+
+import torch
+
+from benchmarks.optimizers import OptimizerSpec
+from benchmarks.tasks import METRICS, Task
+
+# attach(optimizer) -> detach(): a way to hang a logger on the optimizer of a run.
+Attach = Callable[[torch.optim.Optimizer], Callable[[], None]]
+
+
+@dataclass
+class RunResult:
+    """Everything measured in one run (losses are None where they were not finite)."""
+
+    task: str
+    optimizer: str
+    lr: float
+    seed: int
+    target_loss: float
+    steps_to_target: Optional[int]
+    seconds_to_target: Optional[float]
+    final_train_loss: Optional[float]
+    final_test_metric: Optional[float]
+    step_seconds_median: float
+    step_seconds_mean: float
+    steps_run: int
+    train_seconds: float
+    diverged: bool
+    curve_steps: list[int] = field(default_factory=list)
+    curve_seconds: list[float] = field(default_factory=list)
+    curve_losses: list[Optional[float]] = field(default_factory=list)
+    time_split: Optional[dict] = None
+    skipped_steps: Optional[int] = None
+    optimizer_state_bytes: int = 0
+    process_peak_rss_bytes: int = 0
+    load_average: Optional[float] = None  # 1-minute load of the machine when the run started
+
+
+def load_average() -> Optional[float]:
+    """The machine's 1-minute load average: above the thread count, other work competes."""
+    try:
+        return round(os.getloadavg()[0], 2)
+    except OSError:
+        return None
+
+
+def minibatches(n_examples: int, batch_size: int, seed: int) -> Iterator[torch.Tensor]:
+    """Endless minibatch indices: a new permutation each epoch, incomplete batches dropped.
+
+    Dropping the remainder keeps every step at exactly ``batch_size`` examples,
+    so step times are comparable; a batch size at or above the data size means
+    full-batch training.
+    """
+    generator = torch.Generator().manual_seed(seed)
+    if batch_size >= n_examples:
+        everything = torch.arange(n_examples)
+        while True:
+            yield everything
+    while True:
+        order = torch.randperm(n_examples, generator=generator)
+        for start in range(0, n_examples - batch_size + 1, batch_size):
+            yield order[start:start + batch_size]
+
+
+def _finite_or_none(value: float) -> Optional[float]:
+    return value if math.isfinite(value) else None
+
+
+@torch.no_grad()
+def evaluate(model: torch.nn.Module, loss_fn: torch.nn.Module, inputs, targets) -> float:
+    """Loss on a whole data set, in eval mode and without autograd."""
+    model.eval()
+    try:
+        return loss_fn(model(inputs), targets).item()
+    finally:
+        model.train()
+
+
+@torch.no_grad()
+def test_metric(task: Task, model: torch.nn.Module, inputs, targets) -> float:
+    model.eval()
+    try:
+        return METRICS[task.metric](model(inputs), targets)
+    finally:
+        model.train()
+
+
+def tensor_bytes(obj) -> int:
+    """Bytes held by the tensors inside a nested structure of dicts, lists and tuples."""
+    if isinstance(obj, torch.Tensor):
+        return obj.numel() * obj.element_size()
+    if isinstance(obj, dict):
+        return sum(tensor_bytes(value) for value in obj.values())
+    if isinstance(obj, (list, tuple)):
+        return sum(tensor_bytes(value) for value in obj)
+    return 0
+
+
+def peak_rss_bytes() -> int:
+    """High-water mark of this process's resident memory (Linux reports KiB)."""
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+
+# Parts of the optimizer's own timing that happen inside step(); the others it reports
+# (capture hooks, extra backward passes) run inside the closure's forward and backward.
+STEP_PARTS = ("statistics", "inversion", "precondition", "fallback")
+
+
+def time_split(optimizer: torch.optim.Optimizer, train_seconds: float) -> tuple[Optional[dict], Optional[int]]:
+    """The optimizer's own time accounting, if it keeps one, completed to the measured total.
+
+    From the cumulative seconds of its diagnostics: the parts inside step()
+    (statistics, inversion, precondition, fallback), "step_other" (the rest of
+    step_total), the parts it times inside forward and backward (capture hooks,
+    extra backward), and "rest": the timed training seconds minus all of
+    those, i.e. the model's own forward and backward plus untimed hook work.
+    """
+    if not hasattr(optimizer, "diagnostics"):
+        return None, None
+    snapshot = optimizer.diagnostics()
+    reported = {key: float(value) for key, value in snapshot.get("time", {}).items()}
+    step_total = reported.pop("step_total", None)
+    split = dict(reported)
+    if step_total is not None:
+        split["step_other"] = step_total - sum(reported.get(key, 0.0) for key in STEP_PARTS)
+    split["rest"] = train_seconds - sum(split.values())
+    split["train_seconds"] = train_seconds
+    return split, snapshot.get("skipped_steps")
+
+
+def train_run(
+    task: Task,
+    spec: OptimizerSpec,
+    lr: float,
+    seed: int,
+    steps: int,
+    eval_every: int,
+    on_step: Optional[Callable[[], None]] = None,
+    attach: Optional[Attach] = None,
+) -> RunResult:
+    """Train ``task`` with ``spec`` at ``lr`` for ``steps`` steps from the weights of ``seed``."""
+    data = task.load_data()
+    load = load_average()
+    torch.manual_seed(seed)
+    model = task.build_model()
+    loss_fn = task.make_loss()
+    optimizer = spec.build(model, loss_fn, lr)
+    detach = attach(optimizer) if attach is not None else None
+
+    batches = minibatches(len(data.train_x), task.batch_size, seed)
+    step_seconds: list[float] = []
+    curve_steps, curve_seconds = [0], [0.0]
+    curve_losses = [_finite_or_none(evaluate(model, loss_fn, data.train_x, data.train_y))]
+    steps_to_target = seconds_to_target = None
+    elapsed = 0.0
+    diverged = False
+    try:
+        for step in range(1, steps + 1):
+            index = next(batches)
+            inputs, targets = data.train_x[index], data.train_y[index]
+
+            def closure():
+                optimizer.zero_grad()
+                loss = loss_fn(model(inputs), targets)
+                loss.backward()
+                return loss
+
+            start = time.perf_counter()
+            optimizer.step(closure)
+            seconds = time.perf_counter() - start
+            step_seconds.append(seconds)
+            elapsed += seconds
+            if on_step is not None:
+                on_step()
+
+            if step % eval_every == 0 or step == steps:
+                loss = evaluate(model, loss_fn, data.train_x, data.train_y)
+                curve_steps.append(step)
+                curve_seconds.append(elapsed)
+                curve_losses.append(_finite_or_none(loss))
+                if not math.isfinite(loss):
+                    diverged = True
+                    break
+                if steps_to_target is None and loss <= task.target_loss:
+                    steps_to_target, seconds_to_target = step, elapsed
+    finally:
+        if detach is not None:
+            detach()
+
+    split, skipped = time_split(optimizer, elapsed)
+    final_loss = None if diverged else curve_losses[-1]
+    metric = None if diverged else _finite_or_none(test_metric(task, model, data.test_x, data.test_y))
+    return RunResult(
+        task=task.name,
+        optimizer=spec.name,
+        lr=lr,
+        seed=seed,
+        target_loss=task.target_loss,
+        steps_to_target=steps_to_target,
+        seconds_to_target=seconds_to_target,
+        final_train_loss=final_loss,
+        final_test_metric=metric,
+        step_seconds_median=statistics.median(step_seconds),
+        step_seconds_mean=statistics.fmean(step_seconds),
+        steps_run=len(step_seconds),
+        train_seconds=elapsed,
+        diverged=diverged,
+        curve_steps=curve_steps,
+        curve_seconds=curve_seconds,
+        curve_losses=curve_losses,
+        time_split=split,
+        skipped_steps=skipped,
+        optimizer_state_bytes=tensor_bytes(optimizer.state_dict()),
+        process_peak_rss_bytes=peak_rss_bytes(),
+        load_average=load,
+    )

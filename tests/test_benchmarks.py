@@ -1,0 +1,266 @@
+"""Tests of the benchmark harness (python -m benchmarks) on tiny budgets.
+
+The results.json checks follow the schema in shared/API.md (the project's
+binding contract); speed goals are reported by the harness, never asserted here.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+import statistics
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+
+from benchmarks import datasets
+from benchmarks.cli import main, parse_seeds
+from benchmarks.goals import bounded_ratio, step_time_floor
+from benchmarks.harness import eval_interval
+from benchmarks.optimizers import GRID_DECADES, OPTIMIZERS, natural_gradient_available, resolve_optimizers
+from benchmarks.tasks import TASKS, resolve_tasks
+from benchmarks.training import minibatches, train_run
+
+REPOSITORY = Path(__file__).resolve().parent.parent
+NGOPT_AVAILABLE = natural_gradient_available()[0]
+OPTIMIZER_NAMES = ["ngopt", "sgd", "adam"] if NGOPT_AVAILABLE else ["sgd", "adam"]
+API_RUN_FIELDS = {  # shared/API.md, "The benchmark harness"
+    "optimizer": str, "lr": float, "seed": int, "steps_to_target": (int, type(None)),
+    "seconds_to_target": (float, type(None)), "final_train_loss": (float, type(None)),
+    "final_test_metric": (float, type(None)), "step_seconds_median": float,
+}
+SMOKE_STEPS, SMOKE_GRID, SMOKE_SEEDS = 3, 2, 3
+SMOKE_TASKS = ["digits_mlp", "ill_conditioned_regression"]  # the two cheapest tasks
+
+
+@pytest.fixture(scope="module")
+def smoke_run(tmp_path_factory):
+    """One run of the whole harness (CLI to files) with a tiny budget."""
+    out = tmp_path_factory.mktemp("bench")
+    argv = ["--steps", str(SMOKE_STEPS), "--grid", str(SMOKE_GRID), "--seeds", str(SMOKE_SEEDS),
+            "--tasks", ",".join(SMOKE_TASKS), "--optimizers", ",".join(OPTIMIZER_NAMES),
+            "--out", str(out), "--no-progress"]
+    assert main(argv) == 0
+    return out, json.loads((out / "results.json").read_text())
+
+
+def test_results_json_follows_the_api_schema(smoke_run):
+    _, results = smoke_run
+    assert isinstance(results["machine"], dict) and results["machine"]["torch_threads"] >= 1
+    assert [task["task"] for task in results["tasks"]] == SMOKE_TASKS
+    for task in results["tasks"]:
+        assert isinstance(task["target_loss"], float) and task["target_loss"] > 0
+        assert task["target_loss"] == TASKS[task["task"]].target_loss
+        for run in task["runs"]:
+            for field, kind in API_RUN_FIELDS.items():
+                assert isinstance(run[field], kind), (task["task"], field, run[field])
+            assert run["optimizer"] in OPTIMIZER_NAMES
+            # "null when a run never reaches the target": both or neither
+            assert (run["steps_to_target"] is None) == (run["seconds_to_target"] is None)
+            if run["steps_to_target"] is not None:
+                assert 1 <= run["steps_to_target"] <= SMOKE_STEPS
+                assert run["final_train_loss"] is not None
+
+
+def test_every_optimizer_gets_the_same_budget_and_the_stated_protocol(smoke_run):
+    _, results = smoke_run
+    for task in results["tasks"]:
+        for name in OPTIMIZER_NAMES:
+            runs = [run for run in task["runs"] if run["optimizer"] == name]
+            tuning = [run for run in runs if run["role"] == "tuning"]
+            repeats = [run for run in runs if run["role"] == "repeat"]
+            summary = task["summary"][name]
+            assert len(tuning) == SMOKE_GRID and {run["seed"] for run in tuning} == {0}
+            assert [run["lr"] for run in tuning] == summary["lr_grid"]
+            assert sorted(run["seed"] for run in repeats) == list(range(1, SMOKE_SEEDS))
+            assert all(run["lr"] == summary["best_lr"] for run in repeats)
+            assert all(run["steps_run"] == SMOKE_STEPS for run in runs if not run["diverged"])
+            # the chosen lr has the lowest final training loss on the tuning seed (diverged = +inf)
+            losses = {run["lr"]: math.inf if run["final_train_loss"] is None else run["final_train_loss"]
+                      for run in tuning}
+            assert losses[summary["best_lr"]] == min(losses.values())
+            # medians over the runs at the chosen lr, one per seed (statistics.median)
+            selected = [run for run in runs if run["selected"]]
+            assert len(selected) == SMOKE_SEEDS
+            assert summary["step_seconds_median"] == pytest.approx(
+                statistics.median(run["step_seconds_median"] for run in selected))
+
+
+def test_time_split_of_natural_gradient_adds_up(smoke_run):
+    if not NGOPT_AVAILABLE:
+        pytest.skip("ngopt.NaturalGradient does not import")
+    _, results = smoke_run
+    for task in results["tasks"]:
+        for run in task["runs"]:
+            if run["optimizer"] == "ngopt":
+                split = run["time_split_seconds"]
+                parts = sum(value for key, value in split.items() if key != "train_seconds")
+                assert parts == pytest.approx(split["train_seconds"], rel=1e-9)
+                assert split["train_seconds"] == pytest.approx(run["train_seconds"])
+                assert split["rest"] > 0  # the model's own forward and backward take time
+
+
+def test_files_written(smoke_run):
+    out, results = smoke_run
+    for name in ["results.json", "curves.csv", "report.md"]:
+        assert (out / name).stat().st_size > 0
+    for task in SMOKE_TASKS:
+        png = (out / f"loss_{task}.png").read_bytes()
+        assert png[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, section 5.2)
+    report = (out / "report.md").read_text()
+    for task in SMOKE_TASKS:
+        assert f"## {task}" in report and f"(loss_{task}.png)" in report
+    assert "## Goals" in report
+
+
+def test_curves_csv_matches_results_json(smoke_run):
+    out, results = smoke_run
+    with (out / "curves.csv").open(newline="") as handle:
+        rows = list(csv.DictReader(handle))
+    for task in results["tasks"]:
+        interval = eval_interval(SMOKE_STEPS)
+        expected_points = len(range(0, SMOKE_STEPS + 1, interval))
+        for run in task["runs"]:
+            curve = [row for row in rows if row["task"] == task["task"] and row["optimizer"] == run["optimizer"]
+                     and float(row["lr"]) == run["lr"] and int(row["seed"]) == run["seed"]]
+            assert [int(row["step"]) for row in curve] == list(range(0, SMOKE_STEPS + 1, interval))[:len(curve)]
+            if run["diverged"]:
+                continue
+            assert len(curve) == expected_points
+            assert float(curve[-1]["train_loss"]) == run["final_train_loss"]
+            assert float(curve[-1]["seconds"]) == pytest.approx(run["train_seconds"], abs=1e-6)
+        # same seed, same initial weights and data: the step-0 loss is the same for every optimizer
+        for seed in range(SMOKE_SEEDS):
+            initial = {row["train_loss"] for row in rows if row["task"] == task["task"]
+                       and int(row["seed"]) == seed and row["step"] == "0"}
+            assert len(initial) == 1
+
+
+@pytest.mark.parametrize("task_name", list(TASKS))
+def test_every_task_trains_with_every_optimizer(task_name):
+    task = TASKS[task_name]
+    for name in OPTIMIZER_NAMES:
+        spec = OPTIMIZERS[name]
+        run = train_run(task, spec, spec.lr_centre, seed=0, steps=2, eval_every=1)
+        assert run.steps_run == 2 and len(run.curve_losses) == 3
+        assert all(loss is not None and loss > 0 for loss in run.curve_losses)
+        assert run.final_test_metric is not None
+
+
+@pytest.mark.parametrize("optimizer", OPTIMIZER_NAMES)
+def test_same_seed_gives_the_same_losses(optimizer):
+    task, spec = TASKS["digits_mlp"], OPTIMIZERS[optimizer]
+    first = train_run(task, spec, spec.lr_centre, seed=4, steps=8, eval_every=2)
+    second = train_run(task, spec, spec.lr_centre, seed=4, steps=8, eval_every=2)
+    other = train_run(task, spec, spec.lr_centre, seed=5, steps=8, eval_every=2)
+    assert first.curve_losses == second.curve_losses
+    assert first.final_test_metric == second.final_test_metric
+    assert first.curve_losses != other.curve_losses  # the seed does change the run
+
+
+def test_data_order_is_a_fixed_permutation_per_epoch():
+    first = [batch.tolist() for batch, _ in zip(minibatches(10, 3, seed=7), range(6))]
+    again = [batch.tolist() for batch, _ in zip(minibatches(10, 3, seed=7), range(6))]
+    assert first == again
+    epoch = sorted(sum(first[:3], []))  # three batches of 3 from 10 examples, the last one dropped
+    assert len(set(epoch)) == 9 and set(epoch) <= set(range(10))
+    assert all(len(batch) == 3 for batch in first)
+    torch.manual_seed(0)  # global RNG draws (as a sampled Fisher makes) do not move the order
+    torch.rand(100)
+    assert [batch.tolist() for batch, _ in zip(minibatches(10, 3, seed=7), range(6))] == first
+
+
+@pytest.mark.parametrize("option, bad", [("--tasks", "digits_mlp,no_such_task"), ("--optimizers", "lbfgs")])
+def test_unknown_names_fail_with_the_valid_names(option, bad):
+    completed = subprocess.run([sys.executable, "-m", "benchmarks", option, bad, "--steps", "1"],
+                               cwd=REPOSITORY, capture_output=True, text=True, timeout=120)
+    assert completed.returncode == 2  # argparse's usage-error status
+    valid = TASKS if option == "--tasks" else OPTIMIZERS
+    assert bad.split(",")[-1] in completed.stderr
+    for name in valid:
+        assert name in completed.stderr
+    assert "Traceback" not in completed.stderr
+
+
+def test_resolvers_raise_value_error_naming_the_option():
+    with pytest.raises(ValueError, match="tasks.*valid tasks: digits_autoencoder"):
+        resolve_tasks(["nope"])
+    with pytest.raises(ValueError, match="optimizers.*valid optimizers: ngopt, sgd, adam"):
+        resolve_optimizers(["nope"])
+    with pytest.raises(ValueError, match="seeds"):
+        parse_seeds("0")
+
+
+def test_seed_option_takes_a_count_or_a_list():
+    assert parse_seeds("3") == [0, 1, 2]
+    assert parse_seeds("4,9") == [4, 9]
+    with pytest.raises(ValueError):
+        parse_seeds("1,1")
+
+
+def test_lr_grids_are_log_spaced_with_equal_size_and_width():
+    for spec in OPTIMIZERS.values():
+        grid = spec.lr_grid(5)
+        expected = np.logspace(np.log10(spec.lr_centre) - GRID_DECADES / 2,
+                               np.log10(spec.lr_centre) + GRID_DECADES / 2, 5)  # numpy.logspace
+        np.testing.assert_allclose(grid, expected, rtol=1e-12)
+
+
+def test_step_time_floor_counts_the_flops():
+    # forward+backward 6*B*d^2 flops, preconditioning two d x d products 2*(2*d^3): common practice
+    d, batch = 256, 512
+    sgd_flops = 6 * batch * d * d
+    assert step_time_floor(d, batch) == pytest.approx((sgd_flops + 4 * d ** 3) / sgd_flops)
+
+
+def test_ratios_bounded_by_the_budget_when_one_side_misses():
+    assert bounded_ratio(2.0, 10.0, 8.0, 20.0) == {"ratio": 0.25, "relation": "measured"}
+    # the baseline never got there within 20 s, so ngopt/baseline < 2/20
+    assert bounded_ratio(2.0, 10.0, None, 20.0) == {"ratio": 0.1, "relation": "at_most"}
+    assert bounded_ratio(None, 10.0, 4.0, 20.0) == {"ratio": 2.5, "relation": "at_least"}
+    assert bounded_ratio(None, 10.0, None, 20.0)["relation"] == "neither"
+
+
+def test_mnist1d_comes_from_the_package_generator_with_default_arguments():
+    split = datasets.mnist1d()
+    # mnist1d.data.get_dataset_args(): 5000 samples, train_split 0.8, final_seq_length 40
+    assert tuple(split.train_x.shape) == (4000, 40) and tuple(split.test_x.shape) == (1000, 40)
+    assert set(split.train_y.unique().tolist()) == set(range(10))
+    state = np.random.get_state()[1].copy()
+    datasets.mnist1d.cache_clear()
+    datasets.mnist1d()
+    np.testing.assert_array_equal(np.random.get_state()[1], state)  # numpy's global RNG left alone
+
+
+def test_digits_split_sizes():
+    split = datasets.digits_vectors()
+    # sklearn.datasets.load_digits: 1797 images of 8 x 8 pixels valued 0..16
+    assert len(split.train_x) + len(split.test_x) == 1797
+    assert float(split.train_x.max()) == 1.0 and float(split.train_x.min()) == 0.0
+    assert tuple(datasets.digits_images().train_x.shape[1:]) == (1, 8, 8)
+
+
+def test_targets_lie_between_the_trivial_and_the_best_possible_loss():
+    # classifiers: chance-level cross-entropy is log(10) (ten classes)
+    for name in ("digits_mlp", "digits_cnn", "mnist1d_mlp"):
+        assert TASKS[name].target_loss < math.log(10) / 10
+    # autoencoder: well below the error of answering the mean image (numpy)
+    pixels = datasets.digits_reconstruction().train_x.double().numpy()
+    mean_image_error = np.mean((pixels - pixels.mean(axis=0)) ** 2)
+    assert TASKS["digits_autoencoder"].target_loss < mean_image_error / 3
+    # regression: reachable, since least squares (numpy.linalg.lstsq) gets below it, but only
+    # by fitting the small-scale features: dropping the 8 smallest ones misses it
+    split = datasets.ill_conditioned_regression()
+    x = np.hstack([split.train_x.double().numpy(), np.ones((len(split.train_x), 1))])
+    y = split.train_y.double().numpy()
+    best = np.mean((x @ np.linalg.lstsq(x, y, rcond=None)[0] - y) ** 2)
+    assert best < TASKS["ill_conditioned_regression"].target_loss
+    kept = np.hstack([x[:, :-9], x[:, -1:]])
+    without_small = np.mean((kept @ np.linalg.lstsq(kept, y, rcond=None)[0] - y) ** 2)
+    assert without_small > TASKS["ill_conditioned_regression"].target_loss
+    assert np.linalg.cond(x.T @ x) > 1e6  # numpy.linalg.cond: badly conditioned on purpose
