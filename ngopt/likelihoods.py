@@ -66,7 +66,7 @@ class OutputLikelihood:
 
 
 class SquaredError(OutputLikelihood):
-    """``nn.MSELoss``: ``l = (y - f)^2`` per element is 2 x the NLL of N(f, 1/2)."""
+    """``nn.MSELoss``: ``l = (y - f)^2`` per element is the NLL of N(f, 1/2), up to a constant."""
 
     name = "squared error"
 
