@@ -115,14 +115,14 @@ def main(argv=None):
         state = torch.load(args.resume, map_location=device, weights_only=True)
         model.load_state_dict(state["model"])
         opt.load_state_dict(state["optimizer"])
-    if world > 1 and opt.communicator is None:  # a no-op once the optimizer shares by itself
+    if world > 1:  # replaces the communicator an optimizer built on a DDP model may have attached itself
         nd.share_curvature(opt, shard_inversions=not args.replicate_inversions)
 
     share = args.batch_size // world
-    step_seconds = []
+    step_seconds, step_cpu_seconds = [], []
     for indices in global_batches(args, args.steps, x.shape[0]):
         mine = indices[rank * share:(rank + 1) * share].to(device)
-        started = time.perf_counter()
+        started, cpu_started = time.perf_counter(), time.process_time()
         opt.zero_grad()
         loss = loss_fn(trained(x[mine]), y[mine])
         loss.backward()
@@ -130,8 +130,9 @@ def main(argv=None):
         if device.type == "cuda":
             torch.cuda.synchronize()
         step_seconds.append(time.perf_counter() - started)
+        step_cpu_seconds.append(time.process_time() - cpu_started)
 
-    report = measurements(args, opt, model, x, y, step_seconds, world)
+    report = measurements(args, opt, model, x, y, step_seconds, step_cpu_seconds, world)
     if args.checkpoint:
         state = {"model": model.state_dict(), "optimizer": opt.state_dict()}
         if world > 1:
@@ -148,7 +149,8 @@ def main(argv=None):
         dist.destroy_process_group()
 
 
-def measurements(args, opt, model, x, y, step_seconds, world):
+def measurements(args, opt, model, x, y, step_seconds, step_cpu_seconds, world):
+    """Rank 0's numbers; wall times suffer from other load on the machine, CPU times much less."""
     with torch.no_grad():
         logits = model(x)
         loss = float(nn.functional.cross_entropy(logits, y))
@@ -160,6 +162,8 @@ def measurements(args, opt, model, x, y, step_seconds, world):
         "steps": args.steps, "global_batch": args.batch_size, "fisher": args.fisher,
         "layers": [[b.layer.in_dim, b.layer.out_dim] for b in opt.blocks.values()],
         "step_seconds_median": statistics.median(timed), "step_seconds_mean": statistics.fmean(timed),
+        "step_cpu_seconds_mean": statistics.fmean(step_cpu_seconds[args.warmup:]),
+        "load_average": os.getloadavg()[0] if hasattr(os, "getloadavg") else None,
         "optimizer_seconds": opt.diagnostics()["time"],
         "train_loss": loss, "train_accuracy": accuracy,
     }
@@ -177,7 +181,8 @@ def print_report(report):
     print(f"{report['processes']} process(es) x {report['threads_per_process']} thread(s), "
           f"fisher={report['fisher']}, global batch {report['global_batch']}, layers {report['layers']}")
     print(f"step time: median {1e3 * report['step_seconds_median']:.2f} ms, "
-          f"mean {1e3 * report['step_seconds_mean']:.2f} ms over {report['steps']} steps")
+          f"mean {1e3 * report['step_seconds_mean']:.2f} ms over {report['steps']} steps; "
+          f"CPU per step {1e3 * report['step_cpu_seconds_mean']:.2f} ms (this process)")
     print(f"final train loss {report['train_loss']:.4f}, accuracy {report['train_accuracy']:.4f}")
     volume = report["volume_from_sizes"]
     print(f"per refresh (formula, R={volume['world_size']}): statistics buffer "

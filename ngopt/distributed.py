@@ -19,7 +19,7 @@ rank of the process group:
   are assigned to ranks greedily by cost ``sum d^3`` over their square factors
   (``d_in^3 + d_out^3``); each owner runs ``block.prepare_inverse`` and the
   owners' results, the ``info`` dict included, travel bit for bit in one
-  ``all_gather`` of byte buffers (after a tiny one of their sizes).  Every rank
+  collective of byte buffers (after a tiny all-gather of their sizes).  Every rank
   therefore holds identical inverses and diagnostics.  With
   ``shard_inversions=False`` every rank inverts everything itself: no traffic,
   ``R`` times the compute.  Diagonal blocks are always done locally (their
@@ -50,9 +50,12 @@ Communication per refresh, for ``R`` ranks and Kronecker blocks of sizes
 
 * statistics all-reduce: ``S = 4 * sum_b [d_in(d_in+1)/2 + d_out(d_out+1)/2 + 1]``
   bytes; a ring all-reduce sends and receives ``2 (R-1)/R * S`` per rank;
-* inverse exchange (sharded): payload ``P = 4 * sum_b (d_in^2 + d_out^2)``; an
-  all-gather of per-owner buffers padded to the largest, ``P_max ~ P / R``,
-  moves ``(R-1) P_max`` into each rank;
+* inverse exchange (sharded): payload ``P = 4 * sum_b (d_in^2 + d_out^2)``,
+  ``P_r`` of it from owner ``r``; an all-gather of buffers padded to the largest
+  moves ``(R-1) max_r P_r`` into each rank (``~ P (R-1)/R`` when balanced), an
+  all-reduce of the zero-filled concatenation ``2 (R-1)/R * P``; the cheaper one
+  is used (all-gather for 2 ranks, all-reduce once ranks outnumber the large
+  blocks, because then ``max_r P_r`` stops shrinking while ``R`` grows);
 * replicated inversions: no bytes, every rank computes ``sum_b (d_in^3 + d_out^3)``.
 
 Every rank keeps all factors and inverses, ``2 * 4 * sum_b (d_in^2 + d_out^2)``
@@ -152,6 +155,8 @@ class CurvatureCommunicator:
         if source is not None:
             source.generator_for = self._sampler.generator_for
         self.resync_every = resync_every
+        # "auto" picks the cheaper of "all_gather" and "all_reduce" from the owners' payload sizes.
+        self.inverse_collective = "auto"
         self._hooks = []
         if opt.adapt_damping and self.world_size > 1:
             self._hooks.append(opt.register_step_post_hook(lambda o, args, kwargs: self._agree_on_damping(o)))
@@ -271,22 +276,25 @@ class CurvatureCommunicator:
             self.totals[clock] += time.perf_counter() - started
 
     def _exchange_inverses(self, opt, mine, error):
-        """All-gather every owner's results; returns the blocks other ranks computed."""
+        """Share every owner's results (sizes first, then one collective); returns the blocks others computed."""
         payload = encode_inverses(mine, error, self.rank, self.device)
         sizes = [torch.zeros(1, dtype=torch.int64, device=self.device) for _ in range(self.world_size)]
         self._all_gather(sizes, torch.tensor([payload.numel()], dtype=torch.int64, device=self.device),
                          "inverse exchange (sizes)", clock="inverse_seconds")
-        longest = max(int(s) for s in sizes)
-        padded = torch.zeros(longest, dtype=torch.uint8, device=self.device)
-        padded[:payload.numel()] = payload
-        gathered = [torch.empty_like(padded) for _ in range(self.world_size)]
-        self._all_gather(gathered, padded, "inverse exchange", clock="inverse_seconds")
+        sizes = [int(s) for s in sizes]
+        collective = self.inverse_collective
+        if collective == "auto":
+            collective = cheaper_inverse_collective(sizes)
+        if collective == "all_gather":
+            buffers = self._gather_payloads(payload, sizes)
+        else:
+            buffers = self._reduce_payloads(payload, sizes)
         self.totals["inverse_exchanges"] += 1
-        self.totals["inverse_bytes"] += longest * (self.world_size - 1)
+        self.totals["inverse_bytes"] += int(inverse_exchange_bytes(sizes, collective))
         by_name = {block.layer.name: block for block in opt.blocks.values()}
         received, errors = {}, []
-        for rank, buffer in enumerate(gathered):
-            entries, peer_error = decode_inverses(buffer[:int(sizes[rank])], by_name)
+        for rank, buffer in enumerate(buffers):
+            entries, peer_error = decode_inverses(buffer, by_name)
             if peer_error is not None:
                 errors.append(peer_error)
             if rank != self.rank:
@@ -296,6 +304,43 @@ class CurvatureCommunicator:
         if errors:
             raise CurvatureSyncError("ngopt.distributed: the inversion failed on a peer: " + "; ".join(errors))
         return received
+
+    def _gather_payloads(self, payload, sizes):
+        """All-gather of the payloads padded to the longest: ``(R-1) max(sizes)`` bytes into each rank."""
+        padded = torch.zeros(max(sizes), dtype=torch.uint8, device=self.device)
+        padded[:payload.numel()] = payload
+        gathered = [torch.empty_like(padded) for _ in range(self.world_size)]
+        self._all_gather(gathered, padded, "inverse exchange", clock="inverse_seconds")
+        return [buffer[:size] for buffer, size in zip(gathered, sizes)]
+
+    def _reduce_payloads(self, payload, sizes):
+        """All-reduce of a zero buffer where each rank fills its own slot (``x + 0 = x`` exactly, also in bytes)."""
+        offsets = [sum(sizes[:r]) for r in range(self.world_size + 1)]
+        buffer = torch.zeros(offsets[-1], dtype=torch.uint8, device=self.device)
+        buffer[offsets[self.rank]:offsets[self.rank + 1]] = payload
+        self._all_reduce(buffer, "inverse exchange", clock="inverse_seconds")
+        return [buffer[offsets[r]:offsets[r + 1]] for r in range(self.world_size)]
+
+
+def inverse_exchange_bytes(sizes: Sequence[int], collective: str) -> float:
+    """Bytes into each rank for owner payloads ``sizes`` (bandwidth-optimal ring algorithms).
+
+    ``all_gather`` of padded buffers: ``(R-1) max(sizes)``; ``all_reduce`` of the
+    zero-filled concatenation: ``2 (R-1)/R sum(sizes)``.
+    """
+    world = len(sizes)
+    if world < 2:
+        return 0.0
+    if collective == "all_gather":
+        return float((world - 1) * max(sizes))
+    return 2.0 * (world - 1) / world * sum(sizes)
+
+
+def cheaper_inverse_collective(sizes: Sequence[int]) -> str:
+    """The collective that moves fewer bytes: all-gather while loads are balanced, all-reduce when
+    a few owners hold most of the payload (many more ranks than large blocks)."""
+    gather, reduce = (inverse_exchange_bytes(sizes, c) for c in ("all_gather", "all_reduce"))
+    return "all_gather" if gather <= reduce else "all_reduce"
 
 
 # ---------------------------------------------------------------------------------------- statistics buffer
@@ -484,7 +529,7 @@ def encode_inverses(results: Dict[CurvatureBlock, tuple], error: Optional[BaseEx
 
 def decode_inverses(buffer: torch.Tensor, blocks_by_name: Dict[str, CurvatureBlock]):
     """Inverse of :func:`encode_inverses`: ``({block: (tensors, info)}, error message or None)``."""
-    length = int(buffer[:_HEADER_LENGTH_BYTES].cpu().view(torch.int64))
+    length = int(buffer[:_HEADER_LENGTH_BYTES].cpu().clone().view(torch.int64))  # clone: slices may be unaligned
     start = _HEADER_LENGTH_BYTES
     header = json.loads(buffer[start:start + length].cpu().numpy().tobytes())
     offset = start + length
@@ -635,7 +680,8 @@ def communication_volume(opt, world_size: int, shard_inversions: bool = True) ->
 
     Returns plain numbers: ``statistics_buffer_bytes`` (the all-reduce buffer),
     ``statistics_bytes_per_rank`` (ring all-reduce, sent = received),
-    ``inverse_payload_bytes`` (all owners together), ``inverse_bytes_per_rank`` (received),
+    ``inverse_payload_bytes`` (all owners together), ``inverse_collective`` and
+    ``inverse_bytes_per_rank`` (received, headers left out),
     ``inversion_cost_total`` and ``inversion_cost_per_rank`` (largest owner's ``sum d^3``),
     ``factor_memory_bytes`` (factors and inverses held by every rank).
     """
@@ -659,9 +705,11 @@ def communication_volume(opt, world_size: int, shard_inversions: bool = True) ->
         for b, owner, cost in zip(shared, owners, costs):
             per_owner[owner] += payload[b]
             load[owner] += cost
-        volume["inverse_bytes_per_rank"] = float((world_size - 1) * max(per_owner))
+        volume["inverse_collective"] = cheaper_inverse_collective(per_owner)
+        volume["inverse_bytes_per_rank"] = inverse_exchange_bytes(per_owner, volume["inverse_collective"])
         volume["inversion_cost_per_rank"] = max(load)
     else:
+        volume["inverse_collective"] = None
         volume["inverse_bytes_per_rank"] = 0.0
         volume["inversion_cost_per_rank"] = total_cost
     return volume

@@ -134,7 +134,8 @@ def test_inverse_payload_round_trip_is_bit_exact():
     tensors, info = results[blocks[1]]
     info["used_eig_fallback"], info["in_trace"] = True, math.inf  # bools and non-finite floats travel too
     payload = nd.encode_inverses(results, None, rank=0)
-    decoded, error = nd.decode_inverses(payload, {b.layer.name: b for b in blocks})
+    shifted = torch.cat([torch.zeros(3, dtype=torch.uint8), payload])[3:]  # decoding must not need alignment
+    decoded, error = nd.decode_inverses(shifted, {b.layer.name: b for b in blocks})
     assert error is None and list(decoded) == blocks
     for block in blocks:
         (want_tensors, want_info), (got_tensors, got_info) = results[block], decoded[block]
@@ -172,13 +173,30 @@ def test_communication_volume_from_layer_sizes():
     assert volume["statistics_buffer_bytes"] == statistics
     assert volume["statistics_bytes_per_rank"] == pytest.approx(2 * 3 / 4 * statistics)  # ring all-reduce
     assert volume["inverse_payload_bytes"] == 4 * ((49 + 81) + (100 + 16))
-    # owners: 1072 (7^3+9^3) -> rank 0, 1064 (10^3+4^3) -> rank 1; ranks 2, 3 own nothing
-    assert volume["inverse_bytes_per_rank"] == 3 * 4 * (49 + 81)
+    # owners: 1072 (7^3+9^3) -> rank 0, 1064 (10^3+4^3) -> rank 1; ranks 2, 3 own nothing.
+    # Padded all-gather: 3 * 520 = 1560 bytes in; all-reduce of the concatenation: 2*3/4 * 984 = 1476.
+    assert volume["inverse_collective"] == "all_reduce"
+    assert volume["inverse_bytes_per_rank"] == pytest.approx(2 * 3 / 4 * 4 * (49 + 81 + 100 + 16))
+    two = nd.communication_volume(opt, world_size=2)
+    assert two["inverse_collective"] == "all_gather" and two["inverse_bytes_per_rank"] == 4 * (49 + 81)
     assert volume["inversion_cost_per_rank"] == 7 ** 3 + 9 ** 3
     assert volume["factor_memory_bytes"] == 2 * volume["inverse_payload_bytes"]
     replicated = nd.communication_volume(opt, world_size=4, shard_inversions=False)
     assert replicated["inverse_bytes_per_rank"] == 0.0
     assert replicated["inversion_cost_per_rank"] == 7 ** 3 + 9 ** 3 + 10 ** 3 + 4 ** 3
+
+
+def test_inverse_exchange_picks_the_collective_that_moves_less():
+    # Ring algorithms (bandwidth-optimal, common practice): all-gather of R blocks of size m
+    # brings m into each rank; all-reduce of n bytes sends and receives 2 (R-1)/R n.
+    assert nd.inverse_exchange_bytes([100, 90], "all_gather") == 100
+    assert nd.inverse_exchange_bytes([100, 90], "all_reduce") == 190
+    assert nd.cheaper_inverse_collective([100, 90]) == "all_gather"
+    eight = [100] + [0] * 7  # one big block, many ranks: padding would cost 7 x 100
+    assert nd.inverse_exchange_bytes(eight, "all_gather") == 700
+    assert nd.inverse_exchange_bytes(eight, "all_reduce") == pytest.approx(175)
+    assert nd.cheaper_inverse_collective(eight) == "all_reduce"
+    assert nd.inverse_exchange_bytes([5], "all_gather") == 0.0
 
 
 # ---------------------------------------------------------------------------------------- sampling seeds

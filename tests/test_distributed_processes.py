@@ -100,13 +100,13 @@ def _rank_rows(rank, world):
 
 
 def _ddp_run(rank, world, dtype, fisher="exact", curvature="kfac", shard=True, checkpoint=None, spectra=False,
-             **overrides):
+             collective="auto", **overrides):
     import ngopt.distributed as nd
     model = build_model(dtype)
     wrapped = nn.parallel.DistributedDataParallel(model)
     loss_fn = nn.CrossEntropyLoss()
     opt = make_optimizer(wrapped, loss_fn, fisher=fisher, curvature=curvature, **overrides)
-    nd.share_curvature(opt, shard_inversions=shard)
+    nd.share_curvature(opt, shard_inversions=shard).inverse_collective = collective
     opt.track_spectra = spectra
     data, rows = batches(dtype), _rank_rows(rank, world)
     if checkpoint is not None:
@@ -216,6 +216,7 @@ def job_train(rank, world, out_dir):
         "ddp_exact_f32_sharded": dict(dtype=torch.float32, shard=True, spectra=True,
                                       checkpoint=str(out_dir / "checkpoint.pt")),
         "ddp_exact_f32_replicated": dict(dtype=torch.float32, shard=False, spectra=True),
+        "ddp_exact_f32_reduced": dict(dtype=torch.float32, spectra=True, collective="all_reduce"),
         "ddp_exact_f64_sharded": dict(dtype=torch.float64, shard=True),
         "ddp_exact_f64_replicated": dict(dtype=torch.float64, shard=False),
         "ddp_diag_f64": dict(dtype=torch.float64, curvature="diag"),
@@ -408,11 +409,13 @@ def test_sharded_inversion_equals_everyone_inverting(trained):
     ranks, _ = trained
     for rank in ranks:
         for sharded, replicated in (("ddp_exact_f32_sharded", "ddp_exact_f32_replicated"),
+                                    ("ddp_exact_f32_reduced", "ddp_exact_f32_replicated"),
                                     ("ddp_exact_f64_sharded", "ddp_exact_f64_replicated")):
             for a, b in zip(rank[sharded], rank[replicated]):
                 assert torch.equal(a, b), f"{sharded} vs {replicated}"
         # the info that came with the inverses (traces, damping, condition numbers) too
         assert rank["diagnostics"]["ddp_exact_f32_sharded"] == rank["diagnostics"]["ddp_exact_f32_replicated"]
+        assert rank["diagnostics"]["ddp_exact_f32_reduced"] == rank["diagnostics"]["ddp_exact_f32_replicated"]
     assert ranks[0]["diagnostics"] == ranks[1]["diagnostics"]
     sharded = [r["ddp_exact_f32_sharded_summary"] for r in ranks]
     replicated = [r["ddp_exact_f32_replicated_summary"] for r in ranks]
