@@ -45,6 +45,8 @@ def parse_args(argv=None):
     parser.add_argument("--invert-every", type=int, default=20)
     parser.add_argument("--replicate-inversions", action="store_true",
                         help="every rank inverts every block (no inverse traffic, R times the compute)")
+    parser.add_argument("--resync-every", type=int, default=None,
+                        help="copy rank 0's weights to the others every this many steps (see README)")
     parser.add_argument("--threads", type=int, default=None,
                         help="torch threads per process (default: CPU cores / processes)")
     parser.add_argument("--seed", type=int, default=0)
@@ -116,7 +118,7 @@ def main(argv=None):
         model.load_state_dict(state["model"])
         opt.load_state_dict(state["optimizer"])
     if world > 1:  # replaces the communicator an optimizer built on a DDP model may have attached itself
-        nd.share_curvature(opt, shard_inversions=not args.replicate_inversions)
+        nd.share_curvature(opt, shard_inversions=not args.replicate_inversions, resync_every=args.resync_every)
 
     share = args.batch_size // world
     step_seconds, step_cpu_seconds = [], []
@@ -159,7 +161,8 @@ def measurements(args, opt, model, x, y, step_seconds, step_cpu_seconds, world):
     report = {
         "command": " ".join([os.path.basename(sys.executable)] + sys.argv),
         "processes": world, "threads_per_process": torch.get_num_threads(),
-        "steps": args.steps, "global_batch": args.batch_size, "fisher": args.fisher,
+        "steps": args.steps, "optimizer_steps": opt.diagnostics()["step"],  # resumed runs count on
+        "global_batch": args.batch_size, "fisher": args.fisher,
         "layers": [[b.layer.in_dim, b.layer.out_dim] for b in opt.blocks.values()],
         "step_seconds_median": statistics.median(timed), "step_seconds_mean": statistics.fmean(timed),
         "step_cpu_seconds_mean": statistics.fmean(step_cpu_seconds[args.warmup:]),

@@ -17,6 +17,8 @@ References:
 from __future__ import annotations
 
 import datetime
+import importlib.util
+import json
 import os
 import re
 import socket
@@ -33,6 +35,10 @@ from torch import nn
 import ngopt
 
 WORLD = 2
+REPOSITORY = Path(__file__).resolve().parents[1]
+EXAMPLE = REPOSITORY / "examples" / "train_ddp.py"
+EXAMPLE_ARGS = ["--steps", "8", "--warmup", "2", "--hidden", "16", "--fisher", "exact", "--stats-every", "2",
+                "--invert-every", "4"]
 JOB_SECONDS = 120           # hard bound on one spawned job (generous: a loaded 2-core machine)
 GROUP_TIMEOUT_SECONDS = 10  # the process group's own timeout inside the jobs
 FAULT_TIMEOUT_SECONDS = 3   # share_curvature(timeout=...) in the fault jobs
@@ -303,24 +309,29 @@ def _free_port():
 
 
 class Job:
-    """``WORLD`` worker processes of one job, started at once; :meth:`finish` waits (bounded) and kills leftovers."""
+    """Processes started at once; :meth:`finish` waits for some (bounded) and kills the leftovers."""
 
-    def __init__(self, job, out_dir, *extra, wait_for=None):
+    def __init__(self, commands, out_dir, wait_for=None):
         env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONUNBUFFERED="1", PYTHONWARNINGS="ignore")
         if Path("/sys/class/net/lo").exists():
             env["GLOO_SOCKET_IFNAME"] = "lo"  # keep gloo's own sockets on loopback as well
-        port = _free_port()
         self.out_dir = out_dir
-        self.wait_for = range(WORLD) if wait_for is None else wait_for
-        self.logs = [out_dir / f"{job}{'-'.join(('',) + extra)}-rank{r}.log" for r in range(WORLD)]
+        self.wait_for = range(len(commands)) if wait_for is None else wait_for
+        self.logs = [out_dir / f"process{index}.log" for index in range(len(commands))]
         self.deadline = time.monotonic() + JOB_SECONDS
         self.procs = []
-        for rank, log in enumerate(self.logs):
+        for command, log in zip(commands, self.logs):
             with open(log, "w") as stream:
-                self.procs.append(subprocess.Popen(
-                    [sys.executable, __file__, job, str(rank), str(WORLD), str(port), str(out_dir), *extra],
-                    stdout=stream, stderr=subprocess.STDOUT, env=env))
+                self.procs.append(subprocess.Popen(command, stdout=stream, stderr=subprocess.STDOUT, env=env,
+                                                   cwd=REPOSITORY))
         self._result = None
+
+    @classmethod
+    def workers(cls, job, out_dir, *extra, wait_for=None):
+        """``WORLD`` ranks of one of this file's jobs, meeting at a fresh port on 127.0.0.1."""
+        port = str(_free_port())
+        return cls([[sys.executable, __file__, job, str(rank), str(WORLD), port, str(out_dir), *extra]
+                    for rank in range(WORLD)], out_dir, wait_for)
 
     def finish(self):
         """``(return codes, logs)``; a process killed at the deadline has a negative code."""
@@ -348,9 +359,13 @@ FAULT_MODES = ("raise", "exit_ddp", "stall")
 @pytest.fixture(scope="module")
 def jobs(tmp_path_factory):
     """Every job of this module, running side by side (they spend most of their time importing torch)."""
-    started = {"train": Job("train", tmp_path_factory.mktemp("distributed_train"))}
+    started = {"train": Job.workers("train", tmp_path_factory.mktemp("distributed_train"))}
     for mode in FAULT_MODES:
-        started[mode] = Job("fault", tmp_path_factory.mktemp(f"distributed_{mode}"), mode, wait_for=[0])
+        started[mode] = Job.workers("fault", tmp_path_factory.mktemp(f"distributed_{mode}"), mode, wait_for=[0])
+    example = tmp_path_factory.mktemp("distributed_example")
+    started["example"] = Job([[sys.executable, "-m", "torch.distributed.run", "--standalone", "--nproc_per_node=2",
+                               str(EXAMPLE), *EXAMPLE_ARGS, "--json", str(example / "report.json"),
+                               "--checkpoint", str(example / "checkpoint.pt")]], example)
     yield started
     for job in started.values():
         job.finish()
@@ -489,6 +504,25 @@ def test_a_failing_rank_makes_the_other_fail_fast(jobs, mode):
     assert seconds < FAULT_TIMEOUT_SECONDS + 5
     assert kind == "CurvatureSyncError"
     assert "statistics all-reduce at step 2" in message and "rank 0 of 2" in message
+
+
+def test_the_torchrun_example_runs_and_its_checkpoint_loads_in_one_process(jobs):
+    job = jobs["example"]
+    codes, logs = job.finish()
+    assert codes == [0], logs[0]
+    report = json.loads((job.out_dir / "report.json").read_text())
+    assert report["processes"] == 2 and report["exchange"]["statistics_exchanges"] == 4  # steps 0, 2, 4, 6
+    assert report["exchange"]["inverse_exchanges"] == 2  # steps 0, 4
+    assert report["max_weight_difference_between_ranks"] < 1e-6
+    spec = importlib.util.spec_from_file_location("train_ddp_example", EXAMPLE)
+    example = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(example)
+    example.main(EXAMPLE_ARGS + ["--threads", str(torch.get_num_threads()),
+                                 "--resume", str(job.out_dir / "checkpoint.pt"),
+                                 "--json", str(job.out_dir / "resumed.json")])
+    resumed = json.loads((job.out_dir / "resumed.json").read_text())
+    assert report["optimizer_steps"] == 8 and resumed["processes"] == 1 and resumed["optimizer_steps"] == 16
+    assert resumed["train_loss"] < report["train_loss"]  # 8 more steps on the digits from where rank 0 saved
 
 
 if __name__ == "__main__":
