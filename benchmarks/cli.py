@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import ast
 import json
 import shlex
 import sys
@@ -35,6 +36,7 @@ class Config:
     grid_size: int
     steps: dict[str, int]
     steps_override: Optional[int]
+    ngopt_options: dict
     quick: bool
     threads: int
     out: Optional[Path]
@@ -75,6 +77,9 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--profile", action="store_true",
                         help="after the benchmark, profile one ngopt run per task at its chosen lr "
                              "with cProfile into OUT/profile_<task>_ngopt.txt (needs --out)")
+    parser.add_argument("--ngopt-option", action="append", default=[], metavar="KEY=VALUE",
+                        help="override one NaturalGradient default for every task alike, e.g. "
+                             "--ngopt-option momentum=0.9 (repeatable; for tuning the defaults)")
     parser.add_argument("--no-progress", action="store_true", help="no progress bars")
     return parser
 
@@ -100,10 +105,26 @@ def parse_seeds(text: str) -> list[int]:
     return values
 
 
+def parse_options(items: list[str]) -> dict:
+    """KEY=VALUE pairs; values are Python literals (0.9, None, True, 'kfac') or bare strings."""
+    options = {}
+    for item in items:
+        key, separator, text = item.partition("=")
+        if not separator or not key.strip().isidentifier():
+            raise ValueError(f"--ngopt-option takes KEY=VALUE, got {item!r}")
+        try:
+            options[key.strip()] = ast.literal_eval(text.strip())
+        except (ValueError, SyntaxError):
+            options[key.strip()] = text.strip()
+    return options
+
+
 def make_config(args: argparse.Namespace) -> Config:
     """Check and resolve the options; every problem is a ValueError naming the option."""
     tasks = resolve_tasks(split_names(args.tasks))
-    specs = resolve_optimizers(split_names(args.optimizers))
+    ngopt_options = parse_options(args.ngopt_option)
+    specs = [optimizer_registry.with_natural_gradient_options(spec, ngopt_options)
+             if spec.name == "ngopt" else spec for spec in resolve_optimizers(split_names(args.optimizers))]
     seeds = parse_seeds(args.seeds)
     grid = args.grid if args.grid is not None else (QUICK_GRID if args.quick else FULL_GRID)
     if grid < 1:
@@ -117,15 +138,13 @@ def make_config(args: argparse.Namespace) -> Config:
     if args.profile and args.out is None:
         raise ValueError("--profile needs --out")
     steps = {task.name: args.steps or (task.quick_steps if args.quick else task.steps) for task in tasks}
-    return Config(tasks, specs, seeds, grid, steps, args.steps, args.quick, args.threads, args.out,
+    return Config(tasks, specs, seeds, grid, steps, args.steps, ngopt_options, args.quick, args.threads, args.out,
                   not args.no_progress, args.diagnostics, args.profile, args.scaling)
 
 
-def natural_gradient_defaults() -> dict:
-    """NaturalGradient's default hyperparameters, as its param groups carry them."""
-    import ngopt
-
-    optimizer = ngopt.NaturalGradient(torch.nn.Linear(2, 1), torch.nn.MSELoss(), lr=1.0)
+def natural_gradient_settings(spec: OptimizerSpec) -> dict:
+    """The group hyperparameters NaturalGradient ends up with (defaults plus any overrides)."""
+    optimizer = spec.build(torch.nn.Linear(2, 1), torch.nn.MSELoss(), spec.lr_centre)
     return json.loads(json.dumps(optimizer.defaults, default=repr))
 
 
@@ -135,6 +154,7 @@ def settings_of(config: Config, argv: list[str]) -> dict:
         "quick": config.quick,
         "tasks": [task.name for task in config.tasks],
         "optimizers": [spec.name for spec in config.specs],
+        "optimizer_labels": {spec.name: spec.label for spec in config.specs},
         "seeds": config.seeds,
         "grid_size": config.grid_size,
         "grid_decades": GRID_DECADES,
@@ -143,8 +163,10 @@ def settings_of(config: Config, argv: list[str]) -> dict:
         "threads": config.threads,
         "diagnostics_every": config.diagnostics_every,
     }
-    if any(spec.name == "ngopt" for spec in config.specs):
-        settings["ngopt_defaults"] = natural_gradient_defaults()
+    for spec in config.specs:
+        if spec.name == "ngopt":
+            settings["ngopt_group_settings"] = natural_gradient_settings(spec)
+            settings["ngopt_options"] = config.ngopt_options
     return settings
 
 
@@ -171,6 +193,12 @@ def check_ready(config: Config) -> None:
         if not available:
             raise ValueError(f"optimizer ngopt: ngopt.NaturalGradient does not import ({reason}); "
                              "run the baselines alone with --optimizers sgd,adam")
+    if config.ngopt_options and "ngopt" in names:
+        spec = next(spec for spec in config.specs if spec.name == "ngopt")
+        try:
+            natural_gradient_settings(spec)
+        except (TypeError, ValueError) as error:
+            raise ValueError(f"--ngopt-option: NaturalGradient rejects {config.ngopt_options}: {error}")
     if config.diagnostics_every is not None and not diagnostics_available():
         raise ValueError("--diagnostics needs ngopt.log_diagnostics, which this ngopt does not provide")
 
@@ -187,7 +215,8 @@ def run_tasks(config: Config, argv: list[str]) -> dict:
         outcome = benchmark_task(task, config.specs, config.seeds, config.grid_size,
                                  config.steps[task.name], progress=config.progress, attach_for=attach_for)
         outcomes.append(outcome)
-        print("\n" + report.task_block(results.task_entry(outcome)) + "\n", flush=True)
+        print("\n" + report.task_block(results.task_entry(outcome), threads=config.threads) + "\n",
+              flush=True)
     settings["load_average_end"] = load_average()
     results_dict = results.build_results(machine, settings, outcomes)
     summary = report.console_summary(results_dict, with_tasks=False)

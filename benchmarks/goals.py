@@ -174,6 +174,10 @@ def explain_miss(goal: dict, task_entry: dict) -> str:
     if ngopt is None or base is None:
         return "not enough optimizers were run to say what limits it"
     comparison = task_entry["comparison"]
+    time_entry = comparison["time_to_target"].get(goal["baseline"])
+    if goal["status"] == "undecided" and time_entry and time_entry["relation"] == "at_most":
+        return (f"{goal['baseline']} never reached the target, so only the bound "
+                f"{describe_ratio(time_entry)} is known; a longer budget (--steps) would decide it.")
     parts = []
     if goal["kind"] != "step_time":
         steps_entry = comparison["steps_to_target"].get(goal["baseline"])

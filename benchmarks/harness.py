@@ -130,6 +130,7 @@ def summarize(outcome: OptimizerOutcome) -> dict:
         "time_split_per_step": per_step_split(runs),
         "optimizer_state_bytes": max(run.optimizer_state_bytes for run in runs),
         "process_peak_rss_bytes": max(run.process_peak_rss_bytes for run in runs),
+        "rss_growth_bytes": median_present([run.rss_growth_bytes for run in runs]),
     }
 
 

@@ -79,5 +79,7 @@ def machine_info() -> dict:
                        "end of a run (curvature factors and inverses for ngopt, momentum or moment "
                        "buffers for the baselines); process_peak_rss_bytes: the process's resident-set "
                        "high-water mark (getrusage ru_maxrss) when the run ended, which only grows "
-                       "over a benchmark and so bounds, not isolates, one run's peak",
+                       "over a benchmark and so bounds, not isolates, one run's peak; rss_growth_bytes: "
+                       "resident memory after a run (its model and optimizer deleted, gc run) minus "
+                       "before it, which is near zero unless something keeps memory from that run",
     }

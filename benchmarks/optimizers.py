@@ -2,14 +2,14 @@
 
 Each optimizer is built with nothing tuned but its learning rate: SGD with
 heavy-ball momentum 0.9, Adam with its defaults, NaturalGradient with its own
-defaults. Every grid spans the same number of decades around the learning
-rates usual for that method, with the same number of points, so that no
-optimizer gets a finer search than another.
+defaults (or, to tune those defaults, with overrides that apply to every task
+alike). Every grid is log-spaced, spans the same number of decades and has the
+same number of points, so no optimizer gets a finer search than another.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Callable, Optional
 
 import numpy as np
@@ -53,17 +53,32 @@ def _adam(model: nn.Module, loss_fn: nn.Module, lr: float) -> torch.optim.Optimi
     return torch.optim.Adam(model.parameters(), lr=lr)
 
 
-def _natural_gradient(model: nn.Module, loss_fn: nn.Module, lr: float) -> torch.optim.Optimizer:
-    import ngopt  # imported late: the baselines run without it
+def natural_gradient_builder(options: Optional[dict] = None) -> Builder:
+    """NaturalGradient with its defaults, or with ``options`` overriding some of them."""
+    options = dict(options or {})
 
-    return ngopt.NaturalGradient(model, loss_fn, lr=lr)
+    def build(model: nn.Module, loss_fn: nn.Module, lr: float) -> torch.optim.Optimizer:
+        import ngopt  # imported late: the baselines run without it
+
+        return ngopt.NaturalGradient(model, loss_fn, lr=lr, **options)
+
+    return build
+
+
+def with_natural_gradient_options(spec: OptimizerSpec, options: dict) -> OptimizerSpec:
+    """The ngopt entry with keyword overrides applied to every task alike (for tuning its defaults)."""
+    if not options:
+        return spec
+    listed = ", ".join(f"{key}={value!r}" for key, value in options.items())
+    return replace(spec, label=f"NaturalGradient ({listed})", build=natural_gradient_builder(options))
 
 
 OPTIMIZERS: dict[str, OptimizerSpec] = {
     spec.name: spec
     for spec in [
-        # Natural-gradient steps are near unit scale (lr=1 is a damped Newton step).
-        OptimizerSpec("ngopt", "NaturalGradient (defaults)", 0.1, _natural_gradient),
+        # Centred at NaturalGradient's own default lr (0.3): its steps are near unit scale,
+        # lr=1 being a damped Newton step.
+        OptimizerSpec("ngopt", "NaturalGradient (defaults)", 0.3, natural_gradient_builder()),
         OptimizerSpec("sgd", "SGD, momentum 0.9", 0.3, _sgd),
         OptimizerSpec("adam", "Adam", 1e-2, _adam),
     ]

@@ -81,10 +81,17 @@ def split_line(entry: dict) -> Optional[str]:
 
 
 def memory_line(entry: dict) -> str:
-    parts = [f"{name} {summary['optimizer_state_bytes'] / 1024:.1f} KiB"
-             for name, summary in entry["summary"].items()]
+    """Optimizer state size, resident memory left behind per run, and the process peak."""
+    state = ", ".join(f"{name} {summary['optimizer_state_bytes'] / 1024:.1f} KiB"
+                      for name, summary in entry["summary"].items())
+    growth = ", ".join(f"{name} {summary['rss_growth_bytes'] / 2**20:+.0f} MiB"
+                       for name, summary in entry["summary"].items()
+                       if summary.get("rss_growth_bytes") is not None)
     peak = max(summary["process_peak_rss_bytes"] for summary in entry["summary"].values())
-    return f"optimizer state: {', '.join(parts)}; process peak RSS so far {peak / 2**20:.0f} MiB"
+    line = f"optimizer state: {state}; process peak RSS so far {peak / 2**20:.0f} MiB"
+    if growth:
+        line += f"; resident memory left behind per run (median): {growth}"
+    return line
 
 
 def reference_line(entry: dict) -> Optional[str]:
@@ -107,10 +114,21 @@ def task_header(entry: dict) -> str:
             f"batch {entry['batch_size']}, medians over {seeds} seed(s)")
 
 
-def task_block(entry: dict, markdown: bool = False) -> str:
+def contention_line(entry: dict, threads: Optional[int]) -> Optional[str]:
+    """A warning when other processes competed for the CPU while the task ran."""
+    load = entry.get("load_average_max")
+    if load is None or threads is None or load <= threads + 0.5:
+        return None
+    return (f"warning: the machine's load average reached {load:.1f} during these runs (with {threads} "
+            "torch threads): other processes competed for the CPU, so wall-clock times are inflated "
+            "and noisy; the runs were interleaved across optimizers to spread the effect")
+
+
+def task_block(entry: dict, markdown: bool = False, threads: Optional[int] = None) -> str:
     headers = [h.format(metric=entry["test_metric"]) for h in TABLE_HEADERS]
     notes = ratio_lines(entry) + [line for line in (split_line(entry), memory_line(entry),
-                                                    reference_line(entry)) if line]
+                                                    reference_line(entry),
+                                                    contention_line(entry, threads)) if line]
     table = format_table(headers, task_rows(entry), markdown)
     if markdown:
         return table + "\n\n" + "\n".join(f"- {note}" for note in notes)
@@ -135,7 +153,8 @@ def closing_notes(results: dict) -> list[str]:
 
 def console_summary(results: dict, with_tasks: bool = True) -> str:
     """The task tables (unless already printed), the goals and what limits the missed ones."""
-    blocks = [task_block(entry) for entry in results["tasks"]] if with_tasks else []
+    threads = results["settings"].get("threads")
+    blocks = [task_block(entry, threads=threads) for entry in results["tasks"]] if with_tasks else []
     if results["goals"]:
         blocks.append("Goals\n" + format_table(["goal", "measured ngopt/baseline", "status"],
                                                goal_rows(results)))
@@ -156,6 +175,8 @@ def settings_lines(results: dict) -> list[str]:
         f"{machine['python']}, commit {machine.get('git_commit')}",
         f"- load average (1 min) at start and end: {settings.get('load_average_start')} / "
         f"{settings.get('load_average_end')} (other processes on the machine inflate wall-clock times)",
+        "- optimizers: " + "; ".join(f"{name} = {label}" for name, label in
+                                     settings["optimizer_labels"].items()),
         f"- seeds {settings['seeds']}; lr grid of {settings['grid_size']} points per optimizer, "
         f"{settings['grid_decades']:g} decades wide: {grids}",
         "- protocol: every lr of the grid on the first seed, the lr with the lowest final training "
@@ -170,7 +191,7 @@ def markdown_report(results: dict, plot_files: dict[str, str], scaling_markdown:
     for entry in results["tasks"]:
         parts += [f"## {entry['task']}", "", entry["description"] + ".", "",
                   f"Target training loss {entry['target_loss']:g}: {entry['target_reason']}", "",
-                  task_block(entry, markdown=True), ""]
+                  task_block(entry, markdown=True, threads=results["settings"].get("threads")), ""]
         if entry["task"] in plot_files:
             parts += [f"![{entry['task']} training loss]({plot_files[entry['task']]})", ""]
     if results["goals"]:

@@ -42,6 +42,7 @@ def run_entry(run: RunResult, role: str, selected: bool) -> dict:
         "optimizer_state_bytes": run.optimizer_state_bytes,
         "process_peak_rss_bytes": run.process_peak_rss_bytes,
         "load_average": run.load_average,
+        "rss_growth_bytes": run.rss_growth_bytes,
     })
     if run.time_split is not None:
         entry["time_split_seconds"] = run.time_split
@@ -70,6 +71,8 @@ def task_entry(outcome: TaskOutcome) -> dict:
         "steps": outcome.steps,
         "eval_every": outcome.eval_every,
         "floor_goal": task.floor_goal,
+        "load_average_max": max((run["load_average"] for run in runs if run["load_average"] is not None),
+                                default=None),
         "runs": runs,
         "summary": summaries,
         "comparison": compare(summaries, outcome.steps, task.widest_width, task.batch_size),

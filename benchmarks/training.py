@@ -17,12 +17,14 @@ that draws random numbers, as a sampled Fisher does, cannot change the order).
 
 from __future__ import annotations
 
+import gc
 import math
 import os
 import resource
 import statistics
 import time
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Callable, Iterator, Optional
 
 import torch
@@ -60,6 +62,7 @@ class RunResult:
     optimizer_state_bytes: int = 0
     process_peak_rss_bytes: int = 0
     load_average: Optional[float] = None  # 1-minute load of the machine when the run started
+    rss_growth_bytes: Optional[int] = None  # resident memory after the run minus before it
 
 
 def load_average() -> Optional[float]:
@@ -132,6 +135,15 @@ def peak_rss_bytes() -> int:
 STEP_PARTS = ("statistics", "inversion", "precondition", "fallback")
 
 
+def current_rss_bytes() -> Optional[int]:
+    """This process's resident memory now (Linux /proc; None elsewhere)."""
+    try:
+        pages = int(Path("/proc/self/statm").read_text().split()[1])
+    except (OSError, IndexError, ValueError):
+        return None
+    return pages * os.sysconf("SC_PAGE_SIZE")
+
+
 def time_split(optimizer: torch.optim.Optimizer, train_seconds: float) -> tuple[Optional[dict], Optional[int]]:
     """The optimizer's own time accounting, if it keeps one, completed to the measured total.
 
@@ -154,6 +166,60 @@ def time_split(optimizer: torch.optim.Optimizer, train_seconds: float) -> tuple[
     return split, snapshot.get("skipped_steps")
 
 
+@dataclass
+class Trace:
+    """What the training loop measured: step times, the loss curve, when the target fell."""
+
+    step_seconds: list[float] = field(default_factory=list)
+    curve_steps: list[int] = field(default_factory=list)
+    curve_seconds: list[float] = field(default_factory=list)
+    curve_losses: list[Optional[float]] = field(default_factory=list)
+    steps_to_target: Optional[int] = None
+    seconds_to_target: Optional[float] = None
+    diverged: bool = False
+
+    def record(self, step: int, elapsed: float, loss: float, target: float) -> None:
+        self.curve_steps.append(step)
+        self.curve_seconds.append(elapsed)
+        self.curve_losses.append(_finite_or_none(loss))
+        if not math.isfinite(loss):
+            self.diverged = True
+        elif self.steps_to_target is None and loss <= target:
+            self.steps_to_target, self.seconds_to_target = step, elapsed
+
+
+def timed_training(task: Task, model, loss_fn, optimizer, data, seed: int, steps: int,
+                   eval_every: int, on_step: Optional[Callable[[], None]]) -> Trace:
+    """The training loop: only the closure and ``optimizer.step`` fall inside the timer."""
+    batches = minibatches(len(data.train_x), task.batch_size, seed)
+    trace = Trace()
+    trace.record(0, 0.0, evaluate(model, loss_fn, data.train_x, data.train_y), task.target_loss)
+    elapsed = 0.0
+    for step in range(1, steps + 1):
+        index = next(batches)
+        inputs, targets = data.train_x[index], data.train_y[index]
+
+        def closure():
+            optimizer.zero_grad()
+            loss = loss_fn(model(inputs), targets)
+            loss.backward()
+            return loss
+
+        start = time.perf_counter()
+        optimizer.step(closure)
+        seconds = time.perf_counter() - start
+        trace.step_seconds.append(seconds)
+        elapsed += seconds
+        if on_step is not None:
+            on_step()
+        if step % eval_every == 0 or step == steps:
+            loss = evaluate(model, loss_fn, data.train_x, data.train_y)
+            trace.record(step, elapsed, loss, task.target_loss)
+            if trace.diverged:
+                break
+    return trace
+
+
 def train_run(
     task: Task,
     spec: OptimizerSpec,
@@ -166,77 +232,47 @@ def train_run(
 ) -> RunResult:
     """Train ``task`` with ``spec`` at ``lr`` for ``steps`` steps from the weights of ``seed``."""
     data = task.load_data()
-    load = load_average()
+    load, rss_before = load_average(), current_rss_bytes()
     torch.manual_seed(seed)
     model = task.build_model()
     loss_fn = task.make_loss()
     optimizer = spec.build(model, loss_fn, lr)
     detach = attach(optimizer) if attach is not None else None
-
-    batches = minibatches(len(data.train_x), task.batch_size, seed)
-    step_seconds: list[float] = []
-    curve_steps, curve_seconds = [0], [0.0]
-    curve_losses = [_finite_or_none(evaluate(model, loss_fn, data.train_x, data.train_y))]
-    steps_to_target = seconds_to_target = None
-    elapsed = 0.0
-    diverged = False
     try:
-        for step in range(1, steps + 1):
-            index = next(batches)
-            inputs, targets = data.train_x[index], data.train_y[index]
-
-            def closure():
-                optimizer.zero_grad()
-                loss = loss_fn(model(inputs), targets)
-                loss.backward()
-                return loss
-
-            start = time.perf_counter()
-            optimizer.step(closure)
-            seconds = time.perf_counter() - start
-            step_seconds.append(seconds)
-            elapsed += seconds
-            if on_step is not None:
-                on_step()
-
-            if step % eval_every == 0 or step == steps:
-                loss = evaluate(model, loss_fn, data.train_x, data.train_y)
-                curve_steps.append(step)
-                curve_seconds.append(elapsed)
-                curve_losses.append(_finite_or_none(loss))
-                if not math.isfinite(loss):
-                    diverged = True
-                    break
-                if steps_to_target is None and loss <= task.target_loss:
-                    steps_to_target, seconds_to_target = step, elapsed
+        trace = timed_training(task, model, loss_fn, optimizer, data, seed, steps, eval_every, on_step)
     finally:
         if detach is not None:
             detach()
 
-    split, skipped = time_split(optimizer, elapsed)
-    final_loss = None if diverged else curve_losses[-1]
-    metric = None if diverged else _finite_or_none(test_metric(task, model, data.test_x, data.test_y))
+    train_seconds = sum(trace.step_seconds)
+    split, skipped = time_split(optimizer, train_seconds)
+    state_bytes = tensor_bytes(optimizer.state_dict())
+    metric = None if trace.diverged else _finite_or_none(test_metric(task, model, data.test_x, data.test_y))
+    del optimizer, model  # what stays resident after this is held elsewhere
+    gc.collect()
+    rss_after = current_rss_bytes()
     return RunResult(
         task=task.name,
         optimizer=spec.name,
         lr=lr,
         seed=seed,
         target_loss=task.target_loss,
-        steps_to_target=steps_to_target,
-        seconds_to_target=seconds_to_target,
-        final_train_loss=final_loss,
+        steps_to_target=trace.steps_to_target,
+        seconds_to_target=trace.seconds_to_target,
+        final_train_loss=None if trace.diverged else trace.curve_losses[-1],
         final_test_metric=metric,
-        step_seconds_median=statistics.median(step_seconds),
-        step_seconds_mean=statistics.fmean(step_seconds),
-        steps_run=len(step_seconds),
-        train_seconds=elapsed,
-        diverged=diverged,
-        curve_steps=curve_steps,
-        curve_seconds=curve_seconds,
-        curve_losses=curve_losses,
+        step_seconds_median=statistics.median(trace.step_seconds),
+        step_seconds_mean=statistics.fmean(trace.step_seconds),
+        steps_run=len(trace.step_seconds),
+        train_seconds=train_seconds,
+        diverged=trace.diverged,
+        curve_steps=trace.curve_steps,
+        curve_seconds=trace.curve_seconds,
+        curve_losses=trace.curve_losses,
         time_split=split,
         skipped_steps=skipped,
-        optimizer_state_bytes=tensor_bytes(optimizer.state_dict()),
+        optimizer_state_bytes=state_bytes,
         process_peak_rss_bytes=peak_rss_bytes(),
         load_average=load,
+        rss_growth_bytes=None if rss_before is None or rss_after is None else rss_after - rss_before,
     )

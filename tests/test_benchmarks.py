@@ -19,7 +19,7 @@ import pytest
 import torch
 
 from benchmarks import datasets
-from benchmarks.cli import main, parse_seeds
+from benchmarks.cli import main, parse_options, parse_seeds
 from benchmarks.goals import bounded_ratio, step_time_floor
 from benchmarks.harness import eval_interval
 from benchmarks.optimizers import GRID_DECADES, OPTIMIZERS, natural_gradient_available, resolve_optimizers
@@ -194,6 +194,13 @@ def test_resolvers_raise_value_error_naming_the_option():
         resolve_optimizers(["nope"])
     with pytest.raises(ValueError, match="seeds"):
         parse_seeds("0")
+
+
+def test_natural_gradient_options_parse_as_python_literals():
+    assert parse_options(["momentum=0.9", "trust_kl=None", "curvature=kfac", "adapt_damping=True"]) == {
+        "momentum": 0.9, "trust_kl": None, "curvature": "kfac", "adapt_damping": True}
+    with pytest.raises(ValueError, match="KEY=VALUE"):
+        parse_options(["momentum"])
 
 
 def test_seed_option_takes_a_count_or_a_list():
