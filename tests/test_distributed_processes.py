@@ -4,7 +4,8 @@ Every job is a pair of ``python this_file.py JOB RANK WORLD PORT DIR`` processes
 meet on ``127.0.0.1`` at an ephemeral port, with a short process-group timeout; the
 parent kills whatever is still running after ``JOB_SECONDS`` (a hard wall-clock bound),
 so no test can hang.  One "train" job runs every training scenario and writes each
-rank's results; the tests compare them with single-process runs done here.
+rank's results; the tests compare them with single-process runs done here.  The fault
+jobs and a ``torchrun`` run of ``examples/train_ddp.py`` run beside it.
 
 References:
 * a data-parallel run whose ranks hold halves of the batch must end where one process
@@ -12,7 +13,9 @@ References:
   by ngopt, so every step is the same computation regrouped (float64: to ~1e-12;
   float32: to float32 rounding, amplified by the damped inverses);
 * the greedy owner assignment only changes *where* an inversion runs, so sharded and
-  replicated inversions must agree bit for bit on one machine (same inputs, same kernels).
+  replicated inversions must agree bit for bit on one machine (same inputs, same kernels;
+  the workers ask MKL for results that do not depend on memory alignment, see
+  ngopt/distributed.py, "replicas").
 """
 from __future__ import annotations
 
@@ -312,7 +315,8 @@ class Job:
     """Processes started at once; :meth:`finish` waits for some (bounded) and kills the leftovers."""
 
     def __init__(self, commands, out_dir, wait_for=None):
-        env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONUNBUFFERED="1", PYTHONWARNINGS="ignore")
+        env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONUNBUFFERED="1", PYTHONWARNINGS="ignore",
+                   MKL_CBWR="AUTO,STRICT")  # bitwise-equal replicas need alignment-independent BLAS
         if Path("/sys/class/net/lo").exists():
             env["GLOO_SOCKET_IFNAME"] = "lo"  # keep gloo's own sockets on loopback as well
         self.out_dir = out_dir
