@@ -145,6 +145,11 @@ class NaturalGradient(torch.optim.Optimizer):
         self._hooks = CaptureHooks(self.model, {b.layer.module: b for b in self.blocks.values()}, source,
                                    loss_fn)
         self._hooks.armed = True
+        if isinstance(model, nn.parallel.DistributedDataParallel):
+            # Share statistics and inversions over DDP's own group, so that the user's loop needs
+            # nothing beyond the DDP wrapping; ngopt.distributed.share_curvature(opt, ...) replaces it.
+            from .distributed import share_curvature  # deferred: torch.distributed only when used
+            share_curvature(self, process_group=model.process_group)
 
     # ------------------------------------------------------------------ construction
     def _build_blocks(self, block_class) -> Dict[str, CurvatureBlock]:
@@ -216,7 +221,7 @@ class NaturalGradient(torch.optim.Optimizer):
 
     def _attempt(self, loss, step_index: int) -> Optional[str]:
         """Compute the whole step, then write it; return a skip reason instead of writing."""
-        if loss is not None and isinstance(loss, torch.Tensor) and not bool(torch.isfinite(loss).all()):
+        if loss is not None and not self._finite_everywhere(loss):
             self._hooks.discard()
             return "nonfinite_loss"
         grads = [p.grad for g in self.param_groups for p in g["params"] if p.grad is not None]
@@ -251,6 +256,13 @@ class NaturalGradient(torch.optim.Optimizer):
         self._apply_fallback()
         self._times["fallback"] += time.perf_counter() - tick
         return None
+
+    def _finite_everywhere(self, loss) -> bool:
+        """Whether the loss is finite on every rank: a skip must be a joint decision."""
+        finite = bool(torch.isfinite(torch.as_tensor(loss)).all())
+        if self.communicator is not None:
+            finite = self.communicator.average_scalars(float(finite))[0] == 1.0
+        return finite
 
     def _new_statistics(self) -> Optional[Dict[CurvatureBlock, dict]]:
         forwards = self._hooks.hand_over()
@@ -419,7 +431,10 @@ class NaturalGradient(torch.optim.Optimizer):
         predicted = self._model_change()
         with self.paused_capture(), torch.enable_grad():
             loss_after = closure()
-        rho = reduction_ratio(float(loss_before), float(loss_after), predicted)
+        before, after = float(loss_before), float(loss_after)
+        if self.communicator is not None:  # the ratio of the global batch, the same on every rank
+            before, after = self.communicator.average_scalars(before, after)
+        rho = reduction_ratio(before, after, predicted)
         for group in self.param_groups:
             group["damping"] = levenberg_marquardt_damping(group["damping"], rho, self.adapt_every,
                                                            self.damping_range)
