@@ -1,9 +1,9 @@
 """How the step time of NaturalGradient and SGD grows with layer width and with batch size.
 
 The network is three d x d linear layers with ReLU and a d -> 10 read-out,
-trained with cross-entropy on one fixed random batch (timing does not depend
-on the data). Per point, each optimizer takes a few untimed warm-up steps and
-then ``steps`` timed ones; the median step time drops the rare steps that
+trained with cross-entropy on random inputs and labels (timing does not
+depend on the data; random labels keep the loss from collapsing to zero). Per point, each optimizer takes a few untimed warm-up steps and
+then ``steps`` timed ones, the optimizers taking turns in blocks; the median step time drops the rare steps that
 refresh statistics or invert factors, the mean spreads them over all steps,
 so both are reported. The measured ratio stands beside the arithmetic floor
 1 + 2d/(3B) (:func:`benchmarks.goals.step_time_floor`).
@@ -43,32 +43,60 @@ def scaling_model(width: int) -> nn.Sequential:
     return nn.Sequential(*layers)
 
 
-def time_steps(spec: OptimizerSpec, width: int, batch: int, warmup: int, steps: int,
-               on_step: Optional[Callable[[], None]] = None) -> list[float]:
-    """Seconds of each timed step (closure + step) after ``warmup`` untimed steps."""
-    torch.manual_seed(0)
-    model = scaling_model(width)
-    loss_fn = nn.CrossEntropyLoss()
-    inputs = torch.randn(batch, width)
-    labels = torch.randint(0, CLASSES, (batch,))
-    optimizer = spec.build(model, loss_fn, spec.lr_centre)
+class StepTimer:
+    """One optimizer on the scaling network at one (width, batch), timing each step it takes."""
 
-    def closure():
-        optimizer.zero_grad()
-        loss = loss_fn(model(inputs), labels)
-        loss.backward()
-        return loss
+    def __init__(self, spec: OptimizerSpec, width: int, batch: int):
+        torch.manual_seed(0)
+        self.model = scaling_model(width)
+        self.loss_fn = nn.CrossEntropyLoss()
+        # Random labels on a pool of batches: the loss cannot collapse to zero, whose tiny
+        # (subnormal) gradients would slow the arithmetic and distort the timings.
+        self.batches = [(torch.randn(batch, width), torch.randint(0, CLASSES, (batch,)))
+                        for _ in range(BATCH_POOL)]
+        self.optimizer = spec.build(self.model, self.loss_fn, spec.lr_centre)
+        self.seconds: list[float] = []
+        self.taken = 0
 
-    seconds = []
-    for index in range(warmup + steps):
-        start = time.perf_counter()
-        optimizer.step(closure)
-        elapsed = time.perf_counter() - start
-        if index >= warmup:
-            seconds.append(elapsed)
-        if on_step is not None:
-            on_step()
-    return seconds
+    def run(self, steps: int, timed: bool, on_step: Optional[Callable[[], None]] = None) -> None:
+        for _ in range(steps):
+            inputs, labels = self.batches[self.taken % BATCH_POOL]
+            self.taken += 1
+
+            def closure():
+                self.optimizer.zero_grad()
+                loss = self.loss_fn(self.model(inputs), labels)
+                loss.backward()
+                return loss
+
+            start = time.perf_counter()
+            self.optimizer.step(closure)
+            elapsed = time.perf_counter() - start
+            if timed:
+                self.seconds.append(elapsed)
+            if on_step is not None:
+                on_step()
+
+
+BATCH_POOL = 8
+ROUNDS = 4  # the optimizers take turns in this many blocks of timed steps
+
+
+def time_point(specs: dict[str, OptimizerSpec], width: int, batch: int, warmup: int, steps: int,
+               on_step: Optional[Callable[[], None]] = None) -> dict[str, list[float]]:
+    """Seconds of each timed step per optimizer, the optimizers taking turns in blocks.
+
+    Taking turns spreads any burst of load from other processes over all of
+    them instead of charging it to whichever optimizer was running.
+    """
+    timers = {name: StepTimer(spec, width, batch) for name, spec in specs.items()}
+    for timer in timers.values():
+        timer.run(warmup, timed=False, on_step=on_step)
+    blocks = [steps // ROUNDS + (1 if index < steps % ROUNDS else 0) for index in range(ROUNDS)]
+    for block in blocks:
+        for timer in timers.values():
+            timer.run(block, timed=True, on_step=on_step)
+    return {name: timer.seconds for name, timer in timers.items()}
 
 
 def scaling_points() -> list[tuple[str, int, int]]:
@@ -86,9 +114,8 @@ def run_scaling(specs: dict[str, OptimizerSpec], warmup: int, steps: int,
         for sweep, width, batch in points:
             row: dict = {"sweep": sweep, "width": width, "batch": batch,
                          "floor": step_time_floor(width, batch)}
-            for name, spec in specs.items():
-                bar.set_postfix_str(f"{name} d={width} B={batch}")
-                seconds = time_steps(spec, width, batch, warmup, steps, on_step=bar.update)
+            bar.set_postfix_str(f"d={width} B={batch}")
+            for name, seconds in time_point(specs, width, batch, warmup, steps, bar.update).items():
                 row[f"{name}_step_seconds_median"] = statistics.median(seconds)
                 row[f"{name}_step_seconds_mean"] = statistics.fmean(seconds)
             if "ngopt" in specs and "sgd" in specs:
@@ -124,7 +151,7 @@ def scaling_markdown(rows: list[dict], command: str, plot_file: str, warmup: int
     return "\n".join([
         "## Scaling study", "",
         f"Command: `{command}`. Network: {LAYERS} linear layers d x d with ReLU and a d -> {CLASSES} "
-        f"read-out, cross-entropy, one fixed random batch; {warmup} warm-up steps, then {steps} timed "
+        f"read-out, cross-entropy, random inputs and labels; {warmup} warm-up steps, then {steps} timed "
         f"steps per point. Width sweep at B = {WIDTH_SWEEP_BATCH}, batch sweep at d = "
         f"{BATCH_SWEEP_WIDTH}.", "",
         scaling_table(rows, markdown=True), "",
