@@ -135,6 +135,42 @@ def task_block(entry: dict, markdown: bool = False, threads: Optional[int] = Non
     return "\n".join([task_header(entry), table] + notes)
 
 
+def _time_and_steps(summary: Optional[dict]) -> str:
+    if summary is None:
+        return "not run"
+    if summary["seconds_to_target"] is None:
+        return f"not reached ({summary['reached']}/{summary['runs']})"
+    return f"{summary['seconds_to_target']:.3g} s ({format_number(summary['steps_to_target'])} steps)"
+
+
+def overview_rows(results: dict) -> list[list[str]]:
+    """One row per task: median time (steps) to target per optimizer, and ngopt's ratios."""
+    rows = []
+    for entry in results["tasks"]:
+        summaries, comparison = entry["summary"], entry["comparison"]
+        step_ratio = comparison["step_time"].get("sgd")
+        floor = comparison["step_time_floor"]
+        step_text = "-" if step_ratio is None else f"{step_ratio:.2f}"
+        if step_ratio is not None and floor is not None:
+            step_text += f" (floor {floor:.2f})"
+        rows.append([
+            entry["task"], f"{entry['target_loss']:g}",
+            *[_time_and_steps(summaries.get(name)) for name in ("ngopt", "sgd", "adam")],
+            *[describe_ratio(comparison["time_to_target"].get(name)).split(" (")[0]
+              for name in ("sgd", "adam")],
+            step_text,
+        ])
+    return rows
+
+
+OVERVIEW_HEADERS = ["task", "target", "ngopt: time (steps) to target", "sgd", "adam",
+                    "time ngopt/sgd", "time ngopt/adam", "step time ngopt/sgd"]
+
+
+def overview(results: dict, markdown: bool = False) -> str:
+    return format_table(OVERVIEW_HEADERS, overview_rows(results), markdown)
+
+
 def goal_rows(results: dict) -> list[list[str]]:
     return [[goal["goal"], goal["measured"], goal["status"].upper() if goal["status"] == "missed"
              else goal["status"]] for goal in results["goals"]]
@@ -155,6 +191,7 @@ def console_summary(results: dict, with_tasks: bool = True) -> str:
     """The task tables (unless already printed), the goals and what limits the missed ones."""
     threads = results["settings"].get("threads")
     blocks = [task_block(entry, threads=threads) for entry in results["tasks"]] if with_tasks else []
+    blocks.append("Overview (medians over seeds at each optimizer's chosen lr)\n" + overview(results))
     if results["goals"]:
         blocks.append("Goals\n" + format_table(["goal", "measured ngopt/baseline", "status"],
                                                goal_rows(results)))
@@ -187,7 +224,10 @@ def settings_lines(results: dict) -> list[str]:
 
 
 def markdown_report(results: dict, plot_files: dict[str, str], scaling_markdown: Optional[str]) -> str:
-    parts = ["# Benchmark: NaturalGradient against SGD and Adam", "", *settings_lines(results), ""]
+    parts = ["# Benchmark: NaturalGradient against SGD and Adam", "", *settings_lines(results), "",
+             "## Overview", "", "Medians over the seeds at each optimizer's chosen lr; ratios below 1 "
+             "favour ngopt; `<=` where the baseline never reached the target.", "",
+             overview(results, markdown=True), ""]
     for entry in results["tasks"]:
         parts += [f"## {entry['task']}", "", entry["description"] + ".", "",
                   f"Target training loss {entry['target_loss']:g}: {entry['target_reason']}", "",

@@ -185,7 +185,6 @@ TASKS: dict[str, Task] = {
             batch_size=256,
             steps=1500,
             quick_steps=400,
-            widest_width=datasets.REGRESSION_FEATURES,
         ),
     ]
 }

@@ -115,7 +115,7 @@ def test_files_written(smoke_run):
     report = (out / "report.md").read_text()
     for task in SMOKE_TASKS:
         assert f"## {task}" in report and f"(loss_{task}.png)" in report
-    assert "## Goals" in report
+    assert "## Goals" in report and "## Overview" in report
 
 
 def test_curves_csv_matches_results_json(smoke_run):
