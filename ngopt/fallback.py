@@ -14,20 +14,25 @@ ADAM_BETAS = (0.9, 0.999)
 ADAM_EPS = 1e-8
 
 
+def heavy_ball(state: dict, direction: torch.Tensor, momentum: float) -> torch.Tensor:
+    """``buf = momentum * buf + direction`` kept in ``state["momentum_buffer"]``; returns the direction to take."""
+    if not momentum:
+        return direction
+    buf = state.get("momentum_buffer")
+    if buf is None:
+        buf = state["momentum_buffer"] = direction.clone()
+    else:
+        buf.mul_(momentum).add_(direction)
+    return buf
+
+
 def sgd_directions(params: List[torch.Tensor], grads: List[torch.Tensor], states: List[dict],
                    *, momentum: float, weight_decay: float) -> List[torch.Tensor]:
     """Heavy-ball SGD: ``buf = momentum * buf + (grad + weight_decay * p)``."""
     directions = []
     for param, grad, state in zip(params, grads, states):
         direction = grad.add(param, alpha=weight_decay) if weight_decay else grad.clone()
-        if momentum:
-            buf = state.get("momentum_buffer")
-            if buf is None:
-                buf = state["momentum_buffer"] = direction.clone()
-            else:
-                buf.mul_(momentum).add_(direction)
-            direction = buf
-        directions.append(direction)
+        directions.append(heavy_ball(state, direction, momentum))
     return directions
 
 

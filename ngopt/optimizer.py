@@ -385,14 +385,7 @@ class NaturalGradient(torch.optim.Optimizer):
 
     def _momentum_step(self, param, direction, momentum, lr) -> torch.Tensor:
         """``p -= lr * d`` with heavy-ball ``d``; returns ``d``."""
-        state = self.state[param]
-        if momentum:
-            buf = state.get("momentum_buffer")
-            if buf is None:
-                buf = state["momentum_buffer"] = direction.clone()
-            else:
-                buf.mul_(momentum).add_(direction)
-            direction = buf
+        direction = fallback_rules.heavy_ball(self.state[param], direction, momentum)
         param.add_(direction, alpha=-lr)
         return direction
 
