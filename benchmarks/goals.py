@@ -193,8 +193,9 @@ def explain_miss(goal: dict, task_entry: dict) -> str:
     )
     if steps_bound:
         sentence += (" ngopt's steps alone do not gain enough: the step rule (lr, momentum, damping "
-                     "and trust-bound defaults) limits it more than the cost per step; a step size "
-                     "and momentum chosen from the quadratic model would move it.")
+                     "and trust-bound defaults) limits it more than the cost per step; damping that "
+                     "follows the curvature's scale and a step size and momentum chosen from the "
+                     "quadratic model would move it.")
     if costs:
         mean_ms = ngopt["step_seconds_mean"] * 1e3
         listing = ", ".join(f"{key} {value * 1e3:.2f} ms" for key, value in

@@ -20,7 +20,7 @@ import torch
 
 from benchmarks import datasets
 from benchmarks.cli import main, parse_options, parse_seeds
-from benchmarks.goals import bounded_ratio, step_time_floor
+from benchmarks.goals import bounded_ratio, judge_at_most, step_time_floor
 from benchmarks.harness import eval_interval
 from benchmarks.optimizers import GRID_DECADES, OPTIMIZERS, natural_gradient_available, resolve_optimizers
 from benchmarks.tasks import TASKS, resolve_tasks
@@ -231,6 +231,17 @@ def test_ratios_bounded_by_the_budget_when_one_side_misses():
     assert bounded_ratio(2.0, 10.0, None, 20.0) == {"ratio": 0.1, "relation": "at_most"}
     assert bounded_ratio(None, 10.0, 4.0, 20.0) == {"ratio": 2.5, "relation": "at_least"}
     assert bounded_ratio(None, 10.0, None, 20.0)["relation"] == "neither"
+
+
+def test_goal_verdicts_follow_the_bounds():
+    # met / missed / undecided from what the bound allows: ratio <= threshold is the goal
+    assert judge_at_most({"ratio": 0.3, "relation": "measured"}, 1 / 3, "missed") == "met"
+    assert judge_at_most({"ratio": 0.4, "relation": "measured"}, 1 / 3, "missed") == "missed"
+    assert judge_at_most({"ratio": 0.2, "relation": "at_most"}, 1 / 3, "missed") == "met"
+    assert judge_at_most({"ratio": 0.5, "relation": "at_most"}, 1 / 3, "missed") == "undecided"
+    assert judge_at_most({"ratio": 0.5, "relation": "at_least"}, 1 / 3, "missed") == "missed"
+    assert judge_at_most({"ratio": None, "relation": "neither"}, 1.0, "undecided") == "undecided"
+    assert judge_at_most(None, 1.0, "missed") == "not evaluated"
 
 
 def test_mnist1d_comes_from_the_package_generator_with_default_arguments():
