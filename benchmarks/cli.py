@@ -45,6 +45,7 @@ class Config:
     diagnostics_every: Optional[int]
     profile: bool
     scaling: bool
+    flush_denormal: bool = False  # whether subnormal floats are flushed to zero (CPU support)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -162,6 +163,7 @@ def settings_of(config: Config, argv: list[str]) -> dict:
         "lr_grids": {spec.name: spec.lr_grid(config.grid_size) for spec in config.specs},
         "steps": config.steps,
         "threads": config.threads,
+        "flush_denormal": config.flush_denormal,
         "diagnostics_every": config.diagnostics_every,
     }
     for spec in config.specs:
@@ -244,7 +246,8 @@ def run_scaling_study(config: Config, argv: list[str]) -> list[dict]:
     if config.out is not None:
         config.out.mkdir(parents=True, exist_ok=True)
         command = "python -m benchmarks " + shlex.join(argv)
-        payload = {"machine": machine_info(), "command": command, "warmup_steps": warmup,
+        payload = {"machine": machine_info(), "command": command, "threads": config.threads,
+                   "flush_denormal": config.flush_denormal, "warmup_steps": warmup,
                    "timed_steps": steps, "rows": rows}
         results.write_json(results.finite_or_none(payload), config.out / "scaling.json")
         scaling.write_scaling_csv(rows, config.out / "scaling.csv")
@@ -264,12 +267,17 @@ def main(argv: Optional[list[str]] = None) -> int:
         check_ready(config)
     except ValueError as error:
         parser.error(str(error))  # exits with status 2 and the message
+    threads_before = torch.get_num_threads()
     torch.set_num_threads(config.threads)
     # Subnormal floats (gradients of a loss fitted to ~0) slow CPU arithmetic many times over;
     # flushing them keeps late-training step times about the optimizer, not the float format.
-    torch.set_flush_denormal(True)
-    if config.scaling:
-        run_scaling_study(config, argv)
-    else:
-        run_tasks(config, argv)
+    config.flush_denormal = torch.set_flush_denormal(True)
+    try:
+        if config.scaling:
+            run_scaling_study(config, argv)
+        else:
+            run_tasks(config, argv)
+    finally:  # leave the process as it was when main() is called from Python
+        torch.set_flush_denormal(False)
+        torch.set_num_threads(threads_before)
     return 0

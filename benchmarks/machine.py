@@ -71,7 +71,6 @@ def machine_info() -> dict:
         "packages": package_versions(),
         "torch_threads": torch.get_num_threads(),
         "torch_interop_threads": torch.get_num_interop_threads(),
-        "flush_denormal": torch.set_flush_denormal(True),  # True where the CPU supports it
         "torch_parallel_info": [line.strip() for line in torch.__config__.parallel_info().splitlines()
                                 if line.strip() and not line.startswith(("\t", "Environment"))],
         "environment": {key: os.environ[key] for key in ENVIRONMENT_KEYS if key in os.environ},

@@ -218,7 +218,8 @@ def settings_lines(results: dict) -> list[str]:
         f"{settings['grid_decades']:g} decades wide: {grids}",
         "- protocol: every lr of the grid on the first seed, the lr with the lowest final training "
         "loss on the remaining seeds, medians over the seeds at that lr; time is the training "
-        "steps alone (closure + step, evaluation excluded), summed with time.perf_counter",
+        "steps alone (closure + step, evaluation excluded), summed with time.perf_counter; "
+        f"subnormal floats flushed to zero: {settings.get('flush_denormal')}",
         f"- memory: {machine['memory_note']}",
     ]
 

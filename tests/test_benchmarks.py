@@ -45,7 +45,9 @@ def smoke_run(tmp_path_factory):
     argv = ["--steps", str(SMOKE_STEPS), "--grid", str(SMOKE_GRID), "--seeds", str(SMOKE_SEEDS),
             "--tasks", ",".join(SMOKE_TASKS), "--optimizers", ",".join(OPTIMIZER_NAMES),
             "--out", str(out), "--no-progress"]
+    threads = torch.get_num_threads()
     assert main(argv) == 0
+    assert torch.get_num_threads() == threads  # main() leaves the process settings as it found them
     return out, json.loads((out / "results.json").read_text())
 
 
