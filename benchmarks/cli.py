@@ -63,8 +63,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--seeds", default=str(DEFAULT_SEEDS),
                         help="number of seeds N (seeds 0..N-1) or a comma-separated list; the first "
                              f"seed tunes the lr (default {DEFAULT_SEEDS})")
-    parser.add_argument("--steps", type=int, help="training steps per run for every task "
-                                                  "(default: each task's own budget)")
+    parser.add_argument("--steps", type=int, help="training steps per run for every task (default: each "
+                                                  "task's own budget); with --scaling, timed steps per point")
     parser.add_argument("--grid", type=int, help="points in every optimizer's lr grid "
                                                  f"(default {FULL_GRID}, {QUICK_GRID} with --quick)")
     parser.add_argument("--threads", type=int, default=2, help="torch intra-op threads (default 2)")

@@ -19,6 +19,7 @@ import pytest
 import torch
 
 from benchmarks import datasets
+from benchmarks.attachments import diagnostics_available
 from benchmarks.cli import main, parse_options, parse_seeds
 from benchmarks.goals import bounded_ratio, judge_at_most, step_time_floor
 from benchmarks.harness import eval_interval
@@ -175,6 +176,20 @@ def test_data_order_is_a_fixed_permutation_per_epoch():
     torch.manual_seed(0)  # global RNG draws (as a sampled Fisher makes) do not move the order
     torch.rand(100)
     assert [batch.tolist() for batch, _ in zip(minibatches(10, 3, seed=7), range(6))] == first
+
+
+def test_diagnostics_option_logs_every_natural_gradient_run(tmp_path):
+    if not diagnostics_available():
+        pytest.skip("ngopt.log_diagnostics is not available")
+    argv = ["--tasks", "digits_mlp", "--optimizers", "ngopt,sgd", "--steps", "6", "--grid", "1",
+            "--seeds", "1", "--diagnostics", "2", "--out", str(tmp_path), "--no-progress"]
+    assert main(argv) == 0
+    logs = list((tmp_path / "diagnostics").iterdir())
+    assert [path.name for path in logs] == ["digits_mlp_ngopt_lr0.3_seed0.jsonl"]  # none for sgd
+    records = [json.loads(line) for line in logs[0].read_text().splitlines()]
+    # API.md: a record every `every` steps, each a diagnostics() snapshot
+    assert [record["step"] for record in records] == [2, 4, 6]
+    assert all("layers" in record and "time" in record for record in records)
 
 
 @pytest.mark.parametrize("option, bad", [("--tasks", "digits_mlp,no_such_task"), ("--optimizers", "lbfgs")])
