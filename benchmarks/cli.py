@@ -183,7 +183,7 @@ def write_outputs(config: Config, results_dict: dict, outcomes: list[TaskOutcome
         name = f"loss_{outcome.task.name}.png"
         plots.plot_task(outcome, out / name)
         plot_files[outcome.task.name] = name
-    (out / "report.md").write_text(report.markdown_report(results_dict, plot_files, None))
+    (out / "report.md").write_text(report.markdown_report(results_dict, plot_files))
 
 
 def check_ready(config: Config) -> None:
@@ -243,6 +243,9 @@ def run_scaling_study(config: Config, argv: list[str]) -> list[dict]:
     steps = config.steps_override or steps
     rows = scaling.run_scaling(specs, warmup, steps, progress=config.progress)
     print("\n" + scaling.scaling_table(rows), flush=True)
+    note = scaling.contention_note(rows, config.threads)
+    if note:
+        print(note, flush=True)
     if config.out is not None:
         config.out.mkdir(parents=True, exist_ok=True)
         command = "python -m benchmarks " + shlex.join(argv)
@@ -253,7 +256,7 @@ def run_scaling_study(config: Config, argv: list[str]) -> list[dict]:
         scaling.write_scaling_csv(rows, config.out / "scaling.csv")
         plots.plot_scaling(rows, config.out / "scaling.png")
         (config.out / "scaling.md").write_text(
-            scaling.scaling_markdown(rows, command, "scaling.png", warmup, steps) + "\n")
+            scaling.scaling_markdown(rows, command, "scaling.png", warmup, steps, config.threads) + "\n")
         print(f"scaling study written to {config.out}/ (scaling.json, scaling.csv, scaling.png, scaling.md)")
     return rows
 

@@ -224,7 +224,7 @@ def settings_lines(results: dict) -> list[str]:
     ]
 
 
-def markdown_report(results: dict, plot_files: dict[str, str], scaling_markdown: Optional[str]) -> str:
+def markdown_report(results: dict, plot_files: dict[str, str]) -> str:
     parts = ["# Benchmark: NaturalGradient against SGD and Adam", "", *settings_lines(results), "",
              "## Overview", "", "Medians over the seeds at each optimizer's chosen lr; ratios below 1 "
              "favour ngopt; `<=` where the baseline never reached the target.", "",
@@ -241,6 +241,4 @@ def markdown_report(results: dict, plot_files: dict[str, str], scaling_markdown:
         notes = closing_notes(results)
         if notes:
             parts += ["## What limits the goals not met", ""] + [f"- {note}" for note in notes] + [""]
-    if scaling_markdown:
-        parts += [scaling_markdown, ""]
     return "\n".join(parts)

@@ -24,6 +24,7 @@ from tqdm import tqdm
 from benchmarks.goals import step_time_floor
 from benchmarks.optimizers import OptimizerSpec
 from benchmarks.report import format_number, format_table
+from benchmarks.training import load_average
 
 WIDTHS = [64, 128, 256, 512, 1024]
 WIDTH_SWEEP_BATCH = 256
@@ -32,7 +33,7 @@ BATCH_SWEEP_WIDTH = 256
 LAYERS = 3
 CLASSES = 10
 COLUMNS = ("sweep", "width", "batch", "floor", "ngopt_step_seconds_median", "sgd_step_seconds_median",
-           "ngopt_step_seconds_mean", "sgd_step_seconds_mean", "ratio", "ratio_of_means")
+           "ngopt_step_seconds_mean", "sgd_step_seconds_mean", "ratio", "ratio_of_means", "load_average")
 
 
 def scaling_model(width: int) -> nn.Sequential:
@@ -113,7 +114,7 @@ def run_scaling(specs: dict[str, OptimizerSpec], warmup: int, steps: int,
               disable=not progress, dynamic_ncols=True) as bar:
         for sweep, width, batch in points:
             row: dict = {"sweep": sweep, "width": width, "batch": batch,
-                         "floor": step_time_floor(width, batch)}
+                         "floor": step_time_floor(width, batch), "load_average": load_average()}
             bar.set_postfix_str(f"d={width} B={batch}")
             for name, seconds in time_point(specs, width, batch, warmup, steps, bar.update).items():
                 row[f"{name}_step_seconds_median"] = statistics.median(seconds)
@@ -147,7 +148,16 @@ def scaling_table(rows: list[dict], markdown: bool = False) -> str:
     return format_table(headers, body, markdown)
 
 
-def scaling_markdown(rows: list[dict], command: str, plot_file: str, warmup: int, steps: int) -> str:
+def contention_note(rows: list[dict], threads: int) -> str:
+    loads = [row["load_average"] for row in rows if row.get("load_average") is not None]
+    if not loads or max(loads) <= threads + 0.5:
+        return ""
+    return (f"Warning: the load average reached {max(loads):.1f} with {threads} torch threads; "
+            "other processes competed for the CPU and the times above are inflated.")
+
+
+def scaling_markdown(rows: list[dict], command: str, plot_file: str, warmup: int, steps: int,
+                     threads: int) -> str:
     return "\n".join([
         "## Scaling study", "",
         f"Command: `{command}`. Network: {LAYERS} linear layers d x d with ReLU and a d -> {CLASSES} "
@@ -155,5 +165,6 @@ def scaling_markdown(rows: list[dict], command: str, plot_file: str, warmup: int
         f"steps per point. Width sweep at B = {WIDTH_SWEEP_BATCH}, batch sweep at d = "
         f"{BATCH_SWEEP_WIDTH}.", "",
         scaling_table(rows, markdown=True), "",
+        contention_note(rows, threads), "",
         f"![step time against width and batch]({plot_file})",
     ])

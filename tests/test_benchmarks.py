@@ -192,6 +192,30 @@ def test_diagnostics_option_logs_every_natural_gradient_run(tmp_path):
     assert all("layers" in record and "time" in record for record in records)
 
 
+def test_scaling_study_writes_its_table_and_plot(tmp_path, monkeypatch):
+    from benchmarks import scaling
+
+    monkeypatch.setattr(scaling, "WIDTHS", [16, 32])  # tiny sizes: the study's code, not its cost
+    monkeypatch.setattr(scaling, "BATCHES", [16, 32])
+    names = ",".join(name for name in OPTIMIZER_NAMES if name != "adam")
+    argv = ["--scaling", "--optimizers", names, "--steps", "4", "--out", str(tmp_path), "--no-progress"]
+    assert main(argv) == 0
+    payload = json.loads((tmp_path / "scaling.json").read_text())
+    rows = payload["rows"]
+    assert [(row["sweep"], row["width"], row["batch"]) for row in rows] == [
+        ("width", 16, scaling.WIDTH_SWEEP_BATCH), ("width", 32, scaling.WIDTH_SWEEP_BATCH),
+        ("batch", scaling.BATCH_SWEEP_WIDTH, 16), ("batch", scaling.BATCH_SWEEP_WIDTH, 32)]
+    for row in rows:
+        # forward+backward 6*B*d^2, preconditioning 4*d^3 per d x d layer: common practice
+        assert row["floor"] == pytest.approx(1 + 4 * row["width"] ** 3 / (6 * row["batch"] * row["width"] ** 2))
+        assert row["sgd_step_seconds_median"] > 0
+        if NGOPT_AVAILABLE:
+            assert row["ratio"] == pytest.approx(row["ngopt_step_seconds_median"] / row["sgd_step_seconds_median"])
+    assert (tmp_path / "scaling.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert (tmp_path / "scaling.csv").read_text().startswith("sweep,width,batch,floor")
+    assert "## Scaling study" in (tmp_path / "scaling.md").read_text()
+
+
 @pytest.mark.parametrize("option, bad", [("--tasks", "digits_mlp,no_such_task"), ("--optimizers", "lbfgs")])
 def test_unknown_names_fail_with_the_valid_names(option, bad):
     completed = subprocess.run([sys.executable, "-m", "benchmarks", option, bad, "--steps", "1"],
