@@ -165,6 +165,6 @@ def scaling_markdown(rows: list[dict], command: str, plot_file: str, warmup: int
         f"steps per point. Width sweep at B = {WIDTH_SWEEP_BATCH}, batch sweep at d = "
         f"{BATCH_SWEEP_WIDTH}.", "",
         scaling_table(rows, markdown=True), "",
-        contention_note(rows, threads), "",
+        *([contention_note(rows, threads), ""] if contention_note(rows, threads) else []),
         f"![step time against width and batch]({plot_file})",
     ])
