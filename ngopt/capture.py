@@ -50,6 +50,22 @@ class LayerCall:
 class ForwardRecord:
     calls: List[LayerCall] = field(default_factory=list)
     done: bool = False
+    # Tensor hooks that refer back to tensors of this record: a cycle through autograd's C++ side
+    # that Python's garbage collector cannot see, so they are removed by hand once the record is used.
+    handles: list = field(default_factory=list)
+    output: Optional[torch.Tensor] = None  # the model output, for the extra backward pass
+
+    def drop_tensors(self) -> None:
+        """Forget the outputs: breaks the cycles, and is safe inside a running hook."""
+        self.output = None
+        for call in self.calls:
+            call.output = None
+
+    def release(self) -> None:
+        for handle in self.handles:
+            handle.remove()
+        self.handles.clear()
+        self.drop_tensors()
 
 
 class FisherSource:
@@ -138,7 +154,7 @@ class CaptureHooks:
         call = LayerCall(block, block.layer.input_rows(inputs[0].detach()), output)
         record.calls.append(call)
         if self.source is None:
-            output.register_hook(lambda grad, call=call: self._empirical_grad(call, grad))
+            record.handles.append(output.register_hook(lambda grad, call=call: self._empirical_grad(call, grad)))
         copy = output.clone()
         self.seconds["capture"] += time.perf_counter() - started
         return copy
@@ -157,7 +173,8 @@ class CaptureHooks:
                             f"is applied to; it returned {type(output).__name__}. "
                             "Use fisher='empirical' or wrap the model so it returns that tensor.")
         elif output.requires_grad:
-            output.register_hook(lambda grad, record=record, output=output: self._extra_backward(record, output))
+            record.output = output
+            record.handles.append(output.register_hook(lambda grad, record=record: self._extra_backward(record)))
         return None
 
     def _empirical_grad(self, call: LayerCall, grad: torch.Tensor):
@@ -165,10 +182,11 @@ class CaptureHooks:
             call.grad_rows = call.block.layer.output_rows(grad.detach().unsqueeze(0))
         return None
 
-    def _extra_backward(self, record: ForwardRecord, output: torch.Tensor):
+    def _extra_backward(self, record: ForwardRecord):
         if record.done:  # the extra pass itself reaches the output too
             return None
         record.done = True
+        output = record.output
         started = time.perf_counter()
         vectors, scale = self.source.output_vectors(output.detach())
         grads = batched_output_grads(output, [call.output for call in record.calls], vectors)
@@ -177,6 +195,7 @@ class CaptureHooks:
                 call.grad_rows = call.block.layer.output_rows(grad.detach())
                 call.scale = scale
         self.seconds["extra_backward"] += time.perf_counter() - started
+        record.drop_tensors()
         return None
 
     # -- hand-over ----------------------------------------------------------------------------
@@ -192,10 +211,13 @@ class CaptureHooks:
                 seen.add(call.block)
             for block in seen:
                 forwards[block] = forwards.get(block, 0) + 1
+            record.release()
         self.records.clear()
         return forwards
 
     def discard(self) -> None:
+        for record in self.records:
+            record.release()
         self.records.clear()
         for block in self.blocks.values():
             block.clear_pending()
