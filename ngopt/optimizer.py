@@ -316,8 +316,10 @@ class NaturalGradient(torch.optim.Optimizer):
                 if bias_grad is not None:
                     bias_grad = bias_grad.add(layer.bias, alpha=group["weight_decay"])
             grad_matrix = layer.gradient_matrix(weight_grad, bias_grad)
-            view = ChainMap(inverses[block][0] if block in inverses else {},
-                            statistics.get(block, {}), block.state)
+            view = block.state
+            if block in inverses or block in statistics:  # this step's new tensors take precedence
+                view = ChainMap(inverses[block][0] if block in inverses else {},
+                                statistics.get(block, {}), block.state)
             if all(key in view for key in block.inverse_keys):
                 delta = block.precondition(grad_matrix, group["damping"], view)
             else:
@@ -331,11 +333,15 @@ class NaturalGradient(torch.optim.Optimizer):
 
         # One reduction for all the scalars the step needs: <delta, g>, |delta|^2, |g|^2 per block.
         order = list(directions)
-        sums = torch.stack([torch.stack([(d * g).sum(), (d * d).sum(), (g * g).sum()])
-                            for g, d in (directions[b] for b in order)]).double().cpu()
+        scalars = []
+        for grad_matrix, delta in (directions[b] for b in order):
+            g, d = grad_matrix.reshape(-1), delta.reshape(-1)
+            scalars += [torch.dot(d, g), torch.dot(d, d), torch.dot(g, g)]
+        sums = torch.stack(scalars).double().cpu()
         if not bool(torch.isfinite(sums).all()):
             return None
-        per_block = dict(zip(order, sums.tolist()))
+        values = sums.tolist()
+        per_block = {block: values[3 * i:3 * i + 3] for i, block in enumerate(order)}
         self._record_update(per_group, per_block)
         scaled = {}
         for index, blocks in per_group.items():
