@@ -19,11 +19,12 @@ def condition_number(smallest: float, largest: float) -> float:
 
 
 def _spectra(block: CurvatureBlock):
+    # Each inversion replaces block.info, so spectra cached here live exactly until the next one;
+    # with spectra tracking on, the inversion has already put them there.
     info = block.info
-    if info.get("in_eigenvalues") is None or info.get("_spectra_of") != info.get("inversion_step"):
+    if info.get("in_eigenvalues") is None:
         info["in_eigenvalues"] = torch.linalg.eigvalsh(to_cpu64(block.state["factor_in"]))
         info["out_eigenvalues"] = torch.linalg.eigvalsh(to_cpu64(block.state["factor_out"]))
-    info["_spectra_of"] = info.get("inversion_step")
     return info["in_eigenvalues"], info["out_eigenvalues"]
 
 
