@@ -225,7 +225,7 @@ class NaturalGradient(torch.optim.Optimizer):
             self._hooks.discard()
             return "nonfinite_loss"
         grads = [p.grad for g in self.param_groups for p in g["params"] if p.grad is not None]
-        if grads and not bool(torch.isfinite(torch.stack(torch._foreach_norm(grads))).all()):
+        if not _all_finite(grads):
             self._hooks.discard()
             return "nonfinite_gradient"
 
@@ -277,7 +277,7 @@ class NaturalGradient(torch.optim.Optimizer):
             batches = self.communicator.average_statistics(self, batches)
         statistics = {block: block.blend(batch, self.stats_ema) for block, batch in batches.items()}
         tensors = [t for stats in statistics.values() for t in stats.values()]
-        if tensors and not bool(torch.isfinite(torch.stack(torch._foreach_norm(tensors))).all()):
+        if not _all_finite(tensors):
             return None
         return statistics
 
@@ -296,7 +296,7 @@ class NaturalGradient(torch.optim.Optimizer):
             inverses = {block: block.prepare_inverse(stats, damping, self.track_spectra)
                         for block, stats, damping in jobs}
         tensors = [t for new, _ in inverses.values() for t in new.values()]
-        if tensors and not bool(torch.isfinite(torch.stack(torch._foreach_norm(tensors))).all()):
+        if not _all_finite(tensors):
             return None
         return inverses
 
@@ -509,6 +509,11 @@ class NaturalGradient(torch.optim.Optimizer):
     def remove_hooks(self) -> None:
         """Detach the capture hooks from the model (the optimizer then only preconditions)."""
         self._hooks.remove()
+
+
+def _all_finite(tensors: List[torch.Tensor]) -> bool:
+    """Whether every entry of every tensor is finite: one fused reduction and one host sync."""
+    return not tensors or bool(torch.isfinite(torch.stack(torch._foreach_norm(tensors))).all())
 
 
 def _is_wrapper(model: nn.Module) -> bool:
