@@ -167,13 +167,19 @@ class CurvatureCommunicator:
                        "inversions_here": 0}
 
     # -- the two calls the optimizer makes -------------------------------------------------------------
-    def average_statistics(self, opt, batches: Dict[CurvatureBlock, dict]) -> Dict[CurvatureBlock, dict]:
-        """``batches`` averaged over the ranks; called on every step, exchanges only when a refresh is due."""
+    def average_statistics(self, opt, batches: Dict[CurvatureBlock, dict],
+                           projected: bool = False) -> Dict[CurvatureBlock, dict]:
+        """``batches`` averaged over the ranks; called on every step, exchanges only when a refresh is due.
+
+        ``projected``: the second-phase statistics (EKFAC's scales) of the blocks that have them.
+        """
         if self.world_size == 1 or not opt._statistics_due(opt._steps):
             return batches
         blocks = list(opt.blocks.values())
+        if projected:
+            blocks = [b for b in blocks if b.projected_keys]
         averaged: Dict[CurvatureBlock, dict] = {}
-        for bucket in _statistics_buckets(blocks, batches):
+        for bucket in _statistics_buckets(blocks, batches, projected):
             buffer = bucket.pack(batches, self.device)
             self._all_reduce(buffer, "statistics all-reduce", clock="statistics_seconds")
             self.totals["statistics_bytes"] += buffer.numel() * buffer.element_size()
@@ -388,40 +394,27 @@ class StatisticsBucket:
         return averaged
 
 
-def _statistics_buckets(blocks: Sequence[CurvatureBlock], batches) -> List[StatisticsBucket]:
+def _statistics_buckets(blocks: Sequence[CurvatureBlock], batches,
+                        projected: bool = False) -> List[StatisticsBucket]:
     """One bucket per statistics dtype (normally a single one), blocks in the optimizer's order."""
     by_dtype: Dict[torch.dtype, list] = {}
     for block in blocks:
-        keys = [(key, shape, key in _symmetric_keys(block)) for key, shape in _statistic_shapes(block, batches)]
+        keys = [(key, shape, key in _symmetric_keys(block))
+                for key, shape in _statistic_shapes(block, batches, projected)]
         by_dtype.setdefault(block.layer.weight.dtype, []).append((block, keys))
     return [StatisticsBucket(entries, dtype) for dtype, entries in by_dtype.items()]
 
 
-def _statistic_shapes(block: CurvatureBlock, batches) -> List[Tuple[str, Tuple[int, ...]]]:
-    """Shapes of a block's statistics, known on every rank even where this rank recorded nothing."""
-    layer = block.layer
-    known = {"kfac": {"factor_in": (layer.in_dim, layer.in_dim), "factor_out": (layer.out_dim, layer.out_dim)},
-             "diag": {"fisher_diagonal": (layer.out_dim, layer.in_dim)}}.get(block.curvature, {})
-    shapes = []
-    for key in block.statistic_keys:
-        if key in known:
-            shapes.append((key, known[key]))
-        elif block in batches:
-            shapes.append((key, tuple(batches[block][key].shape)))
-        elif key in block.state:
-            shapes.append((key, tuple(block.state[key].shape)))
-        else:
-            raise ValueError(f"{layer.name}: cannot tell the shape of statistic {key!r} of a "
-                             f"{type(block).__name__} on a rank that recorded nothing")
-    return shapes
+def _statistic_shapes(block: CurvatureBlock, batches, projected: bool = False) -> List[Tuple[str, Tuple[int, ...]]]:
+    """Shapes of a block's statistics (or projected ones), known on every rank even where it recorded nothing."""
+    shapes = block.statistic_shapes()
+    keys = block.projected_keys if projected else block.statistic_keys
+    return [(key, tuple(shapes[key])) for key in keys]
 
 
 def _symmetric_keys(block: CurvatureBlock) -> Tuple[str, ...]:
-    """Statistics symmetric by construction (``E[a a^T]``, ``E[g g^T]``); a block may declare its own."""
-    declared = getattr(block, "symmetric_statistic_keys", None)
-    if declared is not None:
-        return tuple(declared)
-    return ("factor_in", "factor_out") if block.curvature == "kfac" else ()
+    """Statistics symmetric by construction (``E[a a^T]``, ``E[g g^T]``), as the block declares them."""
+    return tuple(block.symmetric_statistic_keys)
 
 
 _TRIANGLES: Dict[Tuple[int, str], torch.Tensor] = {}
@@ -688,7 +681,8 @@ def communication_volume(opt, world_size: int, shard_inversions: bool = True) ->
     blocks = list(opt.blocks.values())
     element = {b: b.layer.weight.element_size() for b in blocks}
     stats = sum(element[b] * (sum(_packed_size(shape, key in _symmetric_keys(b))
-                                  for key, shape in _statistic_shapes(b, {})) + 1) for b in blocks)
+                                  for key, shape in _statistic_shapes(b, {}) + _statistic_shapes(b, {}, True))
+                              + 1 + int(bool(b.projected_keys))) for b in blocks)
     shared = [b for b in blocks if _has_own_inverse(b)]
     payload = {b: element[b] * (b.layer.in_dim ** 2 + b.layer.out_dim ** 2) for b in shared}
     costs = [float(b.layer.in_dim) ** 3 + float(b.layer.out_dim) ** 3 for b in shared]

@@ -36,8 +36,7 @@ from torch import nn
 
 from . import fallback as fallback_rules
 from .blocks.base import CurvatureBlock
-from .blocks.diagonal import DiagonalBlock
-from .blocks.kronecker import KroneckerBlock
+from .blocks.factory import CURVATURES, make_block
 from .blocks.layers import adapter_for
 from .capture import CaptureHooks, FisherSource
 from .likelihoods import likelihood_for
@@ -45,7 +44,6 @@ from .spectra import block_summary
 from .step_control import kl_trust_scale, levenberg_marquardt_damping, reduction_ratio
 from .validation import check_arguments
 
-CURVATURES = {"kfac": KroneckerBlock, "diag": DiagonalBlock}
 SKIP_REASONS = ("nonfinite_loss", "nonfinite_gradient", "nonfinite_statistics", "nonfinite_update")
 TIME_KEYS = ("statistics", "inversion", "precondition", "fallback", "step_total")
 DEFAULT_FALLBACK_LR_SCALE = {"sgd": 1.0, "adam": 1e-2}
@@ -66,7 +64,7 @@ class NaturalGradient(torch.optim.Optimizer):
         weight_decay: L2 term added to the gradient before preconditioning (per group).
         damping: Tikhonov damping ``lambda`` added to the curvature (per group).
         fisher: ``'sampled'``, ``'exact'`` or ``'empirical'``.
-        curvature: ``'kfac'`` or ``'diag'``.
+        curvature: ``'kfac'``, ``'ekfac'`` or ``'diag'``.
         stats_every: steps between curvature-statistics refreshes.
         invert_every: steps between inversions of the factors.
         stats_ema: weight of the old statistics in the running average.
@@ -82,6 +80,9 @@ class NaturalGradient(torch.optim.Optimizer):
             over the model's parameters; by default one group holds them all.
         seed: seed of the private generator used for sampled targets
             (default ``torch.initial_seed()``; the global RNG is never consumed).
+        weight_sharing: how the Kronecker factors treat a layer applied at many
+            positions (sequences, convolutions): ``'expand'`` (positions as
+            examples) or ``'reduce'`` (summed per example first).
     """
 
     def __init__(self, model: nn.Module, loss_fn=None, *, lr: float = 0.3, momentum: float = 0.5,
@@ -90,13 +91,13 @@ class NaturalGradient(torch.optim.Optimizer):
                  stats_ema: float = 0.9, trust_kl: Optional[float] = 1e-2, adapt_damping: bool = False,
                  fallback: str = "sgd", fallback_lr_scale: Optional[float] = None, fisher_samples: int = 1,
                  damping_range=(1e-6, 1e2), adapt_every: int = 5, param_groups=None,
-                 seed: Optional[int] = None):
+                 seed: Optional[int] = None, weight_sharing: str = "expand"):
         check_arguments(model=model, loss_fn=loss_fn, lr=lr, momentum=momentum, weight_decay=weight_decay,
                         damping=damping, fisher=fisher, curvature=curvature, stats_every=stats_every,
                         invert_every=invert_every, stats_ema=stats_ema, trust_kl=trust_kl,
                         adapt_damping=adapt_damping, fallback=fallback, fallback_lr_scale=fallback_lr_scale,
                         fisher_samples=fisher_samples, damping_range=damping_range, adapt_every=adapt_every,
-                        seed=seed, param_groups=param_groups)
+                        seed=seed, param_groups=param_groups, weight_sharing=weight_sharing)
         source = None
         if fisher != "empirical":
             if loss_fn is None:
@@ -123,6 +124,7 @@ class NaturalGradient(torch.optim.Optimizer):
         self.model = getattr(model, "module", model) if _is_wrapper(model) else model
         self.fisher = fisher
         self.curvature = curvature
+        self.weight_sharing = weight_sharing
         self.stats_every = stats_every
         self.invert_every = invert_every
         self.stats_ema = stats_ema
@@ -141,7 +143,7 @@ class NaturalGradient(torch.optim.Optimizer):
         self._warned_uninitialised = False
         self._applied: dict = {}
 
-        self.blocks: Dict[str, CurvatureBlock] = self._build_blocks(CURVATURES[curvature])
+        self.blocks: Dict[str, CurvatureBlock] = self._build_blocks()
         self._hooks = CaptureHooks(self.model, {b.layer.module: b for b in self.blocks.values()}, source,
                                    loss_fn)
         self._hooks.armed = True
@@ -152,9 +154,9 @@ class NaturalGradient(torch.optim.Optimizer):
             share_curvature(self, process_group=model.process_group)
 
     # ------------------------------------------------------------------ construction
-    def _build_blocks(self, block_class) -> Dict[str, CurvatureBlock]:
+    def _build_blocks(self) -> Dict[str, CurvatureBlock]:
         group_of = {p: i for i, g in enumerate(self.param_groups) for p in g["params"]}
-        blocks: Dict[str, CurvatureBlock] = {}
+        layers = []
         for name, module in self.model.named_modules():
             layer = adapter_for(module, name or type(module).__name__)
             if layer is None or not layer.weight.requires_grad or layer.weight not in group_of:
@@ -163,7 +165,11 @@ class NaturalGradient(torch.optim.Optimizer):
                 layer.bias = None  # a frozen bias is left alone; the block covers the weight only
             if layer.has_bias and group_of.get(layer.bias) != group_of[layer.weight]:
                 raise ValueError(f"param_groups: {name}.weight and {name}.bias must be in the same group")
-            blocks[layer.name] = block_class(layer, self.state[layer.weight])
+            layers.append(layer)
+        blocks: Dict[str, CurvatureBlock] = {}
+        for layer in _without_tied_parameters(layers):
+            blocks[layer.name] = make_block(layer, self.curvature, self.state[layer.weight],
+                                            self.weight_sharing)
         self._block_group = {b: group_of[b.layer.weight] for b in blocks.values()}
         self._block_params = {p for b in blocks.values() for p in b.layer.params()}
         return blocks
@@ -229,16 +235,24 @@ class NaturalGradient(torch.optim.Optimizer):
             self._hooks.discard()
             return "nonfinite_gradient"
 
-        tick = time.perf_counter()
-        statistics = self._new_statistics()
-        self._times["statistics"] += time.perf_counter() - tick
-        if statistics is None:
-            return "nonfinite_statistics"
-        tick = time.perf_counter()
-        inverses = self._new_inverses(statistics, step_index)
-        self._times["inversion"] += time.perf_counter() - tick
-        if inverses is None:
-            return "nonfinite_statistics"
+        try:
+            tick = time.perf_counter()
+            statistics, forwards = self._new_statistics()
+            self._times["statistics"] += time.perf_counter() - tick
+            if statistics is None:
+                return "nonfinite_statistics"
+            tick = time.perf_counter()
+            inverses = self._new_inverses(statistics, step_index)
+            self._times["inversion"] += time.perf_counter() - tick
+            if inverses is None:
+                return "nonfinite_statistics"
+            tick = time.perf_counter()
+            if not self._add_projected_statistics(statistics, inverses, forwards):
+                return "nonfinite_statistics"
+            self._times["statistics"] += time.perf_counter() - tick
+        finally:
+            for block in self.blocks.values():
+                block.clear_pending()
 
         tick = time.perf_counter()
         directions = self._block_directions(statistics, inverses)
@@ -264,7 +278,11 @@ class NaturalGradient(torch.optim.Optimizer):
             finite = self.communicator.average_scalars(float(finite))[0] == 1.0
         return finite
 
-    def _new_statistics(self) -> Optional[Dict[CurvatureBlock, dict]]:
+    def _new_statistics(self):
+        """``({block: blended statistics}, {block: forwards seen})``; statistics None if non-finite.
+
+        The captures stay pending: blocks with projected statistics need them once more.
+        """
         forwards = self._hooks.hand_over()
         batches = {}
         for block in self.blocks.values():
@@ -272,14 +290,48 @@ class NaturalGradient(torch.optim.Optimizer):
                 batch = block.batch_statistics(forwards[block])
                 if batch is not None:
                     batches[block] = batch
-            block.clear_pending()
         if self.communicator is not None:
             batches = self.communicator.average_statistics(self, batches)
         statistics = {block: block.blend(batch, self.stats_ema) for block, batch in batches.items()}
         tensors = [t for stats in statistics.values() for t in stats.values()]
         if not _all_finite(tensors):
-            return None
-        return statistics
+            return None, forwards
+        return statistics, forwards
+
+    def _add_projected_statistics(self, statistics, inverses, forwards) -> bool:
+        """Second phase for blocks whose statistics live in a basis the inversion makes (EKFAC).
+
+        Adds them to ``statistics``; False if any is non-finite.
+        """
+        blocks = [b for b in self.blocks.values() if b.projected_keys and (b in statistics or b in inverses)]
+        if not blocks:
+            return True
+        views = {b: self._tentative_view(b, statistics, inverses) for b in blocks}
+        batches = {}
+        for block in blocks:
+            if block in statistics and block in forwards:
+                batch = block.projected_batch_statistics(views[block], forwards[block])
+                if batch is not None:
+                    batches[block] = batch
+        if self.communicator is not None:
+            batches = self.communicator.average_statistics(self, batches, projected=True)
+        new = {}
+        for block in blocks:
+            new[block] = block.blend_projected(batches.get(block), views[block], block in inverses,
+                                               self.stats_ema)
+        if not _all_finite([t for tensors in new.values() for t in tensors.values()]):
+            return False
+        for block, tensors in new.items():
+            if tensors:
+                statistics.setdefault(block, {}).update(tensors)
+        return True
+
+    @staticmethod
+    def _tentative_view(block, statistics, inverses):
+        """The block's tensors as this step will leave them: new ones first, then the committed state."""
+        if block not in inverses and block not in statistics:
+            return block.state
+        return ChainMap(inverses[block][0] if block in inverses else {}, statistics.get(block, {}), block.state)
 
     def _new_inverses(self, statistics, step_index: int):
         """``{block: (tensors, info)}`` for the blocks due an inversion, or None if non-finite."""
@@ -316,10 +368,7 @@ class NaturalGradient(torch.optim.Optimizer):
                 if bias_grad is not None:
                     bias_grad = bias_grad.add(layer.bias, alpha=group["weight_decay"])
             grad_matrix = layer.gradient_matrix(weight_grad, bias_grad)
-            view = block.state
-            if block in inverses or block in statistics:  # this step's new tensors take precedence
-                view = ChainMap(inverses[block][0] if block in inverses else {},
-                                statistics.get(block, {}), block.state)
+            view = self._tentative_view(block, statistics, inverses)
             if all(key in view for key in block.inverse_keys):
                 delta = block.precondition(grad_matrix, group["damping"], view)
             else:
@@ -514,6 +563,27 @@ class NaturalGradient(torch.optim.Optimizer):
 def _all_finite(tensors: List[torch.Tensor]) -> bool:
     """Whether every entry of every tensor is finite: one fused reduction and one host sync."""
     return not tensors or bool(torch.isfinite(torch.stack(torch._foreach_norm(tensors))).all())
+
+
+def _without_tied_parameters(layers):
+    """Layers whose parameters no other layer uses; tied ones go to the fallback rule, with a warning.
+
+    A tied weight (e.g. an embedding reused as the output layer) gets gradients
+    from two layer kinds at once, which neither block's curvature describes.
+    """
+    users: Dict[nn.Parameter, List[str]] = {}
+    for layer in layers:
+        for param in layer.params():
+            users.setdefault(param, []).append(layer.name)
+    kept = []
+    for layer in layers:
+        shared = sorted({name for p in layer.params() for name in users[p] if name != layer.name})
+        if shared:
+            warnings.warn(f"{layer.name}: its parameters are shared with {', '.join(shared)}; tied parameters "
+                          "get no curvature block and use the fallback rule", stacklevel=4)
+            continue
+        kept.append(layer)
+    return kept
 
 
 def _is_wrapper(model: nn.Module) -> bool:

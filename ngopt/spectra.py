@@ -10,7 +10,6 @@ import math
 
 import torch
 
-from .blocks.base import CurvatureBlock
 from .linalg import factored_damping, to_cpu64
 
 
@@ -18,9 +17,10 @@ def condition_number(smallest: float, largest: float) -> float:
     return largest / smallest if smallest > 0 else math.inf
 
 
-def _spectra(block: CurvatureBlock):
+def factor_spectra(block) -> tuple:
+    """Ascending eigenvalues of a block's two Kronecker factors, cached until its next inversion."""
     # Each inversion replaces block.info, so spectra cached here live exactly until the next one;
-    # with spectra tracking on, the inversion has already put them there.
+    # with spectra tracking on (or for EKFAC, always), the inversion has already put them there.
     info = block.info
     if info.get("in_eigenvalues") is None:
         info["in_eigenvalues"] = torch.linalg.eigvalsh(to_cpu64(block.state["factor_in"]))
@@ -28,8 +28,9 @@ def _spectra(block: CurvatureBlock):
     return info["in_eigenvalues"], info["out_eigenvalues"]
 
 
-def _kronecker_summary(block, damping, with_spectra) -> dict:
-    eig_in, eig_out = _spectra(block)
+def kronecker_summary(block, damping, with_spectra) -> dict:
+    """Spectra, traces, factored damping and condition numbers of the two factors."""
+    eig_in, eig_out = factor_spectra(block)
     trace_in, trace_out = float(eig_in.sum()), float(eig_out.sum())
     shift_in, shift_out = factored_damping(trace_in, eig_in.numel(), trace_out, eig_out.numel(), damping)
     summary = {}
@@ -47,25 +48,23 @@ def _kronecker_summary(block, damping, with_spectra) -> dict:
     return summary
 
 
-def _diagonal_summary(block, damping, with_spectra) -> dict:
-    diagonal = block.state["fisher_diagonal"].detach().double().cpu().flatten()
-    low, high = float(diagonal.min()), float(diagonal.max())
-    summary = {"diag_min": low, "diag_max": high, "diag_mean": float(diagonal.mean()),
+def diagonal_summary(values: torch.Tensor, damping, with_spectra, prefix: str = "diag") -> dict:
+    """Range and damped condition number of a curvature that is diagonal in some basis."""
+    values = values.detach().double().cpu().flatten()
+    low, high = float(values.min()), float(values.max())
+    summary = {f"{prefix}_min": low, f"{prefix}_max": high, f"{prefix}_mean": float(values.mean()),
                "condition": condition_number(max(low, 0.0) + damping, max(high, 0.0) + damping)}
     if with_spectra:
-        summary["diag_values"] = diagonal.sort().values.tolist()
+        summary[f"{prefix}_values"] = values.sort().values.tolist()
     return summary
 
 
-def block_summary(block: CurvatureBlock, damping: float, with_spectra: bool = False) -> dict:
+def block_summary(block, damping: float, with_spectra: bool = False) -> dict:
     """Plain-number summary of one block: sizes, spectra, damping and condition numbers."""
     summary = {"block": block.layer.kind, "curvature": block.curvature,
                "in_dim": block.layer.in_dim, "out_dim": block.layer.out_dim,
                "condition": math.nan, "inversion_step": block.info.get("inversion_step")}
     if not block.has_statistics:
         return summary
-    if block.curvature == "kfac":
-        summary.update(_kronecker_summary(block, damping, with_spectra))
-    else:
-        summary.update(_diagonal_summary(block, damping, with_spectra))
+    summary.update(block.summary(damping, with_spectra))
     return summary

@@ -6,10 +6,9 @@ import numbers
 
 from torch import nn
 
-CHOICES = {"fisher": ("sampled", "exact", "empirical"), "curvature": ("kfac", "diag"),
-           "fallback": ("sgd", "adam")}
-PLANNED = {"curvature": {"ekfac": "curvature='ekfac' (eigenvalue-corrected K-FAC) is not available yet; "
-                                  "use 'kfac' or 'diag'"}}
+CHOICES = {"fisher": ("sampled", "exact", "empirical"), "curvature": ("kfac", "ekfac", "diag"),
+           "fallback": ("sgd", "adam"), "weight_sharing": ("expand", "reduce")}
+PLANNED: dict = {}  # {argument: {value: message}} for values announced but not built yet
 
 
 def _real(name, value, *, low=None, high=None, low_open=False, high_open=False, optional=False):
@@ -57,6 +56,7 @@ CHECKS = {
     "fisher": lambda v: _choice("fisher", v),
     "curvature": lambda v: _choice("curvature", v),
     "fallback": lambda v: _choice("fallback", v),
+    "weight_sharing": lambda v: _choice("weight_sharing", v),
 }
 
 

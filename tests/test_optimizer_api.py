@@ -150,9 +150,9 @@ def test_seed_out_of_range_is_refused_at_construction():
         ngopt.NaturalGradient(small_mlp(), nn.MSELoss(), seed=2 ** 70)
 
 
-def test_ekfac_says_it_is_not_available_yet():
-    with pytest.raises(ValueError, match="curvature.*ekfac.*not available yet"):
-        ngopt.NaturalGradient(small_mlp(), nn.MSELoss(), curvature="ekfac")
+def test_weight_sharing_choice_is_checked():
+    with pytest.raises(ValueError, match="weight_sharing must be one of"):
+        ngopt.NaturalGradient(small_mlp(), nn.MSELoss(), weight_sharing="average")
 
 
 @pytest.mark.parametrize("fisher", ["sampled", "exact"])

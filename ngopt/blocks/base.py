@@ -28,14 +28,24 @@ from .layers import LayerAdapter
 Tensors = Dict[str, torch.Tensor]
 
 
+WEIGHT_SHARING = ("expand", "reduce")
+
+
 class CurvatureBlock:
     curvature = "block"
     statistic_keys: Tuple[str, ...] = ()
     inverse_keys: Tuple[str, ...] = ()
+    # Statistics that are symmetric matrices by construction (sent as triangles between ranks).
+    symmetric_statistic_keys: Tuple[str, ...] = ()
+    # Statistics measured in a basis the inversion produces (EKFAC's scales): a second phase.
+    projected_keys: Tuple[str, ...] = ()
 
-    def __init__(self, layer: LayerAdapter, state: dict):
+    def __init__(self, layer: LayerAdapter, state: dict, weight_sharing: str = "expand"):
+        if weight_sharing not in WEIGHT_SHARING:
+            raise ValueError(f"weight_sharing must be one of {WEIGHT_SHARING}, got {weight_sharing!r}")
         self.layer = layer
         self.state = state
+        self.weight_sharing = weight_sharing
         # (input rows, grad rows, scale, index of the model forward the call belongs to)
         self.pending: List[Tuple[torch.Tensor, torch.Tensor, float, int]] = []
         self.info: dict = {}  # latest diagnostics of this block (plain Python numbers)
@@ -48,6 +58,24 @@ class CurvatureBlock:
     def clear_pending(self) -> None:
         self.pending.clear()
 
+    def calls_joined_per_forward(self) -> List[Tuple[torch.Tensor, torch.Tensor, float]]:
+        """Pending calls of one forward (shared weights) joined along positions.
+
+        An example's gradient sums over all calls of the layer in its forward,
+        so per-example quantities must see those calls as one.
+        """
+        joined = {}
+        for input_rows, grad_rows, scale, forward in self.pending:
+            previous = joined.get(forward)
+            if previous is not None and previous[0].shape[0] == input_rows.shape[0] \
+                    and previous[1].shape[0] == grad_rows.shape[0] and previous[2] == scale:
+                joined[forward] = (torch.cat([previous[0], input_rows], dim=1),
+                                   torch.cat([previous[1], grad_rows], dim=2), scale)
+            else:
+                key = forward if previous is None else (forward, len(joined))
+                joined[key] = (input_rows, grad_rows, scale)
+        return list(joined.values())
+
     # -- statistics ----------------------------------------------------------------------
     @property
     def has_statistics(self) -> bool:
@@ -58,6 +86,18 @@ class CurvatureBlock:
         return all(key in self.state for key in self.inverse_keys)
 
     def batch_statistics(self, num_forwards: int) -> Optional[Tensors]:
+        raise NotImplementedError
+
+    def statistic_shapes(self) -> Dict[str, Tuple[int, ...]]:
+        """Shape of every statistic (and projected statistic), known before any capture."""
+        raise NotImplementedError
+
+    def projected_batch_statistics(self, view, num_forwards: int) -> Optional[Tensors]:
+        """This batch's projected statistics in the basis of ``view`` (blocks with ``projected_keys``)."""
+        raise NotImplementedError
+
+    def blend_projected(self, batch: Optional[Tensors], view, rebased: bool, ema: float) -> Tensors:
+        """New projected statistics; ``rebased``: the basis in ``view`` is new this step."""
         raise NotImplementedError
 
     def blend(self, batch: Tensors, ema: float) -> Tensors:
@@ -90,6 +130,10 @@ class CurvatureBlock:
         matrix, i.e. ``grad_matrix.T.reshape(-1)``.
         """
         raise NotImplementedError
+
+    def summary(self, damping: float, with_spectra: bool) -> dict:
+        """Plain-number diagnostics of the block's current curvature (see ``spectra.py``)."""
+        return {}
 
     def describe(self) -> str:
         return f"{self.layer.kind} {self.curvature} [{self.layer.out_dim} x {self.layer.in_dim}]"

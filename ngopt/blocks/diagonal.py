@@ -3,8 +3,8 @@
     F_diag = (1/c) sum over examples of (sum over positions g a^T)^2   (elementwise)
 
 where a layer called several times in one forward contributes all its calls'
-positions to the same example's sum.
-using the same rows and scale as the Kronecker block.  For one position per
+positions to the same example's sum, using the same rows and scale as the
+Kronecker block.  For one position per
 example the sum of squares is ``(g*g)^T (a*a)``, with no per-example matrices.
 Damping is added directly, ``(F_diag + lambda)^-1``, at every step, so a change
 of ``damping`` takes effect at once.
@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import torch
 
+from ..spectra import diagonal_summary
 from .base import CurvatureBlock
 
 _PER_EXAMPLE_CHUNK = 64
@@ -41,24 +42,13 @@ class DiagonalBlock(CurvatureBlock):
             return None
         dtype = self.layer.weight.dtype
         total = None
-        for input_rows, grad_rows, scale in self._calls_joined_per_forward():
+        for input_rows, grad_rows, scale in self.calls_joined_per_forward():
             term = per_example_square_sum(input_rows.to(dtype), grad_rows.to(dtype)) * scale
             total = term if total is None else total + term
         return {"fisher_diagonal": total / num_forwards}
 
-    def _calls_joined_per_forward(self):
-        """Calls of one forward (shared weights) joined along positions: an example's gradient sums them."""
-        joined = {}
-        for input_rows, grad_rows, scale, forward in self.pending:
-            previous = joined.get(forward)
-            if previous is not None and previous[0].shape[0] == input_rows.shape[0] \
-                    and previous[1].shape[0] == grad_rows.shape[0] and previous[2] == scale:
-                joined[forward] = (torch.cat([previous[0], input_rows], dim=1),
-                                   torch.cat([previous[1], grad_rows], dim=2), scale)
-            else:
-                key = forward if previous is None else (forward, len(joined))
-                joined[key] = (input_rows, grad_rows, scale)
-        return list(joined.values())
+    def statistic_shapes(self):
+        return {"fisher_diagonal": (self.layer.out_dim, self.layer.in_dim)}
 
     def prepare_inverse(self, statistics, damping, want_spectrum):
         diagonal = statistics["fisher_diagonal"].detach().double().cpu()
@@ -74,6 +64,9 @@ class DiagonalBlock(CurvatureBlock):
 
     def damped_product(self, matrix, damping):
         return matrix * (self.state["fisher_diagonal"] + damping)
+
+    def summary(self, damping, with_spectra):
+        return diagonal_summary(self.state["fisher_diagonal"], damping, with_spectra)
 
     def dense_curvature(self, damping=0.0):
         return torch.diag(self.state["fisher_diagonal"].T.reshape(-1) + damping)

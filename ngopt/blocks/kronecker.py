@@ -16,13 +16,31 @@ from __future__ import annotations
 import torch
 
 from ..linalg import damped_inverse, factored_damping, to_cpu64
+from ..spectra import kronecker_summary
 from .base import CurvatureBlock, Tensors
 
 
 class KroneckerBlock(CurvatureBlock):
     curvature = "kfac"
     statistic_keys = ("factor_in", "factor_out")
+    symmetric_statistic_keys = ("factor_in", "factor_out")
     inverse_keys = ("inverse_in", "inverse_out")
+
+    def statistic_shapes(self):
+        d_in, d_out = self.layer.in_dim, self.layer.out_dim
+        return {"factor_in": (d_in, d_in), "factor_out": (d_out, d_out)}
+
+    def factor_rows(self):
+        """``(a, g, scale)`` per capture, positions kept ("expand") or summed per example ("reduce").
+
+        Eschenhagen et al., NeurIPS 2023, sec. 3: "expand" treats every position
+        as an example, ``A = mean_{n,t} a a^T``, ``G = sum_{n,t} g g^T``;
+        "reduce" first forms ``a_n = mean_t a_nt`` and ``g_n = sum_t g_nt``.
+        """
+        if self.weight_sharing == "expand":
+            return [(a, g, scale) for a, g, scale, _ in self.pending]
+        return [(a.mean(dim=1, keepdim=True), g.sum(dim=2, keepdim=True), scale)
+                for a, g, scale in self.calls_joined_per_forward()]
 
     def batch_statistics(self, num_forwards):
         if not self.pending:
@@ -32,7 +50,7 @@ class KroneckerBlock(CurvatureBlock):
         factor_in = torch.zeros(d_in, d_in, dtype=ref.dtype, device=ref.device)
         factor_out = torch.zeros(d_out, d_out, dtype=ref.dtype, device=ref.device)
         rows = 0
-        for input_rows, grad_rows, scale, _ in self.pending:
+        for input_rows, grad_rows, scale in self.factor_rows():
             # Rows may come in a lower precision (autocast); statistics accumulate in the weight's dtype.
             a = input_rows.reshape(-1, d_in).to(ref.dtype)
             g = grad_rows.reshape(-1, d_out).to(ref.dtype)
@@ -74,6 +92,9 @@ class KroneckerBlock(CurvatureBlock):
     def damped_product(self, matrix, damping):
         damped_in, damped_out = self._damped_factors(damping)
         return damped_out @ matrix @ damped_in
+
+    def summary(self, damping, with_spectra):
+        return kronecker_summary(self, damping, with_spectra)
 
     def dense_curvature(self, damping=0.0):
         if damping:
