@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import time
 import warnings
+import weakref
 from dataclasses import dataclass, field
 from typing import Callable, Dict, List, Optional
 
@@ -33,6 +34,8 @@ from .blocks.base import CurvatureBlock
 from .likelihoods import OutputLikelihood, empirical_reduction_scale
 
 _COLUMNS_PER_PASS = 32
+# model -> weak reference to the capture hooks on it: keeps nothing alive, travels with no copy of a model
+_HOOKED_MODELS: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
 # Above this many output-Fisher columns per example, fisher="exact" costs more than it is usually worth.
 EXACT_COLUMNS_WARNING = 64
 
@@ -128,6 +131,14 @@ class CaptureHooks:
         self.seconds = {"capture": 0.0, "extra_backward": 0.0}  # time spent inside the user's passes
         self.records: List[ForwardRecord] = []
         self._current: Optional[ForwardRecord] = None
+        self._model = model
+        other = _HOOKED_MODELS.get(model)
+        if other is not None and other() is not None:
+            # Two sets of capture hooks on one model interfere: the second misses its output gradients.
+            warnings.warn("this model already carries the capture hooks of another NaturalGradient; call "
+                          "remove_hooks() on that optimizer first, or this one will miss curvature statistics",
+                          stacklevel=4)
+        _HOOKED_MODELS[model] = weakref.ref(self)
         self._handles = [model.register_forward_pre_hook(self._model_pre_hook)]
         for module in blocks:
             self._handles.append(module.register_forward_hook(self._layer_hook))
@@ -138,6 +149,9 @@ class CaptureHooks:
         for handle in self._handles:
             handle.remove()
         self._handles.clear()
+        mine = _HOOKED_MODELS.get(self._model)
+        if mine is not None and mine() is self:
+            del _HOOKED_MODELS[self._model]
 
     # -- hooks ------------------------------------------------------------------------------
     def _model_pre_hook(self, model, inputs):

@@ -437,3 +437,17 @@ def test_refused_step_leaves_no_pending_statistics():
 
         optimizer.step(closure)
     assert torch.equal(opt.state[model[0].weight]["factor_in"], reference_opt.state[reference[0].weight]["factor_in"])
+
+
+def test_a_second_optimizer_on_the_same_model_is_warned_about():
+    # Two sets of capture hooks on one model: the second one misses its output gradients (measured),
+    # so its curvature would silently go stale; after remove_hooks() a new optimizer is fine.
+    model = small_mlp()
+    first = ngopt.NaturalGradient(model, nn.MSELoss())
+    with pytest.warns(UserWarning, match="already carries the capture hooks"):
+        second = ngopt.NaturalGradient(model, nn.MSELoss())
+    second.remove_hooks()
+    first.remove_hooks()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        ngopt.NaturalGradient(model, nn.MSELoss())
