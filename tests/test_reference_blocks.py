@@ -37,13 +37,14 @@ Z_BOUND = 5.0  # Monte Carlo checks allow 5 standard errors (normal two-sided ta
 
 
 def recorded_optimizer(model, loss_fn, inputs, targets, *, fisher="exact", curvature="kfac", samples=1,
-                       stats_ema=0.0, damping=1e-3, lr=1e-3, seed=0):
+                       stats_ema=0.0, damping=1e-3, lr=1e-3, seed=0, weight_sharing="expand"):
     """An optimizer after one recorded forward/backward and ``step()`` (statistics of the pre-step weights)."""
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # empirical-Fisher advice
         opt = ngopt.NaturalGradient(model, loss_fn, lr=lr, momentum=0.0, weight_decay=0.0, damping=damping,
                                     fisher=fisher, curvature=curvature, stats_every=1, invert_every=1,
-                                    stats_ema=stats_ema, trust_kl=None, fisher_samples=samples, seed=seed)
+                                    stats_ema=stats_ema, trust_kl=None, fisher_samples=samples, seed=seed,
+                                    weight_sharing=weight_sharing)
     opt.zero_grad()
     loss_fn(model(inputs), targets).backward()
     opt.step()
