@@ -229,6 +229,7 @@ def job_train(rank, world, out_dir):
         "ddp_exact_f64_sharded": dict(dtype=torch.float64, shard=True),
         "ddp_exact_f64_replicated": dict(dtype=torch.float64, shard=False),
         "ddp_diag_f64": dict(dtype=torch.float64, curvature="diag"),
+        "ddp_ekfac_f64": dict(dtype=torch.float64, curvature="ekfac"),
     }
     diagnostics = {}
     for name, options in runs.items():
@@ -263,6 +264,9 @@ def job_fault(rank, world, out_dir, mode):
     opt = make_optimizer(wrapped, loss_fn, fisher="exact", stats_every=1)
     nd.share_curvature(opt, timeout=FAULT_TIMEOUT_SECONDS)
     rows = _rank_rows(rank, world)
+    # Start the timed steps together: on a loaded machine one rank may still be building its
+    # model when the other's first collective has already waited FAULT_TIMEOUT_SECONDS.
+    torch.distributed.barrier()
     for step, (x, y) in enumerate(batches(torch.float32)):
         started = time.monotonic()
         try:
@@ -424,6 +428,14 @@ def test_diagonal_curvature_matches_one_process(trained):
         assert_same_weights(rank["ddp_diag_f64"], reference, **F64)
 
 
+def test_ekfac_matches_one_process(trained):
+    # The scales are a second all-reduce in the basis the (sharded) inversion broadcast.
+    ranks, _ = trained
+    reference = single_process(torch.float64, curvature="ekfac")
+    for rank in ranks:
+        assert_same_weights(rank["ddp_ekfac_f64"], reference, **F64)
+
+
 def test_sharded_inversion_equals_everyone_inverting(trained):
     ranks, _ = trained
     for rank in ranks:
@@ -502,7 +514,7 @@ def test_a_failing_rank_makes_the_other_fail_fast(jobs, mode):
     codes, logs = jobs[mode].finish()
     assert codes[0] == 1, f"rank 0 should have stopped with an error by itself:\n{logs[0]}"
     found = re.search(r"FAILED after ([0-9.]+) s at step 2: (\w+): (.*)", logs[0])
-    assert found, logs[0]
+    assert found, logs[0] + "\n--- rank 1 ---\n" + logs[1]
     seconds, kind, message = float(found.group(1)), found.group(2), found.group(3)
     # a closed connection is seen at once; a stalled peer after the communicator's timeout
     assert seconds < FAULT_TIMEOUT_SECONDS + 5
