@@ -49,6 +49,8 @@ import torch
 from torch import nn
 from torch.func import functional_call, hessian, jacrev, vmap
 
+from .blocks.layers import adapter_for
+
 __all__ = ["probe_fisher_quality", "exact_layer_fisher", "relative_frobenius_error", "direction_angle_deg"]
 
 SUPPORTED_LOSSES = (nn.MSELoss, nn.CrossEntropyLoss, nn.BCEWithLogitsLoss)
@@ -127,31 +129,60 @@ def _sample_targets(loss_fn, outputs: torch.Tensor, generator: torch.Generator) 
 # per-layer Jacobians and Fisher matrices
 # --------------------------------------------------------------------------
 
-def _layer_parameters(module: nn.Module) -> dict:
+def _adapter(module: nn.Module):
+    """The layer adapter the optimizer would use for ``module`` (None for unsupported layers)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            layer = adapter_for(module, type(module).__name__)
+        except ValueError:  # layers the optimizer refuses (sparse embeddings): generic ordering
+            return None
+    if layer is not None and layer.has_bias and not layer.bias.requires_grad:
+        layer.bias = None  # as the optimizer does: a frozen bias is not part of the block
+    return layer
+
+
+def _layer_parameters(module: nn.Module, layer=None) -> dict:
+    if layer is not None:
+        return {"weight": layer.weight, **({"bias": layer.bias} if layer.has_bias else {})}
     names = {"weight": module.weight}
     if getattr(module, "bias", None) is not None and module.bias.requires_grad:
         names["bias"] = module.bias
     return names
 
 
-def _block_order(jacobian: dict, module: nn.Module) -> torch.Tensor:
+def _block_order(jacobian: dict, module: nn.Module, layer=None) -> torch.Tensor:
     """[N, D, *param] Jacobians -> [N, D, P] in the blocks' ordering.
 
-    The blocks flatten the [d_out, d_in (+1 for the bias)] gradient matrix
-    column-major (``matrix.T.reshape(-1)``), weight columns first, bias last.
+    The blocks flatten their layer adapter's gradient matrix column-major
+    (``matrix.T.reshape(-1)``): for dense and convolution layers ``[d_out, d_in]``
+    with the bias column last, for embeddings ``W^T`` ``[d, V]``, for norm layers
+    ``[C, (gamma, beta)]``.  Without an adapter: the weight as ``[shape[0], -1]``, bias last.
     """
     weight = jacobian["weight"]
     n, d = weight.shape[:2]
-    matrix = weight.reshape(n, d, module.weight.shape[0], -1)
+    if layer is None:
+        matrix = weight.reshape(n, d, module.weight.shape[0], -1)
+        if "bias" in jacobian:
+            matrix = torch.cat([matrix, jacobian["bias"].unsqueeze(-1)], dim=-1)
+        return matrix.transpose(-1, -2).reshape(n, d, -1)
+    flat = [weight.reshape((n * d,) + weight.shape[2:])]
     if "bias" in jacobian:
-        matrix = torch.cat([matrix, jacobian["bias"].unsqueeze(-1)], dim=-1)
-    return matrix.transpose(-1, -2).reshape(n, d, -1)
+        flat.append(jacobian["bias"].reshape((n * d,) + jacobian["bias"].shape[2:]))
+        matrices = vmap(layer.gradient_matrix)(*flat)
+    else:
+        matrices = vmap(lambda w: layer.gradient_matrix(w, None))(*flat)
+    return matrices.transpose(-1, -2).reshape(n, d, -1)
 
 
-def layer_jacobian(model: nn.Module, module: nn.Module, inputs: torch.Tensor) -> tuple:
-    """(outputs [N, D], Jacobian [N, D, P]) of the model outputs in one layer's parameters."""
+def layer_jacobian(model: nn.Module, module: nn.Module, inputs: torch.Tensor, layer=None) -> tuple:
+    """(outputs [N, D], Jacobian [N, D, P]) of the model outputs in one layer's parameters.
+
+    ``layer``: the block's layer adapter (default: the one the optimizer would build).
+    """
+    layer = _adapter(module) if layer is None else layer
     prefix = next(name for name, m in model.named_modules() if m is module)
-    own = {(f"{prefix}.{k}" if prefix else k): v.detach() for k, v in _layer_parameters(module).items()}
+    own = {(f"{prefix}.{k}" if prefix else k): v.detach() for k, v in _layer_parameters(module, layer).items()}
 
     def forward(layer_params):
         return functional_call(model, layer_params, (inputs,), strict=False)
@@ -162,7 +193,7 @@ def layer_jacobian(model: nn.Module, module: nn.Module, inputs: torch.Tensor) ->
     jac = jacrev(forward)(own)
     jac = {key.rsplit(".", 1)[-1]: value for key, value in jac.items()}
     # the other layers' parameters still require grad; nothing here is meant to be differentiated
-    return outputs, _block_order(jac, module).detach().to(torch.float64)
+    return outputs, _block_order(jac, module, layer).detach().to(torch.float64)
 
 
 def output_hessians(loss_fn, outputs: torch.Tensor, targets: torch.Tensor) -> torch.Tensor:
@@ -213,7 +244,7 @@ def _group_damping(opt, weight: torch.Tensor) -> float:
 def _probe_layer(opt, block, model, loss_fn, inputs, targets, generator, samples):
     module = block.layer.module
     damping = _group_damping(opt, block.layer.weight)
-    outputs, jac = layer_jacobian(model, module, inputs)
+    outputs, jac = layer_jacobian(model, module, inputs, block.layer)
     exact = _exact_from(loss_fn, outputs, targets, jac)
     grad = torch.einsum("ndp,nd->p", jac, output_gradients(loss_fn, outputs, targets))
     approx = block.dense_curvature().detach().to(device="cpu", dtype=torch.float64)
@@ -291,7 +322,7 @@ def probe_fisher_quality(opt, model: nn.Module, loss_fn, inputs: torch.Tensor, t
         for name, block in blocks.items():
             if layers is not None and name not in layers:
                 continue
-            size = sum(p.numel() for p in _layer_parameters(block.layer.module).values())
+            size = sum(p.numel() for p in block.layer.params())
             if size > max_params:
                 result["skipped_layers"][name] = f"{size} parameters > max_params={max_params}"
                 continue

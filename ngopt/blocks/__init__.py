@@ -2,9 +2,15 @@
 from .base import CurvatureBlock
 from .diagonal import DiagonalBlock
 from .eigenbasis import EigenbasisBlock
-from .factory import CURVATURES, block_class, make_block
+from .embedding import EmbeddingDiagonalBlock, EmbeddingEigenbasisBlock, EmbeddingKroneckerBlock
+from .factory import CURVATURES, LAYER_BLOCKS, block_class, make_block
 from .kronecker import KroneckerBlock
-from .layers import Conv2dLayer, LayerAdapter, LinearLayer, adapter_for
+from .layers import (BatchNormLayer, Conv1dLayer, Conv2dLayer, EmbeddingLayer, LayerAdapter, LayerNormLayer,
+                     LinearLayer, adapter_for)
+from .norm import NormDiagonalBlock, NormPairBlock
 
-__all__ = ["CurvatureBlock", "DiagonalBlock", "EigenbasisBlock", "KroneckerBlock", "Conv2dLayer",
-           "LayerAdapter", "LinearLayer", "adapter_for", "CURVATURES", "block_class", "make_block"]
+__all__ = ["CurvatureBlock", "DiagonalBlock", "EigenbasisBlock", "KroneckerBlock", "EmbeddingKroneckerBlock",
+           "EmbeddingEigenbasisBlock", "EmbeddingDiagonalBlock", "NormPairBlock", "NormDiagonalBlock",
+           "Conv1dLayer", "Conv2dLayer", "EmbeddingLayer", "LayerNormLayer", "BatchNormLayer",
+           "LayerAdapter", "LinearLayer", "adapter_for", "CURVATURES", "LAYER_BLOCKS", "block_class",
+           "make_block"]

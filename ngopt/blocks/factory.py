@@ -6,15 +6,24 @@ from typing import Dict, Type
 from .base import CurvatureBlock
 from .diagonal import DiagonalBlock
 from .eigenbasis import EigenbasisBlock
+from .embedding import EmbeddingDiagonalBlock, EmbeddingEigenbasisBlock, EmbeddingKroneckerBlock
 from .kronecker import KroneckerBlock
 from .layers import LayerAdapter
+from .norm import NormDiagonalBlock, NormPairBlock
 
 # Blocks built from the generic rows a = inputs, g = output gradients (Linear, Conv1d, Conv2d).
 CURVATURES: Dict[str, Type[CurvatureBlock]] = {
     "kfac": KroneckerBlock, "ekfac": EigenbasisBlock, "diag": DiagonalBlock,
 }
 # Layer kinds whose curvature has a structure of its own: {layer kind: {curvature: block class}}.
-LAYER_BLOCKS: Dict[str, Dict[str, Type[CurvatureBlock]]] = {}
+# Norm layers: "kfac" and "ekfac" both give the exact per-channel 2x2 blocks (blocks/norm.py).
+_NORM_BLOCKS = {"kfac": NormPairBlock, "ekfac": NormPairBlock, "diag": NormDiagonalBlock}
+LAYER_BLOCKS: Dict[str, Dict[str, Type[CurvatureBlock]]] = {
+    "embedding": {"kfac": EmbeddingKroneckerBlock, "ekfac": EmbeddingEigenbasisBlock,
+                  "diag": EmbeddingDiagonalBlock},
+    "layer_norm": _NORM_BLOCKS,
+    "batch_norm": _NORM_BLOCKS,
+}
 
 
 def block_class(layer: LayerAdapter, curvature: str) -> Type[CurvatureBlock]:

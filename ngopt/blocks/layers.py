@@ -8,6 +8,10 @@ rows ``a`` shaped ``[N, T, d_in]`` (a trailing 1 appended for the bias) and an
 output gradient into rows ``g`` shaped ``[..., N, T, d_out]``, and reads and
 writes the parameter gradient as a matrix ``[d_out, d_in]`` whose last column
 is the bias.  Nothing else in the package knows a layer kind.
+
+Two kinds have rows of their own, read by their own blocks: an embedding's input
+rows are its indices ``[N, T]`` (one-hot rows, never built), and a norm layer's
+are ``x_hat`` per channel ``[N, T, C]`` (``blocks/embedding.py``, ``blocks/norm.py``).
 """
 from __future__ import annotations
 
@@ -89,16 +93,16 @@ class LinearLayer(LayerAdapter):
         return grads.reshape(grads.shape[0], grads.shape[1], -1, grads.shape[-1])
 
 
-class Conv2dLayer(LayerAdapter):
-    """``nn.Conv2d`` with ``groups=1`` (KFC): rows are input patches at every output position."""
+class _ConvolutionLayer(LayerAdapter):
+    """Convolutions with ``groups=1`` (KFC): rows are input patches at every output position."""
 
-    kind = "conv2d"
+    spatial_dims = 2
 
     def _explicit_padding(self):
         """Padding as ``F.pad`` takes it (last dim first), for every padding mode and 'same'/'valid'."""
         module = self.module
         if module.padding == "valid":
-            return (0, 0, 0, 0)
+            return (0, 0) * self.spatial_dims
         if module.padding == "same":
             pads = []
             for dilation, kernel in zip(reversed(module.dilation), reversed(module.kernel_size)):
@@ -107,30 +111,194 @@ class Conv2dLayer(LayerAdapter):
             return tuple(pads)
         return tuple(module._reversed_padding_repeated_twice)
 
+    def _patches(self, padded):
+        raise NotImplementedError
+
     def input_rows(self, inputs):
         module = self.module
-        if inputs.dim() == 3:
+        if inputs.dim() == self.spatial_dims + 1:  # unbatched
             inputs = inputs.unsqueeze(0)
         mode = "constant" if module.padding_mode == "zeros" else module.padding_mode
         padded = F.pad(inputs, self._explicit_padding(), mode=mode)
-        patches = F.unfold(padded, module.kernel_size, dilation=module.dilation, stride=module.stride)
-        return self._append_ones(patches.transpose(1, 2))  # [N, L, C*kh*kw]
+        return self._append_ones(self._patches(padded).transpose(1, 2))  # [N, L, C*prod(kernel)]
 
     def output_rows(self, grads):
-        if grads.dim() == 4:  # unbatched output [K, C, H, W]
+        if grads.dim() == self.spatial_dims + 2:  # unbatched output [K, C, *spatial]
             grads = grads.unsqueeze(1)
         k, n, c = grads.shape[:3]
         return grads.reshape(k, n, c, -1).transpose(2, 3)
 
 
+class Conv2dLayer(_ConvolutionLayer):
+    """``nn.Conv2d`` with ``groups=1``."""
+
+    kind = "conv2d"
+
+    def _patches(self, padded):
+        module = self.module
+        return F.unfold(padded, module.kernel_size, dilation=module.dilation, stride=module.stride)
+
+
+class Conv1dLayer(_ConvolutionLayer):
+    """``nn.Conv1d`` with ``groups=1``: the 2-d patches of a height-1 image, in the weight's (c, i) order."""
+
+    kind = "conv1d"
+    spatial_dims = 1
+
+    def _patches(self, padded):
+        module = self.module
+        return F.unfold(padded.unsqueeze(2), (1, module.kernel_size[0]), dilation=(1, module.dilation[0]),
+                        stride=(1, module.stride[0]))
+
+
+class EmbeddingLayer(LayerAdapter):
+    """``nn.Embedding`` seen as a dense layer on one-hot inputs: ``s = W^T onehot(i)``.
+
+    The gradient matrix is ``W^T``-shaped, ``[d, V]`` (``out_dim = d``, ``in_dim = V``,
+    no bias), so one example's gradient is ``sum_t g_t onehot(i_t)^T`` as for Linear.
+    The input rows are the index tensor itself, ``[N, T]`` (long): one-hot rows are
+    never built.  The leading index dimension is the batch, the rest are positions.
+    """
+
+    kind = "embedding"
+
+    def __init__(self, module: nn.Embedding, name: str):
+        self.module = module
+        self.name = name
+        self.weight = module.weight
+        self.bias = None
+
+    @property
+    def out_dim(self) -> int:
+        return self.weight.shape[1]
+
+    @property
+    def in_dim(self) -> int:
+        return self.weight.shape[0]
+
+    @property
+    def padding_idx(self) -> Optional[int]:
+        return self.module.padding_idx
+
+    def input_rows(self, inputs):
+        if inputs.dim() == 0:
+            inputs = inputs.reshape(1)
+        return inputs.reshape(inputs.shape[0], -1)
+
+    def output_rows(self, grads):
+        if grads.dim() == 2:  # a single index: output [d]
+            grads = grads.unsqueeze(1)
+        return grads.reshape(grads.shape[0], grads.shape[1], -1, grads.shape[-1])
+
+    def gradient_matrix(self, weight_grad, bias_grad=None):
+        return weight_grad.T
+
+    def split_matrix(self, matrix):
+        return matrix.T, None
+
+
+class _NormLayer(LayerAdapter):
+    """Elementwise affine ``y = gamma x_hat + beta`` per channel: a scalar "linear layer" per channel.
+
+    The gradient matrix is ``[C, 1 (+1)]``: column 0 the ``gamma`` gradient, the last
+    column the ``beta`` gradient (the bias, as for the other layers), ``C`` the number of
+    affine parameters.  Input rows are ``x_hat`` recomputed from the layer's input,
+    ``[N, T, C]``; output-gradient rows ``[K, N, T, C]`` on the same positions.
+    """
+
+    @property
+    def out_dim(self) -> int:
+        return self.weight.numel()
+
+    @property
+    def in_dim(self) -> int:
+        return 1 + int(self.has_bias)
+
+    def gradient_matrix(self, weight_grad, bias_grad=None):
+        matrix = weight_grad.reshape(-1, 1)
+        if not self.has_bias:
+            return matrix
+        if bias_grad is None:
+            bias_grad = torch.zeros_like(matrix)
+        return torch.cat([matrix, bias_grad.reshape(-1, 1)], dim=1)
+
+    def split_matrix(self, matrix):
+        weight = matrix[:, 0].reshape(self.weight.shape)
+        return weight, (matrix[:, 1].reshape(self.bias.shape) if self.has_bias else None)
+
+
+class LayerNormLayer(_NormLayer):
+    """``nn.LayerNorm`` with ``elementwise_affine=True`` (with or without bias), any ``normalized_shape``."""
+
+    kind = "layer_norm"
+
+    def _batched(self, tensor, extra):
+        unbatched = tensor.dim() - extra == len(self.module.normalized_shape)
+        return tensor.unsqueeze(extra) if unbatched else tensor
+
+    def input_rows(self, inputs):
+        module = self.module
+        inputs = self._batched(inputs, 0)
+        normalized = F.layer_norm(inputs, module.normalized_shape, eps=module.eps)
+        return normalized.reshape(inputs.shape[0], -1, self.out_dim)
+
+    def output_rows(self, grads):
+        grads = self._batched(grads, 1)
+        return grads.reshape(grads.shape[0], grads.shape[1], -1, self.out_dim)
+
+
+class BatchNormLayer(_NormLayer):
+    """``nn.BatchNorm1d/2d/3d`` with ``affine=True`` in training mode: ``x_hat`` from the batch statistics.
+
+    The batch statistics couple the examples, but not through ``gamma`` and ``beta``:
+    ``x_hat`` does not depend on them, so the per-example gradients in them are
+    ``sum_t g x_hat`` and ``sum_t g`` as for any elementwise affine map.
+    """
+
+    kind = "batch_norm"
+
+    def input_rows(self, inputs):
+        normalized = F.batch_norm(inputs, None, None, training=True, eps=self.module.eps)
+        return normalized.reshape(inputs.shape[0], inputs.shape[1], -1).transpose(1, 2)
+
+    def output_rows(self, grads):
+        k, n, c = grads.shape[:3]
+        return grads.reshape(k, n, c, -1).transpose(2, 3)
+
+
+def _plain(module: nn.Module, cls) -> bool:
+    """An instance of ``cls`` that computes what ``cls`` computes (subclasses may change the forward)."""
+    return isinstance(module, cls) and type(module).forward is cls.forward
+
+
 def adapter_for(module: nn.Module, name: str) -> Optional[LayerAdapter]:
     """The adapter for a supported layer, ``None`` (with a warning where useful) otherwise."""
-    if type(module) is nn.Linear or (isinstance(module, nn.Linear) and type(module).forward is nn.Linear.forward):
+    if _plain(module, nn.Linear):
         return LinearLayer(module, name)
-    if isinstance(module, nn.Conv2d) and type(module).forward is nn.Conv2d.forward:
-        if module.groups != 1:
-            warnings.warn(f"{name}: Conv2d with groups={module.groups} has no Kronecker block; "
-                          "its parameters use the fallback rule", stacklevel=3)
-            return None
-        return Conv2dLayer(module, name)
+    for cls, adapter in ((nn.Conv2d, Conv2dLayer), (nn.Conv1d, Conv1dLayer)):
+        if _plain(module, cls):
+            if module.groups != 1:
+                warnings.warn(f"{name}: {cls.__name__} with groups={module.groups} has no Kronecker block; "
+                              "its parameters use the fallback rule", stacklevel=3)
+                return None
+            return adapter(module, name)
+    if _plain(module, nn.Embedding):
+        return _embedding_adapter(module, name)
+    if _plain(module, nn.LayerNorm) and module.weight is not None:
+        return LayerNormLayer(module, name)
+    if isinstance(module, (nn.BatchNorm1d, nn.BatchNorm2d, nn.BatchNorm3d)) \
+            and type(module).forward is nn.modules.batchnorm._BatchNorm.forward and module.affine:
+        return BatchNormLayer(module, name)
     return None
+
+
+def _embedding_adapter(module: nn.Embedding, name: str) -> Optional[EmbeddingLayer]:
+    if module.sparse and module.weight.requires_grad:
+        # The optimizer's finiteness checks and fallback rules work on dense gradients only.
+        raise ValueError(f"{name}: nn.Embedding(sparse=True) is not supported (sparse gradients); "
+                         "use sparse=False, or freeze the embedding (weight.requires_grad_(False))")
+    if module.scale_grad_by_freq:
+        warnings.warn(f"{name}: nn.Embedding(scale_grad_by_freq=True) scales gradients by batch counts, which "
+                      "the Kronecker block does not describe; its weight uses the fallback rule", stacklevel=4)
+        return None
+    return EmbeddingLayer(module, name)

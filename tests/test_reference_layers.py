@@ -1,0 +1,571 @@
+"""Curvature blocks of Conv1d, Embedding, LayerNorm and BatchNorm against independent float64 references.
+
+References: the exact per-layer Fisher ``F = c sum_n J_n^T H_n J_n`` (Martens & Grosse 2015, sec. 9)
+with ``J_n`` the Jacobian of the batch output ``f_n`` in the layer's parameters by
+``torch.func.jacrev`` (of the whole batch, so batch norm's coupling through the batch statistics
+is included), ``H = 2 I`` for ``MSELoss`` and ``diag(p) - p p^T`` for ``CrossEntropyLoss``;
+input patches cut out by numpy slicing; numpy.linalg.solve / numpy.kron for the damped solves.
+Block ordering (API of ``dense_curvature``): column-major vec of the gradient matrix, written
+out here per layer kind without ngopt's adapters: ``[d_out, d_in (+bias)]`` for convolutions,
+``W^T`` ``[d, V]`` for embeddings (so: the rows of ``W`` one after the other), ``[C, (gamma, beta)]``
+for norm layers (so: all gammas, then all betas).
+
+Measured numbers (``python -m pytest tests/test_reference_layers.py -s`` prints them).
+"""
+from __future__ import annotations
+
+import copy
+import io
+import time
+import warnings
+
+import numpy as np
+import pytest
+import torch
+from torch import nn
+from torch.func import functional_call, jacrev
+
+import ngopt
+from ngopt.fisher_probe import exact_layer_fisher as probe_exact_fisher, probe_fisher_quality
+from test_reference_blocks import EXACT_RTOL, recorded_optimizer, relative_error
+
+PAIR_RTOL = 1e-10
+
+
+# ----------------------------------------------------------------------------- torch.func reference
+def module_name(model, module):
+    return next(name for name, m in model.named_modules() if m is module)
+
+
+def batch_jacobian(model, module, inputs):
+    """``{"weight": [N, O, *shape], "bias": ...}``: Jacobian of the flattened batch output in the layer's parameters."""
+    prefix = module_name(model, module)
+    names = ["weight"] + (["bias"] if getattr(module, "bias", None) is not None else [])
+    params = {(f"{prefix}.{k}" if prefix else k): getattr(module, k).detach() for k in names}
+
+    def output(p):
+        return functional_call(model, p, (inputs,), strict=False).reshape(len(inputs), -1)
+
+    jac = jacrev(output)(params)
+    return output(params).detach(), {k.rsplit(".", 1)[-1]: v for k, v in jac.items()}
+
+
+def block_ordered(kind, jac):
+    """``[N, O, P]`` in the blocks' ordering, written out per kind (see the module docstring)."""
+    weight = jac["weight"]
+    n, o = weight.shape[:2]
+    if kind == "embedding":  # vec of W^T column-major: row v of W is column v of W^T
+        return weight.reshape(n, o, -1)
+    if kind == "norm":  # [gamma | beta]
+        return torch.cat([weight.reshape(n, o, -1)] + ([jac["bias"].reshape(n, o, -1)] if "bias" in jac else []), -1)
+    matrix = weight.reshape(n, o, weight.shape[2], -1)
+    if "bias" in jac:
+        matrix = torch.cat([matrix, jac["bias"].unsqueeze(-1)], -1)
+    return matrix.transpose(-1, -2).reshape(n, o, -1)
+
+
+def without_running_statistics(model):
+    """Batch norm on batch statistics only, as in training, minus the buffer updates torch.func refuses."""
+    for m in model.modules():
+        if isinstance(m, nn.modules.batchnorm._BatchNorm):
+            m.track_running_stats, m.running_mean, m.running_var, m.num_batches_tracked = False, None, None, None
+    return model
+
+
+def exact_fisher(model, module, inputs, kind, criterion):
+    """The exact per-layer Fisher of a mean-reduced ``MSELoss`` or ``CrossEntropyLoss`` (training mode)."""
+    output, jac = batch_jacobian(model, module, inputs)
+    jacobian = block_ordered(kind, jac).detach()
+    if criterion == "mse":
+        return 2.0 / output.numel() * torch.einsum("nop,noq->pq", jacobian, jacobian)
+    prob = torch.softmax(output, dim=1)
+    hessian = torch.diag_embed(prob) - prob.unsqueeze(2) * prob.unsqueeze(1)
+    return torch.einsum("nop,noq,nqr->pr", jacobian, hessian, jacobian) / len(inputs)
+
+
+def reference_and_optimizer(model, module_path, inputs, targets, kind, criterion, **options):
+    """Exact Fisher of the pre-step weights (on a copy) and an optimizer after one recorded step."""
+    reference_model = without_running_statistics(copy.deepcopy(model))
+    reference = exact_fisher(reference_model, reference_model.get_submodule(module_path), inputs, kind, criterion)
+    loss_fn = nn.MSELoss() if criterion == "mse" else nn.CrossEntropyLoss()
+    opt = recorded_optimizer(model, loss_fn, inputs, targets, **options)
+    return reference, opt
+
+
+def targets_for(criterion, n, generator_seed=5, classes=3, dims=None):
+    generator = torch.Generator().manual_seed(generator_seed)
+    if criterion == "mse":
+        return torch.randn(dims, generator=generator, dtype=torch.float64)
+    return torch.randint(0, classes, (n,), generator=generator)
+
+
+def check_eigenbasis_against_exact(block, reference, kfac_error, vocab_basis=None):
+    # EKFAC (George et al., NeurIPS 2018): with the exact Fisher as statistics the scales are
+    # diag(Q^T F Q), Q the Kronecker eigenbasis; Q S Q^T is then the closest matrix diagonal in Q to F
+    # (Frobenius), hence never further from F than K-FAC, which is also diagonal in Q.
+    state = block.state
+    if vocab_basis is None:
+        basis = torch.kron(state["basis_in"], state["basis_out"])
+    else:
+        basis = torch.kron(torch.eye(vocab_basis, dtype=torch.float64), state["basis_out"].contiguous())
+    expected = torch.diagonal(basis.T @ reference @ basis)
+    assert relative_error(state["scales"].T.reshape(-1), expected) <= 1e-10
+    error = relative_error(block.dense_curvature(), reference)
+    assert error <= kfac_error + 1e-12
+    return error
+
+
+# ----------------------------------------------------------------------------- Conv1d
+def brute_force_patches_1d(inputs, conv):
+    """Input patches ``[N, positions, C*k]`` by numpy slicing, in the weight's (c, i) order."""
+    x = inputs.numpy()
+    (kernel,), (stride,), (dilation,) = conv.kernel_size, conv.stride, conv.dilation
+    if conv.padding == "same":  # total d(k-1), the odd one on the far side (PyTorch docs)
+        total = dilation * (kernel - 1)
+        pad = (total // 2, total - total // 2)
+    elif conv.padding == "valid":
+        pad = (0, 0)
+    else:
+        pad = (conv.padding[0], conv.padding[0])
+    mode = {"zeros": "constant", "reflect": "reflect", "replicate": "edge", "circular": "wrap"}[conv.padding_mode]
+    padded = np.pad(x, [(0, 0), (0, 0), pad], mode=mode)  # numpy.pad
+    span = dilation * (kernel - 1) + 1
+    length = (padded.shape[2] - span) // stride + 1
+    patches = np.stack([padded[:, :, i * stride:i * stride + span:dilation].reshape(x.shape[0], -1)
+                        for i in range(length)], axis=1)
+    return torch.as_tensor(patches), length
+
+
+CONV1D_SETTINGS = [
+    dict(kernel_size=3),
+    dict(kernel_size=3, stride=2, padding=1),
+    dict(kernel_size=2, padding=2, dilation=3),
+    dict(kernel_size=3, padding="same", padding_mode="reflect"),
+    dict(kernel_size=2, padding="same"),                          # odd total padding: asymmetric
+    dict(kernel_size=3, padding="same", dilation=2, padding_mode="replicate"),
+    dict(kernel_size=3, padding=1, padding_mode="circular", stride=2),
+    dict(kernel_size=4, padding="valid", stride=3),
+]
+
+
+@pytest.mark.filterwarnings("ignore:Using padding='same' with even kernel lengths")  # torch's own note
+@pytest.mark.parametrize("settings", CONV1D_SETTINGS, ids=lambda s: ",".join(f"{k}={v}" for k, v in s.items()))
+@pytest.mark.parametrize("bias", [True, False])
+def test_conv1d_factors_against_brute_force_patches(settings, bias):
+    # KFC (Grosse & Martens 2016) in this package's scaling: A = mean over examples and output positions
+    # of [patch; 1][patch; 1]^T, G = (1/c) sum over examples and positions of g g^T, g = dL/ds of the
+    # mean cross-entropy with the observed labels (empirical Fisher, c = 1/N), by plain autograd.
+    torch.manual_seed(30)
+    conv = nn.Conv1d(2, 3, bias=bias, **settings).double()
+    inputs = torch.randn(4, 2, 9, dtype=torch.float64)
+    patches, length = brute_force_patches_1d(inputs, conv)
+    with torch.no_grad():  # the patches reproduce the layer: conv(x) = patches @ W^T (+ b) (torch.nn.Conv1d)
+        direct = conv(inputs).transpose(1, 2)
+    rebuilt = patches @ conv.weight.detach().reshape(3, -1).T + (conv.bias.detach() if bias else 0.0)
+    torch.testing.assert_close(rebuilt, direct, rtol=1e-12, atol=1e-12)
+
+    model = nn.Sequential(conv, nn.Tanh(), nn.Flatten(), nn.Linear(3 * length, 4)).double()
+    targets = torch.randint(0, 4, (4,))
+    reference = copy.deepcopy(model)
+    outputs = reference[0](inputs)
+    grad, = torch.autograd.grad(nn.functional.cross_entropy(reference[1:](outputs), targets), outputs)
+    grad = grad.transpose(1, 2)
+    opt = recorded_optimizer(model, nn.CrossEntropyLoss(), inputs, targets, fisher="empirical")
+
+    rows = torch.cat([patches, torch.ones(patches.shape[:2] + (1,), dtype=torch.float64)], -1) if bias else patches
+    state = opt.state[conv.weight]
+    factor_in = torch.einsum("nti,ntj->ij", rows, rows) / (rows.shape[0] * rows.shape[1])
+    torch.testing.assert_close(state["factor_in"], factor_in, rtol=EXACT_RTOL, atol=1e-13)
+    torch.testing.assert_close(state["factor_out"], torch.einsum("nti,ntj->ij", grad, grad) * len(inputs),
+                               rtol=1e-10, atol=1e-14)
+
+
+def conv1d_problem(deep, criterion, n=6, seed=31):
+    torch.manual_seed(seed)
+    conv = nn.Conv1d(2, 3, 3, padding=1, stride=2)
+    if deep:
+        model = nn.Sequential(conv, nn.Tanh(), nn.Flatten(), nn.Linear(3 * 4, 3)).double()
+    else:
+        model = nn.Sequential(conv, nn.Flatten()).double()
+    inputs = torch.randn(n, 2, 8, dtype=torch.float64)
+    dims = (n, 3 * 4) if not deep else (n, 3)
+    return model, inputs, targets_for(criterion, n, dims=dims)
+
+
+@pytest.mark.parametrize("curvature", ["kfac", "ekfac", "diag"])
+def test_conv1d_blocks_exact_for_gaussian_output(curvature):
+    # A conv layer whose output is the Gaussian (MSE) model output: s_nt = W a_nt, J_n^T J_n =
+    # sum_t (a a^T) (x) I, so F = 2c sum_{n,t} (a a^T) (x) I = (mean_{n,t} a a^T) (x) (2 c N T I):
+    # the Kronecker form is exact (Martens & Grosse 2015 for the dense case; Grosse & Martens 2016),
+    # EKFAC too (its scales are then L_G L_A^T), and the diagonal is diag(F).
+    model, inputs, targets = conv1d_problem(False, "mse")
+    reference, opt = reference_and_optimizer(model, "0", inputs, targets, "dense", "mse", curvature=curvature)
+    block = opt.blocks["0"]
+    assert block.layer.kind == "conv1d" and block.curvature == curvature
+    if curvature == "diag":
+        reference = torch.diag(torch.diagonal(reference))
+    assert relative_error(block.dense_curvature(), reference) <= EXACT_RTOL
+
+
+# ----------------------------------------------------------------------------- Embedding
+def embedding_problem(deep, criterion, padding_idx=None, vocab=7, dim=3, n=8, positions=4, seed=40):
+    torch.manual_seed(seed)
+    embedding = nn.Embedding(vocab, dim, padding_idx=padding_idx)
+    if deep:
+        model = nn.Sequential(embedding, nn.Flatten(), nn.Tanh(), nn.Linear(positions * dim, 3)).double()
+    else:
+        model = nn.Sequential(embedding, nn.Flatten()).double()
+    generator = torch.Generator().manual_seed(seed)
+    tokens = torch.randint(0, vocab - 2, (n, positions), generator=generator)  # tokens V-2, V-1 never seen
+    tokens[:, 1] = tokens[:, 0]  # every example repeats a token: per-example sums must add them first
+    dims = (n, positions * dim) if not deep else (n, 3)
+    return model, tokens, targets_for(criterion, n, dims=dims)
+
+
+@pytest.mark.parametrize("padding_idx", [None, 0])
+@pytest.mark.parametrize("curvature", ["kfac", "ekfac", "diag"])
+def test_embedding_blocks_exact_for_gaussian_output(curvature, padding_idx):
+    # Embedding output = Gaussian model output: s_nt = W^T e_{i_nt}, so F = 2c sum_{n,t} e e^T (x) I =
+    # diag(counts) (x) 2c I = diag(f) (x) (2 c N T I), f the token frequencies: K-FAC with a diagonal
+    # input factor is exact (Martens & Grosse 2015, eq. 1-3 with one-hot inputs), EKFAC as well; padded
+    # positions have no gradient (PyTorch's padding_idx), and their zero row in f matches F.
+    model, tokens, targets = embedding_problem(False, "mse", padding_idx)
+    reference, opt = reference_and_optimizer(model, "0", tokens, targets, "embedding", "mse", curvature=curvature)
+    block = opt.blocks["0"]
+    if curvature == "diag":
+        reference = torch.diag(torch.diagonal(reference))
+    assert relative_error(block.dense_curvature(), reference) <= EXACT_RTOL
+    if padding_idx is not None:
+        assert float(torch.diagonal(reference).reshape(7, 3)[padding_idx].abs().max()) == 0.0
+
+
+CLASSIFIERS = {  # (problem, parameter ordering, vocabulary for EKFAC's identity input basis)
+    "conv1d": (lambda: conv1d_problem(True, "ce"), "dense", None),
+    "embedding": (lambda: embedding_problem(True, "ce", padding_idx=0), "embedding", 7),
+}
+
+
+@pytest.mark.parametrize("network", list(CLASSIFIERS))
+def test_blocks_against_exact_fisher_of_a_classifier(network):
+    problem, kind, vocab = CLASSIFIERS[network]
+    model, inputs, targets = problem()
+    errors = {}
+    for curvature in ("kfac", "ekfac", "diag"):
+        reference, opt = reference_and_optimizer(copy.deepcopy(model), "0", inputs, targets, kind, "ce",
+                                                 curvature=curvature)
+        block = opt.blocks["0"]
+        if curvature == "diag":
+            # diag(F) exactly: per-example gradients are summed over positions (repeated tokens) before squaring.
+            assert relative_error(torch.diagonal(block.dense_curvature()), torch.diagonal(reference)) <= EXACT_RTOL
+        elif curvature == "ekfac":
+            errors[curvature] = check_eigenbasis_against_exact(block, reference, errors["kfac"], vocab_basis=vocab)
+        else:
+            if kind == "embedding":  # A = diag(token counts off padding) / rows, by torch.bincount
+                counts = torch.bincount(inputs[inputs != 0].reshape(-1), minlength=vocab).double()
+                torch.testing.assert_close(block.state["factor_in"], counts / inputs.numel(), rtol=EXACT_RTOL, atol=0)
+            errors[curvature] = relative_error(block.dense_curvature(), reference)
+    print(f"{network} classifier: relative Frobenius error K-FAC {errors['kfac']:.4g}, EKFAC {errors['ekfac']:.4g}")
+    assert 1e-3 <= errors["kfac"] <= 0.9  # not exact: the output Fisher varies with the example
+
+
+def test_embedding_precondition_matches_numpy_solve_with_factored_damping():
+    # numpy.linalg.solve(kron(diag(f_d), G_d), vec(M)) with factored Tikhonov damping
+    # f_d = f + pi sqrt(lambda), G_d = G + sqrt(lambda)/pi I, pi^2 = (tr A/V)/(tr G/d) (Martens & Grosse 2015,
+    # sec. 6.3); damped_product applies the same matrix.
+    model, tokens, targets = embedding_problem(True, "ce")
+    damping = 0.05
+    opt = recorded_optimizer(model, nn.CrossEntropyLoss(), tokens, targets, damping=damping)
+    block = opt.blocks["0"]
+    f, g = block.state["factor_in"].numpy(), block.state["factor_out"].numpy()
+    pi = np.sqrt((f.sum() / len(f)) / (np.trace(g) / len(g)))
+    damped = np.kron(np.diag(f + pi * np.sqrt(damping)), g + np.sqrt(damping) / pi * np.eye(len(g)))
+    np.testing.assert_allclose(block.dense_curvature(damping).numpy(), damped, rtol=1e-12)
+    grad = model[0].weight.grad.T.numpy()  # W^T-shaped [d, V]
+    expected = np.linalg.solve(damped, grad.reshape(-1, order="F")).reshape(grad.shape, order="F")
+    np.testing.assert_allclose(block.precondition(torch.as_tensor(grad), damping).numpy(), expected,
+                               rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(block.damped_product(torch.as_tensor(expected), damping).numpy(), grad,
+                               rtol=1e-9, atol=1e-12)
+
+
+def test_embedding_reduce_weight_sharing_keeps_the_diagonal_of_the_reduced_input_factor():
+    # "reduce" (Eschenhagen et al., NeurIPS 2023, sec. 3): a_n = mean_t onehot(i_nt), g_n = sum_t g_nt;
+    # the block keeps diag(mean_n a_n a_n^T) (numpy one-hot rows) and G = (1/c) sum_n g_n g_n^T with
+    # g = dL/ds of the summed loss by plain autograd (empirical Fisher, c = 1).
+    model, tokens, targets = embedding_problem(True, "ce")
+    reference = copy.deepcopy(model)
+    outputs = reference[0](tokens)
+    grad, = torch.autograd.grad(nn.functional.cross_entropy(reference[1:](outputs), targets, reduction="sum"),
+                                outputs)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        opt = ngopt.NaturalGradient(model, nn.CrossEntropyLoss(reduction="sum"), fisher="empirical",
+                                    weight_sharing="reduce", stats_every=1, invert_every=1, stats_ema=0.0)
+    opt.zero_grad()
+    nn.functional.cross_entropy(model(tokens), targets, reduction="sum").backward()
+    opt.step()
+    one_hot = np.eye(7)[tokens.numpy()].mean(axis=1)  # [N, V]
+    state = opt.state[model[0].weight]
+    np.testing.assert_allclose(state["factor_in"].numpy(), np.diag(one_hot.T @ one_hot / len(one_hot)),
+                               rtol=EXACT_RTOL)
+    summed = grad.sum(1)
+    torch.testing.assert_close(state["factor_out"], summed.T @ summed, rtol=EXACT_RTOL, atol=1e-14)
+
+
+def embedding_state_bytes(vocab, dim, curvature):
+    torch.manual_seed(0)
+    model = nn.Sequential(nn.Embedding(vocab, dim), nn.Flatten(), nn.Linear(4 * dim, 5))
+    opt = ngopt.NaturalGradient(model, nn.CrossEntropyLoss(), curvature=curvature, stats_every=1,
+                                invert_every=1, momentum=0.0)
+    tokens = torch.randint(0, vocab, (64, 4))
+    targets = torch.randint(0, 5, (64,))
+    started = time.perf_counter()
+    for _ in range(2):
+        opt.zero_grad()
+        nn.functional.cross_entropy(model(tokens), targets).backward()
+        opt.step()
+    seconds = (time.perf_counter() - started) / 2
+    state = opt.state[model[0].weight]
+    return sum(t.numel() * t.element_size() for t in state.values() if torch.is_tensor(t)), seconds
+
+
+@pytest.mark.parametrize("curvature", ["kfac", "ekfac", "diag"])
+def test_embedding_state_is_linear_in_the_vocabulary(curvature):
+    # With d fixed, a diagonal input factor keeps O(V d + d^2) numbers: going from V = 1000 to 20000
+    # multiplies the state by at most 20 (plus the d x d part); any V x V factor would multiply it by
+    # 400 and would need 3.2 GB at V = 20000 (float64) / 1.6 GB (float32).  Every refresh and inversion
+    # runs here (stats_every = invert_every = 1), and a step stays well under a second.
+    small, _ = embedding_state_bytes(1000, 8, curvature)
+    large, seconds = embedding_state_bytes(20000, 8, curvature)
+    weight_bytes = 20000 * 8 * 4
+    print(f"embedding {curvature}: state {small} B at V=1000, {large} B at V=20000 "
+          f"({large / weight_bytes:.2f} x the weight), {seconds * 1e3:.1f} ms per step")
+    assert large / small <= 20.5
+    assert large <= 4 * weight_bytes
+    assert seconds < 1.0
+
+
+def test_sparse_embedding_is_refused_with_a_clear_error_and_a_frozen_one_is_fine():
+    # The optimizer's finiteness checks and fallback rules take dense gradients (common practice in
+    # torch.optim: sparse gradients need SparseAdam).
+    model = nn.Sequential(nn.Embedding(10, 4, sparse=True), nn.Flatten(), nn.Linear(12, 3))
+    with pytest.raises(ValueError, match="sparse=True"):
+        ngopt.NaturalGradient(model, nn.CrossEntropyLoss())
+    model[0].weight.requires_grad_(False)
+    opt = ngopt.NaturalGradient(model, nn.CrossEntropyLoss())
+    assert list(opt.blocks) == ["2"]
+
+
+def test_embedding_with_frequency_scaled_gradients_uses_the_fallback_rule():
+    model = nn.Sequential(nn.Embedding(10, 4, scale_grad_by_freq=True), nn.Flatten(), nn.Linear(12, 3))
+    with pytest.warns(UserWarning, match="scale_grad_by_freq"):
+        opt = ngopt.NaturalGradient(model, nn.CrossEntropyLoss())
+    assert list(opt.blocks) == ["2"]
+
+
+# ----------------------------------------------------------------------------- LayerNorm and BatchNorm
+def pair_mask(channels, k):
+    """Entries of the [gamma | beta] ordering that lie in one channel's (gamma_c, beta_c) block."""
+    channel = torch.arange(k * channels) % channels
+    return channel.unsqueeze(0) == channel.unsqueeze(1)
+
+
+def randomize_affine(norm):
+    with torch.no_grad():
+        norm.weight.normal_(1.0, 0.5)
+        if norm.bias is not None:
+            norm.bias.normal_(0.0, 0.5)
+
+
+def layer_norm_problem(shape, bias, n=8, seed=50):
+    torch.manual_seed(seed)
+    channels = int(np.prod(shape))
+    norm = nn.LayerNorm(shape, bias=bias)
+    if len(shape) == 1:
+        model = nn.Sequential(nn.Linear(4, channels), norm, nn.Tanh(), nn.Linear(channels, 3))
+        inputs = torch.randn(n, 4, dtype=torch.float64)
+    else:  # positions: [N, T, *shape]
+        model = nn.Sequential(nn.Linear(4, channels), nn.Unflatten(-1, shape), norm, nn.Flatten(1), nn.Tanh(),
+                              nn.Linear(3 * channels, 3))
+        inputs = torch.randn(n, 3, 4, dtype=torch.float64)
+    model = model.double()
+    randomize_affine(norm)
+    return model, module_name(model, norm), inputs, channels
+
+
+def batch_norm_problem(kind, n=8, seed=51):
+    torch.manual_seed(seed)
+    if kind == "bn1d-flat":
+        model = nn.Sequential(nn.Linear(4, 5), nn.BatchNorm1d(5), nn.Tanh(), nn.Linear(5, 3))
+        inputs, channels = torch.randn(n, 4), 5
+    elif kind == "bn1d-seq":
+        model = nn.Sequential(nn.Conv1d(2, 3, 3), nn.BatchNorm1d(3), nn.Tanh(), nn.Flatten(), nn.Linear(3 * 4, 3))
+        inputs, channels = torch.randn(n, 2, 6), 3
+    else:
+        model = nn.Sequential(nn.Conv2d(1, 3, 3), nn.BatchNorm2d(3), nn.Tanh(), nn.Flatten(), nn.Linear(3 * 9, 3))
+        inputs, channels = torch.randn(n, 1, 5, 5), 3
+    model = model.double()
+    randomize_affine(model[1])
+    return model, "1", inputs.double(), channels
+
+
+NORM_PROBLEMS = {
+    "layernorm": lambda: layer_norm_problem((6,), True),
+    "layernorm-nobias": lambda: layer_norm_problem((6,), False),
+    "layernorm-2d-positions": lambda: layer_norm_problem((2, 3), True),
+    "batchnorm1d-flat": lambda: batch_norm_problem("bn1d-flat"),
+    "batchnorm1d-seq": lambda: batch_norm_problem("bn1d-seq"),
+    "batchnorm2d": lambda: batch_norm_problem("bn2d"),
+}
+
+
+@pytest.mark.parametrize("problem", list(NORM_PROBLEMS))
+def test_norm_blocks_equal_the_exact_fisher_restricted_to_channel_pairs(problem):
+    # The per-layer Fisher of (gamma, beta) by torch.func on the whole batch (batch norm in training
+    # mode: the batch statistics couple the examples, but x_hat does not depend on gamma or beta, so the
+    # batch Jacobian's rows are the per-example gradients); the block keeps exactly its entries within
+    # each channel's (gamma_c, beta_c) pair, the diagonal block exactly its diagonal.
+    model, path, inputs, channels = NORM_PROBLEMS[problem]()
+    targets = targets_for("ce", len(inputs))
+    k = 1 + int(model.get_submodule(path).bias is not None)
+    for curvature in ("kfac", "ekfac", "diag"):
+        reference, opt = reference_and_optimizer(copy.deepcopy(model), path, inputs, targets, "norm", "ce",
+                                                 curvature=curvature)
+        block = opt.blocks[path]
+        mask = pair_mask(channels, k)
+        kept = reference * mask if curvature != "diag" else torch.diag(torch.diagonal(reference))
+        assert relative_error(block.dense_curvature(), kept) <= PAIR_RTOL, curvature
+    omitted = relative_error(reference * mask, reference)
+    print(f"{problem}: the pairs omit {omitted:.4g} of the exact Fisher (relative Frobenius), "
+          f"the diagonal {relative_error(torch.diag(torch.diagonal(reference)), reference):.4g}")
+    assert omitted > 1e-3  # the cross-channel entries are not zero: the check above is not vacuous
+
+
+def test_norm_pair_block_preconditions_like_numpy_solve():
+    # numpy.linalg.solve((B + lambda I), vec(grad)) on the dense block-diagonal matrix; damped_product inverse.
+    model, path, inputs, channels = NORM_PROBLEMS["batchnorm2d"]()
+    damping = 0.03
+    opt = recorded_optimizer(model, nn.CrossEntropyLoss(), inputs, targets_for("ce", len(inputs)), damping=damping)
+    block, layer = opt.blocks[path], model.get_submodule(path)
+    dense = block.dense_curvature(damping).numpy()
+    grad = np.stack([layer.weight.grad.numpy(), layer.bias.grad.numpy()], axis=1)  # [C, (gamma, beta)]
+    expected = np.linalg.solve(dense, grad.reshape(-1, order="F")).reshape(grad.shape, order="F")
+    np.testing.assert_allclose(block.precondition(torch.as_tensor(grad), damping).numpy(), expected,
+                               rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(block.damped_product(torch.as_tensor(expected), damping).numpy(), grad,
+                               rtol=1e-9, atol=1e-12)
+    summary = opt.diagnostics()["layers"][path]
+    eigenvalues = np.linalg.eigvalsh(block.dense_curvature().numpy())  # numpy.linalg on the dense block
+    np.testing.assert_allclose([summary["pair_eig_min"], summary["pair_eig_max"]],
+                               [eigenvalues.min(), eigenvalues.max()], rtol=1e-9, atol=1e-15)
+
+
+# ----------------------------------------------------------------------------- the probe
+def test_probe_uses_each_layer_kinds_ordering():
+    # fisher_probe.exact_layer_fisher against this file's torch.func reference, for every new layer
+    # kind; then the probe's block error is ~0 where the block is exact (embedding into a Gaussian
+    # output), which fails if the probe lays the parameters out differently from the block.
+    model, tokens, targets = embedding_problem(False, "mse")
+    opt = recorded_optimizer(model, nn.MSELoss(), tokens, targets)
+    result = probe_fisher_quality(opt, model, nn.MSELoss(), tokens, targets, warn_angle_deg=180.0)
+    assert result["layers"]["0"]["block_error"] <= 1e-10
+
+    torch.manual_seed(60)
+    model = nn.Sequential(nn.Embedding(6, 4), nn.LayerNorm(4), nn.Flatten(), nn.Unflatten(1, (1, 12)),
+                          nn.Conv1d(1, 2, 3), nn.Tanh(), nn.Flatten(), nn.Linear(2 * 10, 3)).double()
+    randomize_affine(model[1])
+    tokens = torch.randint(0, 6, (8, 3))
+    targets = targets_for("ce", 8)
+    for path, kind in (("0", "embedding"), ("1", "norm"), ("4", "dense")):
+        module = model.get_submodule(path)
+        expected = exact_fisher(model, module, tokens, kind, "ce")
+        got = probe_exact_fisher(model, module, nn.CrossEntropyLoss(), tokens, targets)
+        assert relative_error(got, expected) <= 1e-12, path
+    opt = recorded_optimizer(model, nn.CrossEntropyLoss(), tokens, targets, lr=1e-12)  # weights stay put
+    result = probe_fisher_quality(opt, model, nn.CrossEntropyLoss(), tokens, targets, warn_angle_deg=180.0)
+    assert set(result["layers"]) == {"0", "1", "4", "7"}
+    # LayerNorm behaves alike in eval mode: the pair block of this batch misses only cross-channel entries.
+    mask = pair_mask(4, 2)
+    expected = exact_fisher(model, model[1], tokens, "norm", "ce")
+    assert result["layers"]["1"]["block_error"] == pytest.approx(relative_error(expected * mask, expected), rel=1e-6)
+
+
+# ----------------------------------------------------------------------------- end to end
+def token_model():
+    return nn.Sequential(nn.Embedding(12, 6, padding_idx=0), nn.LayerNorm(6), nn.Flatten(), nn.Tanh(),
+                         nn.Linear(5 * 6, 3))
+
+
+def cnn_model():
+    return nn.Sequential(nn.Conv2d(1, 3, 3), nn.BatchNorm2d(3), nn.Tanh(), nn.Flatten(2), nn.Conv1d(3, 4, 3),
+                         nn.Tanh(), nn.Flatten(), nn.Linear(4 * 14, 3))
+
+
+def token_data(seed=70):
+    generator = torch.Generator().manual_seed(seed)
+    tokens = torch.randint(0, 12, (48, 5), generator=generator)
+    labels = (tokens[:, 0] % 3)  # learnable from the first token
+    return tokens, labels
+
+
+def image_data(seed=71):
+    generator = torch.Generator().manual_seed(seed)
+    images = torch.randn(48, 1, 6, 6, generator=generator)
+    labels = (images[:, 0, :3].sum(dim=(1, 2)) > 0).long() + (images[:, 0, 3:].sum(dim=(1, 2)) > 0).long()
+    return images, labels
+
+
+def train(model, opt, inputs, labels, steps):
+    losses = []
+    for _ in range(steps):
+        opt.zero_grad()
+        loss = nn.functional.cross_entropy(model(inputs), labels)
+        loss.backward()
+        opt.step()
+        losses.append(float(loss.detach()))
+    return losses
+
+
+def make_optimizer(model, curvature):
+    return ngopt.NaturalGradient(model, nn.CrossEntropyLoss(), curvature=curvature, lr=0.3, momentum=0.5,
+                                 stats_every=2, invert_every=4, seed=0)
+
+
+@pytest.mark.parametrize("curvature", ["kfac", "ekfac", "diag"])
+@pytest.mark.parametrize("network", ["embedding-layernorm-linear", "cnn-batchnorm2d-conv1d"])
+def test_training_through_the_new_layers(network, curvature):
+    # Integration: loss goes down within a few steps; every layer gets a block (no fallback warnings,
+    # no fallback parameters); state_dict() round-trips so that a resumed run continues exactly as the
+    # uninterrupted one (API.md behaviour 3).
+    build, (inputs, labels), kinds = {
+        "embedding-layernorm-linear": (token_model, token_data(), {"0": "embedding", "1": "layer_norm",
+                                                                   "4": "linear"}),
+        "cnn-batchnorm2d-conv1d": (cnn_model, image_data(), {"0": "conv2d", "1": "batch_norm", "4": "conv1d",
+                                                             "7": "linear"}),
+    }[network]
+    torch.manual_seed(72)
+    model = build()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no fallback, no uninitialised-curvature or skipped-step warnings
+        opt = make_optimizer(model, curvature)
+        losses = train(model, opt, inputs, labels, 12)
+    assert {name: block.layer.kind for name, block in opt.blocks.items()} == kinds
+    assert "fallback rule" not in repr(opt)
+    assert losses[-1] < 0.8 * losses[0], losses
+    assert opt.diagnostics()["skipped_steps"] == 0
+
+    buffer = io.BytesIO()
+    torch.save({"model": model.state_dict(), "opt": opt.state_dict()}, buffer)
+    buffer.seek(0)
+    saved = torch.load(buffer, weights_only=False)
+    resumed_model = build()
+    resumed_model.load_state_dict(saved["model"])
+    resumed_opt = make_optimizer(resumed_model, curvature)
+    resumed_opt.load_state_dict(saved["opt"])
+    straight = train(model, opt, inputs, labels, 5)
+    resumed = train(resumed_model, resumed_opt, inputs, labels, 5)
+    assert straight == resumed
+    for a, b in zip(model.parameters(), resumed_model.parameters()):
+        assert torch.equal(a, b)
+    for summary in opt.diagnostics()["layers"].values():
+        assert np.isfinite(summary["condition"])
