@@ -73,10 +73,10 @@ key                                meaning                                      
 ``time.extra_backward``            extra backward passes for the sampled/exact Fisher (inside the     s
                                    user's ``backward()``), cumulative
 ``layers.<name>.block``            layer kind of the curvature block (``linear``, ``conv2d``)         --
-``layers.<name>.curvature``        curvature kind (``kfac``, ``diag``)                                --
+``layers.<name>.curvature``        curvature kind (``kfac``, ``ekfac``, ``diag``)                     --
 ``layers.<name>.in_dim``           size of the input factor A (bias column included)                  rows
 ``layers.<name>.out_dim``          size of the output-gradient factor G                               rows
-``layers.<name>.condition``        condition number of the damped block                               1
+``layers.<name>.condition``        condition number of the damped block (EKFAC: of the damped scales) 1
 ``layers.<name>.in_eig_min``       smallest eigenvalue of A (undamped)                                A units
 ``layers.<name>.in_eig_max``       largest eigenvalue of A (undamped)                                 A units
 ``layers.<name>.out_eig_min``      smallest eigenvalue of G (undamped)                                G units
@@ -96,13 +96,20 @@ key                                meaning                                      
 ``layers.<name>.diag_max``         largest entry of the diagonal Fisher (``curvature='diag'``)        curvature
 ``layers.<name>.diag_mean``        mean entry of the diagonal Fisher (``curvature='diag'``)           curvature
 ``layers.<name>.diag_values``      all diagonal entries, ascending (JSONL / TensorBoard only)         curvature
+``layers.<name>.scale_min``        smallest EKFAC scale, the curvature in the Kronecker eigenbasis    curvature
+``layers.<name>.scale_max``        largest EKFAC scale (``curvature='ekfac'``)                        curvature
+``layers.<name>.scale_mean``       mean EKFAC scale (``curvature='ekfac'``)                           curvature
+``layers.<name>.scale_values``     all EKFAC scales, ascending (JSONL / TensorBoard only)             curvature
 ``probe.*``                        result of ``ngopt.fisher_probe.probe_fisher_quality``, written     see there
                                    by ``handle.log_probe(result)``
 =================================  =================================================================  ==========
 
 A = E[a a^T] over layer inputs a (bias as a constant 1), G = E[g g^T] over
 output gradients g; their units are those of a^2 and g^2. pi is the factored
-damping split pi = sqrt((tr A / dim A) / (tr G / dim G)).
+damping split pi = sqrt((tr A / dim A) / (tr G / dim G)).  With
+``curvature='ekfac'`` the factors give only the eigenbasis: the ``in_``/``out_``
+eigenvalue keys still describe A and G, their ``_damping`` keys are the split
+K-FAC would use, and the damping lambda is added to the scales instead.
 """
 
 from __future__ import annotations

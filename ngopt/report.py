@@ -151,10 +151,11 @@ def _column_edges(steps: np.ndarray) -> np.ndarray:
 
 
 def _spectrum_panels(layer: str) -> list:
-    """(values key, damping path, panel title) for the Kronecker factors and the diagonal."""
+    """(values key, damping path, panel title) for the Kronecker factors, the diagonal and EKFAC's scales."""
     return [("in_eigenvalues", ("layers", layer, "in_damping"), "input factor A"),
             ("out_eigenvalues", ("layers", layer, "out_damping"), "output-gradient factor G"),
-            ("diag_values", ("update", "damping"), "diagonal Fisher entries")]
+            ("diag_values", ("update", "damping"), "diagonal Fisher entries"),
+            ("scale_values", ("update", "damping"), "EKFAC scales (eigenbasis diagonal)")]
 
 
 def _draw_spectrum(fig, ax, steps, spectra, damping, title):

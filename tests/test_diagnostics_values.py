@@ -250,3 +250,22 @@ def test_diagonal_block_values():
     assert entry["diag_mean"] == pytest.approx(diagonal.mean(), rel=1e-8)
     np.testing.assert_allclose(entry["diag_values"], np.sort(diagonal), rtol=1e-8)
     assert entry["condition"] == pytest.approx((diagonal.max() + damping) / (diagonal.min() + damping), rel=1e-8)
+
+
+def test_ekfac_block_values():
+    # One linear layer with squared error: the exact Fisher is (2 / (N D)) (X^T X) (x) I_D, K-FAC is
+    # exact, so EKFAC's scales are the eigenvalues of that matrix (numpy.linalg.eigvalsh).
+    x, y, model, loss_fn = least_squares(seed=6)
+    damping = 1e-3
+    opt = make_optimizer(model, loss_fn, curvature="ekfac", damping=damping)
+    opt.track_spectra = True
+    one_step(model, loss_fn, x, y, opt)
+    entry = opt.diagnostics()["layers"]["Linear"]
+    x1 = with_ones(x.numpy())
+    eigenvalues = np.linalg.eigvalsh(2.0 / y.numel() * np.kron(x1.T @ x1, np.eye(y.shape[1])))
+    assert entry["curvature"] == "ekfac"
+    np.testing.assert_allclose(entry["scale_values"], eigenvalues, rtol=1e-7, atol=1e-12)
+    assert entry["scale_min"] == pytest.approx(eigenvalues.min(), rel=1e-7, abs=1e-12)
+    assert entry["scale_max"] == pytest.approx(eigenvalues.max(), rel=1e-7)
+    expected_condition = (eigenvalues.max() + damping) / (max(eigenvalues.min(), 0.0) + damping)
+    assert entry["condition"] == pytest.approx(expected_condition, rel=1e-6)

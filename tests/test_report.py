@@ -147,7 +147,7 @@ def test_clean_run_has_no_warnings(tmp_path):
     assert "warnings:\n  (none)" in (tmp_path / "out" / "summary.txt").read_text()
 
 
-@pytest.mark.parametrize("curvature", ["diag"])
+@pytest.mark.parametrize("curvature", ["diag", "ekfac"])
 def test_diagonal_curvature_spectra_figure(tmp_path, curvature):
     log = digits_run(tmp_path, steps=10, probe=False, curvature=curvature)
     result = write_report(log, tmp_path / "out")
