@@ -19,9 +19,9 @@ DTYPE = torch.float64
 
 
 def small_mlp(seed=0, dtype=DTYPE):
-    """Linear -> Tanh -> LayerNorm -> Linear: two curvature blocks and one fallback layer."""
+    """Linear -> Tanh -> PReLU -> Linear: two curvature blocks and one fallback layer."""
     torch.manual_seed(seed)
-    return nn.Sequential(nn.Linear(6, 8), nn.Tanh(), nn.LayerNorm(8), nn.Linear(8, 3)).to(dtype)
+    return nn.Sequential(nn.Linear(6, 8), nn.Tanh(), nn.PReLU(8), nn.Linear(8, 3)).to(dtype)
 
 
 def regression_batches(count, rows=16, seed=1):
@@ -203,17 +203,21 @@ def test_tiny_damping_warns_and_usual_damping_does_not():
 def test_repr_lists_every_layer_with_its_block_kind():
     torch.manual_seed(0)
     model = nn.Sequential(nn.Conv2d(1, 2, 3), nn.ReLU(), nn.Flatten(), nn.Linear(8, 4), nn.LayerNorm(4),
-                          nn.Linear(4, 2))
-    for curvature in ("kfac", "diag"):
-        text = repr(ngopt.NaturalGradient(model, nn.MSELoss(), curvature=curvature))
+                          nn.Linear(4, 2), nn.PReLU(2))
+    for curvature in ("kfac", "ekfac", "diag"):
+        opt = ngopt.NaturalGradient(model, nn.MSELoss(), curvature=curvature)
+        text = repr(opt)
+        opt.remove_hooks()
         lines = text.splitlines()
-        expected = {"0": "conv2d", "3": "linear", "5": "linear"}
+        expected = {"0": "conv2d", "3": "linear", "4": "layer_norm", "5": "linear"}
         for name, kind in expected.items():
             matching = [line for line in lines if line.strip().startswith(f"{name}:")]
             assert len(matching) == 1, text
-            assert kind in matching[0] and curvature in matching[0], matching[0]
-        # LayerNorm's weight and bias: 2 tensors of 4 numbers go to the fallback rule.
-        assert any("fallback" in line and "2 tensors" in line and "8 parameters" in line for line in lines), text
+            assert kind in matching[0], matching[0]
+            if kind != "layer_norm":  # norm layers keep their own exact per-channel block
+                assert curvature in matching[0], matching[0]
+        # PReLU's slopes: 1 tensor of 2 numbers goes to the fallback rule.
+        assert any("fallback" in line and "1 tensors" in line and "2 parameters" in line for line in lines), text
 
 
 # ---------------------------------------------------------------------------- param_groups and schedulers

@@ -30,7 +30,7 @@ import ngopt
 
 DTYPE = torch.float64
 FISHERS = ("sampled", "exact", "empirical")
-CURVATURES = ("kfac", "diag")
+CURVATURES = ("kfac", "ekfac", "diag")
 
 
 def quiet_optimizer(model, loss_fn, **kwargs):
@@ -40,10 +40,10 @@ def quiet_optimizer(model, loss_fn, **kwargs):
 
 
 def small_cnn(seed=0, inplace=False):
-    """Conv2d -> ReLU -> Linear -> LayerNorm -> Tanh -> Linear on 1x4x4 images."""
+    """Conv2d -> ReLU -> Linear -> LayerNorm -> PReLU -> Linear on 1x4x4 images (PReLU: fallback rule)."""
     torch.manual_seed(seed)
     return nn.Sequential(nn.Conv2d(1, 3, 3, padding=1), nn.ReLU(inplace=inplace), nn.Flatten(),
-                         nn.Linear(48, 8), nn.LayerNorm(8), nn.Tanh(), nn.Linear(8, 3)).to(DTYPE)
+                         nn.Linear(48, 8), nn.LayerNorm(8), nn.PReLU(8), nn.Linear(8, 3)).to(DTYPE)
 
 
 def tanh_mlp(seed=0, sizes=(3, 4, 2)):
@@ -110,7 +110,7 @@ def test_ordinary_loop_works_and_leaves_the_users_gradients_alone(fisher, curvat
         with torch.no_grad():
             for p, q in zip(model.parameters(), plain.parameters()):
                 q.copy_(p)
-    assert set(opt.blocks) == {"0", "3", "6"}
+    assert set(opt.blocks) == {"0", "3", "4", "6"}
     assert all(block.has_statistics and block.has_inverse for block in opt.blocks.values())
     assert losses[-1] < losses[0]
     assert opt.diagnostics()["step"] == 6 and opt.diagnostics()["skipped_steps"] == 0
@@ -183,7 +183,7 @@ def test_gradient_accumulation_uses_every_micro_batch(curvature):
     for name, block in opt.blocks.items():
         state = opt.state[block.layer.weight]
         first, second = by_hand[0][name], by_hand[1][name]
-        if curvature == "kfac":
+        if curvature in ("kfac", "ekfac"):  # EKFAC keeps K-FAC's factors for its eigenbasis
             expected_in = (first["in_sum"] + second["in_sum"]) / (first["rows"] + second["rows"])
             torch.testing.assert_close(state["factor_in"], expected_in, rtol=1e-10, atol=1e-13)
             expected_out = 0.5 * (first["factor_out"] + second["factor_out"])
@@ -205,9 +205,10 @@ def test_equal_micro_batches_give_the_statistics_of_the_whole_batch(curvature):
     for name in split_opt.blocks:
         split_state = split_opt.state[split_opt.blocks[name].layer.weight]
         whole_state = whole_opt.state[whole_opt.blocks[name].layer.weight]
-        for key in split_opt.blocks[name].statistic_keys:
+        block = split_opt.blocks[name]
+        for key in block.statistic_keys + block.projected_keys:
             torch.testing.assert_close(split_state[key], whole_state[key], rtol=1e-10, atol=1e-13)
-        if curvature == "kfac":
+        if curvature in ("kfac", "ekfac"):
             torch.testing.assert_close(whole_state["factor_in"], expected[name]["in_sum"] / 12,
                                        rtol=1e-10, atol=1e-13)
             torch.testing.assert_close(whole_state["factor_out"], expected[name]["factor_out"],
@@ -377,18 +378,18 @@ def test_frozen_parameters_are_left_alone():
 
 
 # ---------------------------------------------------------------------------- the fallback rule
-def _layernorm_net():
-    return nn.Sequential(nn.Linear(4, 6), nn.LayerNorm(6), nn.Linear(6, 2))
+def _prelu_net():
+    return nn.Sequential(nn.Linear(4, 6), nn.PReLU(6), nn.Linear(6, 2))
 
 
-class EmbeddingNet(nn.Module):
+class BilinearNet(nn.Module):
     def __init__(self):
         super().__init__()
-        self.embed = nn.Embedding(10, 4)
-        self.head = nn.Linear(12, 2)
+        self.pair = nn.Bilinear(4, 4, 3)
+        self.head = nn.Linear(3, 2)
 
-    def forward(self, tokens):
-        return self.head(self.embed(tokens).flatten(1))
+    def forward(self, x):
+        return self.head(self.pair(x, x.flip(1)))
 
 
 def _grouped_conv_net():
@@ -397,8 +398,8 @@ def _grouped_conv_net():
 
 UNSUPPORTED = {
     # name: (model factory, input maker, names of the modules whose parameters take the fallback rule)
-    "layernorm": (_layernorm_net, lambda g: torch.randn(8, 4, generator=g, dtype=DTYPE), {"1"}),
-    "embedding": (EmbeddingNet, lambda g: torch.randint(0, 10, (8, 3), generator=g), {"embed"}),
+    "prelu": (_prelu_net, lambda g: torch.randn(8, 4, generator=g, dtype=DTYPE), {"1"}),
+    "bilinear": (BilinearNet, lambda g: torch.randn(8, 4, generator=g, dtype=DTYPE), {"pair"}),
     "conv-groups-2": (_grouped_conv_net, lambda g: torch.randn(8, 2, 4, 4, generator=g, dtype=DTYPE), {"0"}),
 }
 
@@ -490,6 +491,8 @@ def test_inplace_relu_after_a_layer_changes_neither_capture_nor_gradients(kind, 
     opt.step()
     reference_opt.step()
     for name, block in opt.blocks.items():
+        if block.curvature != "kfac":
+            continue  # the LayerNorm's own block; the Kronecker factors are what the copy could disturb
         state = opt.state[block.layer.weight]
         reference_state = reference_opt.state[reference_opt.blocks[name].layer.weight]
         assert state["factor_out"].abs().max() > 0
