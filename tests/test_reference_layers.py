@@ -268,6 +268,32 @@ def test_blocks_against_exact_fisher_of_a_classifier(network):
     assert 1e-3 <= errors["kfac"] <= 0.9  # not exact: the output Fisher varies with the example
 
 
+class TwoFields(nn.Module):
+    """One embedding applied to two index fields of each example (two calls per forward)."""
+
+    def __init__(self):
+        super().__init__()
+        self.embed = nn.Embedding(5, 3)
+        self.head = nn.Linear(4 * 3, 3)
+
+    def forward(self, tokens):
+        fields = torch.cat([self.embed(tokens[:, :2]), self.embed(tokens[:, 2:])], dim=1)
+        return self.head(torch.tanh(fields.flatten(1)))
+
+
+def test_embedding_diagonal_sums_an_examples_gradient_over_calls_of_one_forward():
+    # diag(F) (torch.func, whole forward): an example's gradient sums over both calls of the layer,
+    # and a token seen in both fields adds up before squaring.
+    torch.manual_seed(45)
+    model = TwoFields().double()
+    tokens = torch.randint(0, 5, (8, 4), generator=torch.Generator().manual_seed(45))
+    tokens[:, 2] = tokens[:, 0]
+    targets = targets_for("ce", 8)
+    reference, opt = reference_and_optimizer(model, "embed", tokens, targets, "embedding", "ce", curvature="diag")
+    assert relative_error(torch.diagonal(opt.blocks["embed"].dense_curvature()), torch.diagonal(reference)) \
+        <= EXACT_RTOL
+
+
 def test_embedding_precondition_matches_numpy_solve_with_factored_damping():
     # numpy.linalg.solve(kron(diag(f_d), G_d), vec(M)) with factored Tikhonov damping
     # f_d = f + pi sqrt(lambda), G_d = G + sqrt(lambda)/pi I, pi^2 = (tr A/V)/(tr G/d) (Martens & Grosse 2015,
