@@ -157,7 +157,9 @@ class EmbeddingLayer(LayerAdapter):
     The gradient matrix is ``W^T``-shaped, ``[d, V]`` (``out_dim = d``, ``in_dim = V``,
     no bias), so one example's gradient is ``sum_t g_t onehot(i_t)^T`` as for Linear.
     The input rows are the index tensor itself, ``[N, T]`` (long): one-hot rows are
-    never built.  The leading index dimension is the batch, the rest are positions.
+    never built.  The leading index dimension is the batch, the rest are positions:
+    index with a batch (position indices expanded to ``[N, T]``), since an index
+    tensor without one would make its positions count as examples.
     """
 
     kind = "embedding"
