@@ -72,8 +72,10 @@ key                                meaning                                      
 ``time.capture``                   capture hooks inside the user's forward/backward, cumulative       s
 ``time.extra_backward``            extra backward passes for the sampled/exact Fisher (inside the     s
                                    user's ``backward()``), cumulative
-``layers.<name>.block``            layer kind of the curvature block (``linear``, ``conv2d``)         --
-``layers.<name>.curvature``        curvature kind (``kfac``, ``ekfac``, ``diag``)                     --
+``layers.<name>.block``            layer kind of the curvature block (``linear``, ``conv1d``,         --
+                                   ``conv2d``, ``embedding``, ``layer_norm``, ``batch_norm``)
+``layers.<name>.curvature``        curvature kind (``kfac``, ``ekfac``, ``diag``; ``channel_pairs``   --
+                                   for norm layers)
 ``layers.<name>.in_dim``           size of the input factor A (bias column included)                  rows
 ``layers.<name>.out_dim``          size of the output-gradient factor G                               rows
 ``layers.<name>.condition``        condition number of the damped block (EKFAC: of the damped scales) 1
@@ -100,6 +102,11 @@ key                                meaning                                      
 ``layers.<name>.scale_max``        largest EKFAC scale (``curvature='ekfac'``)                        curvature
 ``layers.<name>.scale_mean``       mean EKFAC scale (``curvature='ekfac'``)                           curvature
 ``layers.<name>.scale_values``     all EKFAC scales, ascending (JSONL / TensorBoard only)             curvature
+``layers.<name>.pair_eig_min``     smallest eigenvalue of the per-channel (gamma, beta) Fisher blocks curvature
+                                   of a norm layer
+``layers.<name>.pair_eig_max``     largest eigenvalue of those blocks                                 curvature
+``layers.<name>.pair_eig_mean``    mean eigenvalue of those blocks                                    curvature
+``layers.<name>.pair_eig_values``  all their eigenvalues, ascending (JSONL / TensorBoard only)        curvature
 ``probe.*``                        result of ``ngopt.fisher_probe.probe_fisher_quality``, written     see there
                                    by ``handle.log_probe(result)``
 =================================  =================================================================  ==========
@@ -109,7 +116,9 @@ output gradients g; their units are those of a^2 and g^2. pi is the factored
 damping split pi = sqrt((tr A / dim A) / (tr G / dim G)).  With
 ``curvature='ekfac'`` the factors give only the eigenbasis: the ``in_``/``out_``
 eigenvalue keys still describe A and G, their ``_damping`` keys are the split
-K-FAC would use, and the damping lambda is added to the scales instead.
+K-FAC would use, and the damping lambda is added to the scales instead.  For an
+embedding, A is the diagonal of token frequencies (its eigenvalues are those
+frequencies).
 """
 
 from __future__ import annotations

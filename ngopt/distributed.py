@@ -461,11 +461,13 @@ def _has_own_inverse(block: CurvatureBlock) -> bool:
 
 def inversion_cost(block: CurvatureBlock, statistics: dict) -> float:
     """``sum d^3`` over the block's square statistics (``d_in^3 + d_out^3`` for Kronecker factors)."""
-    cost = 0.0
-    for key in block.statistic_keys:
-        shape = tuple(statistics[key].shape)
-        cost += float(shape[0]) ** 3 if len(shape) == 2 and shape[0] == shape[1] else float(_packed_size(shape, False))
-    return cost
+    return _cost_from_shapes([tuple(statistics[key].shape) for key in block.statistic_keys])
+
+
+def _cost_from_shapes(shapes) -> float:
+    # a square matrix costs d^3 to invert or decompose; anything else (vectors, 2x2 stacks) its size
+    return sum(float(shape[0]) ** 3 if len(shape) == 2 and shape[0] == shape[1] else float(_packed_size(shape, False))
+               for shape in shapes)
 
 
 def assign_owners(costs: Sequence[float], world_size: int) -> List[int]:
@@ -684,8 +686,11 @@ def communication_volume(opt, world_size: int, shard_inversions: bool = True) ->
                                   for key, shape in _statistic_shapes(b, {}) + _statistic_shapes(b, {}, True))
                               + 1 + int(bool(b.projected_keys))) for b in blocks)
     shared = [b for b in blocks if _has_own_inverse(b)]
-    payload = {b: element[b] * (b.layer.in_dim ** 2 + b.layer.out_dim ** 2) for b in shared}
-    costs = [float(b.layer.in_dim) ** 3 + float(b.layer.out_dim) ** 3 for b in shared]
+    # an inverse (or eigenbasis) has the shape of the statistic it comes from: d x d for d x d, a vector
+    # for a diagonal factor (embeddings), 2x2 stacks for norm layers
+    shapes = {b: [shape for _, shape in _statistic_shapes(b, {})] for b in shared}
+    payload = {b: element[b] * sum(_packed_size(shape, False) for shape in shapes[b]) for b in shared}
+    costs = [_cost_from_shapes(shapes[b]) for b in shared]
     total_cost = sum(costs)
     ring = 2.0 * (world_size - 1) / world_size
     volume = {"world_size": world_size, "statistics_buffer_bytes": stats,

@@ -55,8 +55,9 @@ class NaturalGradient(torch.optim.Optimizer):
     See the README for every option; the short version:
 
     Args:
-        model: the ``nn.Module`` being trained. Its ``nn.Linear`` and ``nn.Conv2d``
-            (groups=1) layers get curvature blocks; other parameters use ``fallback``.
+        model: the ``nn.Module`` being trained. Its ``nn.Linear``, ``nn.Conv1d``/``nn.Conv2d``
+            (groups=1), ``nn.Embedding``, ``nn.LayerNorm`` and ``nn.BatchNorm*`` layers get
+            curvature blocks; other parameters use ``fallback``.
         loss_fn: the training criterion object with its own reduction (needed for
             ``fisher='sampled'`` and ``'exact'``).
         lr: step size on the preconditioned direction (per group).

@@ -155,7 +155,8 @@ def _spectrum_panels(layer: str) -> list:
     return [("in_eigenvalues", ("layers", layer, "in_damping"), "input factor A"),
             ("out_eigenvalues", ("layers", layer, "out_damping"), "output-gradient factor G"),
             ("diag_values", ("update", "damping"), "diagonal Fisher entries"),
-            ("scale_values", ("update", "damping"), "EKFAC scales (eigenbasis diagonal)")]
+            ("scale_values", ("update", "damping"), "EKFAC scales (eigenbasis diagonal)"),
+            ("pair_eig_values", ("update", "damping"), "norm-layer (gamma, beta) block eigenvalues")]
 
 
 def _draw_spectrum(fig, ax, steps, spectra, damping, title):

@@ -94,7 +94,8 @@ class EigenbasisBlock(KroneckerBlock):
         return self._in_basis(matrix, self.state, lambda r: r * (self.state["scales"] + damping))
 
     def dense_curvature(self, damping=0.0):
-        basis = torch.kron(self.state["basis_in"], self.state["basis_out"])
+        # contiguous: torch.kron fails on a mix of contiguous and eigh's column-major results
+        basis = torch.kron(self.state["basis_in"].contiguous(), self.state["basis_out"].contiguous())
         return basis @ torch.diag(self.state["scales"].T.reshape(-1) + damping) @ basis.T
 
     def summary(self, damping, with_spectra):
