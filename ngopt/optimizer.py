@@ -159,6 +159,11 @@ class NaturalGradient(torch.optim.Optimizer):
         group_of = {p: i for i, g in enumerate(self.param_groups) for p in g["params"]}
         layers = []
         for name, module in self.model.named_modules():
+            if isinstance(module, nn.EmbeddingBag) and module.sparse and module.weight in group_of \
+                    and module.weight.requires_grad:
+                # The finiteness checks and the fallback rules work on dense gradients only.
+                raise ValueError(f"{name}: nn.EmbeddingBag(sparse=True) is not supported (sparse gradients); "
+                                 "use sparse=False or freeze it")
             layer = adapter_for(module, name or type(module).__name__)
             if layer is None or not layer.weight.requires_grad or layer.weight not in group_of:
                 continue

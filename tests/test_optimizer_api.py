@@ -455,3 +455,12 @@ def test_a_second_optimizer_on_the_same_model_is_warned_about():
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         ngopt.NaturalGradient(model, nn.MSELoss())
+
+
+def test_sparse_gradients_are_refused_at_construction():
+    # Sparse gradients would reach dense-only finiteness checks and update rules at the first step.
+    model = nn.Sequential(nn.EmbeddingBag(10, 4, sparse=True), nn.Linear(4, 2))
+    with pytest.raises(ValueError, match="sparse=True"):
+        ngopt.NaturalGradient(model, nn.MSELoss())
+    model[0].weight.requires_grad_(False)
+    ngopt.NaturalGradient(model, nn.MSELoss())
