@@ -2,9 +2,9 @@
 
 Nothing here touches the network: scikit-learn ships the digits, the
 ``mnist1d`` package generates its data set from templates on the fly, and the
-ill-conditioned regression is synthetic. Every loader returns a
-:class:`Split` of float32 (or int64 label) tensors and is cached, so a
-benchmark run builds each data set once.
+ill-conditioned regression and the token corpus are synthetic. Every loader
+returns a :class:`Split` of float32 (or int64 label) tensors, int64 tokens for
+the corpus, and is cached, so a benchmark run builds each data set once.
 """
 
 from __future__ import annotations
@@ -14,6 +14,8 @@ from dataclasses import dataclass
 
 import numpy as np
 import torch
+
+from benchmarks import corpus
 
 # The train/test split of the digits is fixed (independent of the run seed) so
 # that every optimizer and seed sees the same training set.
@@ -139,3 +141,27 @@ def ill_conditioned_regression() -> Split:
         inputs[:REGRESSION_TRAIN], targets[:REGRESSION_TRAIN],
         inputs[REGRESSION_TRAIN:], targets[REGRESSION_TRAIN:], torch.float32,
     )
+
+
+# Token corpus of the language-model task: the numbers that define it.
+CORPUS_TRAIN = 1024
+CORPUS_TEST = 512
+CORPUS_SEED = 7
+
+
+@functools.lru_cache(maxsize=None)
+def token_corpus() -> corpus.Corpus:
+    """The grammar's sequences, training ones first (see :mod:`benchmarks.corpus`)."""
+    return corpus.generate(CORPUS_TRAIN + CORPUS_TEST, CORPUS_SEED)
+
+
+def next_tokens() -> Split:
+    """Next-token prediction on the corpus: inputs ``[n, T]`` and targets ``[n, T]`` (shifted by one), int64.
+
+    Targets keep the sequence layout, so ``nn.CrossEntropyLoss`` takes logits
+    ``[n, vocabulary, T]`` and every position is a term of the mean.
+    """
+    tokens = torch.as_tensor(token_corpus().tokens)
+    train, test = tokens[:CORPUS_TRAIN], tokens[CORPUS_TRAIN:]
+    return Split(train[:, :-1].contiguous(), train[:, 1:].contiguous(),
+                 test[:, :-1].contiguous(), test[:, 1:].contiguous())
