@@ -306,8 +306,21 @@ def test_digits_split_sizes():
 
 def test_targets_lie_between_the_trivial_and_the_best_possible_loss():
     # classifiers: chance-level cross-entropy is log(10) (ten classes)
-    for name in ("digits_mlp", "digits_cnn", "mnist1d_mlp"):
+    for name in ("digits_mlp", "digits_cnn", "digits_resnet", "mnist1d_mlp"):
         assert TASKS[name].target_loss < math.log(10) / 10
+    # language model: above the grammar's own cross-entropy on the training sequences (the Bayes
+    # floor; only memorizing gets below it) and below the best training loss of any predictor that
+    # sees just the current token and its position: the maximum-likelihood table of those counts
+    # (the empirical conditional entropy, Cover & Thomas, Elements of Information Theory, sec. 2.2)
+    source, n_train = datasets.token_corpus(), datasets.CORPUS_TRAIN
+    inputs, targets = source.inputs[:n_train], source.targets[:n_train]
+    keys = inputs * inputs.shape[1] + np.arange(inputs.shape[1])  # (token, position) as one index
+    joint = np.zeros((keys.max() + 1, targets.max() + 1))
+    np.add.at(joint, (keys.ravel(), targets.ravel()), 1)
+    seen, rows = joint > 0, np.broadcast_to(joint.sum(axis=1, keepdims=True), joint.shape)
+    context_free = -np.sum(joint[seen] * np.log(joint[seen] / rows[seen])) / targets.size
+    floor = -source.log_prob[:n_train].mean()
+    assert floor < TASKS["corpus_transformer"].target_loss < context_free
     # autoencoder: well below the error of answering the mean image (numpy)
     pixels = datasets.digits_reconstruction().train_x.double().numpy()
     mean_image_error = np.mean((pixels - pixels.mean(axis=0)) ** 2)

@@ -1,0 +1,319 @@
+"""Tests of the language-model and residual-CNN benchmark tasks and of the curvature rows.
+
+The corpus checks compare the generated sequences with what the docstring of
+benchmarks/corpus.py says about them, with Pearson's chi-square test from
+scipy.stats for the stated probabilities; the model checks use definitions
+(causal masking) and ngopt's public diagnostics; the short runs go through
+the harness exactly as ``python -m benchmarks --quick`` does, with fewer steps.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import replace
+
+import numpy as np
+import pytest
+import torch
+from scipy import stats
+from torch import nn
+
+import ngopt
+from benchmarks import corpus, datasets
+from benchmarks.cli import main
+from benchmarks.optimizers import (DEFAULT_OPTIMIZERS, OPTIMIZERS, resolve_optimizers,
+                                   with_natural_gradient_options)
+from benchmarks.tasks import TASKS, CausalSelfAttention, accuracy, corpus_transformer, digits_resnet
+
+NEW_TASKS = ["corpus_transformer", "digits_resnet"]
+P_FLOOR = 1e-3  # chi-square p-values below this would mean the stated probabilities are wrong
+
+
+def parse(sequence):
+    """Walk one sequence as the corpus docstring describes it.
+
+    Yields (position, move, depth, tokens left, chain state) for every token
+    after the key that a move produced; the tokens copied after RECALL are
+    checked here and not yielded. Raises AssertionError on anything the
+    docstring rules out.
+    """
+    tokens = [int(token) for token in sequence]
+    total = len(tokens)
+    assert tokens[0] == corpus.BOS
+    key = tokens[1:1 + corpus.KEY_LENGTH]
+    assert all(corpus.FIRST_WORD <= token < corpus.VOCABULARY for token in key)
+    stack, state, position = [], key[-1] - corpus.FIRST_WORD, 1 + corpus.KEY_LENGTH
+    while position < total:
+        token, left = tokens[position], total - position
+        if corpus.FIRST_OPEN <= token < corpus.FIRST_CLOSE:
+            yield position, "open", len(stack), left, state
+            stack.append(token - corpus.FIRST_OPEN)
+            assert len(stack) <= corpus.MAX_DEPTH
+        elif corpus.FIRST_CLOSE <= token < corpus.FIRST_WORD:
+            yield position, "close", len(stack), left, state
+            assert stack and stack.pop() == token - corpus.FIRST_CLOSE  # matches the innermost open
+        elif token == corpus.RECALL:
+            yield position, "recall", len(stack), left, state
+            copy = tokens[position + 1:position + 1 + corpus.KEY_LENGTH]
+            assert copy == key
+            position += corpus.KEY_LENGTH
+            state = key[-1] - corpus.FIRST_WORD
+        else:
+            assert corpus.FIRST_WORD <= token < corpus.VOCABULARY
+            yield position, "word", len(stack), left, state
+            state = token - corpus.FIRST_WORD
+        position += 1
+    assert position == total and not stack  # balanced: every bracket closed by the end
+
+
+def moves_of(sequences):
+    return [event for sequence in sequences for event in parse(sequence)]
+
+
+@pytest.fixture(scope="module")
+def data():
+    return datasets.token_corpus()
+
+
+@pytest.fixture(scope="module")
+def events(data):
+    return moves_of(data.tokens)
+
+
+def test_corpus_is_deterministic_under_its_seed():
+    first, again, other = corpus.generate(40, seed=3), corpus.generate(40, seed=3), corpus.generate(40, seed=4)
+    np.testing.assert_array_equal(first.tokens, again.tokens)
+    np.testing.assert_array_equal(first.log_prob, again.log_prob)
+    assert not np.array_equal(first.tokens, other.tokens)
+    with pytest.raises(ValueError, match="n_sequences"):
+        corpus.generate(0, seed=3)
+
+
+def test_next_token_split_has_the_stated_shapes():
+    split = datasets.next_tokens()
+    length = corpus.SEQUENCE_LENGTH
+    assert tuple(split.train_x.shape) == (datasets.CORPUS_TRAIN, length) == tuple(split.train_y.shape)
+    assert tuple(split.test_x.shape) == (datasets.CORPUS_TEST, length) == tuple(split.test_y.shape)
+    assert split.train_x.dtype == split.train_y.dtype == torch.int64
+    # targets are the inputs shifted by one position
+    assert torch.equal(split.train_y[:, :-1], split.train_x[:, 1:])
+    assert torch.equal(split.test_y[:, :-1], split.test_x[:, 1:])
+    assert int(split.train_x.min()) == corpus.BOS and int(split.train_y.max()) < corpus.VOCABULARY
+    assert torch.equal(datasets.next_tokens().train_x, split.train_x)  # same data on every call
+
+
+def test_every_sequence_is_balanced_and_recalls_its_key(data, events):
+    # parse() asserts nesting, type matching, depth, balance and the copies; here: the structure is common
+    moves = [move for _, move, *_ in events]
+    counts = {move: moves.count(move) for move in corpus.MOVES}
+    assert counts["open"] == counts["close"] > len(data.tokens)  # more than one bracket pair per sequence
+    recalls = (data.tokens == corpus.RECALL).any(axis=1).mean()
+    assert recalls > 0.3
+    deep = sum(1 for _, move, depth, *_ in events if move == "open" and depth >= 2)
+    assert deep > 0.05 * counts["open"]  # nested brackets, so matching needs more than the last open
+
+
+def test_moves_follow_their_weights_where_all_are_allowed(events):
+    # all four moves allowed: 0 < depth < MAX_DEPTH and room for a copy plus the pending closes
+    free = [move for _, move, depth, left, _ in events
+            if 0 < depth < corpus.MAX_DEPTH and left >= depth + 2 + corpus.KEY_LENGTH]
+    observed = np.array([free.count(move) for move in corpus.MOVES])
+    expected = corpus.MOVE_WEIGHTS / corpus.MOVE_WEIGHTS.sum() * len(free)
+    assert stats.chisquare(observed, expected).pvalue > P_FLOOR  # Pearson's chi-square (scipy.stats)
+    # at depth 0 no close is possible; the other weights are renormalized
+    top = [move for _, move, depth, left, _ in events if depth == 0 and left >= 2 + corpus.KEY_LENGTH]
+    observed = np.array([top.count(move) for move in ("open", "recall", "word")])
+    weights = corpus.MOVE_WEIGHTS[[0, 2, 3]]
+    assert top.count("close") == 0
+    assert stats.chisquare(observed, weights / weights.sum() * len(top)).pvalue > P_FLOOR
+
+
+def test_bracket_types_and_keys_are_uniform(data, events):
+    opens = [int(data.tokens[index][position]) for index, sequence in enumerate(data.tokens)
+             for position, move, *_ in parse(sequence) if move == "open"]
+    kinds = np.bincount(np.array(opens) - corpus.FIRST_OPEN, minlength=corpus.BRACKET_TYPES)
+    assert stats.chisquare(kinds).pvalue > P_FLOOR  # equal expected counts by default
+    keys = data.tokens[:, 1:1 + corpus.KEY_LENGTH].ravel() - corpus.FIRST_WORD
+    assert stats.chisquare(np.bincount(keys, minlength=corpus.WORDS)).pvalue > P_FLOOR
+
+
+def test_words_follow_the_markov_chain_across_brackets(data):
+    transitions = data.transitions
+    np.testing.assert_allclose(transitions.sum(axis=1), 1.0, rtol=1e-12)
+    assert ((transitions > 0).sum(axis=1) == corpus.SUCCESSORS).all()
+    counts = np.zeros_like(transitions)
+    for sequence in data.tokens:
+        for position, move, _, _, state in parse(sequence):
+            if move == "word":
+                counts[state, sequence[position] - corpus.FIRST_WORD] += 1
+    assert counts[transitions == 0].sum() == 0  # no word outside its state's successors
+    p_values = []
+    for state in range(corpus.WORDS):
+        support = transitions[state] > 0
+        if counts[state].sum() >= 50:  # enough draws for the chi-square approximation
+            observed = counts[state, support]
+            p_values.append(stats.chisquare(observed, transitions[state, support] * observed.sum()).pvalue)
+    assert len(p_values) >= corpus.WORDS // 2
+    assert min(p_values) > P_FLOOR / len(p_values)  # Bonferroni over the states tested
+
+
+def test_log_probabilities_are_the_grammar_chances(data):
+    # Recompute every target's chance from the docstring's rules alone and compare.
+    weight = dict(zip(corpus.MOVES, corpus.MOVE_WEIGHTS))
+    for sequence, log_prob in zip(data.tokens[:300], data.log_prob[:300]):
+        expected = np.full(len(sequence) - 1, np.nan)
+        expected[:corpus.KEY_LENGTH] = -math.log(corpus.WORDS)
+        for position, move, depth, left, state in parse(sequence):
+            if depth > 0 and left == depth:
+                allowed = {"close"}
+            else:
+                allowed = {name for name, fits in [
+                    ("open", depth < corpus.MAX_DEPTH and left >= depth + 2), ("close", depth > 0),
+                    ("recall", left >= depth + 1 + corpus.KEY_LENGTH), ("word", left >= depth + 1)] if fits}
+            chance = weight[move] / sum(weight[name] for name in allowed)
+            if move == "open":
+                chance /= corpus.BRACKET_TYPES
+            elif move == "word":
+                chance *= data.transitions[state, sequence[position] - corpus.FIRST_WORD]
+            elif move == "recall":
+                expected[position:position + corpus.KEY_LENGTH] = 0.0  # the copy is certain
+            expected[position - 1] = math.log(chance)
+        np.testing.assert_allclose(log_prob, expected, rtol=1e-12, atol=1e-12)
+
+
+def test_optimal_loss_is_below_every_predictor_on_fresh_data(data):
+    # Gibbs' inequality (Cover & Thomas, Elements of Information Theory, thm 2.6.3): on fresh data no
+    # predictor beats the true conditional probabilities in expected log-loss. Here a smoothed
+    # (token, position) model fitted on the training sequences, scored on the test sequences.
+    train, test = datasets.CORPUS_TRAIN, slice(datasets.CORPUS_TRAIN, None)
+    length, vocabulary = corpus.SEQUENCE_LENGTH, corpus.VOCABULARY
+    counts = np.ones((vocabulary, length, vocabulary))  # add-one smoothing
+    positions = np.broadcast_to(np.arange(length), data.inputs[:train].shape)
+    np.add.at(counts, (data.inputs[:train], positions, data.targets[:train]), 1)
+    model = counts / counts.sum(axis=2, keepdims=True)
+    positions = np.broadcast_to(np.arange(length), data.inputs[test].shape)
+    context_free = -np.log(model[data.inputs[test], positions, data.targets[test]]).mean()
+    floor = -data.log_prob[test].mean()
+    assert floor < context_free - 0.3  # long-range structure carries a good part of the information
+    assert data.optimal_cross_entropy() == pytest.approx(-data.log_prob.mean())
+
+
+def test_transformer_is_causal_and_returns_class_dim_one_logits():
+    torch.manual_seed(0)
+    model = corpus_transformer().eval()
+    tokens = datasets.next_tokens().train_x[:3]
+    logits = model(tokens)
+    assert tuple(logits.shape) == (3, corpus.VOCABULARY, corpus.SEQUENCE_LENGTH)
+    changed = tokens.clone()
+    changed[:, 10] = (changed[:, 10] + 1) % corpus.VOCABULARY
+    other = model(changed)
+    # causal masking (Vaswani et al., NeurIPS 2017, sec. 3.2.3): position t sees tokens 0..t only
+    torch.testing.assert_close(other[:, :, :10], logits[:, :, :10], rtol=0, atol=0)
+    assert not torch.allclose(other[:, :, 10:], logits[:, :, 10:])
+    # nn.CrossEntropyLoss takes [N, C, T] logits with [N, T] targets (torch.nn docs): the mean over
+    # every position equals the loss on the flattened [N*T, C] layout
+    targets = datasets.next_tokens().train_y[:3]
+    flat = nn.functional.cross_entropy(logits.transpose(1, 2).reshape(-1, corpus.VOCABULARY), targets.reshape(-1))
+    torch.testing.assert_close(nn.CrossEntropyLoss()(logits, targets), flat)
+    # accuracy over every position, as numpy counts it
+    predicted = logits.detach().numpy().argmax(axis=1)
+    assert accuracy(logits, targets) == pytest.approx(float((predicted == targets.numpy()).mean()))
+
+
+def test_attention_is_the_masked_softmax_product():
+    # Vaswani et al., NeurIPS 2017, eq. 1 and sec. 3.2.3, written out in float64 from the module's weights
+    torch.manual_seed(0)
+    attention = CausalSelfAttention(width=8, heads=2).double()
+    h = torch.randn(3, 5, 8, dtype=torch.float64)
+    q, k, v = (layer(h).reshape(3, 5, 2, 4).transpose(1, 2)
+               for layer in (attention.query, attention.key, attention.value))
+    scores = q @ k.transpose(-2, -1) / math.sqrt(4)
+    scores = scores.masked_fill(torch.ones(5, 5, dtype=torch.bool).triu(1), float("-inf"))
+    mixed = (torch.softmax(scores, dim=-1) @ v).transpose(1, 2).reshape(3, 5, 8)
+    torch.testing.assert_close(attention(h), attention.out(mixed), rtol=1e-10, atol=1e-12)
+    with pytest.raises(ValueError, match="multiple of heads"):
+        CausalSelfAttention(width=8, heads=3)
+
+
+@pytest.mark.parametrize("task_name, build", [("corpus_transformer", corpus_transformer),
+                                              ("digits_resnet", digits_resnet)])
+def test_every_linear_and_convolution_gets_a_curvature_block(task_name, build):
+    torch.manual_seed(0)
+    model = build()
+    layers = {name for name, module in model.named_modules() if type(module) in (nn.Linear, nn.Conv2d)}
+    calls = {name: 0 for name in layers}
+    for name, module in model.named_modules():
+        if name in layers:
+            module.register_forward_hook(lambda *_, name=name: calls.__setitem__(name, calls[name] + 1))
+    split, loss_fn = TASKS[task_name].load_data(), TASKS[task_name].make_loss()
+    optimizer = ngopt.NaturalGradient(model, loss_fn, stats_every=1, invert_every=1)
+    optimizer.zero_grad()
+    loss_fn(model(split.train_x[:16]), split.train_y[:16]).backward()
+    optimizer.step()
+    assert set(calls.values()) == {1}  # every projection is called as a module, once per forward
+    # API.md: diagnostics()["layers"] has one entry per curvature block
+    assert layers <= set(optimizer.diagnostics()["layers"])
+    expected = {"corpus_transformer": 6 * 2 + 1, "digits_resnet": 5 + 1}[task_name]
+    assert len(layers) == expected
+
+
+def test_resnet_shapes_and_batch_norm():
+    torch.manual_seed(0)
+    model = digits_resnet()
+    images = datasets.digits_images().train_x[:7]
+    assert tuple(model(images).shape) == (7, 10)
+    norms = [module for module in model.modules() if isinstance(module, nn.BatchNorm2d)]
+    assert len(norms) == 5
+    # batch norm: train mode normalizes with the batch statistics and updates the running ones
+    assert all(int(norm.num_batches_tracked) == 1 for norm in norms)
+
+
+CURVATURE_ROWS = ["ngopt", "ngopt-diag", "ngopt-ekfac"]
+
+
+@pytest.mark.parametrize("name", CURVATURE_ROWS)
+def test_curvature_rows_build_their_curvature_with_the_ngopt_grid(name):
+    spec = OPTIMIZERS[name]
+    optimizer = spec.build(nn.Linear(3, 2), nn.MSELoss(), spec.lr_centre)
+    assert isinstance(optimizer, ngopt.NaturalGradient)
+    assert optimizer.curvature == {"ngopt": "kfac", "ngopt-diag": "diag", "ngopt-ekfac": "ekfac"}[name]
+    assert spec.lr_grid(3) == OPTIMIZERS["ngopt"].lr_grid(3)
+
+
+def test_curvature_rows_run_on_request_and_keep_their_curvature_under_overrides():
+    # shared/API.md: results list the optimizers "ngopt|sgd|adam"; the curvature rows are extra
+    assert [spec.name for spec in resolve_optimizers(None)] == list(DEFAULT_OPTIMIZERS) == ["ngopt", "sgd", "adam"]
+    assert [spec.name for spec in resolve_optimizers(["ngopt-diag", "sgd"])] == ["ngopt-diag", "sgd"]
+    tuned = with_natural_gradient_options(OPTIMIZERS["ngopt-diag"], {"curvature": "kfac", "momentum": 0.0})
+    optimizer = tuned.build(nn.Linear(3, 2), nn.MSELoss(), 0.1)
+    assert optimizer.curvature == "diag" and optimizer.param_groups[0]["momentum"] == 0.0
+    assert "curvature='diag'" in tuned.label and "momentum=0.0" in tuned.label
+
+
+def first_examples(load, n_train: int, n_test: int):
+    """The task's own loader cut to its first examples: the same harness path at a fraction of the
+    cost of evaluating the whole training set after every step."""
+    def load_subset():
+        split = load()
+        return datasets.Split(split.train_x[:n_train], split.train_y[:n_train],
+                              split.test_x[:n_test], split.test_y[:n_test])
+    return load_subset
+
+
+@pytest.mark.parametrize("task_name", NEW_TASKS)
+def test_quick_run_of_the_new_task_with_every_row(task_name, tmp_path, monkeypatch):
+    rows = ["sgd", "adam", "ngopt", "ngopt-diag", "ngopt-ekfac"]
+    task = TASKS[task_name]
+    monkeypatch.setitem(TASKS, task_name, replace(task, load_data=first_examples(task.load_data, 256, 64)))
+    steps = 3
+    argv = ["--quick", "--tasks", task_name, "--optimizers", ",".join(rows), "--steps", str(steps),
+            "--grid", "1", "--seeds", "1", "--threads", "1", "--out", str(tmp_path), "--no-progress"]
+    assert main(argv) == 0
+    entry = json.loads((tmp_path / "results.json").read_text())["tasks"][0]
+    assert entry["task"] == task_name and entry["target_loss"] == TASKS[task_name].target_loss
+    assert sorted(run["optimizer"] for run in entry["runs"]) == sorted(rows)
+    for run in entry["runs"]:
+        assert run["steps_run"] == steps and not run["diverged"], run["optimizer"]
+        assert math.isfinite(run["final_train_loss"]) and 0 <= run["final_test_metric"] <= 1
+
