@@ -102,17 +102,20 @@ def allowed_moves(depth: int, left: int) -> np.ndarray:
     ])
 
 
-def move_table(total: int) -> dict[tuple[int, int], tuple[list[int], list[float], list[float]]]:
-    """Per (depth, tokens left): the allowed move indices, their cumulative chances and log chances."""
-    table = {}
-    for depth in range(MAX_DEPTH + 1):
-        for left in range(depth, total + 1):
-            allowed = np.flatnonzero(allowed_moves(depth, left))
-            if len(allowed) == 0:
-                continue
-            chances = MOVE_WEIGHTS[allowed] / MOVE_WEIGHTS[allowed].sum()
-            table[depth, left] = (allowed.tolist(), np.cumsum(chances).tolist(), np.log(chances).tolist())
-    return table
+Sampler = tuple[list[int], list[float], list[float]]  # outcomes, cumulative chances, log chances
+
+
+def sampler(weights: np.ndarray) -> Sampler:
+    """The outcomes of nonzero weight with their normalized chances, as lists for fast draws."""
+    outcomes = np.flatnonzero(weights)
+    chances = weights[outcomes] / weights[outcomes].sum()
+    return outcomes.tolist(), np.cumsum(chances).tolist(), np.log(chances).tolist()
+
+
+def move_table(total: int) -> dict[tuple[int, int], Sampler]:
+    """Per (depth, tokens left): a sampler over the indices of the allowed MOVES."""
+    return {(depth, left): sampler(MOVE_WEIGHTS * allowed_moves(depth, left))
+            for depth in range(MAX_DEPTH + 1) for left in range(max(depth, 1), total + 1)}
 
 
 def _pick(cumulative: list[float], draw: float) -> int:
@@ -120,11 +123,10 @@ def _pick(cumulative: list[float], draw: float) -> int:
     return min(bisect.bisect_right(cumulative, draw), len(cumulative) - 1)
 
 
-def _sequence(key: list[int], draws: list[list[float]], moves: dict, words: list) -> tuple[list[int], list[float]]:
-    """One sequence from its key and its uniform draws ``[positions][3]`` (move, bracket, word).
-
-    ``words[state]`` is ``(successors, cumulative chances, log chances)`` of the word chain.
-    """
+def _sequence(key: list[int], draws: list[list[float]], moves: dict[tuple[int, int], Sampler],
+              words: list[Sampler]) -> tuple[list[int], list[float]]:
+    """One sequence from its key and its uniform draws ``[positions][3]`` (move, bracket, word);
+    ``words[state]`` draws the successor of word ``state``."""
     total = SEQUENCE_LENGTH + 1
     tokens = [BOS] + [FIRST_WORD + word for word in key]
     log_prob = [-math.log(WORDS)] * KEY_LENGTH
@@ -165,10 +167,7 @@ def generate(n_sequences: int, seed: int) -> Corpus:
     keys = rng.integers(WORDS, size=(n_sequences, KEY_LENGTH)).tolist()
     draws = rng.random((n_sequences, SEQUENCE_LENGTH + 1, 3)).tolist()
     moves = move_table(SEQUENCE_LENGTH + 1)
-    words = []
-    for row in transitions:
-        successors = np.flatnonzero(row)
-        words.append((successors.tolist(), np.cumsum(row[successors]).tolist(), np.log(row[successors]).tolist()))
+    words = [sampler(row) for row in transitions]
     tokens = np.empty((n_sequences, SEQUENCE_LENGTH + 1), dtype=np.int64)
     log_prob = np.empty((n_sequences, SEQUENCE_LENGTH))
     for index in range(n_sequences):
