@@ -4,7 +4,8 @@ The corpus checks compare the generated sequences with what the docstring of
 benchmarks/corpus.py says about them, with Pearson's chi-square test from
 scipy.stats for the stated probabilities; the model checks use definitions
 (causal masking) and ngopt's public diagnostics; the short runs go through
-the harness exactly as ``python -m benchmarks --quick`` does, with fewer steps.
+the harness as ``python -m benchmarks --quick`` does, with fewer steps, one
+thread and the first examples of each data set, so that each takes seconds.
 """
 
 from __future__ import annotations
@@ -265,7 +266,7 @@ def test_resnet_shapes_and_batch_norm():
     assert tuple(model(images).shape) == (7, 10)
     norms = [module for module in model.modules() if isinstance(module, nn.BatchNorm2d)]
     assert len(norms) == 5
-    # batch norm: train mode normalizes with the batch statistics and updates the running ones
+    # train mode updates the running statistics once per forward (torch.nn.BatchNorm2d documentation)
     assert all(int(norm.num_batches_tracked) == 1 for norm in norms)
 
 
