@@ -58,7 +58,8 @@ def build_parser() -> argparse.ArgumentParser:
                         help=f"short budget: each task's quick step count, {QUICK_GRID}-point lr grids "
                              f"(default: full step counts, {FULL_GRID}-point grids)")
     parser.add_argument("--tasks", help=f"comma-separated task names (default all: {', '.join(TASKS)})")
-    parser.add_argument("--optimizers", help="comma-separated optimizer names (default all: "
+    parser.add_argument("--optimizers", help="comma-separated optimizer names (default: "
+                                             f"{', '.join(optimizer_registry.DEFAULT_OPTIMIZERS)}; all: "
                                              f"{', '.join(optimizer_registry.OPTIMIZERS)})")
     parser.add_argument("--seeds", default=str(DEFAULT_SEEDS),
                         help="number of seeds N (seeds 0..N-1) or a comma-separated list; the first "
@@ -126,7 +127,8 @@ def make_config(args: argparse.Namespace) -> Config:
     tasks = resolve_tasks(split_names(args.tasks))
     ngopt_options = parse_options(args.ngopt_option)
     specs = [optimizer_registry.with_natural_gradient_options(spec, ngopt_options)
-             if spec.name == "ngopt" else spec for spec in resolve_optimizers(split_names(args.optimizers))]
+             if spec.natural_gradient_options is not None else spec
+             for spec in resolve_optimizers(split_names(args.optimizers))]
     seeds = parse_seeds(args.seeds)
     grid = args.grid if args.grid is not None else (QUICK_GRID if args.quick else FULL_GRID)
     if grid < 1:

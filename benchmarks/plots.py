@@ -11,7 +11,8 @@ import matplotlib.pyplot as plt  # noqa: E402
 
 from benchmarks.harness import TaskOutcome  # noqa: E402
 
-COLOURS = {"ngopt": "#8e2c48", "sgd": "#3f7f5f", "adam": "#d08c1c"}
+COLOURS = {"ngopt": "#8e2c48", "ngopt-ekfac": "#4b3f8e", "ngopt-diag": "#c0607a", "sgd": "#3f7f5f",
+           "adam": "#d08c1c"}
 FALLBACK_COLOUR = "#555555"
 
 

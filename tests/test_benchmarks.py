@@ -336,3 +336,12 @@ def test_targets_lie_between_the_trivial_and_the_best_possible_loss():
     without_small = np.mean((kept @ np.linalg.lstsq(kept, y, rcond=None)[0] - y) ** 2)
     assert without_small > TASKS["ill_conditioned_regression"].target_loss
     assert np.linalg.cond(x.T @ x) > 1e6  # numpy.linalg.cond: badly conditioned on purpose
+
+
+def test_ngopt_options_reach_every_natural_gradient_row_and_keep_its_curvature():
+    from benchmarks.cli import build_parser, make_config
+    args = build_parser().parse_args(["--optimizers", "ngopt,ngopt-ekfac,sgd", "--ngopt-option", "damping=0.001"])
+    specs = {spec.name: spec for spec in make_config(args).specs}
+    assert specs["ngopt"].natural_gradient_options["damping"] == 0.001
+    assert specs["ngopt-ekfac"].natural_gradient_options == {"damping": 0.001, "curvature": "ekfac"}
+    assert specs["sgd"].natural_gradient_options is None
