@@ -103,6 +103,11 @@ def batched_output_grads(output: torch.Tensor, targets: List[torch.Tensor],
     pieces: List[List[Optional[torch.Tensor]]] = []
     for start in range(0, vectors.shape[0], _COLUMNS_PER_PASS):
         chunk = vectors[start:start + _COLUMNS_PER_PASS]
+        if chunk.shape[0] == 1:  # one draw (the default): a plain pass is cheaper than a batched one
+            grads = torch.autograd.grad(output, targets, grad_outputs=chunk[0], retain_graph=True,
+                                        allow_unused=True)
+            pieces.append([None if g is None else g.unsqueeze(0) for g in grads])
+            continue
         try:
             grads = torch.autograd.grad(output, targets, grad_outputs=chunk, retain_graph=True,
                                         allow_unused=True, is_grads_batched=True)
