@@ -1,4 +1,4 @@
-"""Benchmark harness: NaturalGradient against SGD and Adam on small CPU tasks.
+"""Benchmark harness: FisherDescent against SGD and Adam on small CPU tasks.
 
 Run ``python -m benchmarks --quick`` from the repository root. Modules, one
 concept each:

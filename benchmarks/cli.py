@@ -51,7 +51,7 @@ class Config:
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="python -m benchmarks",
-        description="Compare ngopt.NaturalGradient with SGD (momentum 0.9) and Adam on small CPU "
+        description="Compare ngopt.FisherDescent with SGD (momentum 0.9) and Adam on small CPU "
                     "tasks: equal lr-grid size, seeds, batches, initial weights, data order and "
                     "step budget for every optimizer.")
     parser.add_argument("--quick", action="store_true",
@@ -81,7 +81,7 @@ def build_parser() -> argparse.ArgumentParser:
                         help="after the benchmark, profile one ngopt run per task at its chosen lr "
                              "with cProfile into OUT/profile_<task>_ngopt.txt (needs --out)")
     parser.add_argument("--ngopt-option", action="append", default=[], metavar="KEY=VALUE",
-                        help="override one NaturalGradient default for every task alike, e.g. "
+                        help="override one FisherDescent default for every task alike, e.g. "
                              "--ngopt-option momentum=0.9 (repeatable; for tuning the defaults)")
     parser.add_argument("--no-progress", action="store_true", help="no progress bars")
     return parser
@@ -147,7 +147,7 @@ def make_config(args: argparse.Namespace) -> Config:
 
 
 def natural_gradient_settings(spec: OptimizerSpec) -> dict:
-    """The group hyperparameters NaturalGradient ends up with (defaults plus any overrides)."""
+    """The group hyperparameters FisherDescent ends up with (defaults plus any overrides)."""
     optimizer = spec.build(torch.nn.Linear(2, 1), torch.nn.MSELoss(), spec.lr_centre)
     return json.loads(json.dumps(optimizer.defaults, default=repr))
 
@@ -196,14 +196,14 @@ def check_ready(config: Config) -> None:
     if "ngopt" in names:
         available, reason = optimizer_registry.natural_gradient_available()
         if not available:
-            raise ValueError(f"optimizer ngopt: ngopt.NaturalGradient does not import ({reason}); "
+            raise ValueError(f"optimizer ngopt: ngopt.FisherDescent does not import ({reason}); "
                              "run the baselines alone with --optimizers sgd,adam")
     if config.ngopt_options and "ngopt" in names:
         spec = next(spec for spec in config.specs if spec.name == "ngopt")
         try:
             natural_gradient_settings(spec)
         except (TypeError, ValueError) as error:
-            raise ValueError(f"--ngopt-option: NaturalGradient rejects {config.ngopt_options}: {error}")
+            raise ValueError(f"--ngopt-option: FisherDescent rejects {config.ngopt_options}: {error}")
     if config.diagnostics_every is not None and not diagnostics_available():
         raise ValueError("--diagnostics needs ngopt.log_diagnostics, which this ngopt does not provide")
 

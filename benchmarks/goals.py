@@ -1,4 +1,4 @@
-"""Comparisons of NaturalGradient with the baselines, the project's goals, and why a goal is missed.
+"""Comparisons of FisherDescent with the baselines, the project's goals, and why a goal is missed.
 
 Ratios are ngopt / baseline, so below 1 means ngopt is faster. When only one
 side reached the target, the other side's budget bounds the ratio:
@@ -136,9 +136,9 @@ def evaluate_goals(tasks: list[dict]) -> list[dict]:
 
 
 REMEDIES = {
-    "statistics": "refresh the curvature statistics less often (stats_every) or compute each "
+    "statistics": "refresh the curvature statistics less often (stats_interval) or compute each "
                   "refresh as one batched product per layer",
-    "inversion": "invert less often (invert_every) or batch the decompositions of equal-sized factors",
+    "inversion": "invert less often (inverse_interval) or batch the decompositions of equal-sized factors",
     "precondition": "batch the preconditioning products of layers with equal shapes, or give the "
                     "smallest layers a cheaper block",
     "extra_backward": "run the extra (sampled-target) backward pass only on steps that refresh statistics",

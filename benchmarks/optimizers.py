@@ -1,12 +1,12 @@
 """The compared optimizers and their learning-rate grids.
 
 Each optimizer is built with nothing tuned but its learning rate: SGD with
-heavy-ball momentum 0.9, Adam with its defaults, NaturalGradient with its own
+heavy-ball momentum 0.9, Adam with its defaults, FisherDescent with its own
 defaults (or, to tune those defaults, with overrides that apply to every task
 alike). Every grid is log-spaced, spans the same number of decades and has the
 same number of points, so no optimizer gets a finer search than another.
 
-Besides the default NaturalGradient row (``ngopt``, K-FAC curvature) there are
+Besides the default FisherDescent row (``ngopt``, K-FAC curvature) there are
 rows with its other curvature kinds, ``ngopt-ekfac`` and ``ngopt-diag``: same
 defaults otherwise and the same grid centre, so the three differ in the
 curvature alone. They run on request (``--optimizers``), not by default.
@@ -40,7 +40,7 @@ class OptimizerSpec:
     label: str
     lr_centre: float
     build: Builder
-    natural_gradient_options: Optional[dict] = None  # what defines a NaturalGradient row; None otherwise
+    natural_gradient_options: Optional[dict] = None  # what defines a FisherDescent row; None otherwise
 
     def lr_grid(self, size: int) -> list[float]:
         if size < 1:
@@ -60,13 +60,13 @@ def _adam(model: nn.Module, loss_fn: nn.Module, lr: float) -> torch.optim.Optimi
 
 
 def natural_gradient_builder(options: Optional[dict] = None) -> Builder:
-    """NaturalGradient with its defaults, or with ``options`` overriding some of them."""
+    """FisherDescent with its defaults, or with ``options`` overriding some of them."""
     options = dict(options or {})
 
     def build(model: nn.Module, loss_fn: nn.Module, lr: float) -> torch.optim.Optimizer:
         import ngopt  # imported late: the baselines run without it
 
-        return ngopt.NaturalGradient(model, loss_fn, lr=lr, **options)
+        return ngopt.FisherDescent(model, loss_fn, lr=lr, **options)
 
     return build
 
@@ -76,13 +76,13 @@ def listed_options(options: dict) -> str:
 
 
 def natural_gradient_row(name: str, options: dict) -> OptimizerSpec:
-    """A NaturalGradient row defined by ``options`` (e.g. its curvature), grid centred like ngopt's."""
-    return OptimizerSpec(name, f"NaturalGradient ({listed_options(options)})", NATURAL_GRADIENT_LR,
+    """A FisherDescent row defined by ``options`` (e.g. its curvature), grid centred like ngopt's."""
+    return OptimizerSpec(name, f"FisherDescent ({listed_options(options)})", NATURAL_GRADIENT_LR,
                          natural_gradient_builder(options), dict(options))
 
 
 def with_natural_gradient_options(spec: OptimizerSpec, options: dict) -> OptimizerSpec:
-    """A NaturalGradient row with keyword overrides applied to every task alike (for tuning its defaults).
+    """A FisherDescent row with keyword overrides applied to every task alike (for tuning its defaults).
 
     The options that define the row (the curvature of ``ngopt-diag``) win over
     the overrides, so a row keeps being what its name says.
@@ -90,22 +90,22 @@ def with_natural_gradient_options(spec: OptimizerSpec, options: dict) -> Optimiz
     if not options:
         return spec
     merged = {**options, **(spec.natural_gradient_options or {})}
-    return replace(spec, label=f"NaturalGradient ({listed_options(merged)})",
+    return replace(spec, label=f"FisherDescent ({listed_options(merged)})",
                    build=natural_gradient_builder(merged), natural_gradient_options=merged)
 
 
-# Centred at NaturalGradient's own default lr (0.3): its steps are near unit scale,
+# Centred at FisherDescent's own default lr (0.3): its steps are near unit scale,
 # lr=1 being a damped Newton step.
 NATURAL_GRADIENT_LR = 0.3
 
 OPTIMIZERS: dict[str, OptimizerSpec] = {
     spec.name: spec
     for spec in [
-        OptimizerSpec("ngopt", "NaturalGradient (defaults)", NATURAL_GRADIENT_LR, natural_gradient_builder(), {}),
+        OptimizerSpec("ngopt", "FisherDescent (defaults)", NATURAL_GRADIENT_LR, natural_gradient_builder(), {}),
         OptimizerSpec("sgd", "SGD, momentum 0.9", 0.3, _sgd),
         OptimizerSpec("adam", "Adam", 1e-2, _adam),
-        natural_gradient_row("ngopt-ekfac", {"curvature": "ekfac"}),
-        natural_gradient_row("ngopt-diag", {"curvature": "diag"}),
+        natural_gradient_row("ngopt-ekfac", {"structure": "ekfac"}),
+        natural_gradient_row("ngopt-diag", {"structure": "diag"}),
     ]
 }
 
@@ -121,11 +121,11 @@ def resolve_optimizers(names: Optional[list[str]]) -> list[OptimizerSpec]:
 
 
 def natural_gradient_available() -> tuple[bool, str]:
-    """Whether ``ngopt.NaturalGradient`` imports here, with the reason when it does not."""
+    """Whether ``ngopt.FisherDescent`` imports here, with the reason when it does not."""
     try:
         import ngopt
 
-        ngopt.NaturalGradient
+        ngopt.FisherDescent
     except Exception as error:  # any import failure means: not usable here
         return False, f"{type(error).__name__}: {error}"
     return True, ""

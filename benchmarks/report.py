@@ -225,7 +225,7 @@ def settings_lines(results: dict) -> list[str]:
 
 
 def markdown_report(results: dict, plot_files: dict[str, str]) -> str:
-    parts = ["# Benchmark: NaturalGradient against SGD and Adam", "", *settings_lines(results), "",
+    parts = ["# Benchmark: FisherDescent against SGD and Adam", "", *settings_lines(results), "",
              "## Overview", "", "Medians over the seeds at each optimizer's chosen lr; ratios below 1 "
              "favour ngopt; `<=` where the baseline never reached the target.", "",
              overview(results, markdown=True), ""]

@@ -1,4 +1,4 @@
-"""results.json (the schema of shared/API.md, with extra fields) and the CSV of loss curves."""
+"""results.json (the schema documented in the README, with extra fields) and the CSV of loss curves."""
 
 from __future__ import annotations
 
@@ -13,7 +13,7 @@ from benchmarks.harness import TaskOutcome, summarize
 from benchmarks.training import RunResult
 
 SCHEMA = "ngopt-benchmark-results/1"
-# The fields every run carries per shared/API.md; more follow them.
+# The fields every run carries per the README's results schema; more follow them.
 RUN_FIELDS = ("optimizer", "lr", "seed", "steps_to_target", "seconds_to_target",
               "final_train_loss", "final_test_metric", "step_seconds_median")
 CURVE_COLUMNS = ("task", "optimizer", "lr", "seed", "selected", "step", "seconds", "train_loss")

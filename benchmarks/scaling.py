@@ -1,4 +1,4 @@
-"""How the step time of NaturalGradient and SGD grows with layer width and with batch size.
+"""How the step time of FisherDescent and SGD grows with layer width and with batch size.
 
 The network is three d x d linear layers with ReLU and a d -> 10 read-out,
 trained with cross-entropy on random inputs and labels (timing does not

@@ -41,8 +41,8 @@ def parse_args(argv=None):
     parser.add_argument("--hidden", type=int, default=256, help="width of the hidden layers")
     parser.add_argument("--depth", type=int, default=2, help="number of hidden layers")
     parser.add_argument("--fisher", choices=("sampled", "exact", "empirical"), default="sampled")
-    parser.add_argument("--stats-every", type=int, default=10)
-    parser.add_argument("--invert-every", type=int, default=20)
+    parser.add_argument("--stats-interval", type=int, default=10)
+    parser.add_argument("--inverse-interval", type=int, default=20)
     parser.add_argument("--replicate-inversions", action="store_true",
                         help="every rank inverts every block (no inverse traffic, R times the compute)")
     parser.add_argument("--resync-every", type=int, default=None,
@@ -111,8 +111,8 @@ def main(argv=None):
     loss_fn = nn.CrossEntropyLoss()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the empirical-Fisher advice, when asked for
-        opt = ngopt.NaturalGradient(trained, loss_fn, fisher=args.fisher, stats_every=args.stats_every,
-                                    invert_every=args.invert_every, seed=args.seed)
+        opt = ngopt.FisherDescent(trained, loss_fn, fisher=args.fisher, stats_interval=args.stats_interval,
+                                  inverse_interval=args.inverse_interval, seed=args.seed)
     if args.resume:
         state = torch.load(args.resume, map_location=device, weights_only=True)
         model.load_state_dict(state["model"])

@@ -1,7 +1,7 @@
 """ngopt: natural-gradient optimization for PyTorch with Kronecker-factored Fisher curvature."""
 from .diagnostics_log import log_diagnostics
 from .fisher_probe import probe_fisher_quality
-from .optimizer import NaturalGradient
+from .optimizer import FisherDescent
 
-__all__ = ["NaturalGradient", "log_diagnostics", "probe_fisher_quality"]
+__all__ = ["FisherDescent", "log_diagnostics", "probe_fisher_quality"]
 __version__ = "0.1.0"

@@ -30,7 +30,7 @@ from typing import Callable, Dict, List, Optional
 import torch
 from torch import nn
 
-from .blocks.base import CurvatureBlock
+from .blocks.base import LayerCurvature
 from .likelihoods import OutputLikelihood, empirical_reduction_scale
 
 _COLUMNS_PER_PASS = 32
@@ -42,7 +42,7 @@ EXACT_COLUMNS_WARNING = 64
 
 @dataclass
 class LayerCall:
-    block: CurvatureBlock
+    block: LayerCurvature
     input_rows: torch.Tensor
     output: torch.Tensor
     grad_rows: Optional[torch.Tensor] = None
@@ -127,7 +127,7 @@ def batched_output_grads(output: torch.Tensor, targets: List[torch.Tensor],
 class CaptureHooks:
     """Installs the hooks on ``model`` and collects finished records for the optimizer."""
 
-    def __init__(self, model: nn.Module, blocks: Dict[nn.Module, CurvatureBlock],
+    def __init__(self, model: nn.Module, blocks: Dict[nn.Module, LayerCurvature],
                  source: Optional[FisherSource], loss_fn=None):
         self.blocks = blocks
         self.source = source          # None means the empirical Fisher
@@ -140,7 +140,7 @@ class CaptureHooks:
         other = _HOOKED_MODELS.get(model)
         if other is not None and other() is not None:
             # Two sets of capture hooks on one model interfere: the second misses its output gradients.
-            warnings.warn("this model already carries the capture hooks of another NaturalGradient; call "
+            warnings.warn("this model already carries the capture hooks of another FisherDescent; call "
                           "remove_hooks() on that optimizer first, or this one will miss curvature statistics",
                           stacklevel=4)
         _HOOKED_MODELS[model] = weakref.ref(self)
@@ -218,9 +218,9 @@ class CaptureHooks:
         return None
 
     # -- hand-over ----------------------------------------------------------------------------
-    def hand_over(self) -> Dict[CurvatureBlock, int]:
+    def hand_over(self) -> Dict[LayerCurvature, int]:
         """Give every finished layer call to its block; returns forwards seen per block."""
-        forwards: Dict[CurvatureBlock, int] = {}
+        forwards: Dict[LayerCurvature, int] = {}
         for index, record in enumerate(self.records):
             seen = set()
             for call in record.calls:

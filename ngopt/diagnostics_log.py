@@ -53,7 +53,7 @@ key                                meaning                                      
 ``wall_time``                      time the record was taken (``time.time()``)                        s (epoch)
 ``log_seconds``                    time spent by this logger before this record, cumulative           s
 ``update.grad_norm``               norm of the gradient of the curvature-block parameters             loss/param
-``update.update_norm``             norm of the preconditioned update nu C^-1 g of those parameters    param / lr
+``update.direction_norm``             norm of the preconditioned update nu C^-1 g of those parameters    param / lr
                                    (before the step size lr and momentum)
 ``update.cosine``                  cosine between gradient and preconditioned direction               1
 ``update.trust_scale``             factor the KL bound applied to the step (1 = not limited)          1
@@ -74,7 +74,7 @@ key                                meaning                                      
                                    user's ``backward()``), cumulative
 ``layers.<name>.block``            layer kind of the curvature block (``linear``, ``conv1d``,         --
                                    ``conv2d``, ``embedding``, ``layer_norm``, ``batch_norm``)
-``layers.<name>.curvature``        curvature kind (``kfac``, ``ekfac``, ``diag``; ``channel_pairs``   --
+``layers.<name>.structure``        curvature kind (``kfac``, ``ekfac``, ``diag``; ``channel_pairs``   --
                                    for norm layers)
 ``layers.<name>.in_dim``           size of the input factor A (bias column included)                  rows
 ``layers.<name>.out_dim``          size of the output-gradient factor G                               rows
@@ -94,13 +94,13 @@ key                                meaning                                      
 ``layers.<name>.in_eigenvalues``   full spectrum of A, ascending (JSONL / TensorBoard only)           A units
 ``layers.<name>.out_eigenvalues``  full spectrum of G, ascending (JSONL / TensorBoard only)           G units
 ``layers.<name>.inversion_step``   step at which the eigenvalue figures were computed                 steps
-``layers.<name>.diag_min``         smallest entry of the diagonal Fisher (``curvature='diag'``)       curvature
-``layers.<name>.diag_max``         largest entry of the diagonal Fisher (``curvature='diag'``)        curvature
-``layers.<name>.diag_mean``        mean entry of the diagonal Fisher (``curvature='diag'``)           curvature
+``layers.<name>.diag_min``         smallest entry of the diagonal Fisher (``structure='diag'``)       curvature
+``layers.<name>.diag_max``         largest entry of the diagonal Fisher (``structure='diag'``)        curvature
+``layers.<name>.diag_mean``        mean entry of the diagonal Fisher (``structure='diag'``)           curvature
 ``layers.<name>.diag_values``      all diagonal entries, ascending (JSONL / TensorBoard only)         curvature
 ``layers.<name>.scale_min``        smallest EKFAC scale, the curvature in the Kronecker eigenbasis    curvature
-``layers.<name>.scale_max``        largest EKFAC scale (``curvature='ekfac'``)                        curvature
-``layers.<name>.scale_mean``       mean EKFAC scale (``curvature='ekfac'``)                           curvature
+``layers.<name>.scale_max``        largest EKFAC scale (``structure='ekfac'``)                        curvature
+``layers.<name>.scale_mean``       mean EKFAC scale (``structure='ekfac'``)                           curvature
 ``layers.<name>.scale_values``     all EKFAC scales, ascending (JSONL / TensorBoard only)             curvature
 ``layers.<name>.pair_eig_min``     smallest eigenvalue of the per-channel (gamma, beta) Fisher blocks curvature
                                    of a norm layer
@@ -114,7 +114,7 @@ key                                meaning                                      
 A = E[a a^T] over layer inputs a (bias as a constant 1), G = E[g g^T] over
 output gradients g; their units are those of a^2 and g^2. pi is the factored
 damping split pi = sqrt((tr A / dim A) / (tr G / dim G)).  With
-``curvature='ekfac'`` the factors give only the eigenbasis: the ``in_``/``out_``
+``structure='ekfac'`` the factors give only the eigenbasis: the ``in_``/``out_``
 eigenvalue keys still describe A and G, their ``_damping`` keys are the split
 K-FAC would use, and the damping lambda is added to the scales instead.  For an
 embedding, A is the diagonal of token frequencies (its eigenvalues are those
@@ -388,7 +388,7 @@ def summary_line(record: dict) -> str:
     parts = [f"step {record.get('step')}"]
     parts.append(f"loss {_format(update.get('loss'), '.4g')}")
     parts.append(f"|grad| {_format(update.get('grad_norm'))}")
-    parts.append(f"|update| {_format(update.get('update_norm'))}")
+    parts.append(f"|update| {_format(update.get('direction_norm'))}")
     parts.append(f"cos {_format(update.get('cosine'), '.3f')}")
     parts.append(f"trust {_format(update.get('trust_scale'))}")
     parts.append(f"damping {_format(update.get('damping'))}")
@@ -475,7 +475,7 @@ class DiagnosticsLog:
         # Count steps ourselves so that steps without a record cost one
         # addition, not a snapshot; resynchronised at every record.
         self._step = int(opt.diagnostics().get("step", 0))
-        self._hook = opt.register_step_hook(self._after_step)
+        self._hook = opt.register_step_post_hook(lambda optimizer, args, kwargs: self._after_step(optimizer))
 
     # -- hook ---------------------------------------------------------------
     def _after_step(self, opt: Any) -> None:
@@ -552,7 +552,7 @@ def log_diagnostics(opt: Any, target: Any, every: int = 50, *, spectra: bool = T
     """Write a diagnostics record every ``every`` optimizer steps.
 
     Args:
-        opt: the optimizer (needs ``diagnostics()`` and ``register_step_hook()``).
+        opt: the optimizer (needs ``diagnostics()`` and ``register_step_post_hook()``).
         target: a ``.jsonl`` or ``.csv`` path, a TensorBoard ``SummaryWriter``,
             a ``logging.Logger``, or a list/tuple of these.
         every: steps between records (a record is written when ``step % every == 0``).
@@ -567,9 +567,9 @@ def log_diagnostics(opt: Any, target: Any, every: int = 50, *, spectra: bool = T
         raise TypeError(f"every must be an int, got {type(every).__name__}")
     if every < 1:
         raise ValueError(f"every must be >= 1, got {every}")
-    for name in ("diagnostics", "register_step_hook"):
+    for name in ("diagnostics", "register_step_post_hook"):
         if not callable(getattr(opt, name, None)):
-            raise TypeError(f"opt must provide {name}() (an ngopt.NaturalGradient); "
+            raise TypeError(f"opt must provide {name}() (an ngopt.FisherDescent); "
                             f"got {type(opt).__name__}")
     targets = list(target) if isinstance(target, (list, tuple)) else [target]
     if not targets:

@@ -1,7 +1,7 @@
 """Data-parallel natural gradient on ``torch.distributed``: shared statistics, sharded inversions.
 
 ``share_curvature(opt)`` attaches a :class:`CurvatureCommunicator` to a
-:class:`~ngopt.NaturalGradient` (``opt.communicator``).  From then on, on every
+:class:`~ngopt.FisherDescent` (``opt.communicator``).  From then on, on every
 rank of the process group:
 
 * **statistics** — when a refresh is due, every block's batch statistics (this
@@ -31,7 +31,7 @@ rank of the process group:
   distribution, other numbers).
 
 * **step control** — the KL trust bound and momentum see only shared values
-  (averaged gradients, shared curvature).  With ``adapt_damping`` the
+  (averaged gradients, shared curvature).  With ``damping_rule='lm'`` the
   reduction ratio comes from each rank's own batch, so after every
   Levenberg-Marquardt update the ranks take the first rank's damping (one
   tiny broadcast).
@@ -43,7 +43,7 @@ rank of the process group:
 
 Gradients are averaged by ``DistributedDataParallel`` as usual; plain
 ``torch.distributed`` code calls :func:`average_gradients` after ``backward()``
-(and :func:`broadcast_parameters` once at the start).
+(and :func:`sync_parameters` once at the start).
 
 Communication per refresh, for ``R`` ranks and Kronecker blocks of sizes
 ``(d_in, d_out)``, 4-byte floats (:func:`communication_volume` computes it):
@@ -82,7 +82,7 @@ import torch
 import torch.distributed as dist
 from torch import nn
 
-from .blocks.base import CurvatureBlock
+from .blocks.base import LayerCurvature
 
 _HEADER_LENGTH_BYTES = 8
 
@@ -102,7 +102,7 @@ def share_curvature(opt, process_group=None, shard_inversions: bool = True,
     previous communicator.
 
     Args:
-        opt: a :class:`ngopt.NaturalGradient`.
+        opt: a :class:`ngopt.FisherDescent`.
         process_group: the group to share over; ``None`` is the default group.
         shard_inversions: ``True`` spreads inversions over the ranks and exchanges the
             results; ``False`` makes every rank invert every block (no traffic).
@@ -115,10 +115,10 @@ def share_curvature(opt, process_group=None, shard_inversions: bool = True,
     Returns:
         the communicator, also set as ``opt.communicator``.
     """
-    from .optimizer import NaturalGradient  # late: the optimizer module imports nothing from here
+    from .optimizer import FisherDescent  # late: the optimizer module imports nothing from here
 
-    if not isinstance(opt, NaturalGradient):
-        raise TypeError(f"opt must be an ngopt.NaturalGradient, got {type(opt).__name__}")
+    if not isinstance(opt, FisherDescent):
+        raise TypeError(f"opt must be an ngopt.FisherDescent, got {type(opt).__name__}")
     if not isinstance(shard_inversions, bool):
         raise TypeError(f"shard_inversions must be a bool, got {type(shard_inversions).__name__}")
     _as_timedelta(timeout)
@@ -158,7 +158,7 @@ class CurvatureCommunicator:
         # "auto" picks the cheaper of "all_gather" and "all_reduce" from the owners' payload sizes.
         self.inverse_collective = "auto"
         self._hooks = []
-        if opt.adapt_damping and self.world_size > 1:
+        if opt.damping_rule == "lm" and self.world_size > 1:
             self._hooks.append(opt.register_step_post_hook(lambda o, args, kwargs: self._agree_on_damping(o)))
         if resync_every is not None and self.world_size > 1:
             self._hooks.append(opt.register_step_post_hook(lambda o, args, kwargs: self._resync(o)))
@@ -167,8 +167,8 @@ class CurvatureCommunicator:
                        "inversions_here": 0}
 
     # -- the two calls the optimizer makes -------------------------------------------------------------
-    def average_statistics(self, opt, batches: Dict[CurvatureBlock, dict],
-                           projected: bool = False) -> Dict[CurvatureBlock, dict]:
+    def average_statistics(self, opt, batches: Dict[LayerCurvature, dict],
+                           projected: bool = False) -> Dict[LayerCurvature, dict]:
         """``batches`` averaged over the ranks; called on every step, exchanges only when a refresh is due.
 
         ``projected``: the second-phase statistics (EKFAC's scales) of the blocks that have them.
@@ -178,7 +178,7 @@ class CurvatureCommunicator:
         blocks = list(opt.blocks.values())
         if projected:
             blocks = [b for b in blocks if b.projected_keys]
-        averaged: Dict[CurvatureBlock, dict] = {}
+        averaged: Dict[LayerCurvature, dict] = {}
         for bucket in _statistics_buckets(blocks, batches, projected):
             buffer = bucket.pack(batches, self.device)
             self._all_reduce(buffer, "statistics all-reduce", clock="statistics_seconds")
@@ -187,7 +187,7 @@ class CurvatureCommunicator:
         self.totals["statistics_exchanges"] += 1
         return averaged
 
-    def invert(self, opt, jobs: Sequence[Tuple[CurvatureBlock, dict, float]]):
+    def invert(self, opt, jobs: Sequence[Tuple[LayerCurvature, dict, float]]):
         """``{block: (tensors, info)}`` as ``block.prepare_inverse`` gives it, identical on every rank."""
         want = opt.track_spectra
         sharding = self.shard_inversions and self.world_size > 1
@@ -229,7 +229,7 @@ class CurvatureCommunicator:
         could move ``damping`` differently and their inverses drift apart; one tiny
         broadcast on the adaptation schedule keeps them equal.
         """
-        if opt._steps % opt.adapt_every != 0:
+        if opt._steps % opt.damping_interval != 0:
             return
         values = torch.tensor([g["damping"] for g in opt.param_groups], dtype=torch.float64, device=self.device)
         self._wait(lambda: dist.broadcast(values, src=_first_rank(self.group), group=self.group, async_op=True),
@@ -239,7 +239,7 @@ class CurvatureCommunicator:
 
     def _resync(self, opt) -> None:
         if opt._steps % self.resync_every == 0:
-            broadcast_parameters(opt.model, src=_first_rank(self.group), process_group=self.group,
+            sync_parameters(opt.model, src=_first_rank(self.group), process_group=self.group,
                                  timeout=None if self.timeout is None else self.timeout.total_seconds())
 
     def average_scalars(self, *values: float) -> Tuple[float, ...]:
@@ -264,7 +264,7 @@ class CurvatureCommunicator:
         self._all_reduce(values, "set-up check", op=dist.ReduceOp.MAX)
         if int(values[0]) != -int(values[1]):
             raise ValueError("share_curvature: the ranks' optimizers differ (layers, their sizes, fisher, "
-                             "curvature, stats_every, invert_every or step count); build the same model and "
+                             "structure, stats_interval, inverse_interval or step count); build the same model and "
                              "optimizer on every rank, and load the same checkpoint everywhere")
 
     # -- collectives -----------------------------------------------------------------------------------
@@ -377,7 +377,7 @@ class StatisticsBucket:
                 buffer[self.value_count + index] = 1.0
         return buffer
 
-    def unpack(self, buffer) -> Dict[CurvatureBlock, dict]:
+    def unpack(self, buffer) -> Dict[LayerCurvature, dict]:
         averaged = {}
         offset = 0
         counts = buffer[self.value_count:].tolist()
@@ -394,7 +394,7 @@ class StatisticsBucket:
         return averaged
 
 
-def _statistics_buckets(blocks: Sequence[CurvatureBlock], batches,
+def _statistics_buckets(blocks: Sequence[LayerCurvature], batches,
                         projected: bool = False) -> List[StatisticsBucket]:
     """One bucket per statistics dtype (normally a single one), blocks in the optimizer's order."""
     by_dtype: Dict[torch.dtype, list] = {}
@@ -405,14 +405,14 @@ def _statistics_buckets(blocks: Sequence[CurvatureBlock], batches,
     return [StatisticsBucket(entries, dtype) for dtype, entries in by_dtype.items()]
 
 
-def _statistic_shapes(block: CurvatureBlock, batches, projected: bool = False) -> List[Tuple[str, Tuple[int, ...]]]:
+def _statistic_shapes(block: LayerCurvature, batches, projected: bool = False) -> List[Tuple[str, Tuple[int, ...]]]:
     """Shapes of a block's statistics (or projected ones), known on every rank even where it recorded nothing."""
     shapes = block.statistic_shapes()
     keys = block.projected_keys if projected else block.statistic_keys
     return [(key, tuple(shapes[key])) for key in keys]
 
 
-def _symmetric_keys(block: CurvatureBlock) -> Tuple[str, ...]:
+def _symmetric_keys(block: LayerCurvature) -> Tuple[str, ...]:
     """Statistics symmetric by construction (``E[a a^T]``, ``E[g g^T]``), as the block declares them."""
     return tuple(block.symmetric_statistic_keys)
 
@@ -454,12 +454,12 @@ def _unflatten(values: torch.Tensor, shape, symmetric: bool) -> torch.Tensor:
 
 
 # ---------------------------------------------------------------------------------------- inversion sharding
-def _has_own_inverse(block: CurvatureBlock) -> bool:
+def _has_own_inverse(block: LayerCurvature) -> bool:
     """Blocks whose inverse is more than their statistics are worth sharding (Kronecker, not diagonal)."""
     return bool(set(block.inverse_keys) - set(block.statistic_keys))
 
 
-def inversion_cost(block: CurvatureBlock, statistics: dict) -> float:
+def inversion_cost(block: LayerCurvature, statistics: dict) -> float:
     """``sum d^3`` over the block's square statistics (``d_in^3 + d_out^3`` for Kronecker factors)."""
     return _cost_from_shapes([tuple(statistics[key].shape) for key in block.statistic_keys])
 
@@ -488,7 +488,7 @@ def assign_owners(costs: Sequence[float], world_size: int) -> List[int]:
 
 
 # ---------------------------------------------------------------------------------------- inverse payloads
-def encode_inverses(results: Dict[CurvatureBlock, tuple], error: Optional[BaseException], rank: int,
+def encode_inverses(results: Dict[LayerCurvature, tuple], error: Optional[BaseException], rank: int,
                     device=None) -> torch.Tensor:
     """One byte buffer: ``[header length][JSON header][raw tensor bytes...]``, exact to the bit.
 
@@ -522,7 +522,7 @@ def encode_inverses(results: Dict[CurvatureBlock, tuple], error: Optional[BaseEx
     return torch.cat([head] + [c.to(device) for c in chunks])
 
 
-def decode_inverses(buffer: torch.Tensor, blocks_by_name: Dict[str, CurvatureBlock]):
+def decode_inverses(buffer: torch.Tensor, blocks_by_name: Dict[str, LayerCurvature]):
     """Inverse of :func:`encode_inverses`: ``({block: (tensors, info)}, error message or None)``."""
     length = int(buffer[:_HEADER_LENGTH_BYTES].cpu().clone().view(torch.int64))  # clone: slices may be unaligned
     start = _HEADER_LENGTH_BYTES
@@ -625,7 +625,7 @@ def average_gradients(params, process_group=None, timeout: Optional[float] = Non
                 p.grad.copy_(average)
 
 
-def broadcast_parameters(module: nn.Module, src: int = 0, process_group=None,
+def sync_parameters(module: nn.Module, src: int = 0, process_group=None,
                          timeout: Optional[float] = None) -> None:
     """Copy ``src``'s parameters and buffers to every rank (one broadcast per dtype), as DDP does at wrap time."""
     tensors = list(module.parameters()) + list(module.buffers())
@@ -759,7 +759,7 @@ def _parameters(params) -> Iterable[torch.Tensor]:
 
 def _setup_fingerprint(opt) -> int:
     """A 62-bit hash of what must match across ranks: blocks, sizes, schedule, step count."""
-    parts = [opt.fisher, opt.curvature, opt.stats_every, opt.invert_every, opt._steps]
-    parts += [(name, b.curvature, b.layer.in_dim, b.layer.out_dim) for name, b in opt.blocks.items()]
+    parts = [opt.fisher, opt.structure, opt.stats_interval, opt.inverse_interval, opt._steps]
+    parts += [(name, b.structure, b.layer.in_dim, b.layer.out_dim) for name, b in opt.blocks.items()]
     digest = hashlib.blake2b(repr(parts).encode(), digest_size=8).digest()
     return int.from_bytes(digest, "little") >> 2

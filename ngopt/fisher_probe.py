@@ -17,7 +17,7 @@ batch (x_n, y_n), n = 1..N, at the current weights:
   E_{y~p(y|f_n)}[grad l grad l^T]: softmax cross-entropy diag(p) - p p^T,
   squared error 2 I, sigmoid binary cross-entropy diag(s (1 - s));
 * against the optimizer's block ``C = block.dense_curvature()`` (A (x) G for
-  K-FAC, the diagonal for ``curvature='diag'``) and against the diagonal of F:
+  K-FAC, the diagonal for ``structure='diag'``) and against the diagonal of F:
   relative Frobenius error ||C - F||_F / ||F||_F, and the angle between the
   damped natural-gradient directions (C + lambda I)^-1 g and (F + lambda I)^-1 g,
   g the layer gradient on the probe batch (same damping on both sides, so the
@@ -33,7 +33,7 @@ batch (x_n, y_n), n = 1..N, at the current weights:
 The optimizer's statistics are running averages over earlier batches, so the
 block error mixes the factorization error with estimation noise and staleness;
 for the pure factorization error take one step on the probe batch with
-``stats_ema=0`` first.
+``stats_memory=0`` first.
 
 The probe runs the model in ``eval()`` mode (restored afterwards) so that the
 optimizer's capture hooks record nothing; with dropout or batch norm that is a
@@ -263,7 +263,7 @@ def _probe_layer(opt, block, model, loss_fn, inputs, targets, generator, samples
         "sampled": damped_direction(sampled, grad, damping),
     }
     entry = {
-        "params": int(exact.shape[0]), "curvature": block.curvature, "damping": damping,
+        "params": int(exact.shape[0]), "structure": block.structure, "damping": damping,
         "exact_trace": float(torch.trace(exact)),
         "block_error": relative_frobenius_error(approx, exact),
         "block_angle_deg": direction_angle_deg(directions["block"], directions["exact"]),
@@ -283,7 +283,7 @@ def probe_fisher_quality(opt, model: nn.Module, loss_fn, inputs: torch.Tensor, t
     """Exact per-layer Fisher on a probe batch against the optimizer's approximation.
 
     Args:
-        opt: an ``ngopt.NaturalGradient`` whose blocks hold statistics.
+        opt: an ``ngopt.FisherDescent`` whose blocks hold statistics.
         model: the model the optimizer trains.
         loss_fn: ``nn.MSELoss``, ``nn.CrossEntropyLoss`` or ``nn.BCEWithLogitsLoss``.
         inputs, targets: the probe batch (model outputs must be [batch, features]).
@@ -307,7 +307,7 @@ def probe_fisher_quality(opt, model: nn.Module, loss_fn, inputs: torch.Tensor, t
     _check_probe_arguments(max_params, samples, warn_angle_deg)
     blocks = getattr(opt, "blocks", None)
     if not isinstance(blocks, dict):
-        raise TypeError(f"opt must be an ngopt.NaturalGradient (with .blocks); got {type(opt).__name__}")
+        raise TypeError(f"opt must be an ngopt.FisherDescent (with .blocks); got {type(opt).__name__}")
     if layers is not None:
         unknown = [name for name in layers if name not in blocks]
         if unknown:

@@ -1,4 +1,4 @@
-"""``NaturalGradient``: a ``torch.optim.Optimizer`` that preconditions by a per-layer Fisher.
+"""``FisherDescent``: a ``torch.optim.Optimizer`` that preconditions by a per-layer Fisher.
 
 The optimizer only schedules and composes: capture hooks (``capture.py``)
 record layer inputs and output gradients, curvature blocks (``blocks/``) turn
@@ -7,10 +7,10 @@ them into statistics, inverses and preconditioned directions, and the step rule
 
 One ``step()``:
 
-1. every ``stats_every`` steps the forward/backward just run was recorded;
+1. every ``stats_interval`` steps the forward/backward just run was recorded;
    its statistics are blended into the running averages (the first refresh
    sets them outright);
-2. every ``invert_every`` steps the damped factors are inverted on the CPU in
+2. every ``inverse_interval`` steps the damped factors are inverted on the CPU in
    float64;
 3. each block's gradient (plus ``weight_decay * w``) is preconditioned,
    ``delta = C^-1 grad``; the KL trust bound scales all blocks of a group by
@@ -35,8 +35,8 @@ import torch
 from torch import nn
 
 from . import fallback as fallback_rules
-from .blocks.base import CurvatureBlock
-from .blocks.factory import CURVATURES, make_block
+from .blocks.base import LayerCurvature
+from .blocks.factory import STRUCTURES, make_block
 from .blocks.layers import adapter_for
 from .capture import CaptureHooks, FisherSource
 from .likelihoods import likelihood_for
@@ -49,7 +49,7 @@ TIME_KEYS = ("statistics", "inversion", "precondition", "fallback", "step_total"
 DEFAULT_FALLBACK_LR_SCALE = {"sgd": 1.0, "adam": 1e-2}
 
 
-class NaturalGradient(torch.optim.Optimizer):
+class FisherDescent(torch.optim.Optimizer):
     """Natural-gradient descent with Kronecker-factored (or diagonal) Fisher blocks.
 
     See the README for every option; the short version:
@@ -65,18 +65,19 @@ class NaturalGradient(torch.optim.Optimizer):
         weight_decay: L2 term added to the gradient before preconditioning (per group).
         damping: Tikhonov damping ``lambda`` added to the curvature (per group).
         fisher: ``'sampled'``, ``'exact'`` or ``'empirical'``.
-        curvature: ``'kfac'``, ``'ekfac'`` or ``'diag'``.
-        stats_every: steps between curvature-statistics refreshes.
-        invert_every: steps between inversions of the factors.
-        stats_ema: weight of the old statistics in the running average.
-        trust_kl: bound on the step's KL divergence under the quadratic model (None: off).
-        adapt_damping: Levenberg-Marquardt adaptation of ``damping``; needs ``step(closure)``.
+        structure: ``'kfac'``, ``'ekfac'`` or ``'diag'``.
+        stats_interval: steps between curvature-statistics refreshes.
+        inverse_interval: steps between inversions of the factors.
+        stats_memory: weight of the old statistics in the running average.
+        max_step_kl: bound on the step's KL divergence under the quadratic model (None: off).
+        damping_rule: ``'fixed'``, or ``'lm'``: Levenberg-Marquardt adaptation of ``damping``
+            from the reduction ratio; needs ``step(closure)``.
         fallback: ``'sgd'`` or ``'adam'`` for parameters outside any block (per group).
         fallback_lr_scale: the fallback rule's step is ``lr * fallback_lr_scale``
             (default 1 for ``'sgd'``, 1e-2 for ``'adam'``; per group).
         fisher_samples: Monte Carlo draws per example for ``fisher='sampled'``.
-        damping_range: bounds for ``adapt_damping``.
-        adapt_every: steps between Levenberg-Marquardt updates of ``damping``.
+        damping_range: bounds for ``damping_rule='lm'``.
+        damping_interval: steps between Levenberg-Marquardt updates of ``damping``.
         param_groups: optional list of dicts as in ``torch.optim`` (``{"params": [...], "lr": ...}``)
             over the model's parameters; by default one group holds them all.
         seed: seed of the private generator used for sampled targets
@@ -88,16 +89,16 @@ class NaturalGradient(torch.optim.Optimizer):
 
     def __init__(self, model: nn.Module, loss_fn=None, *, lr: float = 0.3, momentum: float = 0.5,
                  weight_decay: float = 0.0, damping: float = 1e-2, fisher: str = "sampled",
-                 curvature: str = "kfac", stats_every: int = 10, invert_every: int = 20,
-                 stats_ema: float = 0.9, trust_kl: Optional[float] = 1e-2, adapt_damping: bool = False,
+                 structure: str = "kfac", stats_interval: int = 10, inverse_interval: int = 20,
+                 stats_memory: float = 0.9, max_step_kl: Optional[float] = 1e-2, damping_rule: str = "fixed",
                  fallback: str = "sgd", fallback_lr_scale: Optional[float] = None, fisher_samples: int = 1,
-                 damping_range=(1e-6, 1e2), adapt_every: int = 5, param_groups=None,
+                 damping_range=(1e-6, 1e2), damping_interval: int = 5, param_groups=None,
                  seed: Optional[int] = None, weight_sharing: str = "expand"):
         check_arguments(model=model, loss_fn=loss_fn, lr=lr, momentum=momentum, weight_decay=weight_decay,
-                        damping=damping, fisher=fisher, curvature=curvature, stats_every=stats_every,
-                        invert_every=invert_every, stats_ema=stats_ema, trust_kl=trust_kl,
-                        adapt_damping=adapt_damping, fallback=fallback, fallback_lr_scale=fallback_lr_scale,
-                        fisher_samples=fisher_samples, damping_range=damping_range, adapt_every=adapt_every,
+                        damping=damping, fisher=fisher, structure=structure, stats_interval=stats_interval,
+                        inverse_interval=inverse_interval, stats_memory=stats_memory, max_step_kl=max_step_kl,
+                        damping_rule=damping_rule, fallback=fallback, fallback_lr_scale=fallback_lr_scale,
+                        fisher_samples=fisher_samples, damping_range=damping_range, damping_interval=damping_interval,
                         seed=seed, param_groups=param_groups, weight_sharing=weight_sharing)
         source = None
         if fisher != "empirical":
@@ -114,7 +115,7 @@ class NaturalGradient(torch.optim.Optimizer):
                           "values around 1e-3..1e-1 are the usual range", stacklevel=2)
 
         defaults = dict(lr=lr, momentum=momentum, weight_decay=weight_decay, damping=damping,
-                        trust_kl=trust_kl, fallback=fallback, fallback_lr_scale=fallback_lr_scale)
+                        max_step_kl=max_step_kl, fallback=fallback, fallback_lr_scale=fallback_lr_scale)
         groups = param_groups if param_groups is not None else [{"params": list(model.parameters())}]
         super().__init__(groups, defaults)
         for group in self.param_groups:
@@ -124,14 +125,14 @@ class NaturalGradient(torch.optim.Optimizer):
 
         self.model = getattr(model, "module", model) if _is_wrapper(model) else model
         self.fisher = fisher
-        self.curvature = curvature
+        self.structure = structure
         self.weight_sharing = weight_sharing
-        self.stats_every = stats_every
-        self.invert_every = invert_every
-        self.stats_ema = stats_ema
-        self.adapt_damping = adapt_damping
+        self.stats_interval = stats_interval
+        self.inverse_interval = inverse_interval
+        self.stats_memory = stats_memory
+        self.damping_rule = damping_rule
         self.damping_range = tuple(float(x) for x in damping_range)
-        self.adapt_every = adapt_every
+        self.damping_interval = damping_interval
         self.track_spectra = False
         # Set by ngopt.distributed to share statistics and inversions across ranks; None = one process.
         self.communicator = None
@@ -144,7 +145,7 @@ class NaturalGradient(torch.optim.Optimizer):
         self._warned_uninitialised = False
         self._applied: dict = {}
 
-        self.blocks: Dict[str, CurvatureBlock] = self._build_blocks()
+        self.blocks: Dict[str, LayerCurvature] = self._build_blocks()
         self._hooks = CaptureHooks(self.model, {b.layer.module: b for b in self.blocks.values()}, source,
                                    loss_fn)
         self._hooks.armed = True
@@ -155,7 +156,7 @@ class NaturalGradient(torch.optim.Optimizer):
             share_curvature(self, process_group=model.process_group)
 
     # ------------------------------------------------------------------ construction
-    def _build_blocks(self) -> Dict[str, CurvatureBlock]:
+    def _build_blocks(self) -> Dict[str, LayerCurvature]:
         group_of = {p: i for i, g in enumerate(self.param_groups) for p in g["params"]}
         layers = []
         for name, module in self.model.named_modules():
@@ -172,9 +173,9 @@ class NaturalGradient(torch.optim.Optimizer):
             if layer.has_bias and group_of.get(layer.bias) != group_of[layer.weight]:
                 raise ValueError(f"param_groups: {name}.weight and {name}.bias must be in the same group")
             layers.append(layer)
-        blocks: Dict[str, CurvatureBlock] = {}
+        blocks: Dict[str, LayerCurvature] = {}
         for layer in _without_tied_parameters(layers):
-            blocks[layer.name] = make_block(layer, self.curvature, self.state[layer.weight],
+            blocks[layer.name] = make_block(layer, self.structure, self.state[layer.weight],
                                             self.weight_sharing)
         self._block_group = {b: group_of[b.layer.weight] for b in blocks.values()}
         self._block_params = {p for b in blocks.values() for p in b.layer.params()}
@@ -187,12 +188,12 @@ class NaturalGradient(torch.optim.Optimizer):
         return self._generator
 
     def __repr__(self) -> str:
-        lines = [f"NaturalGradient(fisher={self.fisher!r}, curvature={self.curvature!r}, "
-                 f"stats_every={self.stats_every}, invert_every={self.invert_every}, "
-                 f"stats_ema={self.stats_ema}, adapt_damping={self.adapt_damping})"]
+        lines = [f"FisherDescent(fisher={self.fisher!r}, structure={self.structure!r}, "
+                 f"stats_interval={self.stats_interval}, inverse_interval={self.inverse_interval}, "
+                 f"stats_memory={self.stats_memory}, damping_rule={self.damping_rule!r})"]
         for i, group in enumerate(self.param_groups):
             settings = ", ".join(f"{k}={group[k]}" for k in ("lr", "momentum", "weight_decay", "damping",
-                                                               "trust_kl", "fallback"))
+                                                               "max_step_kl", "fallback"))
             lines.append(f"  group {i}: {settings}")
         for name, block in self.blocks.items():
             lines.append(f"  {name}: {block.describe()}")
@@ -206,9 +207,9 @@ class NaturalGradient(torch.optim.Optimizer):
     @torch.no_grad()
     def step(self, closure: Optional[Callable[[], torch.Tensor]] = None):
         """One natural-gradient step; returns ``closure()``'s loss when a closure is given."""
-        if self.adapt_damping and closure is None:
+        if self.damping_rule == "lm" and closure is None:
             self._hooks.discard()  # the refused step must not leave its batch behind for the next one
-            raise ValueError("adapt_damping=True needs step(closure): the closure re-evaluates the loss on the "
+            raise ValueError("damping_rule='lm' needs step(closure): the closure re-evaluates the loss on the "
                              "same batch to measure the reduction ratio")
         loss = None
         if closure is not None:
@@ -221,7 +222,7 @@ class NaturalGradient(torch.optim.Optimizer):
             self._last_update["loss"] = float(loss)
         if reason is not None:
             self._skip(reason)
-        elif self.adapt_damping and (step_index + 1) % self.adapt_every == 0:
+        elif self.damping_rule == "lm" and (step_index + 1) % self.damping_interval == 0:
             self._adapt_damping(closure, loss)
         self._steps += 1
         self._hooks.armed = self._statistics_due(self._steps)
@@ -229,7 +230,7 @@ class NaturalGradient(torch.optim.Optimizer):
         return loss
 
     def _statistics_due(self, step_index: int) -> bool:
-        return step_index % self.stats_every == 0 or not all(b.has_statistics for b in self.blocks.values())
+        return step_index % self.stats_interval == 0 or not all(b.has_statistics for b in self.blocks.values())
 
     def _attempt(self, loss, step_index: int) -> Optional[str]:
         """Compute the whole step, then write it; return a skip reason instead of writing."""
@@ -298,7 +299,7 @@ class NaturalGradient(torch.optim.Optimizer):
                     batches[block] = batch
         if self.communicator is not None:
             batches = self.communicator.average_statistics(self, batches)
-        statistics = {block: block.blend(batch, self.stats_ema) for block, batch in batches.items()}
+        statistics = {block: block.blend(batch, self.stats_memory) for block, batch in batches.items()}
         tensors = [t for stats in statistics.values() for t in stats.values()]
         if not _all_finite(tensors):
             return None, forwards
@@ -324,7 +325,7 @@ class NaturalGradient(torch.optim.Optimizer):
         new = {}
         for block in blocks:
             new[block] = block.blend_projected(batches.get(block), views[block], block in inverses,
-                                               self.stats_ema)
+                                               self.stats_memory)
         if not _all_finite([t for tensors in new.values() for t in tensors.values()]):
             return False
         for block, tensors in new.items():
@@ -341,7 +342,7 @@ class NaturalGradient(torch.optim.Optimizer):
 
     def _new_inverses(self, statistics, step_index: int):
         """``{block: (tensors, info)}`` for the blocks due an inversion, or None if non-finite."""
-        due = step_index % self.invert_every == 0
+        due = step_index % self.inverse_interval == 0
         jobs = []
         for block in self.blocks.values():
             fresh = block in statistics
@@ -414,7 +415,7 @@ class NaturalGradient(torch.optim.Optimizer):
         for index, blocks in per_group.items():
             group = self.param_groups[index]
             group_dot = sum(per_block[b][0] for b in blocks)
-            nu = kl_trust_scale(group_dot, group["lr"], group["trust_kl"])
+            nu = kl_trust_scale(group_dot, group["lr"], group["max_step_kl"])
             scales[index] = nu
             step = group["lr"] * nu
             kl += 0.5 * step * step * group_dot
@@ -423,7 +424,7 @@ class NaturalGradient(torch.optim.Optimizer):
         denom = math.sqrt(delta_sq * grad_sq)
         group0 = self.param_groups[0]
         self._last_update = {
-            "grad_norm": math.sqrt(grad_sq), "update_norm": math.sqrt(update_sq),
+            "grad_norm": math.sqrt(grad_sq), "direction_norm": math.sqrt(update_sq),
             "cosine": dot / denom if denom > 0 else 0.0,
             "trust_scale": min(scales.values()), "trust_scale_by_group": scales,
             "kl_estimate": kl, "predicted_change": predicted, "reduction_ratio": None,
@@ -441,7 +442,7 @@ class NaturalGradient(torch.optim.Optimizer):
                     moved.append(None)
                     continue
                 moved.append(self._momentum_step(param, part, group["momentum"], group["lr"]))
-            if self.adapt_damping:  # the reduction ratio needs the change actually made
+            if self.damping_rule == "lm":  # the reduction ratio needs the change actually made
                 self._applied[block] = block.layer.gradient_matrix(*moved).mul(-group["lr"])
 
     def _momentum_step(self, param, direction, momentum, lr) -> torch.Tensor:
@@ -483,14 +484,14 @@ class NaturalGradient(torch.optim.Optimizer):
     def _adapt_damping(self, closure, loss_before) -> None:
         """Levenberg-Marquardt: compare the loss change with the quadratic model's prediction."""
         predicted = self._model_change()
-        with self.paused_capture(), torch.enable_grad():
+        with self.no_capture(), torch.enable_grad():
             loss_after = closure()
         before, after = float(loss_before), float(loss_after)
         if self.communicator is not None:  # the ratio of the global batch, the same on every rank
             before, after = self.communicator.average_scalars(before, after)
         rho = reduction_ratio(before, after, predicted)
         for group in self.param_groups:
-            group["damping"] = levenberg_marquardt_damping(group["damping"], rho, self.adapt_every,
+            group["damping"] = levenberg_marquardt_damping(group["damping"], rho, self.damping_interval,
                                                            self.damping_range)
         self._last_update["reduction_ratio"] = rho
         self._last_update["damping"] = self.param_groups[0]["damping"]
@@ -508,7 +509,7 @@ class NaturalGradient(torch.optim.Optimizer):
 
     # ------------------------------------------------------------------ hooks, diagnostics, state
     @contextlib.contextmanager
-    def paused_capture(self):
+    def no_capture(self):
         """Within this block, forward passes record nothing (e.g. evaluation or probing in train mode)."""
         armed, self._hooks.armed = self._hooks.armed, False
         try:
@@ -520,10 +521,6 @@ class NaturalGradient(torch.optim.Optimizer):
     def steps_taken(self) -> int:
         """Number of ``step()`` calls so far, skipped ones included."""
         return self._steps
-
-    def register_step_hook(self, fn: Callable[["NaturalGradient"], None]):
-        """Call ``fn(optimizer)`` after every ``step()`` (skipped ones included); returns a removable handle."""
-        return self.register_step_post_hook(lambda optimizer, args, kwargs: fn(optimizer))
 
     def diagnostics(self) -> dict:
         """A plain-dict snapshot of the latest curvature diagnostics (keys documented in the README)."""

@@ -296,7 +296,7 @@ def _line_panel(ax, steps, values, label, ylabel, colour, log=False):
 
 def plot_update(records: list, path: Path):
     steps, grad = series(records, "update", "grad_norm")
-    _, upd = series(records, "update", "update_norm")
+    _, upd = series(records, "update", "direction_norm")
     _, cosine = series(records, "update", "cosine")
     _, trust = series(records, "update", "trust_scale")
     _, kl = series(records, "update", "kl_estimate")
@@ -340,7 +340,7 @@ def plot_loss(records: list, path: Path):
         bottom.axhline(1.0, color="black", linestyle=":", linewidth=1, label=r"model exact ($\rho = 1$)")
         bottom.legend(fontsize=8)
     else:
-        bottom.text(0.5, 0.5, "no reduction ratio recorded (needs adapt_damping=True and step(closure))", ha="center",
+        bottom.text(0.5, 0.5, "no reduction ratio recorded (needs damping_rule='lm')", ha="center",
                     va="center", transform=bottom.transAxes)
     bottom.set_ylabel("actual / predicted change")
     bottom.set_xlabel("optimizer step")
@@ -428,7 +428,7 @@ def plot_probe(records: list, path: Path):
     fig, (left, right) = plt.subplots(1, 2, figsize=(12, 4.5), constrained_layout=True)
     x = np.arange(len(names))
     width = 0.38
-    kinds = {layers[n].get("curvature") for n in names}
+    kinds = {layers[n].get("structure") for n in names}
     block_label = "optimizer's block (Kronecker A (x) G)" if kinds == {"kfac"} else "optimizer's block"
     for offset, kind, label in ((-width / 2, "block", block_label), (width / 2, "diag", "diagonal of the exact Fisher")):
         errors = [_number(layers[n].get(f"{kind}_error")) for n in names]
@@ -518,7 +518,7 @@ def _format_table(rows: list) -> list:
 def _layer_table(record: dict) -> list:
     rows = [("layer", "kind", "A dim", "G dim", "cond damped", "cond A", "cond G", "eig A min..max", "eig G min..max")]
     for name, e in (record.get("layers") or {}).items():
-        rows.append((name, f"{e.get('block', '?')}/{e.get('curvature', '?')}", e.get("in_dim", "-"),
+        rows.append((name, f"{e.get('block', '?')}/{e.get('structure', '?')}", e.get("in_dim", "-"),
                      e.get("out_dim", "-"), f"{_number(e.get('condition')):.3g}",
                      f"{_number(e.get('in_condition')):.3g}", f"{_number(e.get('out_condition')):.3g}",
                      f"{_number(e.get('in_eig_min')):.2e}..{_number(e.get('in_eig_max')):.2e}",

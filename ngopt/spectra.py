@@ -1,4 +1,4 @@
-"""Per-block curvature summaries for ``NaturalGradient.diagnostics()``.
+"""Per-block curvature summaries for ``FisherDescent.diagnostics()``.
 
 Eigenvalues come from the inversion when spectra tracking is on (the
 inversion then uses an eigendecomposition, so they cost nothing extra);
@@ -61,7 +61,7 @@ def diagonal_summary(values: torch.Tensor, damping, with_spectra, prefix: str = 
 
 def block_summary(block, damping: float, with_spectra: bool = False) -> dict:
     """Plain-number summary of one block: sizes, spectra, damping and condition numbers."""
-    summary = {"block": block.layer.kind, "curvature": block.curvature,
+    summary = {"block": block.layer.kind, "structure": block.structure,
                "in_dim": block.layer.in_dim, "out_dim": block.layer.out_dim,
                "condition": math.nan, "inversion_step": block.info.get("inversion_step")}
     if not block.has_statistics:

@@ -5,16 +5,16 @@ import math
 from typing import Optional, Tuple
 
 
-def kl_trust_scale(direction_dot_grad: float, lr: float, trust_kl: Optional[float]) -> float:
+def kl_trust_scale(direction_dot_grad: float, lr: float, max_step_kl: Optional[float]) -> float:
     """``nu = min(1, sqrt(kappa / (lr^2 * delta^T grad)))`` (Ba, Grosse & Martens, ICLR 2017).
 
     For a natural-gradient direction ``delta = C^-1 grad``, ``delta^T grad`` is
     ``delta^T C delta``, so ``lr^2 nu^2 delta^T grad / 2`` is the KL divergence of
     the step under the quadratic model, and the scaling keeps it at most ``kappa / 2``.
     """
-    if trust_kl is None or direction_dot_grad <= 0 or not math.isfinite(direction_dot_grad):
+    if max_step_kl is None or direction_dot_grad <= 0 or not math.isfinite(direction_dot_grad):
         return 1.0
-    return min(1.0, math.sqrt(trust_kl / (lr * lr * direction_dot_grad)))
+    return min(1.0, math.sqrt(max_step_kl / (lr * lr * direction_dot_grad)))
 
 
 def reduction_ratio(loss_before: float, loss_after: float, predicted_change: float) -> Optional[float]:

@@ -6,8 +6,9 @@ import numbers
 
 from torch import nn
 
-CHOICES = {"fisher": ("sampled", "exact", "empirical"), "curvature": ("kfac", "ekfac", "diag"),
-           "fallback": ("sgd", "adam"), "weight_sharing": ("expand", "reduce")}
+CHOICES = {"fisher": ("sampled", "exact", "empirical"), "structure": ("kfac", "ekfac", "diag"),
+           "fallback": ("sgd", "adam"), "weight_sharing": ("expand", "reduce"),
+           "damping_rule": ("fixed", "lm")}
 PLANNED: dict = {}  # {argument: {value: message}} for values announced but not built yet
 
 
@@ -42,21 +43,22 @@ def _choice(name, value):
 
 
 CHECKS = {
-    "lr": lambda v: _real("lr", v, low=0.0, low_open=True),
+    "lr": lambda v: _real("lr", v, low=0.0),
     "momentum": lambda v: _real("momentum", v, low=0.0, high=1.0, high_open=True),
     "weight_decay": lambda v: _real("weight_decay", v, low=0.0),
     "damping": lambda v: _real("damping", v, low=0.0, low_open=True),
-    "stats_ema": lambda v: _real("stats_ema", v, low=0.0, high=1.0, high_open=True),
-    "trust_kl": lambda v: _real("trust_kl", v, low=0.0, low_open=True, optional=True),
+    "stats_memory": lambda v: _real("stats_memory", v, low=0.0, high=1.0, high_open=True),
+    "max_step_kl": lambda v: _real("max_step_kl", v, low=0.0, low_open=True, optional=True),
     "fallback_lr_scale": lambda v: _real("fallback_lr_scale", v, low=0.0, optional=True),
-    "stats_every": lambda v: _integer("stats_every", v, low=1),
-    "invert_every": lambda v: _integer("invert_every", v, low=1),
+    "stats_interval": lambda v: _integer("stats_interval", v, low=1),
+    "inverse_interval": lambda v: _integer("inverse_interval", v, low=1),
     "fisher_samples": lambda v: _integer("fisher_samples", v, low=1),
-    "adapt_every": lambda v: _integer("adapt_every", v, low=1),
+    "damping_interval": lambda v: _integer("damping_interval", v, low=1),
     "fisher": lambda v: _choice("fisher", v),
-    "curvature": lambda v: _choice("curvature", v),
+    "structure": lambda v: _choice("structure", v),
     "fallback": lambda v: _choice("fallback", v),
     "weight_sharing": lambda v: _choice("weight_sharing", v),
+    "damping_rule": lambda v: _choice("damping_rule", v),
 }
 
 
@@ -71,11 +73,6 @@ def _check_loss_fn(loss_fn):
     if loss_fn is not None and not callable(loss_fn):
         raise TypeError(f"loss_fn must be a callable criterion (e.g. nn.CrossEntropyLoss()) or None, "
                         f"got {type(loss_fn).__name__}")
-
-
-def _check_flag(name, value):
-    if not isinstance(value, bool):
-        raise TypeError(f"{name} must be True or False, got {type(value).__name__}")
 
 
 def _check_damping_range(value):
@@ -111,7 +108,7 @@ def _check_param_groups(value):
 def check_arguments(**arguments) -> None:
     """Validate every given argument; raise ``TypeError``/``ValueError`` naming the first bad one."""
     special = {"model": _check_model, "loss_fn": _check_loss_fn, "damping_range": _check_damping_range,
-               "seed": _check_seed, "param_groups": _check_param_groups, "adapt_damping": lambda v: _check_flag("adapt_damping", v)}
+               "seed": _check_seed, "param_groups": _check_param_groups}
     for name, value in arguments.items():
         check = special.get(name) or CHECKS[name]
         check(value)

@@ -1,4 +1,4 @@
-"""Per-step wall time of NaturalGradient (default refresh intervals) over torch.optim.SGD's.
+"""Per-step wall time of FisherDescent (default refresh intervals) over torch.optim.SGD's.
 
 An MLP of width d (3 hidden layers of d units, 10 classes) on random data, batch B.
 Arithmetic floor of the ratio: forward+backward cost ~6 B d^2 flops per d x d
@@ -6,7 +6,7 @@ layer and preconditioning ~4 d^3 per step, so ratio >= 1 + 2d / (3B) once
 statistics and inversions are amortized.  EKFAC rotates into and out of the
 eigenbasis, ~8 d^3 per step: floor 1 + 4d / (3B).
 
-    python scripts/step_overhead.py --width 256 --batches 256 1024 [--curvature ekfac]
+    python scripts/step_overhead.py --width 256 --batches 256 1024 [--structure ekfac]
 """
 from __future__ import annotations
 
@@ -48,11 +48,11 @@ def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--width", type=int, default=256)
     parser.add_argument("--batches", type=int, nargs="+", default=[256, 1024])
-    parser.add_argument("--steps", type=int, default=200, help="timed steps (a multiple of invert_every)")
+    parser.add_argument("--steps", type=int, default=200, help="timed steps (a multiple of inverse_interval)")
     parser.add_argument("--warmup", type=int, default=20)
     parser.add_argument("--threads", type=int, default=2)
     parser.add_argument("--rounds", type=int, default=3, help="alternate SGD/ngopt runs this many times")
-    parser.add_argument("--curvature", choices=["kfac", "ekfac", "diag"], default="kfac")
+    parser.add_argument("--structure", choices=["kfac", "ekfac", "diag"], default="kfac")
     args = parser.parse_args(argv)
     torch.set_num_threads(args.threads)
 
@@ -60,10 +60,10 @@ def main(argv=None):
         return torch.optim.SGD(model.parameters(), lr=0.01, momentum=0.9)
 
     def natural(model, loss_fn):
-        return ngopt.NaturalGradient(model, loss_fn, lr=0.01, curvature=args.curvature)
+        return ngopt.FisherDescent(model, loss_fn, lr=0.01, structure=args.structure)
 
     print(f"width {args.width}, threads {args.threads}, {args.steps} timed steps x {args.rounds} rounds, "
-          f"curvature {args.curvature}")
+          f"curvature {args.structure}")
     print(f"{'batch':>6} {'sgd ms':>8} {'ngopt ms':>9} {'ratio(mean)':>11} {'ratio(median)':>13} {'floor':>6}  ngopt split (% of its step)")
     for batch in args.batches:
         sgd_times, ng_times, optimizer = [], [], None
@@ -74,7 +74,7 @@ def main(argv=None):
         # The optimizer's own clocks cover every step of its last run, warm-up included.
         split = optimizer.diagnostics()["time"]
         share = {k: 100 * split[k] / wall for k in ("statistics", "inversion", "precondition")}
-        gemms = {"kfac": 2, "ekfac": 4, "diag": 0}[args.curvature]  # d x d products per layer and step
+        gemms = {"kfac": 2, "ekfac": 4, "diag": 0}[args.structure]  # d x d products per layer and step
         floor = 1 + gemms * args.width / (3 * batch)
         mean_ratio = statistics.mean(ng_times) / statistics.mean(sgd_times)
         median_ratio = statistics.median(ng_times) / statistics.median(sgd_times)

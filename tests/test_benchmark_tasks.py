@@ -248,7 +248,7 @@ def test_every_linear_and_convolution_gets_a_curvature_block(task_name, build):
         if name in layers:
             module.register_forward_hook(lambda *_, name=name: calls.__setitem__(name, calls[name] + 1))
     split, loss_fn = TASKS[task_name].load_data(), TASKS[task_name].make_loss()
-    optimizer = ngopt.NaturalGradient(model, loss_fn, stats_every=1, invert_every=1)
+    optimizer = ngopt.FisherDescent(model, loss_fn, stats_interval=1, inverse_interval=1)
     optimizer.zero_grad()
     loss_fn(model(split.train_x[:16]), split.train_y[:16]).backward()
     optimizer.step()
@@ -277,19 +277,19 @@ CURVATURE_ROWS = ["ngopt", "ngopt-diag", "ngopt-ekfac"]
 def test_curvature_rows_build_their_curvature_with_the_ngopt_grid(name):
     spec = OPTIMIZERS[name]
     optimizer = spec.build(nn.Linear(3, 2), nn.MSELoss(), spec.lr_centre)
-    assert isinstance(optimizer, ngopt.NaturalGradient)
-    assert optimizer.curvature == {"ngopt": "kfac", "ngopt-diag": "diag", "ngopt-ekfac": "ekfac"}[name]
+    assert isinstance(optimizer, ngopt.FisherDescent)
+    assert optimizer.structure == {"ngopt": "kfac", "ngopt-diag": "diag", "ngopt-ekfac": "ekfac"}[name]
     assert spec.lr_grid(3) == OPTIMIZERS["ngopt"].lr_grid(3)
 
 
 def test_curvature_rows_run_on_request_and_keep_their_curvature_under_overrides():
-    # shared/API.md: results list the optimizers "ngopt|sgd|adam"; the curvature rows are extra
+    # The results schema: results list the optimizers "ngopt|sgd|adam"; the curvature rows are extra
     assert [spec.name for spec in resolve_optimizers(None)] == list(DEFAULT_OPTIMIZERS) == ["ngopt", "sgd", "adam"]
     assert [spec.name for spec in resolve_optimizers(["ngopt-diag", "sgd"])] == ["ngopt-diag", "sgd"]
-    tuned = with_natural_gradient_options(OPTIMIZERS["ngopt-diag"], {"curvature": "kfac", "momentum": 0.0})
+    tuned = with_natural_gradient_options(OPTIMIZERS["ngopt-diag"], {"structure": "kfac", "momentum": 0.0})
     optimizer = tuned.build(nn.Linear(3, 2), nn.MSELoss(), 0.1)
-    assert optimizer.curvature == "diag" and optimizer.param_groups[0]["momentum"] == 0.0
-    assert "curvature='diag'" in tuned.label and "momentum=0.0" in tuned.label
+    assert optimizer.structure == "diag" and optimizer.param_groups[0]["momentum"] == 0.0
+    assert "structure='diag'" in tuned.label and "momentum=0.0" in tuned.label
 
 
 def first_examples(load, n_train: int, n_test: int):

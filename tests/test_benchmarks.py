@@ -1,6 +1,6 @@
 """Tests of the benchmark harness (python -m benchmarks) on tiny budgets.
 
-The results.json checks follow the schema in shared/API.md (the project's
+The results.json checks follow the results schema in the README (the project's
 binding contract); speed goals are reported by the harness, never asserted here.
 """
 
@@ -30,7 +30,7 @@ from benchmarks.training import minibatches, train_run
 REPOSITORY = Path(__file__).resolve().parent.parent
 NGOPT_AVAILABLE = natural_gradient_available()[0]
 OPTIMIZER_NAMES = ["ngopt", "sgd", "adam"] if NGOPT_AVAILABLE else ["sgd", "adam"]
-API_RUN_FIELDS = {  # shared/API.md, "The benchmark harness"
+API_RUN_FIELDS = {  # the README's results schema
     "optimizer": str, "lr": float, "seed": int, "steps_to_target": (int, type(None)),
     "seconds_to_target": (float, type(None)), "final_train_loss": (float, type(None)),
     "final_test_metric": (float, type(None)), "step_seconds_median": float,
@@ -96,7 +96,7 @@ def test_every_optimizer_gets_the_same_budget_and_the_stated_protocol(smoke_run)
 
 def test_time_split_of_natural_gradient_adds_up(smoke_run):
     if not NGOPT_AVAILABLE:
-        pytest.skip("ngopt.NaturalGradient does not import")
+        pytest.skip("ngopt.FisherDescent does not import")
     _, results = smoke_run
     for task in results["tasks"]:
         for run in task["runs"]:
@@ -238,8 +238,8 @@ def test_resolvers_raise_value_error_naming_the_option():
 
 
 def test_natural_gradient_options_parse_as_python_literals():
-    assert parse_options(["momentum=0.9", "trust_kl=None", "curvature=kfac", "adapt_damping=True"]) == {
-        "momentum": 0.9, "trust_kl": None, "curvature": "kfac", "adapt_damping": True}
+    assert parse_options(["momentum=0.9", "max_step_kl=None", "structure=kfac", "damping_rule=lm"]) == {
+        "momentum": 0.9, "max_step_kl": None, "structure": "kfac", "damping_rule": "lm"}
     with pytest.raises(ValueError, match="KEY=VALUE"):
         parse_options(["momentum"])
 
@@ -343,5 +343,5 @@ def test_ngopt_options_reach_every_natural_gradient_row_and_keep_its_curvature()
     args = build_parser().parse_args(["--optimizers", "ngopt,ngopt-ekfac,sgd", "--ngopt-option", "damping=0.001"])
     specs = {spec.name: spec for spec in make_config(args).specs}
     assert specs["ngopt"].natural_gradient_options["damping"] == 0.001
-    assert specs["ngopt-ekfac"].natural_gradient_options == {"damping": 0.001, "curvature": "ekfac"}
+    assert specs["ngopt-ekfac"].natural_gradient_options == {"damping": 0.001, "structure": "ekfac"}
     assert specs["sgd"].natural_gradient_options is None

@@ -32,12 +32,12 @@ def gradient_matrix(layer):
 
 
 def make_optimizer(model, loss_fn, **options):
-    settings = dict(lr=0.5, momentum=0.0, fisher="exact", stats_ema=0.0, stats_every=1, invert_every=1,
-                    trust_kl=None, damping=1e-3)
+    settings = dict(lr=0.5, momentum=0.0, fisher="exact", stats_memory=0.0, stats_interval=1, inverse_interval=1,
+                    max_step_kl=None, damping=1e-3)
     settings.update(options)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # tiny damping warns, on purpose here
-        return ngopt.NaturalGradient(model, loss_fn, **settings)
+        return ngopt.FisherDescent(model, loss_fn, **settings)
 
 
 @pytest.fixture
@@ -156,11 +156,11 @@ def test_update_norms_cosine_kl_and_predicted_change():
     grad = seen["grad"]
     delta = numpy_direction(opt, "Linear", grad, damping)
     assert update["grad_norm"] == pytest.approx(np.linalg.norm(grad), rel=1e-10)  # numpy.linalg.norm
-    assert update["update_norm"] == pytest.approx(np.linalg.norm(delta), rel=1e-8)
+    assert update["direction_norm"] == pytest.approx(np.linalg.norm(delta), rel=1e-8)
     cosine = np.sum(delta * grad) / (np.linalg.norm(delta) * np.linalg.norm(grad))
     assert update["cosine"] == pytest.approx(cosine, rel=1e-8)
     # the weights moved by lr * update (momentum 0, no trust bound)
-    assert np.linalg.norm(seen["moved"]) == pytest.approx(0.5 * update["update_norm"], rel=1e-8)
+    assert np.linalg.norm(seen["moved"]) == pytest.approx(0.5 * update["direction_norm"], rel=1e-8)
     assert update["trust_scale"] == 1.0
     assert update["lr"] == 0.5 and update["damping"] == damping
     # KL of the step by hand: for N(f, 1/2) per element, KL = (f_after - f_before)^2, averaged
@@ -174,7 +174,7 @@ def test_update_norms_cosine_kl_and_predicted_change():
 def test_trust_scale_holds_the_kl_at_the_bound():
     x, y, model, loss_fn = least_squares(seed=1)
     kappa = 1e-4
-    opt = make_optimizer(model, loss_fn, lr=1.0, damping=1e-16, trust_kl=kappa)
+    opt = make_optimizer(model, loss_fn, lr=1.0, damping=1e-16, max_step_kl=kappa)
     seen = one_step(model, loss_fn, x, y, opt)
     update = opt.diagnostics()["update"]
     delta = numpy_direction(opt, "Linear", seen["grad"], 1e-16)
@@ -185,14 +185,14 @@ def test_trust_scale_holds_the_kl_at_the_bound():
     kl_by_hand = np.mean((seen["after"] - seen["before"]) ** 2)  # Gaussian KL, as above
     assert kl_by_hand == pytest.approx(kappa / 2, rel=1e-6)
     assert update["kl_estimate"] == pytest.approx(kl_by_hand, rel=1e-6)
-    assert update["update_norm"] == pytest.approx(nu * np.linalg.norm(delta), rel=1e-8)
+    assert update["direction_norm"] == pytest.approx(nu * np.linalg.norm(delta), rel=1e-8)
 
 
 def test_reduction_ratio_from_a_closure():
     x, y, model, loss_fn = least_squares(seed=2)
     # momentum > 0 so the update sits in the momentum buffer the model change is computed from
-    opt = make_optimizer(model, loss_fn, lr=0.5, damping=1e-16, momentum=0.5, adapt_damping=True,
-                         adapt_every=1)
+    opt = make_optimizer(model, loss_fn, lr=0.5, damping=1e-16, momentum=0.5, damping_rule="lm",
+                         damping_interval=1)
     seen = one_step(model, loss_fn, x, y, opt, closure=True)
     update = opt.diagnostics()["update"]
     # rho = (L(theta + delta) - L(theta)) / M(delta); least squares: M is exact, rho = 1
@@ -237,7 +237,7 @@ def test_times_add_up_and_stay_within_the_wall_clock():
 def test_diagonal_block_values():
     x, y, model, loss_fn = least_squares(seed=5)
     damping = 1e-3
-    opt = make_optimizer(model, loss_fn, curvature="diag", damping=damping)
+    opt = make_optimizer(model, loss_fn, structure="diag", damping=damping)
     opt.track_spectra = True
     one_step(model, loss_fn, x, y, opt)
     entry = opt.diagnostics()["layers"]["Linear"]
@@ -257,13 +257,13 @@ def test_ekfac_block_values():
     # exact, so EKFAC's scales are the eigenvalues of that matrix (numpy.linalg.eigvalsh).
     x, y, model, loss_fn = least_squares(seed=6)
     damping = 1e-3
-    opt = make_optimizer(model, loss_fn, curvature="ekfac", damping=damping)
+    opt = make_optimizer(model, loss_fn, structure="ekfac", damping=damping)
     opt.track_spectra = True
     one_step(model, loss_fn, x, y, opt)
     entry = opt.diagnostics()["layers"]["Linear"]
     x1 = with_ones(x.numpy())
     eigenvalues = np.linalg.eigvalsh(2.0 / y.numel() * np.kron(x1.T @ x1, np.eye(y.shape[1])))
-    assert entry["curvature"] == "ekfac"
+    assert entry["structure"] == "ekfac"
     np.testing.assert_allclose(entry["scale_values"], eigenvalues, rtol=1e-7, atol=1e-12)
     assert entry["scale_min"] == pytest.approx(eigenvalues.min(), rel=1e-7, abs=1e-12)
     assert entry["scale_max"] == pytest.approx(eigenvalues.max(), rel=1e-7)

@@ -16,7 +16,7 @@ from ngopt.diagnostics_log import (CsvWriter, JsonLinesWriter, flatten_record, m
 
 
 def snapshot(step, with_spectra=True, extra_key=False):
-    layer = {"block": "linear", "curvature": "kfac", "in_dim": 3, "out_dim": 2,
+    layer = {"block": "linear", "structure": "kfac", "in_dim": 3, "out_dim": 2,
              "condition": 12.5 + step, "in_eig_min": 0.0, "in_condition": math.inf,
              "out_eig_min": 1e-3, "inversion_step": step}
     if with_spectra:

@@ -22,7 +22,7 @@ import ngopt.distributed as nd
 def quiet_optimizer(model, loss_fn, **kwargs):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return ngopt.NaturalGradient(model, loss_fn, **kwargs)
+        return ngopt.FisherDescent(model, loss_fn, **kwargs)
 
 
 def mlp(dtype=torch.float64, seed=0):
@@ -84,10 +84,10 @@ def test_inversion_cost_is_sum_of_cubes():
 
 
 # ---------------------------------------------------------------------------------------- statistics buffer
-@pytest.mark.parametrize("curvature", ["kfac", "diag"])
-def test_statistics_buffer_sums_to_the_rank_mean(curvature):
+@pytest.mark.parametrize("structure", ["kfac", "diag"])
+def test_statistics_buffer_sums_to_the_rank_mean(structure):
     """Summing the packed buffers of 3 ranks (what all_reduce does) unpacks to numpy's mean of their statistics."""
-    opt = quiet_optimizer(mlp(), nn.CrossEntropyLoss(), curvature=curvature)
+    opt = quiet_optimizer(mlp(), nn.CrossEntropyLoss(), structure=structure)
     first, second = opt.blocks.values()
     generator = torch.Generator().manual_seed(1)
     # rank 0 and 1 recorded both blocks, rank 2 only the first one
@@ -239,7 +239,7 @@ def test_one_rank_group_changes_nothing(one_rank_group, tmp_path):
     runs = []
     for shared in (False, True):
         model, loss_fn = mlp(), nn.CrossEntropyLoss()
-        opt = quiet_optimizer(model, loss_fn, fisher="exact", stats_every=2, invert_every=2)
+        opt = quiet_optimizer(model, loss_fn, fisher="exact", stats_interval=2, inverse_interval=2)
         if shared:
             communicator = nd.share_curvature(opt)
             assert opt.communicator is communicator and communicator.world_size == 1

@@ -40,15 +40,15 @@ import ngopt
 WORLD = 2
 REPOSITORY = Path(__file__).resolve().parents[1]
 EXAMPLE = REPOSITORY / "examples" / "train_ddp.py"
-EXAMPLE_ARGS = ["--steps", "8", "--warmup", "2", "--hidden", "16", "--fisher", "exact", "--stats-every", "2",
-                "--invert-every", "4"]
+EXAMPLE_ARGS = ["--steps", "8", "--warmup", "2", "--hidden", "16", "--fisher", "exact", "--stats-interval", "2",
+                "--inverse-interval", "4"]
 JOB_SECONDS = 120           # hard bound on one spawned job (generous: a loaded 2-core machine)
 GROUP_TIMEOUT_SECONDS = 10  # the process group's own timeout inside the jobs
 FAULT_TIMEOUT_SECONDS = 3   # share_curvature(timeout=...) in the fault jobs
 STEPS = 6
 CHECKPOINT_STEP = 3
 GLOBAL_BATCH = 24
-SETTINGS = dict(lr=0.3, momentum=0.5, damping=1e-2, stats_every=2, invert_every=3, stats_ema=0.9, trust_kl=1e-2)
+SETTINGS = dict(lr=0.3, momentum=0.5, damping=1e-2, stats_interval=2, inverse_interval=3, stats_memory=0.9, max_step_kl=1e-2)
 
 
 # ---------------------------------------------------------------------------------------- shared by jobs and tests
@@ -72,7 +72,7 @@ def batches(dtype, regression=False):
 def make_optimizer(model, loss_fn, **overrides):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the empirical-Fisher advice is not what is tested here
-        return ngopt.NaturalGradient(model, loss_fn, **dict(SETTINGS, **overrides))
+        return ngopt.FisherDescent(model, loss_fn, **dict(SETTINGS, **overrides))
 
 
 def train(model, opt, loss_fn, data, rows, start=0, stop=STEPS, after_backward=None):
@@ -88,11 +88,11 @@ def weights(model):
     return [p.detach().clone() for p in model.parameters()]
 
 
-def single_process(dtype, fisher="exact", curvature="kfac", regression=False, start_from=None):
+def single_process(dtype, fisher="exact", structure="kfac", regression=False, start_from=None):
     """The reference: one process, the whole batch, no communicator."""
     model = build_model(dtype)
     loss_fn = nn.MSELoss() if regression else nn.CrossEntropyLoss()
-    opt = make_optimizer(model, loss_fn, fisher=fisher, curvature=curvature)
+    opt = make_optimizer(model, loss_fn, fisher=fisher, structure=structure)
     start = 0
     if start_from is not None:
         model.load_state_dict(start_from["model"])
@@ -108,13 +108,13 @@ def _rank_rows(rank, world):
     return slice(rank * share, (rank + 1) * share)
 
 
-def _ddp_run(rank, world, dtype, fisher="exact", curvature="kfac", shard=True, checkpoint=None, spectra=False,
+def _ddp_run(rank, world, dtype, fisher="exact", structure="kfac", shard=True, checkpoint=None, spectra=False,
              collective="auto", **overrides):
     import ngopt.distributed as nd
     model = build_model(dtype)
     wrapped = nn.parallel.DistributedDataParallel(model)
     loss_fn = nn.CrossEntropyLoss()
-    opt = make_optimizer(wrapped, loss_fn, fisher=fisher, curvature=curvature, **overrides)
+    opt = make_optimizer(wrapped, loss_fn, fisher=fisher, structure=structure, **overrides)
     nd.share_curvature(opt, shard_inversions=shard).inverse_collective = collective
     opt.track_spectra = spectra
     data, rows = batches(dtype), _rank_rows(rank, world)
@@ -131,7 +131,7 @@ def _plain_run(rank, world, dtype):
     """No DDP: the loop averages gradients itself with ngopt.distributed.average_gradients."""
     import ngopt.distributed as nd
     model = build_model(dtype)
-    nd.broadcast_parameters(model)
+    nd.sync_parameters(model)
     loss_fn = nn.MSELoss()
     opt = make_optimizer(model, loss_fn, fisher="empirical")
     nd.share_curvature(opt)
@@ -173,7 +173,7 @@ def _adaptive_damping_run(rank, world):
     model = build_model(torch.float64)
     wrapped = nn.parallel.DistributedDataParallel(model)
     loss_fn = nn.CrossEntropyLoss()
-    opt = make_optimizer(wrapped, loss_fn, fisher="exact", adapt_damping=True, adapt_every=2)
+    opt = make_optimizer(wrapped, loss_fn, fisher="exact", damping_rule="lm", damping_interval=2)
     nd.share_curvature(opt)
     rows, history = _rank_rows(rank, world), []
     for x, y in batches(torch.float64):
@@ -228,8 +228,8 @@ def job_train(rank, world, out_dir):
         "ddp_exact_f32_reduced": dict(dtype=torch.float32, spectra=True, collective="all_reduce"),
         "ddp_exact_f64_sharded": dict(dtype=torch.float64, shard=True),
         "ddp_exact_f64_replicated": dict(dtype=torch.float64, shard=False),
-        "ddp_diag_f64": dict(dtype=torch.float64, curvature="diag"),
-        "ddp_ekfac_f64": dict(dtype=torch.float64, curvature="ekfac"),
+        "ddp_diag_f64": dict(dtype=torch.float64, structure="diag"),
+        "ddp_ekfac_f64": dict(dtype=torch.float64, structure="ekfac"),
     }
     diagnostics = {}
     for name, options in runs.items():
@@ -261,7 +261,7 @@ def job_fault(rank, world, out_dir, mode):
     model = build_model(torch.float32)
     loss_fn = nn.CrossEntropyLoss()
     wrapped = nn.parallel.DistributedDataParallel(model) if mode.endswith("_ddp") else model
-    opt = make_optimizer(wrapped, loss_fn, fisher="exact", stats_every=1)
+    opt = make_optimizer(wrapped, loss_fn, fisher="exact", stats_interval=1)
     nd.share_curvature(opt, timeout=FAULT_TIMEOUT_SECONDS)
     rows = _rank_rows(rank, world)
     # Start the timed steps together: on a loaded machine one rank may still be building its
@@ -423,7 +423,7 @@ def test_plain_loop_with_average_gradients_matches_one_process(trained):
 
 def test_diagonal_curvature_matches_one_process(trained):
     ranks, _ = trained
-    reference = single_process(torch.float64, curvature="diag")
+    reference = single_process(torch.float64, structure="diag")
     for rank in ranks:
         assert_same_weights(rank["ddp_diag_f64"], reference, **F64)
 
@@ -431,7 +431,7 @@ def test_diagonal_curvature_matches_one_process(trained):
 def test_ekfac_matches_one_process(trained):
     # The scales are a second all-reduce in the basis the (sharded) inversion broadcast.
     ranks, _ = trained
-    reference = single_process(torch.float64, curvature="ekfac")
+    reference = single_process(torch.float64, structure="ekfac")
     for rank in ranks:
         assert_same_weights(rank["ddp_ekfac_f64"], reference, **F64)
 

@@ -1,4 +1,4 @@
-"""The public surface of ``ngopt.NaturalGradient`` (API.md, "Behaviour users rely on").
+"""The public surface of ``ngopt.FisherDescent`` (API.md, "Behaviour users rely on").
 
 Argument checks (7), warnings, ``repr``, ``param_groups`` with
 ``torch.optim.lr_scheduler`` (2), ``state_dict`` round trips through
@@ -39,7 +39,7 @@ def class_batches(count, rows=16, seed=1):
 def quiet_optimizer(model, loss_fn, **kwargs):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return ngopt.NaturalGradient(model, loss_fn, **kwargs)
+        return ngopt.FisherDescent(model, loss_fn, **kwargs)
 
 
 def train_step(model, opt, loss_fn, batch):
@@ -56,25 +56,26 @@ def weights(model):
 
 
 # ---------------------------------------------------------------------------- argument checks
-# The ranges are the documented ones in ngopt/validation.py; a learning rate, damping or
-# trust bound must be positive and momentum / an EMA weight lie in [0, 1) (common practice).
+# The ranges are the documented ones in ngopt/validation.py; a learning rate must be >= 0 (0 is a
+# schedule's first or last value), damping and the KL bound positive and momentum / an EMA weight lie in [0, 1) (common practice).
 # (argument, a value of the right type that is out of range)
 BAD_VALUES = [
-    ("lr", 0.0), ("lr", -1.0), ("lr", math.nan),
+    ("lr", -1.0), ("lr", math.nan), ("lr", math.inf),
     ("momentum", 1.0), ("momentum", -0.1),
     ("weight_decay", -1e-4), ("weight_decay", math.inf),
     ("damping", 0.0), ("damping", -1e-3),
     ("fisher", "fancy"),
-    ("curvature", "full"),
-    ("stats_every", 0),
-    ("invert_every", 0),
-    ("stats_ema", 1.0), ("stats_ema", -0.5),
-    ("trust_kl", 0.0), ("trust_kl", -1.0),
+    ("structure", "full"),
+    ("stats_interval", 0),
+    ("inverse_interval", 0),
+    ("stats_memory", 1.0), ("stats_memory", -0.5),
+    ("max_step_kl", 0.0), ("max_step_kl", -1.0),
     ("fallback", "lion"),
     ("fallback_lr_scale", -1.0),
     ("fisher_samples", 0),
     ("damping_range", (1.0, 1e-3)), ("damping_range", (0.0, 1.0)),
-    ("adapt_every", 0),
+    ("damping_interval", 0),
+    ("damping_rule", "adaptive"), ("damping_rule", "LM"),
 ]
 # (argument, a value of the wrong type); bool is not accepted where a number is meant.
 BAD_TYPES = [
@@ -83,17 +84,17 @@ BAD_TYPES = [
     ("weight_decay", "0"),
     ("damping", "1e-3"),
     ("fisher", 1),
-    ("curvature", None),
-    ("stats_every", 1.5),
-    ("invert_every", "20"),
-    ("stats_ema", [0.9]),
-    ("trust_kl", "1e-2"),
-    ("adapt_damping", 1),
+    ("structure", None),
+    ("stats_interval", 1.5),
+    ("inverse_interval", "20"),
+    ("stats_memory", [0.9]),
+    ("max_step_kl", "1e-2"),
+    ("damping_rule", 1), ("damping_rule", True),
     ("fallback", 0),
     ("fallback_lr_scale", "1"),
     ("fisher_samples", 2.0),
     ("damping_range", "wide"), ("damping_range", (1e-6, "high")),
-    ("adapt_every", 5.0),
+    ("damping_interval", 5.0),
     ("seed", "7"), ("seed", 1.0),
 ]
 
@@ -101,30 +102,30 @@ BAD_TYPES = [
 @pytest.mark.parametrize("name,value", BAD_VALUES)
 def test_bad_value_raises_value_error_naming_argument(name, value):
     with pytest.raises(ValueError, match=name):
-        ngopt.NaturalGradient(small_mlp(), nn.MSELoss(), **{name: value})
+        ngopt.FisherDescent(small_mlp(), nn.MSELoss(), **{name: value})
 
 
 @pytest.mark.parametrize("name,value", BAD_TYPES)
 def test_bad_type_raises_type_error_naming_argument(name, value):
     with pytest.raises(TypeError, match=name):
-        ngopt.NaturalGradient(small_mlp(), nn.MSELoss(), **{name: value})
+        ngopt.FisherDescent(small_mlp(), nn.MSELoss(), **{name: value})
 
 
 def test_model_and_loss_fn_of_the_wrong_type_raise_type_error():
     with pytest.raises(TypeError, match="model"):
-        ngopt.NaturalGradient("a network", nn.MSELoss())
+        ngopt.FisherDescent("a network", nn.MSELoss())
     with pytest.raises(TypeError, match="loss_fn"):
-        ngopt.NaturalGradient(small_mlp(), 3)
+        ngopt.FisherDescent(small_mlp(), 3)
 
 
 @pytest.mark.parametrize("key,value", [("lr", -1.0), ("momentum", 2.0), ("damping", 0.0),
-                                       ("fallback", "lion"), ("trust_kl", "big")])
+                                       ("fallback", "lion"), ("max_step_kl", "big")])
 def test_per_group_settings_are_checked(key, value):
     model = small_mlp()
     groups = [{"params": list(model[0].parameters())},
               {"params": list(model[2].parameters()) + list(model[3].parameters()), key: value}]
     with pytest.raises((ValueError, TypeError), match=key):
-        ngopt.NaturalGradient(model, nn.MSELoss(), param_groups=groups)
+        ngopt.FisherDescent(model, nn.MSELoss(), param_groups=groups)
 
 
 def test_weight_and_bias_in_different_groups_is_refused():
@@ -132,33 +133,33 @@ def test_weight_and_bias_in_different_groups_is_refused():
     groups = [{"params": [model[0].weight]},
               {"params": [model[0].bias] + list(model[2].parameters()) + list(model[3].parameters())}]
     with pytest.raises(ValueError, match="param_groups"):
-        ngopt.NaturalGradient(model, nn.MSELoss(), param_groups=groups)
+        ngopt.FisherDescent(model, nn.MSELoss(), param_groups=groups)
 
 
 def test_param_groups_of_the_wrong_type_name_the_argument():
     with pytest.raises(TypeError, match="param_groups"):
-        ngopt.NaturalGradient(small_mlp(), nn.MSELoss(), param_groups=5)
+        ngopt.FisherDescent(small_mlp(), nn.MSELoss(), param_groups=5)
 
 
 def test_model_without_parameters_names_the_argument():
     with pytest.raises(ValueError, match="model"):
-        ngopt.NaturalGradient(nn.Tanh(), nn.MSELoss())
+        ngopt.FisherDescent(nn.Tanh(), nn.MSELoss())
 
 
 def test_seed_out_of_range_is_refused_at_construction():
     with pytest.raises(ValueError, match="seed"):
-        ngopt.NaturalGradient(small_mlp(), nn.MSELoss(), seed=2 ** 70)
+        ngopt.FisherDescent(small_mlp(), nn.MSELoss(), seed=2 ** 70)
 
 
 def test_weight_sharing_choice_is_checked():
     with pytest.raises(ValueError, match="weight_sharing must be one of"):
-        ngopt.NaturalGradient(small_mlp(), nn.MSELoss(), weight_sharing="average")
+        ngopt.FisherDescent(small_mlp(), nn.MSELoss(), weight_sharing="average")
 
 
 @pytest.mark.parametrize("fisher", ["sampled", "exact"])
 def test_model_based_fisher_without_loss_fn_is_refused(fisher):
     with pytest.raises(ValueError, match="loss_fn"):
-        ngopt.NaturalGradient(small_mlp(), None, fisher=fisher)
+        ngopt.FisherDescent(small_mlp(), None, fisher=fisher)
 
 
 UNSUPPORTED_CRITERIA = [
@@ -176,12 +177,12 @@ UNSUPPORTED_CRITERIA = [
 @pytest.mark.parametrize("criterion", UNSUPPORTED_CRITERIA, ids=lambda c: repr(c))
 def test_unsupported_criterion_is_refused_clearly(fisher, criterion):
     with pytest.raises(ValueError, match="loss_fn"):
-        ngopt.NaturalGradient(small_mlp(), criterion, fisher=fisher)
+        ngopt.FisherDescent(small_mlp(), criterion, fisher=fisher)
 
 
 def test_unsupported_criterion_is_fine_with_the_empirical_fisher():
     with pytest.warns(UserWarning, match="empirical"):
-        opt = ngopt.NaturalGradient(small_mlp(), nn.L1Loss(), fisher="empirical")
+        opt = ngopt.FisherDescent(small_mlp(), nn.L1Loss(), fisher="empirical")
     assert len(opt.blocks) == 2
 
 
@@ -189,23 +190,23 @@ def test_unsupported_criterion_is_fine_with_the_empirical_fisher():
 def test_empirical_fisher_warns_at_construction():
     # Kunstner, Balles & Hennig (NeurIPS 2019): the empirical Fisher is not the curvature.
     with pytest.warns(UserWarning, match="empirical"):
-        ngopt.NaturalGradient(small_mlp(), nn.MSELoss(), fisher="empirical")
+        ngopt.FisherDescent(small_mlp(), nn.MSELoss(), fisher="empirical")
 
 
 def test_tiny_damping_warns_and_usual_damping_does_not():
     with pytest.warns(UserWarning, match="damping"):
-        ngopt.NaturalGradient(small_mlp(), nn.MSELoss(), damping=1e-7)
+        ngopt.FisherDescent(small_mlp(), nn.MSELoss(), damping=1e-7)
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        ngopt.NaturalGradient(small_mlp(), nn.MSELoss(), damping=1e-3)
+        ngopt.FisherDescent(small_mlp(), nn.MSELoss(), damping=1e-3)
 
 
 def test_repr_lists_every_layer_with_its_block_kind():
     torch.manual_seed(0)
     model = nn.Sequential(nn.Conv2d(1, 2, 3), nn.ReLU(), nn.Flatten(), nn.Linear(8, 4), nn.LayerNorm(4),
                           nn.Linear(4, 2), nn.PReLU(2))
-    for curvature in ("kfac", "ekfac", "diag"):
-        opt = ngopt.NaturalGradient(model, nn.MSELoss(), curvature=curvature)
+    for structure in ("kfac", "ekfac", "diag"):
+        opt = ngopt.FisherDescent(model, nn.MSELoss(), structure=structure)
         text = repr(opt)
         opt.remove_hooks()
         lines = text.splitlines()
@@ -215,15 +216,15 @@ def test_repr_lists_every_layer_with_its_block_kind():
             assert len(matching) == 1, text
             assert kind in matching[0], matching[0]
             if kind != "layer_norm":  # norm layers keep their own exact per-channel block
-                assert curvature in matching[0], matching[0]
+                assert structure in matching[0], matching[0]
         # PReLU's slopes: 1 tensor of 2 numbers goes to the fallback rule.
         assert any("fallback" in line and "1 tensors" in line and "2 parameters" in line for line in lines), text
 
 
 # ---------------------------------------------------------------------------- param_groups and schedulers
 def test_param_groups_carry_the_hyperparameters():
-    opt = ngopt.NaturalGradient(small_mlp(), nn.MSELoss(), lr=0.2, momentum=0.3, weight_decay=1e-4,
-                                damping=5e-2)
+    opt = ngopt.FisherDescent(small_mlp(), nn.MSELoss(), lr=0.2, momentum=0.3, weight_decay=1e-4,
+                              damping=5e-2)
     assert isinstance(opt, torch.optim.Optimizer)
     group = opt.param_groups[0]
     assert (group["lr"], group["momentum"], group["weight_decay"], group["damping"]) == (0.2, 0.3, 1e-4, 5e-2)
@@ -239,8 +240,8 @@ SCHEDULERS = {
 
 def _controlled_optimizer(model, lr):
     # momentum 0 and no trust bound: the change of every weight is exactly -lr * direction.
-    return quiet_optimizer(model, nn.MSELoss(), lr=lr, momentum=0.0, trust_kl=None, fisher="exact",
-                           stats_every=1, invert_every=1, fallback_lr_scale=0.5)
+    return quiet_optimizer(model, nn.MSELoss(), lr=lr, momentum=0.0, max_step_kl=None, fisher="exact",
+                           stats_interval=1, inverse_interval=1, fallback_lr_scale=0.5)
 
 
 @pytest.mark.parametrize("name", SCHEDULERS)
@@ -279,8 +280,8 @@ def test_scheduler_sets_the_lr_that_the_step_uses(name):
 def test_damping_in_param_groups_takes_effect_for_the_diagonal_block():
     # Diagonal block: delta = grad / (F_diag + damping) (ngopt/blocks/diagonal.py docstring).
     model = small_mlp()
-    opt = quiet_optimizer(model, nn.MSELoss(), lr=1.0, momentum=0.0, trust_kl=None, fisher="exact",
-                          curvature="diag", stats_every=1, invert_every=1, stats_ema=0.0)
+    opt = quiet_optimizer(model, nn.MSELoss(), lr=1.0, momentum=0.0, max_step_kl=None, fisher="exact",
+                          structure="diag", stats_interval=1, inverse_interval=1, stats_memory=0.0)
     batches = regression_batches(2)
     train_step(model, opt, nn.MSELoss(), batches[0])
     opt.param_groups[0]["damping"] = 0.5
@@ -298,7 +299,7 @@ def test_damping_in_param_groups_enters_the_next_kronecker_inversion():
     # Factored damping (Martens & Grosse 2015, sec. 6.3): inverse_in = (A + pi sqrt(lambda) I)^-1,
     # pi = sqrt((tr A / dim A) / (tr G / dim G)).
     model = small_mlp()
-    opt = quiet_optimizer(model, nn.MSELoss(), fisher="exact", stats_every=1, invert_every=1)
+    opt = quiet_optimizer(model, nn.MSELoss(), fisher="exact", stats_interval=1, inverse_interval=1)
     batches = regression_batches(2)
     train_step(model, opt, nn.MSELoss(), batches[0])
     opt.param_groups[0]["damping"] = 0.3
@@ -312,20 +313,20 @@ def test_damping_in_param_groups_enters_the_next_kronecker_inversion():
 
 # ---------------------------------------------------------------------------- checkpoints
 CHECKPOINT_CASES = {
-    "kfac-sampled-momentum-sgd": dict(fisher="sampled", curvature="kfac", momentum=0.5, fallback="sgd"),
-    "diag-sampled-momentum-sgd": dict(fisher="sampled", curvature="diag", momentum=0.9, fallback="sgd"),
-    "kfac-sampled-adam": dict(fisher="sampled", curvature="kfac", momentum=0.5, fallback="adam",
+    "kfac-sampled-momentum-sgd": dict(fisher="sampled", structure="kfac", momentum=0.5, fallback="sgd"),
+    "diag-sampled-momentum-sgd": dict(fisher="sampled", structure="diag", momentum=0.9, fallback="sgd"),
+    "kfac-sampled-adam": dict(fisher="sampled", structure="kfac", momentum=0.5, fallback="adam",
                               weight_decay=1e-3),
-    "kfac-exact-adam": dict(fisher="exact", curvature="kfac", momentum=0.5, fallback="adam"),
-    "diag-empirical-adam": dict(fisher="empirical", curvature="diag", momentum=0.5, fallback="adam"),
-    "kfac-sampled-adapt-damping": dict(fisher="sampled", curvature="kfac", momentum=0.5, adapt_damping=True,
-                                       adapt_every=2),
+    "kfac-exact-adam": dict(fisher="exact", structure="kfac", momentum=0.5, fallback="adam"),
+    "diag-empirical-adam": dict(fisher="empirical", structure="diag", momentum=0.5, fallback="adam"),
+    "kfac-sampled-lm-damping": dict(fisher="sampled", structure="kfac", momentum=0.5, damping_rule="lm",
+                                       damping_interval=2),
 }
 TOTAL_STEPS, RESUME_AT = 8, 4
 
 
 def _checkpoint_run(case, batches, start_model=None, start_opt=None, steps=range(TOTAL_STEPS)):
-    settings = dict(lr=0.1, stats_every=2, invert_every=3, stats_ema=0.5, seed=123, **CHECKPOINT_CASES[case])
+    settings = dict(lr=0.1, stats_interval=2, inverse_interval=3, stats_memory=0.5, seed=123, **CHECKPOINT_CASES[case])
     model = small_mlp(seed=0)
     loss_fn = nn.CrossEntropyLoss()
     opt = quiet_optimizer(model, loss_fn, **settings)
@@ -405,9 +406,9 @@ def test_step_with_closure_returns_the_closure_loss():
     assert opt.step() is None
 
 
-def test_adapt_damping_without_closure_raises_and_changes_nothing():
+def test_lm_damping_without_closure_raises_and_changes_nothing():
     model = small_mlp()
-    opt = quiet_optimizer(model, nn.MSELoss(), adapt_damping=True)
+    opt = quiet_optimizer(model, nn.MSELoss(), damping_rule="lm")
     before = weights(model)
     x, y = regression_batches(1)[0]
     opt.zero_grad()
@@ -423,8 +424,8 @@ def test_refused_step_leaves_no_pending_statistics():
     batches = regression_batches(2)
     model = small_mlp()
     reference = copy.deepcopy(model)
-    opt = quiet_optimizer(model, nn.MSELoss(), adapt_damping=True, fisher="exact")
-    reference_opt = quiet_optimizer(reference, nn.MSELoss(), adapt_damping=True, fisher="exact")
+    opt = quiet_optimizer(model, nn.MSELoss(), damping_rule="lm", fisher="exact")
+    reference_opt = quiet_optimizer(reference, nn.MSELoss(), damping_rule="lm", fisher="exact")
     x, y = batches[0]
     opt.zero_grad()
     nn.MSELoss()(model(x), y).backward()
@@ -447,20 +448,20 @@ def test_a_second_optimizer_on_the_same_model_is_warned_about():
     # Two sets of capture hooks on one model: the second one misses its output gradients (measured),
     # so its curvature would silently go stale; after remove_hooks() a new optimizer is fine.
     model = small_mlp()
-    first = ngopt.NaturalGradient(model, nn.MSELoss())
+    first = ngopt.FisherDescent(model, nn.MSELoss())
     with pytest.warns(UserWarning, match="already carries the capture hooks"):
-        second = ngopt.NaturalGradient(model, nn.MSELoss())
+        second = ngopt.FisherDescent(model, nn.MSELoss())
     second.remove_hooks()
     first.remove_hooks()
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        ngopt.NaturalGradient(model, nn.MSELoss())
+        ngopt.FisherDescent(model, nn.MSELoss())
 
 
 def test_sparse_gradients_are_refused_at_construction():
     # Sparse gradients would reach dense-only finiteness checks and update rules at the first step.
     model = nn.Sequential(nn.EmbeddingBag(10, 4, sparse=True), nn.Linear(4, 2))
     with pytest.raises(ValueError, match="sparse=True"):
-        ngopt.NaturalGradient(model, nn.MSELoss())
+        ngopt.FisherDescent(model, nn.MSELoss())
     model[0].weight.requires_grad_(False)
-    ngopt.NaturalGradient(model, nn.MSELoss())
+    ngopt.FisherDescent(model, nn.MSELoss())

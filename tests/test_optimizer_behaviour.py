@@ -1,4 +1,4 @@
-"""Behaviour of ``ngopt.NaturalGradient`` in a training loop (API.md, "Behaviour users rely on").
+"""Behaviour of ``ngopt.FisherDescent`` in a training loop (API.md, "Behaviour users rely on").
 
 The drop-in loop and its gradients (1), what the statistics see under gradient
 accumulation and weight sharing, what is not collected (6), frozen and
@@ -30,13 +30,13 @@ import ngopt
 
 DTYPE = torch.float64
 FISHERS = ("sampled", "exact", "empirical")
-CURVATURES = ("kfac", "ekfac", "diag")
+STRUCTURES = ("kfac", "ekfac", "diag")
 
 
 def quiet_optimizer(model, loss_fn, **kwargs):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return ngopt.NaturalGradient(model, loss_fn, **kwargs)
+        return ngopt.FisherDescent(model, loss_fn, **kwargs)
 
 
 def small_cnn(seed=0, inplace=False):
@@ -84,14 +84,14 @@ def with_ones(rows):
 
 # ---------------------------------------------------------------------------- the drop-in loop
 @pytest.mark.parametrize("fallback", ["sgd", "adam"])
-@pytest.mark.parametrize("curvature", CURVATURES)
+@pytest.mark.parametrize("structure", STRUCTURES)
 @pytest.mark.parametrize("fisher", FISHERS)
-def test_ordinary_loop_works_and_leaves_the_users_gradients_alone(fisher, curvature, fallback):
+def test_ordinary_loop_works_and_leaves_the_users_gradients_alone(fisher, structure, fallback):
     model = small_cnn()
     plain = copy.deepcopy(model)  # same weights, no optimizer attached
     loss_fn = nn.CrossEntropyLoss()
-    opt = quiet_optimizer(model, loss_fn, fisher=fisher, curvature=curvature, fallback=fallback, lr=0.1,
-                          stats_every=2, invert_every=2)
+    opt = quiet_optimizer(model, loss_fn, fisher=fisher, structure=structure, fallback=fallback, lr=0.1,
+                          stats_interval=2, inverse_interval=2)
     x, y = image_batch()
     global_rng = torch.get_rng_state()
     losses = []
@@ -173,17 +173,17 @@ def step_with_micro_batches(model, opt, micro_batches):
     opt.step()
 
 
-@pytest.mark.parametrize("curvature", CURVATURES)
-def test_gradient_accumulation_uses_every_micro_batch(curvature):
+@pytest.mark.parametrize("structure", STRUCTURES)
+def test_gradient_accumulation_uses_every_micro_batch(structure):
     model = tanh_mlp()
-    opt = quiet_optimizer(model, nn.MSELoss(), fisher="exact", curvature=curvature)
+    opt = quiet_optimizer(model, nn.MSELoss(), fisher="exact", structure=structure)
     micro = [regression_batch(5, seed=1), regression_batch(7, seed=2)]
     by_hand = [mlp_statistics_by_hand(model, x) for x, _ in micro]
     step_with_micro_batches(model, opt, micro)
     for name, block in opt.blocks.items():
         state = opt.state[block.layer.weight]
         first, second = by_hand[0][name], by_hand[1][name]
-        if curvature in ("kfac", "ekfac"):  # EKFAC keeps K-FAC's factors for its eigenbasis
+        if structure in ("kfac", "ekfac"):  # EKFAC keeps K-FAC's factors for its eigenbasis
             expected_in = (first["in_sum"] + second["in_sum"]) / (first["rows"] + second["rows"])
             torch.testing.assert_close(state["factor_in"], expected_in, rtol=1e-10, atol=1e-13)
             expected_out = 0.5 * (first["factor_out"] + second["factor_out"])
@@ -193,12 +193,12 @@ def test_gradient_accumulation_uses_every_micro_batch(curvature):
             torch.testing.assert_close(state["fisher_diagonal"], expected, rtol=1e-10, atol=1e-13)
 
 
-@pytest.mark.parametrize("curvature", CURVATURES)
-def test_equal_micro_batches_give_the_statistics_of_the_whole_batch(curvature):
+@pytest.mark.parametrize("structure", STRUCTURES)
+def test_equal_micro_batches_give_the_statistics_of_the_whole_batch(structure):
     x, y = regression_batch(12, seed=3)
     split_model, whole_model = tanh_mlp(), tanh_mlp()
-    split_opt = quiet_optimizer(split_model, nn.MSELoss(), fisher="exact", curvature=curvature)
-    whole_opt = quiet_optimizer(whole_model, nn.MSELoss(), fisher="exact", curvature=curvature)
+    split_opt = quiet_optimizer(split_model, nn.MSELoss(), fisher="exact", structure=structure)
+    whole_opt = quiet_optimizer(whole_model, nn.MSELoss(), fisher="exact", structure=structure)
     step_with_micro_batches(split_model, split_opt, [(x[:6], y[:6]), (x[6:], y[6:])])
     step_with_micro_batches(whole_model, whole_opt, [(x, y)])
     expected = mlp_statistics_by_hand(tanh_mlp(), x)
@@ -208,7 +208,7 @@ def test_equal_micro_batches_give_the_statistics_of_the_whole_batch(curvature):
         block = split_opt.blocks[name]
         for key in block.statistic_keys + block.projected_keys:
             torch.testing.assert_close(split_state[key], whole_state[key], rtol=1e-10, atol=1e-13)
-        if curvature in ("kfac", "ekfac"):
+        if structure in ("kfac", "ekfac"):
             torch.testing.assert_close(whole_state["factor_in"], expected[name]["in_sum"] / 12,
                                        rtol=1e-10, atol=1e-13)
             torch.testing.assert_close(whole_state["factor_out"], expected[name]["factor_out"],
@@ -268,11 +268,11 @@ class TwoInputs(nn.Module):
         return self.head(torch.tanh(self.inner(x[:, 0])) + torch.tanh(self.inner(x[:, 1])))
 
 
-def _two_input_state(stacked, curvature, before_step=lambda model, x: None):
+def _two_input_state(stacked, structure, before_step=lambda model, x: None):
     """The inner layer's statistics after one step, and ``before_step(model, x)`` taken before it."""
     torch.manual_seed(0)
     model = TwoInputs(stacked).to(DTYPE)
-    opt = quiet_optimizer(model, nn.MSELoss(), fisher="exact", curvature=curvature)
+    opt = quiet_optimizer(model, nn.MSELoss(), fisher="exact", structure=structure)
     generator = torch.Generator().manual_seed(5)
     x = torch.randn(6, 2, 3, generator=generator, dtype=DTYPE)
     y = torch.randn(6, 2, generator=generator, dtype=DTYPE)
@@ -283,8 +283,8 @@ def _two_input_state(stacked, curvature, before_step=lambda model, x: None):
 
 
 def test_two_calls_and_one_call_on_stacked_inputs_agree_for_kfac():
-    twice, _ = _two_input_state(stacked=False, curvature="kfac")
-    once, _ = _two_input_state(stacked=True, curvature="kfac")
+    twice, _ = _two_input_state(stacked=False, structure="kfac")
+    once, _ = _two_input_state(stacked=True, structure="kfac")
     for key in ("factor_in", "factor_out"):
         torch.testing.assert_close(twice[key], once[key], rtol=1e-10, atol=1e-13)
 
@@ -310,19 +310,19 @@ def _exact_fisher_diagonal_of_inner(model, x):
 
 
 def test_diagonal_of_a_stacked_call_is_the_exact_fisher_diagonal():
-    state, expected = _two_input_state(stacked=True, curvature="diag", before_step=_exact_fisher_diagonal_of_inner)
+    state, expected = _two_input_state(stacked=True, structure="diag", before_step=_exact_fisher_diagonal_of_inner)
     torch.testing.assert_close(state["fisher_diagonal"], expected, rtol=1e-9, atol=1e-13)
 
 
 def test_diagonal_of_a_module_called_twice_is_the_exact_fisher_diagonal():
-    state, expected = _two_input_state(stacked=False, curvature="diag", before_step=_exact_fisher_diagonal_of_inner)
+    state, expected = _two_input_state(stacked=False, structure="diag", before_step=_exact_fisher_diagonal_of_inner)
     torch.testing.assert_close(state["fisher_diagonal"], expected, rtol=1e-9, atol=1e-13)
 
 
 # ---------------------------------------------------------------------------- what is not collected
 def test_eval_and_no_grad_forwards_collect_nothing():
     watched, reference = tanh_mlp(), tanh_mlp()
-    settings = dict(fisher="exact", stats_every=1, invert_every=1, stats_ema=0.5)
+    settings = dict(fisher="exact", stats_interval=1, inverse_interval=1, stats_memory=0.5)
     watched_opt = quiet_optimizer(watched, nn.MSELoss(), **settings)
     reference_opt = quiet_optimizer(reference, nn.MSELoss(), **settings)
     batches = [regression_batch(8, seed=s) for s in range(3)]
@@ -364,7 +364,7 @@ def test_frozen_parameters_are_left_alone():
     initial = [p.clone() for p in frozen]
     trained = [model[2].weight, model[3].bias, model[4].weight, model[4].bias]
     trained_initial = [p.detach().clone() for p in trained]
-    opt = quiet_optimizer(model, nn.MSELoss(), fisher="exact", stats_every=1, momentum=0.5)
+    opt = quiet_optimizer(model, nn.MSELoss(), fisher="exact", stats_interval=1, momentum=0.5)
     assert set(opt.blocks) == {"2", "4"}  # the fully frozen layer gets no block
     assert opt.blocks["2"].layer.bias is None  # a frozen bias stays outside the block
     for seed in range(3):
@@ -410,7 +410,7 @@ def _unsupported_setup(kind, **kwargs):
     model = factory().to(DTYPE)
     if kind == "conv-groups-2":
         with pytest.warns(UserWarning, match="groups=2"):
-            opt = ngopt.NaturalGradient(model, nn.MSELoss(), **kwargs)
+            opt = ngopt.FisherDescent(model, nn.MSELoss(), **kwargs)
     else:
         opt = quiet_optimizer(model, nn.MSELoss(), **kwargs)
     params = [p for name, module in model.named_modules() if name in fallback_modules
@@ -491,7 +491,7 @@ def test_inplace_relu_after_a_layer_changes_neither_capture_nor_gradients(kind, 
     opt.step()
     reference_opt.step()
     for name, block in opt.blocks.items():
-        if block.curvature != "kfac":
+        if block.structure != "kfac":
             continue  # the LayerNorm's own block; the Kronecker factors are what the copy could disturb
         state = opt.state[block.layer.weight]
         reference_state = reference_opt.state[reference_opt.blocks[name].layer.weight]
@@ -501,10 +501,10 @@ def test_inplace_relu_after_a_layer_changes_neither_capture_nor_gradients(kind, 
 
 
 # ---------------------------------------------------------------------------- non-finite steps
-def _poisoned_setup(fisher, curvature):
+def _poisoned_setup(fisher, structure):
     model = tanh_mlp(sizes=(3, 5, 2))
-    opt = quiet_optimizer(model, nn.MSELoss(), fisher=fisher, curvature=curvature, stats_every=1,
-                          invert_every=1, momentum=0.5, stats_ema=0.5, seed=0)
+    opt = quiet_optimizer(model, nn.MSELoss(), fisher=fisher, structure=structure, stats_interval=1,
+                          inverse_interval=1, momentum=0.5, stats_memory=0.5, seed=0)
     return model, opt
 
 
@@ -525,11 +525,11 @@ def _inf_gradient(model, x, y):
 
 
 @pytest.mark.parametrize("poison", [_nan_loss, _inf_gradient], ids=["nan-loss", "inf-gradient-hook"])
-@pytest.mark.parametrize("curvature", CURVATURES)
+@pytest.mark.parametrize("structure", STRUCTURES)
 @pytest.mark.parametrize("fisher", FISHERS)
-def test_non_finite_gradient_skips_the_step(fisher, curvature, poison):
-    model, opt = _poisoned_setup(fisher, curvature)
-    twin, twin_opt = _poisoned_setup(fisher, curvature)
+def test_non_finite_gradient_skips_the_step(fisher, structure, poison):
+    model, opt = _poisoned_setup(fisher, structure)
+    twin, twin_opt = _poisoned_setup(fisher, structure)
     batches = [regression_batch(8, seed=s) for s in range(4)]
     for net, optimizer in ((model, opt), (twin, twin_opt)):
         for batch in batches[:2]:
@@ -613,7 +613,7 @@ def test_refreshes_leave_no_tensors_behind():
         loss_fn = nn.MSELoss()
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            opt = ngopt.NaturalGradient(model, loss_fn, fisher=fisher, stats_every=1, invert_every=1)
+            opt = ngopt.FisherDescent(model, loss_fn, fisher=fisher, stats_interval=1, inverse_interval=1)
         x = torch.randn(32, 8)
 
         def run(steps):

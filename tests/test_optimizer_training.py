@@ -8,8 +8,8 @@ steps (the loss is measured before each step), never in seconds.
 Measured step counts to the target loss 0.01, with up to 400 steps per run (torch 2.13.0 CPU;
 ``python tests/test_optimizer_training.py`` prints them):
 
-    MLP 64-32-10 (tanh):   NaturalGradient 11;  SGD lr 0.1: not in 400, lr 0.3: 96, lr 1.0: 27
-    CNN conv3x3x8-pool-10: NaturalGradient 15;  SGD lr 0.1: 193, lr 0.3: 42, lr 1.0: diverged
+    MLP 64-32-10 (tanh):   FisherDescent 11;  SGD lr 0.1: not in 400, lr 0.3: 96, lr 1.0: 27
+    CNN conv3x3x8-pool-10: FisherDescent 15;  SGD lr 0.1: 193, lr 0.3: 42, lr 1.0: diverged
 
 (For comparison, the optimizer's default lr=0.3, momentum=0.5 took 21 and 29 steps.)
 The settings below are pinned so that a change of defaults does not change this test.
@@ -29,8 +29,8 @@ sklearn_datasets = pytest.importorskip("sklearn.datasets")
 TARGET_LOSS = 0.01
 MAX_STEPS = 40               # the optimizer needed 11 (MLP) and 15 (CNN)
 SGD_LEARNING_RATES = (0.1, 0.3, 1.0)
-SETTINGS = dict(fisher="sampled", curvature="kfac", lr=0.3, momentum=0.9, weight_decay=0.0, damping=1e-2,
-                stats_every=10, invert_every=20, stats_ema=0.9, trust_kl=1e-2, seed=0)
+SETTINGS = dict(fisher="sampled", structure="kfac", lr=0.3, momentum=0.9, weight_decay=0.0, damping=1e-2,
+                stats_interval=10, inverse_interval=20, stats_memory=0.9, max_step_kl=1e-2, seed=0)
 
 
 @pytest.fixture(scope="module")
@@ -75,7 +75,7 @@ def test_reaches_the_target_in_fewer_steps_than_tuned_sgd(make_model, digits):
     model = make_model()
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # a skipped step or an uninitialised block would show here
-        opt = ngopt.NaturalGradient(model, nn.CrossEntropyLoss(), **SETTINGS)
+        opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss(), **SETTINGS)
         natural_steps = steps_to_target(model, opt, digits, MAX_STEPS)
     assert natural_steps is not None, f"no loss below {TARGET_LOSS} within {MAX_STEPS} steps"
     assert opt.diagnostics()["skipped_steps"] == 0
@@ -95,8 +95,8 @@ def _measure(max_steps=400):
         model = make_model()
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            opt = ngopt.NaturalGradient(model, nn.CrossEntropyLoss(), **SETTINGS)
-        counts = {"NaturalGradient": steps_to_target(model, opt, digits_data, max_steps)}
+            opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss(), **SETTINGS)
+        counts = {"FisherDescent": steps_to_target(model, opt, digits_data, max_steps)}
         for lr in SGD_LEARNING_RATES:
             baseline = make_model()
             sgd = torch.optim.SGD(baseline.parameters(), lr=lr, momentum=0.9)

@@ -19,10 +19,10 @@ def with_ones(x):
 
 def exact_step_optimizer(model, loss_fn, **options):
     """An optimizer whose blocks hold the exact-expectation K-FAC of the last batch, weights unmoved."""
-    settings = dict(lr=1e-12, momentum=0.0, fisher="exact", stats_ema=0.0, stats_every=1, invert_every=1,
-                    trust_kl=None, damping=1e-3)
+    settings = dict(lr=1e-12, momentum=0.0, fisher="exact", stats_memory=0.0, stats_interval=1, inverse_interval=1,
+                    max_step_kl=None, damping=1e-3)
     settings.update(options)
-    return ngopt.NaturalGradient(model, loss_fn, **settings)
+    return ngopt.FisherDescent(model, loss_fn, **settings)
 
 
 def refresh(opt, model, loss_fn, x, y):
@@ -179,7 +179,7 @@ def test_probe_leaves_training_state_alone_and_skips_big_layers():
     probe_x, probe_y = torch.randn(24, 3) * 5, torch.randint(0, 2, (24,))
     model = nn.Sequential(nn.Linear(3, 40), nn.Dropout(0.1), nn.Linear(40, 2))
     loss_fn = nn.CrossEntropyLoss()
-    opt = ngopt.NaturalGradient(model, loss_fn, lr=0.1, stats_ema=0.0, stats_every=1, invert_every=1)
+    opt = ngopt.FisherDescent(model, loss_fn, lr=0.1, stats_memory=0.0, stats_interval=1, inverse_interval=1)
     refresh(opt, model, loss_fn, x, y)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -196,7 +196,7 @@ def test_probe_leaves_training_state_alone_and_skips_big_layers():
 
 def test_bad_arguments_are_named():
     model = nn.Linear(2, 2)
-    opt = ngopt.NaturalGradient(model, nn.MSELoss(), lr=0.1)
+    opt = ngopt.FisherDescent(model, nn.MSELoss(), lr=0.1)
     x, y = torch.randn(4, 2), torch.randn(4, 2)
     with pytest.raises(ValueError, match="loss_fn must be one of"):
         probe_fisher_quality(opt, model, nn.L1Loss(), x, y)
@@ -208,7 +208,7 @@ def test_bad_arguments_are_named():
         probe_fisher_quality(opt, model, nn.MSELoss(), x, y, samples=1.5)
     with pytest.raises(ValueError, match="layers: unknown block names"):
         probe_fisher_quality(opt, model, nn.MSELoss(), x, y, layers=["nope"])
-    with pytest.raises(TypeError, match="opt must be an ngopt.NaturalGradient"):
+    with pytest.raises(TypeError, match="opt must be an ngopt.FisherDescent"):
         probe_fisher_quality(torch.optim.SGD(model.parameters(), lr=0.1), model, nn.MSELoss(), x, y)
     result = probe_fisher_quality(opt, model, nn.MSELoss(), x, y)
     assert result["skipped_layers"] == {"Linear": "no curvature statistics yet"}
@@ -221,15 +221,15 @@ def test_probe_shows_what_ekfac_buys_over_kfac():
     x = torch.randn(32, 6, dtype=torch.float64)
     y = torch.randint(0, 4, (32,))
     errors = {}
-    for curvature in ("kfac", "ekfac"):
+    for structure in ("kfac", "ekfac"):
         torch.manual_seed(7)
         model = nn.Sequential(nn.Linear(6, 5), nn.Tanh(), nn.Linear(5, 4)).double()
         loss_fn = nn.CrossEntropyLoss()
-        opt = exact_step_optimizer(model, loss_fn, curvature=curvature)
+        opt = exact_step_optimizer(model, loss_fn, structure=structure)
         refresh(opt, model, loss_fn, x, y)
         result = probe_fisher_quality(opt, model, loss_fn, x, y, warn_angle_deg=180.0)
-        errors[curvature] = {name: entry["block_error"] for name, entry in result["layers"].items()}
-        assert all(entry["curvature"] == curvature for entry in result["layers"].values())
+        errors[structure] = {name: entry["block_error"] for name, entry in result["layers"].items()}
+        assert all(entry["structure"] == structure for entry in result["layers"].values())
     print(errors)
     for name in errors["kfac"]:
         assert errors["ekfac"][name] <= errors["kfac"][name] + 1e-9

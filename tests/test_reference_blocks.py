@@ -36,15 +36,15 @@ EXACT_RTOL = 1e-12
 Z_BOUND = 5.0  # Monte Carlo checks allow 5 standard errors (normal two-sided tail 5.7e-7 per entry)
 
 
-def recorded_optimizer(model, loss_fn, inputs, targets, *, fisher="exact", curvature="kfac", samples=1,
-                       stats_ema=0.0, damping=1e-3, lr=1e-3, seed=0, weight_sharing="expand"):
+def recorded_optimizer(model, loss_fn, inputs, targets, *, fisher="exact", structure="kfac", samples=1,
+                       stats_memory=0.0, damping=1e-3, lr=1e-3, seed=0, weight_sharing="expand"):
     """An optimizer after one recorded forward/backward and ``step()`` (statistics of the pre-step weights)."""
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # empirical-Fisher advice
-        opt = ngopt.NaturalGradient(model, loss_fn, lr=lr, momentum=0.0, weight_decay=0.0, damping=damping,
-                                    fisher=fisher, curvature=curvature, stats_every=1, invert_every=1,
-                                    stats_ema=stats_ema, trust_kl=None, fisher_samples=samples, seed=seed,
-                                    weight_sharing=weight_sharing)
+        opt = ngopt.FisherDescent(model, loss_fn, lr=lr, momentum=0.0, weight_decay=0.0, damping=damping,
+                                  fisher=fisher, structure=structure, stats_interval=1, inverse_interval=1,
+                                  stats_memory=stats_memory, max_step_kl=None, fisher_samples=samples, seed=seed,
+                                  weight_sharing=weight_sharing)
     opt.zero_grad()
     loss_fn(model(inputs), targets).backward()
     opt.step()
@@ -248,7 +248,7 @@ def test_diagonal_block_is_exact_diagonal_of_layer_fisher(kind, criterion):
     # per-example (per-class) gradients, with no Kronecker approximation.  Measured errors 1e-16.
     model, inputs, targets, loss_fn = network_problem(kind, criterion)
     reference = exact_layer_fisher(copy.deepcopy(model), inputs, criterion)
-    opt = recorded_optimizer(model, loss_fn, inputs, targets, curvature="diag")
+    opt = recorded_optimizer(model, loss_fn, inputs, targets, structure="diag")
     for name, fisher in reference.items():
         assert relative_error(torch.diag(opt.blocks[name].dense_curvature()), torch.diag(fisher)) <= EXACT_RTOL
 
@@ -262,7 +262,7 @@ def test_diagonal_block_is_exact_diagonal_of_empirical_fisher(kind):
     with torch.no_grad():
         prob = torch.softmax(reference_model(inputs), dim=1)
     jacobians = per_example_jacobians(reference_model, inputs)
-    opt = recorded_optimizer(model, loss_fn, inputs, targets, fisher="empirical", curvature="diag")
+    opt = recorded_optimizer(model, loss_fn, inputs, targets, fisher="empirical", structure="diag")
     for name, jacobian in jacobians.items():
         observed = per_class_gradients(jacobian, prob)[torch.arange(len(targets)), targets]
         expected = observed.square().mean(0)
@@ -293,7 +293,7 @@ def test_sampled_fisher_within_monte_carlo_error_of_exact(samples):
         return c * mean.sum(0), c * torch.sqrt(variance.sum(0) / samples)
 
     diag_opt = recorded_optimizer(copy.deepcopy(model), loss_fn, inputs, targets, fisher="sampled",
-                                  curvature="diag", samples=samples, seed=60)
+                                  structure="diag", samples=samples, seed=60)
     kfac_opt = recorded_optimizer(model, loss_fn, inputs, targets, fisher="sampled", samples=samples, seed=61)
     for name, index in (("0", 0), ("2", 2)):
         grads = per_class_gradients(jacobians[name], prob)
@@ -442,9 +442,9 @@ def test_linear_with_leading_dims_empirical_factors(positions):
 
 # ----------------------------------------------------------------------------- first refresh
 def test_first_refresh_sets_statistics_outright_then_blends():
-    # API.md behaviour 5: with stats_ema = 0.9 the first factors are this batch's statistics, not
+    # API.md behaviour 5: with stats_memory = 0.9 the first factors are this batch's statistics, not
     # 0.1 x them (no blend with zeros) nor a blend with the identity; the second refresh is
-    # 0.9 old + 0.1 new (the running-average definition of stats_ema).  Batch statistics of a single
+    # 0.9 old + 0.1 new (the running-average definition of stats_memory).  Batch statistics of a single
     # linear layer with MSE and the exact Fisher: A = mean [x;1][x;1]^T (numpy), G = (2/outputs) I
     # (c = 1/(N outputs), H = 2I: G = (1/c) c^2 sum_n 2I).
     torch.manual_seed(90)
@@ -457,8 +457,8 @@ def test_first_refresh_sets_statistics_outright_then_blends():
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        opt = ngopt.NaturalGradient(model, nn.MSELoss(), lr=0.1, momentum=0.0, damping=1e-3, fisher="exact",
-                                    stats_every=1, invert_every=1, stats_ema=0.9, trust_kl=None)
+        opt = ngopt.FisherDescent(model, nn.MSELoss(), lr=0.1, momentum=0.0, damping=1e-3, fisher="exact",
+                                  stats_interval=1, inverse_interval=1, stats_memory=0.9, max_step_kl=None)
     expected_out = (2.0 / 3.0) * np.eye(3)
     expected_in = None
     for x, y in batches:

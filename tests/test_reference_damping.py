@@ -64,9 +64,9 @@ def test_damping_follows_the_closed_form_reduction_ratio(objective_scale, lr, di
     model = nn.Linear(D_IN, D_OUT).double()
     criterion = nn.MSELoss()
     damping = 1e-2
-    opt = ngopt.NaturalGradient(model, criterion, lr=lr, momentum=0.0, damping=damping, fisher="exact",
-                                stats_every=1, invert_every=1, stats_ema=0.0, trust_kl=None,
-                                adapt_damping=True, adapt_every=1)
+    opt = ngopt.FisherDescent(model, criterion, lr=lr, momentum=0.0, damping=damping, fisher="exact",
+                              stats_interval=1, inverse_interval=1, stats_memory=0.0, max_step_kl=None,
+                              damping_rule="lm", damping_interval=1)
 
     def closure():
         opt.zero_grad()
@@ -92,15 +92,15 @@ def test_damping_follows_the_closed_form_reduction_ratio(objective_scale, lr, di
 
 def test_damping_keeps_rising_while_the_model_is_wrong_and_stays_in_range():
     # With the curvature underestimated fourfold every step has rho < 1/4, so damping grows by
-    # (20/19)^adapt_every per adaptation until the upper end of damping_range.
+    # (20/19)^damping_interval per adaptation until the upper end of damping_range.
     inputs, targets = problem(1)
     x, y = torch.tensor(inputs), torch.tensor(targets)
     torch.manual_seed(1)
     model = nn.Linear(D_IN, D_OUT).double()
     criterion = nn.MSELoss()
-    opt = ngopt.NaturalGradient(model, criterion, lr=0.55, momentum=0.0, damping=1e-2, fisher="exact",
-                                stats_every=1, invert_every=1, trust_kl=None, adapt_damping=True,
-                                adapt_every=2, damping_range=(1e-4, 1.5e-2))
+    opt = ngopt.FisherDescent(model, criterion, lr=0.55, momentum=0.0, damping=1e-2, fisher="exact",
+                              stats_interval=1, inverse_interval=1, max_step_kl=None, damping_rule="lm",
+                              damping_interval=2, damping_range=(1e-4, 1.5e-2))
 
     def closure():
         opt.zero_grad()

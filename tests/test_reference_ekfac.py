@@ -24,8 +24,8 @@ from test_reference_blocks import (EXACT_RTOL, exact_layer_fisher, network_probl
 def ekfac_and_kfac(kind, criterion, seed):
     model, inputs, targets, loss_fn = network_problem(kind, criterion, seed=seed)
     reference = exact_layer_fisher(copy.deepcopy(model), inputs, criterion)
-    kfac = recorded_optimizer(copy.deepcopy(model), loss_fn, inputs, targets, curvature="kfac")
-    ekfac = recorded_optimizer(copy.deepcopy(model), loss_fn, inputs, targets, curvature="ekfac")
+    kfac = recorded_optimizer(copy.deepcopy(model), loss_fn, inputs, targets, structure="kfac")
+    ekfac = recorded_optimizer(copy.deepcopy(model), loss_fn, inputs, targets, structure="ekfac")
     return reference, kfac, ekfac
 
 
@@ -62,8 +62,8 @@ def test_ekfac_scales_against_brute_force_projected_per_example_gradients():
     # per-class gradients from torch.func, one projection per example with numpy.
     model, inputs, _, loss_fn = network_problem("mlp", "ce", n=12, seed=4)
     reference_model = copy.deepcopy(model)
-    opt = ngopt.NaturalGradient(model, loss_fn, lr=1e-3, momentum=0.0, damping=1e-3, curvature="ekfac",
-                                stats_every=1, invert_every=1, stats_ema=0.0, trust_kl=None, seed=7)
+    opt = ngopt.FisherDescent(model, loss_fn, lr=1e-3, momentum=0.0, damping=1e-3, structure="ekfac",
+                              stats_interval=1, inverse_interval=1, stats_memory=0.0, max_step_kl=None, seed=7)
     with torch.no_grad():
         prob = torch.softmax(reference_model(inputs), dim=1)
     generator = torch.Generator().manual_seed(7)  # the optimizer's private generator, same seed
@@ -88,7 +88,7 @@ def test_ekfac_scales_against_brute_force_projected_per_example_gradients():
 def test_ekfac_preconditioner_solves_its_own_damped_curvature():
     # (Q diag(S + lambda) Q^T)^-1 vec(V), checked with numpy.linalg.solve on the dense block.
     model, inputs, targets, loss_fn = network_problem("mlp", "ce")
-    opt = recorded_optimizer(model, loss_fn, inputs, targets, curvature="ekfac")
+    opt = recorded_optimizer(model, loss_fn, inputs, targets, structure="ekfac")
     block = opt.blocks["0"]
     grad = torch.randn(block.layer.out_dim, block.layer.in_dim, dtype=torch.float64)
     damping = 3e-3
@@ -101,11 +101,11 @@ def test_ekfac_preconditioner_solves_its_own_damped_curvature():
 
 
 def test_a_new_basis_without_fresh_statistics_starts_from_the_kfac_eigenvalues():
-    # stats_every=2, invert_every=3: step 3 refreshes the basis with no new captures, so the scales
+    # stats_interval=2, inverse_interval=3: step 3 refreshes the basis with no new captures, so the scales
     # restart from L_G L_A^T, and the block is then exactly K-FAC's A (x) G (numpy.kron).
     model, inputs, targets, loss_fn = network_problem("mlp", "mse")
-    opt = ngopt.NaturalGradient(model, loss_fn, lr=1e-2, momentum=0.0, curvature="ekfac", stats_every=2,
-                                invert_every=3, trust_kl=None)
+    opt = ngopt.FisherDescent(model, loss_fn, lr=1e-2, momentum=0.0, structure="ekfac", stats_interval=2,
+                              inverse_interval=3, max_step_kl=None)
     for _ in range(4):
         opt.zero_grad()
         loss_fn(model(inputs), targets).backward()
@@ -120,8 +120,8 @@ def test_ekfac_scales_blend_in_an_unchanged_basis():
     # Between basis refreshes the scales are a running average: ema * old + (1 - ema) * batch
     # (common practice for curvature statistics).  Step 0 sets them; step 1 blends in the same basis.
     model, inputs, targets, loss_fn = network_problem("linear", "mse")
-    opt = ngopt.NaturalGradient(model, loss_fn, lr=1e-2, momentum=0.0, curvature="ekfac", fisher="exact",
-                                stats_every=1, invert_every=10, stats_ema=0.75, trust_kl=None)
+    opt = ngopt.FisherDescent(model, loss_fn, lr=1e-2, momentum=0.0, structure="ekfac", fisher="exact",
+                              stats_interval=1, inverse_interval=10, stats_memory=0.75, max_step_kl=None)
     seen = []
     for _ in range(2):
         before = copy.deepcopy(model)
@@ -144,17 +144,17 @@ def test_ekfac_trains_like_kfac_on_digits():
     inputs = torch.tensor(digits.data[:512] / 16.0, dtype=torch.float32)
     targets = torch.tensor(digits.target[:512])
     finals = {}
-    for curvature in ("kfac", "ekfac"):
+    for structure in ("kfac", "ekfac"):
         torch.manual_seed(0)
         model = nn.Sequential(nn.Linear(64, 32), nn.Tanh(), nn.Linear(32, 10))
         loss_fn = nn.CrossEntropyLoss()
-        opt = ngopt.NaturalGradient(model, loss_fn, curvature=curvature, seed=0)
+        opt = ngopt.FisherDescent(model, loss_fn, structure=structure, seed=0)
         for _ in range(30):
             opt.zero_grad()
             loss = loss_fn(model(inputs), targets)
             loss.backward()
             opt.step()
-        finals[curvature] = float(loss)
+        finals[structure] = float(loss)
     print(finals)
     assert finals["ekfac"] < 0.3 and finals["kfac"] < 0.3
     assert finals["ekfac"] < 2.0 * finals["kfac"]
@@ -165,7 +165,7 @@ def test_ekfac_state_round_trips_and_resumes_identically():
     twin = copy.deepcopy(model)
 
     def run(net, steps, opt=None):
-        opt = opt or ngopt.NaturalGradient(net, loss_fn, curvature="ekfac", stats_every=2, invert_every=3, seed=3)
+        opt = opt or ngopt.FisherDescent(net, loss_fn, structure="ekfac", stats_interval=2, inverse_interval=3, seed=3)
         for _ in range(steps):
             opt.zero_grad()
             loss_fn(net(inputs), targets).backward()
@@ -177,7 +177,7 @@ def test_ekfac_state_round_trips_and_resumes_identically():
     first.remove_hooks()  # one optimizer's hooks per model
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        resumed = ngopt.NaturalGradient(twin, loss_fn, curvature="ekfac", stats_every=2, invert_every=3, seed=3)
+        resumed = ngopt.FisherDescent(twin, loss_fn, structure="ekfac", stats_interval=2, inverse_interval=3, seed=3)
     resumed.load_state_dict(first.state_dict())
     run(twin, 3, resumed)
     for a, b in zip(model.parameters(), twin.parameters()):

@@ -49,13 +49,13 @@ def single_refresh(model, loss_fn, inputs, targets, fisher, samples=1, seed=0):
     """Run one recorded forward/backward and ``step()``; return ``(curvature, loss gradient)``.
 
     The curvature is that of the weights before the step (the refresh is taken
-    from the forward pass just run); ``stats_ema=0`` keeps only this batch.
+    from the forward pass just run); ``stats_memory=0`` keeps only this batch.
     """
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the empirical-Fisher advice is not what is tested here
-        opt = ngopt.NaturalGradient(model, loss_fn, lr=1e-3, momentum=0.0, damping=1e-3, fisher=fisher,
-                                    stats_every=1, invert_every=1, stats_ema=0.0, trust_kl=None,
-                                    fisher_samples=samples, seed=seed)
+        opt = ngopt.FisherDescent(model, loss_fn, lr=1e-3, momentum=0.0, damping=1e-3, fisher=fisher,
+                                  stats_interval=1, inverse_interval=1, stats_memory=0.0, max_step_kl=None,
+                                  fisher_samples=samples, seed=seed)
     loss_fn(model(inputs), targets).backward()
     gradient = model.weight.grad.detach().clone()
     opt.step()
@@ -348,8 +348,8 @@ def test_empirical_fisher_matches_fisher_at_true_parameters_with_several_outputs
     loss_fn = nn.MSELoss(reduction=reduction)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        opt = ngopt.NaturalGradient(model, loss_fn, lr=1e-3, momentum=0.0, damping=1e-3, fisher="empirical",
-                                    stats_every=1, invert_every=1, stats_ema=0.0, trust_kl=None)
+        opt = ngopt.FisherDescent(model, loss_fn, lr=1e-3, momentum=0.0, damping=1e-3, fisher="empirical",
+                                  stats_interval=1, inverse_interval=1, stats_memory=0.0, max_step_kl=None)
     loss_fn(model(torch.as_tensor(x)), torch.as_tensor(y)).backward()
     opt.step()
     c = 1.0 if reduction == "sum" else 1.0 / (draws * outputs)

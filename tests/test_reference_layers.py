@@ -192,17 +192,17 @@ def conv1d_problem(deep, criterion, n=6, seed=31):
     return model, inputs, targets_for(criterion, n, dims=dims)
 
 
-@pytest.mark.parametrize("curvature", ["kfac", "ekfac", "diag"])
-def test_conv1d_blocks_exact_for_gaussian_output(curvature):
+@pytest.mark.parametrize("structure", ["kfac", "ekfac", "diag"])
+def test_conv1d_blocks_exact_for_gaussian_output(structure):
     # A conv layer whose output is the Gaussian (MSE) model output: s_nt = W a_nt, J_n^T J_n =
     # sum_t (a a^T) (x) I, so F = 2c sum_{n,t} (a a^T) (x) I = (mean_{n,t} a a^T) (x) (2 c N T I):
     # the Kronecker form is exact (Martens & Grosse 2015 for the dense case; Grosse & Martens 2016),
     # EKFAC too (its scales are then L_G L_A^T), and the diagonal is diag(F).
     model, inputs, targets = conv1d_problem(False, "mse")
-    reference, opt = reference_and_optimizer(model, "0", inputs, targets, "dense", "mse", curvature=curvature)
+    reference, opt = reference_and_optimizer(model, "0", inputs, targets, "dense", "mse", structure=structure)
     block = opt.blocks["0"]
-    assert block.layer.kind == "conv1d" and block.curvature == curvature
-    if curvature == "diag":
+    assert block.layer.kind == "conv1d" and block.structure == structure
+    if structure == "diag":
         reference = torch.diag(torch.diagonal(reference))
     assert relative_error(block.dense_curvature(), reference) <= EXACT_RTOL
 
@@ -223,16 +223,16 @@ def embedding_problem(deep, criterion, padding_idx=None, vocab=7, dim=3, n=8, po
 
 
 @pytest.mark.parametrize("padding_idx", [None, 0])
-@pytest.mark.parametrize("curvature", ["kfac", "ekfac", "diag"])
-def test_embedding_blocks_exact_for_gaussian_output(curvature, padding_idx):
+@pytest.mark.parametrize("structure", ["kfac", "ekfac", "diag"])
+def test_embedding_blocks_exact_for_gaussian_output(structure, padding_idx):
     # Embedding output = Gaussian model output: s_nt = W^T e_{i_nt}, so F = 2c sum_{n,t} e e^T (x) I =
     # diag(counts) (x) 2c I = diag(f) (x) (2 c N T I), f the token frequencies: K-FAC with a diagonal
     # input factor is exact (Martens & Grosse 2015, eq. 1-3 with one-hot inputs), EKFAC as well; padded
     # positions have no gradient (PyTorch's padding_idx), and their zero row in f matches F.
     model, tokens, targets = embedding_problem(False, "mse", padding_idx)
-    reference, opt = reference_and_optimizer(model, "0", tokens, targets, "embedding", "mse", curvature=curvature)
+    reference, opt = reference_and_optimizer(model, "0", tokens, targets, "embedding", "mse", structure=structure)
     block = opt.blocks["0"]
-    if curvature == "diag":
+    if structure == "diag":
         reference = torch.diag(torch.diagonal(reference))
     assert relative_error(block.dense_curvature(), reference) <= EXACT_RTOL
     if padding_idx is not None:
@@ -250,20 +250,20 @@ def test_blocks_against_exact_fisher_of_a_classifier(network):
     problem, kind, vocab = CLASSIFIERS[network]
     model, inputs, targets = problem()
     errors = {}
-    for curvature in ("kfac", "ekfac", "diag"):
+    for structure in ("kfac", "ekfac", "diag"):
         reference, opt = reference_and_optimizer(copy.deepcopy(model), "0", inputs, targets, kind, "ce",
-                                                 curvature=curvature)
+                                                 structure=structure)
         block = opt.blocks["0"]
-        if curvature == "diag":
+        if structure == "diag":
             # diag(F) exactly: per-example gradients are summed over positions (repeated tokens) before squaring.
             assert relative_error(torch.diagonal(block.dense_curvature()), torch.diagonal(reference)) <= EXACT_RTOL
-        elif curvature == "ekfac":
-            errors[curvature] = check_eigenbasis_against_exact(block, reference, errors["kfac"], vocab_basis=vocab)
+        elif structure == "ekfac":
+            errors[structure] = check_eigenbasis_against_exact(block, reference, errors["kfac"], vocab_basis=vocab)
         else:
             if kind == "embedding":  # A = diag(token counts off padding) / rows, by torch.bincount
                 counts = torch.bincount(inputs[inputs != 0].reshape(-1), minlength=vocab).double()
                 torch.testing.assert_close(block.state["factor_in"], counts / inputs.numel(), rtol=EXACT_RTOL, atol=0)
-            errors[curvature] = relative_error(block.dense_curvature(), reference)
+            errors[structure] = relative_error(block.dense_curvature(), reference)
     print(f"{network} classifier: relative Frobenius error K-FAC {errors['kfac']:.4g}, EKFAC {errors['ekfac']:.4g}")
     assert 1e-3 <= errors["kfac"] <= 0.9  # not exact: the output Fisher varies with the example
 
@@ -289,7 +289,7 @@ def test_embedding_diagonal_sums_an_examples_gradient_over_calls_of_one_forward(
     tokens = torch.randint(0, 5, (8, 4), generator=torch.Generator().manual_seed(45))
     tokens[:, 2] = tokens[:, 0]
     targets = targets_for("ce", 8)
-    reference, opt = reference_and_optimizer(model, "embed", tokens, targets, "embedding", "ce", curvature="diag")
+    reference, opt = reference_and_optimizer(model, "embed", tokens, targets, "embedding", "ce", structure="diag")
     assert relative_error(torch.diagonal(opt.blocks["embed"].dense_curvature()), torch.diagonal(reference)) \
         <= EXACT_RTOL
 
@@ -325,8 +325,8 @@ def test_embedding_reduce_weight_sharing_keeps_the_diagonal_of_the_reduced_input
                                 outputs)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        opt = ngopt.NaturalGradient(model, nn.CrossEntropyLoss(reduction="sum"), fisher="empirical",
-                                    weight_sharing="reduce", stats_every=1, invert_every=1, stats_ema=0.0)
+        opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss(reduction="sum"), fisher="empirical",
+                                  weight_sharing="reduce", stats_interval=1, inverse_interval=1, stats_memory=0.0)
     opt.zero_grad()
     nn.functional.cross_entropy(model(tokens), targets, reduction="sum").backward()
     opt.step()
@@ -338,11 +338,11 @@ def test_embedding_reduce_weight_sharing_keeps_the_diagonal_of_the_reduced_input
     torch.testing.assert_close(state["factor_out"], summed.T @ summed, rtol=EXACT_RTOL, atol=1e-14)
 
 
-def embedding_state_bytes(vocab, dim, curvature):
+def embedding_state_bytes(vocab, dim, structure):
     torch.manual_seed(0)
     model = nn.Sequential(nn.Embedding(vocab, dim), nn.Flatten(), nn.Linear(4 * dim, 5))
-    opt = ngopt.NaturalGradient(model, nn.CrossEntropyLoss(), curvature=curvature, stats_every=1,
-                                invert_every=1, momentum=0.0)
+    opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss(), structure=structure, stats_interval=1,
+                              inverse_interval=1, momentum=0.0)
     tokens = torch.randint(0, vocab, (64, 4))
     targets = torch.randint(0, 5, (64,))
     started = time.perf_counter()
@@ -355,16 +355,16 @@ def embedding_state_bytes(vocab, dim, curvature):
     return sum(t.numel() * t.element_size() for t in state.values() if torch.is_tensor(t)), seconds
 
 
-@pytest.mark.parametrize("curvature", ["kfac", "ekfac", "diag"])
-def test_embedding_state_is_linear_in_the_vocabulary(curvature):
+@pytest.mark.parametrize("structure", ["kfac", "ekfac", "diag"])
+def test_embedding_state_is_linear_in_the_vocabulary(structure):
     # With d fixed, a diagonal input factor keeps O(V d + d^2) numbers: going from V = 1000 to 20000
     # multiplies the state by at most 20 (plus the d x d part); any V x V factor would multiply it by
     # 400 and would need 3.2 GB at V = 20000 (float64) / 1.6 GB (float32).  Every refresh and inversion
-    # runs here (stats_every = invert_every = 1), and a step stays well under a second.
-    small, _ = embedding_state_bytes(1000, 8, curvature)
-    large, seconds = embedding_state_bytes(20000, 8, curvature)
+    # runs here (stats_interval = inverse_interval = 1), and a step stays well under a second.
+    small, _ = embedding_state_bytes(1000, 8, structure)
+    large, seconds = embedding_state_bytes(20000, 8, structure)
     weight_bytes = 20000 * 8 * 4
-    print(f"embedding {curvature}: state {small} B at V=1000, {large} B at V=20000 "
+    print(f"embedding {structure}: state {small} B at V=1000, {large} B at V=20000 "
           f"({large / weight_bytes:.2f} x the weight), {seconds * 1e3:.1f} ms per step")
     assert large / small <= 20.5
     assert large <= 4 * weight_bytes
@@ -376,16 +376,16 @@ def test_sparse_embedding_is_refused_with_a_clear_error_and_a_frozen_one_is_fine
     # torch.optim: sparse gradients need SparseAdam).
     model = nn.Sequential(nn.Embedding(10, 4, sparse=True), nn.Flatten(), nn.Linear(12, 3))
     with pytest.raises(ValueError, match="sparse=True"):
-        ngopt.NaturalGradient(model, nn.CrossEntropyLoss())
+        ngopt.FisherDescent(model, nn.CrossEntropyLoss())
     model[0].weight.requires_grad_(False)
-    opt = ngopt.NaturalGradient(model, nn.CrossEntropyLoss())
+    opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss())
     assert list(opt.blocks) == ["2"]
 
 
 def test_embedding_with_frequency_scaled_gradients_uses_the_fallback_rule():
     model = nn.Sequential(nn.Embedding(10, 4, scale_grad_by_freq=True), nn.Flatten(), nn.Linear(12, 3))
     with pytest.warns(UserWarning, match="scale_grad_by_freq"):
-        opt = ngopt.NaturalGradient(model, nn.CrossEntropyLoss())
+        opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss())
     assert list(opt.blocks) == ["2"]
 
 
@@ -454,13 +454,13 @@ def test_norm_blocks_equal_the_exact_fisher_restricted_to_channel_pairs(problem)
     model, path, inputs, channels = NORM_PROBLEMS[problem]()
     targets = targets_for("ce", len(inputs))
     k = 1 + int(model.get_submodule(path).bias is not None)
-    for curvature in ("kfac", "ekfac", "diag"):
+    for structure in ("kfac", "ekfac", "diag"):
         reference, opt = reference_and_optimizer(copy.deepcopy(model), path, inputs, targets, "norm", "ce",
-                                                 curvature=curvature)
+                                                 structure=structure)
         block = opt.blocks[path]
         mask = pair_mask(channels, k)
-        kept = reference * mask if curvature != "diag" else torch.diag(torch.diagonal(reference))
-        assert relative_error(block.dense_curvature(), kept) <= PAIR_RTOL, curvature
+        kept = reference * mask if structure != "diag" else torch.diag(torch.diagonal(reference))
+        assert relative_error(block.dense_curvature(), kept) <= PAIR_RTOL, structure
     omitted = relative_error(reference * mask, reference)
     print(f"{problem}: the pairs omit {omitted:.4g} of the exact Fisher (relative Frobenius), "
           f"the diagonal {relative_error(torch.diag(torch.diagonal(reference)), reference):.4g}")
@@ -552,14 +552,14 @@ def train(model, opt, inputs, labels, steps):
     return losses
 
 
-def make_optimizer(model, curvature):
-    return ngopt.NaturalGradient(model, nn.CrossEntropyLoss(), curvature=curvature, lr=0.3, momentum=0.5,
-                                 stats_every=2, invert_every=4, seed=0)
+def make_optimizer(model, structure):
+    return ngopt.FisherDescent(model, nn.CrossEntropyLoss(), structure=structure, lr=0.3, momentum=0.5,
+                               stats_interval=2, inverse_interval=4, seed=0)
 
 
-@pytest.mark.parametrize("curvature", ["kfac", "ekfac", "diag"])
+@pytest.mark.parametrize("structure", ["kfac", "ekfac", "diag"])
 @pytest.mark.parametrize("network", ["embedding-layernorm-linear", "cnn-batchnorm2d-conv1d"])
-def test_training_through_the_new_layers(network, curvature):
+def test_training_through_the_new_layers(network, structure):
     # Integration: loss goes down within a few steps; every layer gets a block (no fallback warnings,
     # no fallback parameters); state_dict() round-trips so that a resumed run continues exactly as the
     # uninterrupted one (API.md behaviour 3).
@@ -573,7 +573,7 @@ def test_training_through_the_new_layers(network, curvature):
     model = build()
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # no fallback, no uninitialised-curvature or skipped-step warnings
-        opt = make_optimizer(model, curvature)
+        opt = make_optimizer(model, structure)
         losses = train(model, opt, inputs, labels, 12)
     assert {name: block.layer.kind for name, block in opt.blocks.items()} == kinds
     assert "fallback rule" not in repr(opt)
@@ -586,7 +586,7 @@ def test_training_through_the_new_layers(network, curvature):
     saved = torch.load(buffer, weights_only=False)
     resumed_model = build()
     resumed_model.load_state_dict(saved["model"])
-    resumed_opt = make_optimizer(resumed_model, curvature)
+    resumed_opt = make_optimizer(resumed_model, structure)
     resumed_opt.load_state_dict(saved["opt"])
     straight = train(model, opt, inputs, labels, 5)
     resumed = train(resumed_model, resumed_opt, inputs, labels, 5)

@@ -1,8 +1,8 @@
 """Natural-gradient steps on regression problems against numpy, statsmodels and scikit-learn.
 
 All runs: a single ``nn.Linear`` in float64, full batch, ``fisher='exact'``,
-``lr=1``, ``momentum=0``, ``weight_decay=0``, ``trust_kl=None``, ``stats_ema=0``,
-``stats_every=1``, ``invert_every=1`` (API.md, behaviour 4).
+``lr=1``, ``momentum=0``, ``weight_decay=0``, ``max_step_kl=None``, ``stats_memory=0``,
+``stats_interval=1``, ``inverse_interval=1`` (API.md, behaviour 4).
 """
 from __future__ import annotations
 
@@ -20,12 +20,12 @@ from torch import nn
 import ngopt
 
 
-def exact_newton_like(model, loss_fn, damping, curvature="kfac"):
+def exact_newton_like(model, loss_fn, damping, structure="kfac"):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # tiny damping is asked for on purpose
-        return ngopt.NaturalGradient(model, loss_fn, lr=1.0, momentum=0.0, weight_decay=0.0, damping=damping,
-                                     fisher="exact", curvature=curvature, stats_every=1, invert_every=1,
-                                     stats_ema=0.0, trust_kl=None)
+        return ngopt.FisherDescent(model, loss_fn, lr=1.0, momentum=0.0, weight_decay=0.0, damping=damping,
+                                   fisher="exact", structure=structure, stats_interval=1, inverse_interval=1,
+                                   stats_memory=0.0, max_step_kl=None)
 
 
 def train(model, loss_fn, opt, inputs, targets, steps):
@@ -156,13 +156,13 @@ def test_logistic_fisher_block_matches_statsmodels_information():
     information = information[np.ix_(order, order)]
     inputs, targets = torch.as_tensor(x), torch.as_tensor(y)[:, None]
 
-    def block_at_fit(curvature, rows):
+    def block_at_fit(structure, rows):
         model = nn.Linear(3, 1).double()
         with torch.no_grad():
             model.weight.copy_(torch.as_tensor(fit.params[1:])[None])
             model.bias.fill_(fit.params[0])
         loss_fn = nn.BCEWithLogitsLoss(reduction="sum")
-        opt = exact_newton_like(model, loss_fn, damping=1e-3, curvature=curvature)
+        opt = exact_newton_like(model, loss_fn, damping=1e-3, structure=structure)
         total = 0.0
         for chunk in rows:
             with torch.no_grad():  # the step moves the weights; measure every chunk at the fit

@@ -68,16 +68,16 @@ def problem(model_class, seed=0):
     return model, inputs, targets
 
 
-def errors(model_class, curvature="kfac"):
+def errors(model_class, structure="kfac"):
     """Relative Frobenius error of each treatment against the exact per-layer Fisher."""
     found = {}
     for treatment in ("expand", "reduce"):
         model, inputs, targets = problem(model_class)
         reference = exact_layer_fisher(model, inputs, "mse")["lin"]
-        opt = recorded_optimizer(model, nn.MSELoss(), inputs, targets, curvature=curvature,
+        opt = recorded_optimizer(model, nn.MSELoss(), inputs, targets, structure=structure,
                                  weight_sharing=treatment)
         found[treatment] = relative_error(opt.blocks["lin"].dense_curvature(), reference)
-    print(model_class.__name__, curvature, found)
+    print(model_class.__name__, structure, found)
     return found
 
 
@@ -97,7 +97,7 @@ def test_reduce_is_exact_for_positions_pooled_before_the_loss(model_class):
 def test_ekfac_scales_do_not_depend_on_the_treatment():
     # EKFAC's scales are the projected second moments of the true per-example gradients, whatever
     # factors chose the basis; an exact K-FAC basis then makes EKFAC exact as well (George et al. 2018).
-    found = errors(SumPooled, curvature="ekfac")
+    found = errors(SumPooled, structure="ekfac")
     assert found["reduce"] <= 1e-10
     assert found["expand"] < errors(SumPooled)["expand"]
 
@@ -106,6 +106,6 @@ def test_diagonal_is_the_exact_diagonal_with_either_treatment():
     for treatment in ("expand", "reduce"):
         model, inputs, targets = problem(SumPooled)
         reference = exact_layer_fisher(model, inputs, "mse")["lin"]
-        opt = recorded_optimizer(model, nn.MSELoss(), inputs, targets, curvature="diag", weight_sharing=treatment)
+        opt = recorded_optimizer(model, nn.MSELoss(), inputs, targets, structure="diag", weight_sharing=treatment)
         got = torch.diag(opt.blocks["lin"].dense_curvature())
         assert relative_error(got, torch.diag(reference)) <= EXACT_RTOL

@@ -32,8 +32,8 @@ def digits_run(tmp_path, name="run.jsonl", steps=40, damping=1e-2, probe=True, *
     loss_fn = nn.CrossEntropyLoss()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        opt = ngopt.NaturalGradient(model, loss_fn, lr=0.3, damping=damping, stats_every=2, invert_every=5,
-                                    **options)
+        opt = ngopt.FisherDescent(model, loss_fn, lr=0.3, damping=damping, stats_interval=2, inverse_interval=5,
+                                  **options)
     path = tmp_path / name
     generator = torch.Generator().manual_seed(0)
     with log_diagnostics(opt, path, every=5) as handle:
@@ -80,7 +80,7 @@ def test_csv_log_gives_the_figures_without_spectra(tmp_path):
     torch.manual_seed(1)
     model = nn.Sequential(nn.Linear(5, 6), nn.Tanh(), nn.Linear(6, 2))
     loss_fn = nn.MSELoss()
-    opt = ngopt.NaturalGradient(model, loss_fn, lr=0.2)
+    opt = ngopt.FisherDescent(model, loss_fn, lr=0.2)
     with log_diagnostics(opt, tmp_path / "run.csv", every=3):
         for _ in range(12):
             opt.zero_grad()
@@ -96,7 +96,7 @@ def test_csv_log_gives_the_figures_without_spectra(tmp_path):
 def test_ill_conditioned_factor_and_skipped_steps_are_warned(tmp_path):
     # the digits have pixels that are always 0, so A is singular; with a tiny damping the damped
     # block's condition number stays far above 1e8 (numbers from a run, see the summary)
-    log = digits_run(tmp_path, damping=1e-12, probe=False, trust_kl=None, momentum=0.0)
+    log = digits_run(tmp_path, damping=1e-12, probe=False, max_step_kl=None, momentum=0.0)
     records = [json.loads(line) for line in log.read_text().splitlines()]
     assert min(r["layers"]["0"]["condition"] for r in records[-2:]) > 1e8
     result = write_report(log, tmp_path / "out")
@@ -109,7 +109,7 @@ def test_many_skipped_steps_are_warned(tmp_path):
     x, y = torch.randn(32, 4), torch.randn(32, 1)
     model = nn.Linear(4, 1)
     loss_fn = nn.MSELoss()
-    opt = ngopt.NaturalGradient(model, loss_fn, lr=0.1)
+    opt = ngopt.FisherDescent(model, loss_fn, lr=0.1)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         with log_diagnostics(opt, tmp_path / "run.jsonl", every=2):
@@ -141,15 +141,15 @@ def test_bad_log_line_gives_a_clear_error(tmp_path, capsys):
 
 
 def test_clean_run_has_no_warnings(tmp_path):
-    log = digits_run(tmp_path, steps=20, probe=False, trust_kl=None)
+    log = digits_run(tmp_path, steps=20, probe=False, max_step_kl=None)
     result = write_report(log, tmp_path / "out")
     assert result["warnings"] == []
     assert "warnings:\n  (none)" in (tmp_path / "out" / "summary.txt").read_text()
 
 
-@pytest.mark.parametrize("curvature", ["diag", "ekfac"])
-def test_diagonal_curvature_spectra_figure(tmp_path, curvature):
-    log = digits_run(tmp_path, steps=10, probe=False, curvature=curvature)
+@pytest.mark.parametrize("structure", ["diag", "ekfac"])
+def test_diagonal_curvature_spectra_figure(tmp_path, structure):
+    log = digits_run(tmp_path, steps=10, probe=False, structure=structure)
     result = write_report(log, tmp_path / "out")
     assert_png(tmp_path / "out" / "spectra_0.png")
     assert tmp_path / "out" / "spectra_0.png" in result["figures"]
@@ -160,7 +160,7 @@ def test_reduction_ratio_figure_from_a_closure_run(tmp_path):
     x, y = torch.randn(64, 4), torch.randn(64, 2)
     model = nn.Sequential(nn.Linear(4, 8), nn.Tanh(), nn.Linear(8, 2))
     loss_fn = nn.MSELoss()
-    opt = ngopt.NaturalGradient(model, loss_fn, lr=0.5, momentum=0.5, adapt_damping=True, adapt_every=2)
+    opt = ngopt.FisherDescent(model, loss_fn, lr=0.5, momentum=0.5, damping_rule="lm", damping_interval=2)
 
     def closure():
         opt.zero_grad()

@@ -31,8 +31,8 @@ Tensors = Dict[str, torch.Tensor]
 WEIGHT_SHARING = ("expand", "reduce")
 
 
-class CurvatureBlock:
-    curvature = "block"
+class LayerCurvature:
+    structure = "block"
     statistic_keys: Tuple[str, ...] = ()
     inverse_keys: Tuple[str, ...] = ()
     # Statistics that are symmetric matrices by construction (sent as triangles between ranks).
@@ -136,4 +136,4 @@ class CurvatureBlock:
         return {}
 
     def describe(self) -> str:
-        return f"{self.layer.kind} {self.curvature} [{self.layer.out_dim} x {self.layer.in_dim}]"
+        return f"{self.layer.kind} {self.structure} [{self.layer.out_dim} x {self.layer.in_dim}]"

@@ -14,7 +14,7 @@ from __future__ import annotations
 import torch
 
 from ..spectra import diagonal_summary
-from .base import CurvatureBlock
+from .base import LayerCurvature
 
 _PER_EXAMPLE_CHUNK = 64
 
@@ -32,8 +32,8 @@ def per_example_square_sum(input_rows: torch.Tensor, grad_rows: torch.Tensor) ->
     return total
 
 
-class DiagonalBlock(CurvatureBlock):
-    curvature = "diag"
+class DiagonalBlock(LayerCurvature):
+    structure = "diag"
     statistic_keys = ("fisher_diagonal",)
     inverse_keys = ("fisher_diagonal",)
 

@@ -12,8 +12,8 @@ instead of K-FAC's ``L_G L_A^T``.  Since K-FAC is itself diagonal in ``Q``, and
 batch, ``Q S Q^T`` is the closest matrix of that form to ``F`` in Frobenius
 norm: never further from it than K-FAC.
 
-Schedule: the eigenbases change at each inversion (``invert_every``), the
-scales at each statistics refresh (``stats_every``), as a running average in
+Schedule: the eigenbases change at each inversion (``inverse_interval``), the
+scales at each statistics refresh (``stats_interval``), as a running average in
 the current basis.  When the basis changes, the old scales belong to the old
 basis; the running average then restarts from ``L_G L_A^T``, the factors' own
 (already averaged) estimate of the scales in the new basis.  Damping is added
@@ -30,7 +30,7 @@ from .kronecker import KroneckerBlock
 
 
 class EigenbasisBlock(KroneckerBlock):
-    curvature = "ekfac"
+    structure = "ekfac"
     inverse_keys = ("basis_in", "basis_out", "scales")
     projected_keys = ("scales",)
 

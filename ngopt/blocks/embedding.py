@@ -14,12 +14,12 @@ so ``A`` is kept as the vector ``f`` ``[V]``: the state is linear in ``V`` and n
 Positions holding ``padding_idx`` get no gradient in PyTorch; they count as rows
 with a zero input (like a zero input row of a Linear layer): ``f`` is zero there.
 
-``curvature="diag"``: the exact diagonal of the per-layer Fisher, where the
+``structure="diag"``: the exact diagonal of the per-layer Fisher, where the
 positions of one example that hold the same token add their gradients before
 squaring (sums over unique (example, token) pairs, ``index_add``: memory
 ``O(N T d)``, never ``N V d``).
 
-``curvature="ekfac"``: a real eigenvalue correction (George et al., NeurIPS 2018).
+``structure="ekfac"``: a real eigenvalue correction (George et al., NeurIPS 2018).
 The eigenbasis of the diagonal ``A`` is the identity, so the basis is
 ``I (x) Q_G`` and the scales are the per-(token, eigendirection) second moments of
 the projected per-example gradients, ``S = (1/c) sum_n (Q_G^T M_n)^2``, ``[d, V]``:
@@ -31,7 +31,7 @@ import torch
 
 from ..linalg import damped_inverse, factored_damping, to_cpu64
 from ..spectra import diagonal_summary, kronecker_summary
-from .base import CurvatureBlock
+from .base import LayerCurvature
 from .diagonal import DiagonalBlock
 from .eigenbasis import EigenbasisBlock
 
@@ -64,8 +64,8 @@ def token_square_sums(indices: torch.Tensor, grad_rows: torch.Tensor, vocab: int
     return total.T
 
 
-class EmbeddingKroneckerBlock(CurvatureBlock):
-    curvature = "kfac"
+class EmbeddingKroneckerBlock(LayerCurvature):
+    structure = "kfac"
     statistic_keys = ("factor_in", "factor_out")
     symmetric_statistic_keys = ("factor_out",)
     inverse_keys = ("inverse_in", "inverse_out")
@@ -164,12 +164,12 @@ class EmbeddingKroneckerBlock(CurvatureBlock):
         return kronecker_summary(self, damping, with_spectra)
 
     def describe(self):
-        return (f"{self.layer.kind} {self.curvature} [{self.layer.out_dim} x {self.layer.in_dim}] "
+        return (f"{self.layer.kind} {self.structure} [{self.layer.out_dim} x {self.layer.in_dim}] "
                 "(diagonal input factor)")
 
 
 class EmbeddingEigenbasisBlock(EmbeddingKroneckerBlock):
-    curvature = "ekfac"
+    structure = "ekfac"
     inverse_keys = ("basis_out", "scales")
     projected_keys = ("scales",)
     # The same running-average rule as for dense layers: K-FAC's outer(eigen_out, eigen_in) on a new basis.
@@ -224,7 +224,7 @@ class EmbeddingEigenbasisBlock(EmbeddingKroneckerBlock):
         return summary
 
     def describe(self):
-        return f"{self.layer.kind} {self.curvature} [{self.layer.out_dim} x {self.layer.in_dim}] (basis I (x) Q_G)"
+        return f"{self.layer.kind} {self.structure} [{self.layer.out_dim} x {self.layer.in_dim}] (basis I (x) Q_G)"
 
 
 class EmbeddingDiagonalBlock(DiagonalBlock):

@@ -1,9 +1,9 @@
-"""Which curvature block a layer gets: its layer kind and the chosen curvature kind decide."""
+"""Which curvature block a layer gets: its layer kind and the chosen structure decide."""
 from __future__ import annotations
 
 from typing import Dict, Type
 
-from .base import CurvatureBlock
+from .base import LayerCurvature
 from .diagonal import DiagonalBlock
 from .eigenbasis import EigenbasisBlock
 from .embedding import EmbeddingDiagonalBlock, EmbeddingEigenbasisBlock, EmbeddingKroneckerBlock
@@ -12,13 +12,13 @@ from .layers import LayerAdapter
 from .norm import NormDiagonalBlock, NormPairBlock
 
 # Blocks built from the generic rows a = inputs, g = output gradients (Linear, Conv1d, Conv2d).
-CURVATURES: Dict[str, Type[CurvatureBlock]] = {
+STRUCTURES: Dict[str, Type[LayerCurvature]] = {
     "kfac": KroneckerBlock, "ekfac": EigenbasisBlock, "diag": DiagonalBlock,
 }
-# Layer kinds whose curvature has a structure of its own: {layer kind: {curvature: block class}}.
+# Layer kinds whose curvature has a structure of its own: {layer kind: {structure: block class}}.
 # Norm layers: "kfac" and "ekfac" both give the exact per-channel 2x2 blocks (blocks/norm.py).
 _NORM_BLOCKS = {"kfac": NormPairBlock, "ekfac": NormPairBlock, "diag": NormDiagonalBlock}
-LAYER_BLOCKS: Dict[str, Dict[str, Type[CurvatureBlock]]] = {
+LAYER_BLOCKS: Dict[str, Dict[str, Type[LayerCurvature]]] = {
     "embedding": {"kfac": EmbeddingKroneckerBlock, "ekfac": EmbeddingEigenbasisBlock,
                   "diag": EmbeddingDiagonalBlock},
     "layer_norm": _NORM_BLOCKS,
@@ -26,11 +26,11 @@ LAYER_BLOCKS: Dict[str, Dict[str, Type[CurvatureBlock]]] = {
 }
 
 
-def block_class(layer: LayerAdapter, curvature: str) -> Type[CurvatureBlock]:
-    if curvature not in CURVATURES:
-        raise ValueError(f"curvature must be one of {tuple(CURVATURES)}, got {curvature!r}")
-    return LAYER_BLOCKS.get(layer.kind, CURVATURES)[curvature]
+def block_class(layer: LayerAdapter, structure: str) -> Type[LayerCurvature]:
+    if structure not in STRUCTURES:
+        raise ValueError(f"structure must be one of {tuple(STRUCTURES)}, got {structure!r}")
+    return LAYER_BLOCKS.get(layer.kind, STRUCTURES)[structure]
 
 
-def make_block(layer: LayerAdapter, curvature: str, state: dict, weight_sharing: str = "expand") -> CurvatureBlock:
-    return block_class(layer, curvature)(layer, state, weight_sharing=weight_sharing)
+def make_block(layer: LayerAdapter, structure: str, state: dict, weight_sharing: str = "expand") -> LayerCurvature:
+    return block_class(layer, structure)(layer, state, weight_sharing=weight_sharing)

@@ -17,11 +17,11 @@ import torch
 
 from ..linalg import damped_inverse, factored_damping, to_cpu64
 from ..spectra import kronecker_summary
-from .base import CurvatureBlock, Tensors
+from .base import LayerCurvature, Tensors
 
 
-class KroneckerBlock(CurvatureBlock):
-    curvature = "kfac"
+class KroneckerBlock(LayerCurvature):
+    structure = "kfac"
     statistic_keys = ("factor_in", "factor_out")
     symmetric_statistic_keys = ("factor_in", "factor_out")
     inverse_keys = ("inverse_in", "inverse_out")

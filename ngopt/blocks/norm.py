@@ -21,7 +21,7 @@ the 1x1 (diagonal) case.
 The blocks are inverted by a batched float64 eigendecomposition at each inversion
 (negative round-off eigenvalues clipped to zero); damping is added to the
 eigenvalues at every step, ``(B_c + lambda I)^-1``, so a change of ``damping`` acts at
-once.  ``curvature="diag"`` keeps the diagonal of the same blocks (``u^2``, ``v^2``);
+once.  ``structure="diag"`` keeps the diagonal of the same blocks (``u^2``, ``v^2``);
 ``"kfac"`` and ``"ekfac"`` both give the exact 2x2 blocks (an eigenvalue correction of
 an exact block changes nothing).  ``weight_sharing`` has no effect: the per-example
 sums are exact.
@@ -32,7 +32,7 @@ import torch
 
 from ..linalg import to_cpu64
 from ..spectra import diagonal_summary
-from .base import CurvatureBlock
+from .base import LayerCurvature
 from .diagonal import DiagonalBlock
 
 
@@ -55,8 +55,8 @@ def _channel_moments(block, num_forwards, reduce) -> dict:
     return total / num_forwards
 
 
-class NormPairBlock(CurvatureBlock):
-    curvature = "channel_pairs"
+class NormPairBlock(LayerCurvature):
+    structure = "channel_pairs"
     statistic_keys = ("fisher_pairs",)
     inverse_keys = ("pair_basis", "pair_eigenvalues")
 
@@ -107,7 +107,7 @@ class NormPairBlock(CurvatureBlock):
         return diagonal_summary(eigenvalues, damping, with_spectra, prefix="pair_eig")
 
     def describe(self):
-        return f"{self.layer.kind} {self.curvature} [{self.layer.out_dim} channels x {self.layer.in_dim}]"
+        return f"{self.layer.kind} {self.structure} [{self.layer.out_dim} channels x {self.layer.in_dim}]"
 
 
 class NormDiagonalBlock(DiagonalBlock):
