@@ -7,17 +7,28 @@ one of three Fisher sources:
 
 * ``empirical``: the gradients of the user's loss, caught by tensor hooks
   during the user's own ``backward()``;
-* ``sampled``: when the user's ``backward()`` reaches the model output, a hook
-  runs one extra backward pass from the output with ``c * grad_f l(f, y~)``
-  for targets ``y~`` drawn from the model (one batched pass for several draws);
+* ``sampled``: the criterion object ``loss_fn`` is hooked too, so every call
+  ``loss_fn(z, y)`` made after the model's forward is seen with the tensor
+  ``z`` it actually receives (the model output, or a reshaped, sliced, scaled
+  or dict-picked version of it).  When the user's ``backward()`` reaches the
+  loss, a hook runs one extra backward pass from ``z`` with ``c * grad_z l(z, y~)``
+  for targets ``y~`` drawn from the model's distribution *at z*, through
+  whatever the user's code did between the model and the loss;
 * ``exact``: the same extra pass with the columns of the output Fisher's square
-  root, which gives the expectation over the predictive distribution exactly.
+  root at ``z``, which gives the expectation over the predictive distribution.
+
+Several criterion calls in one forward (two heads, an auxiliary loss) each get
+their own pass; each call's statistics are weighted by ``dL/dl_i``, the gradient
+the user's backward sends into that call's loss value, so ``L = l_1 + 0.3 l_2``
+gets ``F_1 + 0.3 F_2``.  A call on a tensor that does not depend on any
+supported layer contributes nothing.
 
 The extra pass asks ``torch.autograd.grad`` for the gradients of the layer
 outputs only, so it neither accumulates into ``.grad`` nor changes what the
 user's backward computes.  Each layer hands the rest of the network a copy of
 its output, which keeps the tensor we differentiate with respect to safe from
-in-place operations downstream (``ReLU(inplace=True)``).
+in-place operations downstream (``ReLU(inplace=True)``).  The hooks run eagerly
+under ``torch.compile`` (they are excluded from tracing).
 """
 from __future__ import annotations
 
@@ -25,7 +36,7 @@ import time
 import warnings
 import weakref
 from dataclasses import dataclass, field
-from typing import Callable, Dict, List, Optional
+from typing import Callable, Dict, List, Optional, Tuple
 
 import torch
 from torch import nn
@@ -40,29 +51,51 @@ _HOOKED_MODELS: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
 EXACT_COLUMNS_WARNING = 64
 
 
+def run_eagerly(fn):
+    """Keep ``fn`` out of ``torch.compile``'s tracing: hooks keep Python state and read clocks."""
+    disable = getattr(getattr(torch, "compiler", None), "disable", None)
+    return disable(fn) if disable is not None else fn
+
+
+def _inside_function_transform() -> bool:
+    """Under torch.func (vmap, grad, jvp: exact-Fisher probes, rules' products) nothing is recorded."""
+    active = getattr(torch._C, "_are_functorch_transforms_active", None)
+    return bool(active()) if active is not None else False
+
+
 @dataclass
 class LayerCall:
     block: LayerCurvature
     input_rows: torch.Tensor
-    output: torch.Tensor
-    grad_rows: Optional[torch.Tensor] = None
-    scale: float = 1.0
+    output: Optional[torch.Tensor]
+    # (grad rows, scale, index of the criterion call they come from); one entry per Fisher pass
+    grads: List[Tuple[torch.Tensor, float, int]] = field(default_factory=list)
+
+
+@dataclass
+class CriterionCall:
+    """One ``loss_fn(z, y)`` call after a recorded forward."""
+
+    input: Optional[torch.Tensor]          # z, the tensor the criterion received
+    weight: Optional[float] = None         # dL/dl for this call, known once the user's backward reaches it
 
 
 @dataclass
 class ForwardRecord:
     calls: List[LayerCall] = field(default_factory=list)
+    criteria: List[CriterionCall] = field(default_factory=list)
     done: bool = False
+    examples: int = 0  # the model's batch size (leading dimension of its first tensor input)
     # Tensor hooks that refer back to tensors of this record: a cycle through autograd's C++ side
     # that Python's garbage collector cannot see, so they are removed by hand once the record is used.
     handles: list = field(default_factory=list)
-    output: Optional[torch.Tensor] = None  # the model output, for the extra backward pass
 
     def drop_tensors(self) -> None:
         """Forget the outputs: breaks the cycles, and is safe inside a running hook."""
-        self.output = None
         for call in self.calls:
             call.output = None
+        for criterion in self.criteria:
+            criterion.input = None
 
     def release(self) -> None:
         for handle in self.handles:
@@ -72,7 +105,7 @@ class ForwardRecord:
 
 
 class FisherSource:
-    """Output-gradient vectors for the ``sampled`` and ``exact`` Fisher."""
+    """Output-gradient vectors for the ``sampled`` and ``exact`` Fisher at a criterion's input."""
 
     def __init__(self, mode: str, likelihood: OutputLikelihood, num_samples: int,
                  generator_for: Callable[[torch.device], torch.Generator]):
@@ -82,17 +115,26 @@ class FisherSource:
         self.generator_for = generator_for
         self._warned_cost = False
 
-    def output_vectors(self, output: torch.Tensor):
-        """``(V, scale)``: vectors ``[K, *output.shape]`` and the factor ``s`` with ``G = s sum g g^T``."""
-        c = self.likelihood.reduction_scale(output)
+    def output_vectors(self, criterion_input: torch.Tensor, examples: int = 0):
+        """``(V, scale)``: vectors ``[K, *z.shape]`` and the factor ``s`` with ``G = s sum g g^T``.
+
+        ``examples`` is the model's batch size: exact columns keep one example's terms apart.
+        """
+        c = self.likelihood.reduction_scale(criterion_input)
         if self.mode == "sampled":
-            generator = self.generator_for(output.device)
-            vectors = self.likelihood.sampled_output_grads(output, generator, self.num_samples)
+            generator = self.generator_for(criterion_input.device)
+            vectors = self.likelihood.sampled_output_grads(criterion_input, generator, self.num_samples)
             return vectors, 1.0 / (c * self.num_samples)
-        columns = self.likelihood.exact_output_grad_columns(output)
+        columns = self.likelihood.exact_columns(criterion_input, examples)
         if columns.shape[0] > EXACT_COLUMNS_WARNING and not self._warned_cost:
-            warnings.warn(f"fisher='exact' backpropagates {columns.shape[0]} vectors per refresh for this output "
-                          f"{tuple(output.shape)}; fisher='sampled' costs one", stacklevel=2)
+            rows = criterion_input.shape[0]
+            layout = criterion_input
+            if examples and rows != examples and rows % examples == 0:
+                layout = self.likelihood.group_positions(criterion_input, examples)
+            warnings.warn(f"fisher='exact' backpropagates {columns.shape[0]} vectors per refresh for the "
+                          f"criterion input of shape {tuple(criterion_input.shape)} "
+                          f"({self.likelihood.describe_columns(layout)}); fisher='sampled' costs one",
+                          stacklevel=2)
             self._warned_cost = True
         return columns, 1.0 / c
 
@@ -125,7 +167,7 @@ def batched_output_grads(output: torch.Tensor, targets: List[torch.Tensor],
 
 
 class CaptureHooks:
-    """Installs the hooks on ``model`` and collects finished records for the optimizer."""
+    """Installs the hooks on ``model`` (and ``loss_fn``) and collects finished records for the optimizer."""
 
     def __init__(self, model: nn.Module, blocks: Dict[nn.Module, LayerCurvature],
                  source: Optional[FisherSource], loss_fn=None):
@@ -135,6 +177,7 @@ class CaptureHooks:
         self.armed = True
         self.seconds = {"capture": 0.0, "extra_backward": 0.0}  # time spent inside the user's passes
         self.records: List[ForwardRecord] = []
+        self.forwards_without_criterion = 0
         self._current: Optional[ForwardRecord] = None
         self._model = model
         other = _HOOKED_MODELS.get(model)
@@ -144,11 +187,13 @@ class CaptureHooks:
                           "remove_hooks() on that optimizer first, or this one will miss curvature statistics",
                           stacklevel=4)
         _HOOKED_MODELS[model] = weakref.ref(self)
-        self._handles = [model.register_forward_pre_hook(self._model_pre_hook)]
+        self._handles = [model.register_forward_pre_hook(run_eagerly(self._model_pre_hook))]
         for module in blocks:
-            self._handles.append(module.register_forward_hook(self._layer_hook))
+            self._handles.append(module.register_forward_hook(run_eagerly(self._layer_hook)))
         # Last, so that it runs after the layer hooks even when the model is itself a layer.
-        self._handles.append(model.register_forward_hook(self._model_post_hook))
+        self._handles.append(model.register_forward_hook(run_eagerly(self._model_post_hook)))
+        if isinstance(loss_fn, nn.Module):
+            self._handles.append(loss_fn.register_forward_hook(run_eagerly(self._criterion_hook)))
 
     def remove(self) -> None:
         for handle in self._handles:
@@ -160,12 +205,15 @@ class CaptureHooks:
 
     # -- hooks ------------------------------------------------------------------------------
     def _model_pre_hook(self, model, inputs):
-        if self.armed and model.training and torch.is_grad_enabled() and self._current is None:
-            self._current = ForwardRecord()
+        # Identity checks: a deep copy of the model carries these hooks along and must record nothing.
+        if model is self._model and self.armed and model.training and torch.is_grad_enabled() \
+                and self._current is None and not _inside_function_transform():
+            first = next((x for x in inputs if isinstance(x, torch.Tensor)), None)
+            self._current = ForwardRecord(examples=first.shape[0] if first is not None and first.dim() else 0)
 
     def _layer_hook(self, module, inputs, output):
         record = self._current
-        if record is None or not module.training or not isinstance(output, torch.Tensor) \
+        if record is None or module not in self.blocks or not module.training or not isinstance(output, torch.Tensor) \
                 or not output.requires_grad:
             return None
         started = time.perf_counter()
@@ -179,42 +227,86 @@ class CaptureHooks:
         return copy
 
     def _model_post_hook(self, model, inputs, output):
+        if model is not self._model:
+            return None
         record, self._current = self._current, None
         if record is None or not record.calls:
             return None
         self.records.append(record)
         if self.source is None:
-            c = empirical_reduction_scale(self.loss_fn, output, record.calls[0].input_rows.shape[0])
+            # Until the criterion is seen (or when it is not an nn.Module): the scale of a
+            # mean over the batch, or of a sum.
+            scale = 1.0 / empirical_reduction_scale(self.loss_fn, None, record.calls[0].input_rows.shape[0])
             for call in record.calls:
-                call.scale = 1.0 / c
-        elif not isinstance(output, torch.Tensor):
-            raise TypeError(f"fisher={self.source.mode!r} needs the model to return the tensor the loss "
-                            f"is applied to; it returned {type(output).__name__}. "
-                            "Use fisher='empirical' or wrap the model so it returns that tensor.")
-        elif output.requires_grad:
-            record.output = output
-            record.handles.append(output.register_hook(lambda grad, record=record: self._extra_backward(record)))
+                call.grads = [(None, scale, 0)]
+        elif isinstance(output, torch.Tensor) and output.requires_grad:
+            # Reached only if no criterion call saw this forward (a functional loss, another instance).
+            record.handles.append(output.register_hook(
+                lambda grad, record=record, output=output: self._output_grad(record, output)))
+        return None
+
+    def _criterion_hook(self, criterion, inputs, loss):
+        """``loss_fn(z, y)`` after a recorded forward: note ``z`` and hook the loss value."""
+        if criterion is not self.loss_fn or _inside_function_transform():
+            return None
+        open_records = [record for record in self.records if not record.done]
+        if not open_records or not inputs or not isinstance(inputs[0], torch.Tensor):
+            return None
+        z = inputs[0]
+        if not torch.is_grad_enabled() or not z.requires_grad \
+                or not isinstance(loss, torch.Tensor) or not loss.requires_grad:
+            return None
+        if self.source is None:
+            scale = 1.0 / empirical_reduction_scale(self.loss_fn, z, z.shape[0] if z.dim() else 1)
+            for record in open_records:
+                for call in record.calls:
+                    call.grads = [(rows, scale, index) for rows, _, index in call.grads]
+            return None
+        self.source.likelihood.check_input(z)
+        criterion_call = CriterionCall(z)
+        for record in open_records:
+            record.criteria.append(criterion_call)
+            record.handles.append(loss.register_hook(
+                lambda grad, record=record, call=criterion_call: self._loss_grad(record, call, grad)))
         return None
 
     def _empirical_grad(self, call: LayerCall, grad: torch.Tensor):
-        if call.grad_rows is None:
-            call.grad_rows = call.block.layer.output_rows(grad.detach().unsqueeze(0))
+        if call.grads and call.grads[0][0] is None:
+            _, scale, index = call.grads[0]
+            call.grads[0] = (call.block.layer.output_rows(grad.detach().unsqueeze(0)), scale, index)
         return None
 
-    def _extra_backward(self, record: ForwardRecord):
-        if record.done:  # the extra pass itself reaches the output too
+    def _loss_grad(self, record: ForwardRecord, criterion_call: CriterionCall, grad: torch.Tensor):
+        """The user's backward reached a criterion call's loss: nothing below any loss has run yet."""
+        criterion_call.weight = float(grad.sum()) if grad is not None else 0.0
+        if record.done:
             return None
         record.done = True
-        output = record.output
+        self._extra_passes(record)
+        return None
+
+    def _extra_passes(self, record: ForwardRecord) -> None:
+        """One extra backward pass per criterion call, from its input to the layer outputs."""
         started = time.perf_counter()
-        vectors, scale = self.source.output_vectors(output.detach())
-        grads = batched_output_grads(output, [call.output for call in record.calls], vectors)
-        for call, grad in zip(record.calls, grads):
-            if grad is not None:
-                call.grad_rows = call.block.layer.output_rows(grad.detach())
-                call.scale = scale
+        outputs = [call.output for call in record.calls]
+        for index, criterion in enumerate(record.criteria):
+            z = criterion.input
+            vectors, scale = self.source.output_vectors(z.detach(), record.examples)
+            grads = batched_output_grads(z, outputs, vectors)
+            for call, g in zip(record.calls, grads):
+                if g is not None:
+                    call.grads.append((call.block.layer.output_rows(g.detach()), scale, index))
         self.seconds["extra_backward"] += time.perf_counter() - started
         record.drop_tensors()
+
+    def _output_grad(self, record: ForwardRecord, output: torch.Tensor):
+        """The backward reached the model output and no criterion call was seen: take the output as its input."""
+        if record.done:
+            return None
+        self.forwards_without_criterion += 1
+        record.criteria.append(CriterionCall(output, weight=1.0))
+        record.done = True
+        self._extra_passes(record)
         return None
 
     # -- hand-over ----------------------------------------------------------------------------
@@ -224,10 +316,13 @@ class CaptureHooks:
         for index, record in enumerate(self.records):
             seen = set()
             for call in record.calls:
-                if call.grad_rows is None:
-                    continue
-                call.block.add_capture(call.input_rows, call.grad_rows, call.scale, index)
-                seen.add(call.block)
+                for rows, scale, criterion_index in call.grads:
+                    weight = 1.0 if self.source is None else record.criteria[criterion_index].weight
+                    if rows is None or weight is None or weight <= 0:
+                        continue  # not reached by the backward (or a loss the user ascends)
+                    # Forwards and criterion calls kept apart: "reduce" joins calls of one pass only.
+                    call.block.add_capture(call.input_rows, rows, scale * weight, (index, criterion_index))
+                    seen.add(call.block)
             for block in seen:
                 forwards[block] = forwards.get(block, 0) + 1
             record.release()

@@ -47,6 +47,17 @@ class OutputLikelihood:
         """Number of terms the ``mean`` reduction divides by."""
         return output.numel()
 
+    def check_input(self, output: torch.Tensor) -> None:
+        """Raise a clear error if the criterion's input cannot carry this likelihood."""
+
+    def describe_columns(self, output: torch.Tensor) -> str:
+        """What the exact Fisher's columns per example are, in words."""
+        return f"one per output element, {output[0].numel() if output.dim() else 1} per example"
+
+    def hessian_product(self, output: torch.Tensor, vector: torch.Tensor) -> torch.Tensor:
+        """``c * H u`` for a direction ``u`` shaped like the output: the output Hessian of ``L``."""
+        raise NotImplementedError
+
     def reduction_scale(self, output: torch.Tensor) -> float:
         """The coefficient ``c`` in ``L = c * sum_n l_n``."""
         return 1.0 / self.num_terms(output) if self.reduction == "mean" else 1.0
@@ -55,6 +66,28 @@ class OutputLikelihood:
                              num_samples: int) -> torch.Tensor:
         """``c * grad_f l(f, y)`` for ``y`` drawn from the model; shape ``[num_samples, *output.shape]``."""
         raise NotImplementedError
+
+    def exact_columns(self, output: torch.Tensor, examples: int) -> torch.Tensor:
+        """Exact-Fisher columns that never join two terms of one network example.
+
+        A column may touch one term of every example: their cross terms vanish,
+        because an example's terms depend on that example alone.  When the
+        criterion's rows are example-major positions (``logits.view(-1, V)`` of
+        ``[examples, T, V]``, or a shifted ``logits[:, :-1]`` flattened the same
+        way), the rows of one example are split over separate columns.
+        """
+        rows = output.shape[0] if output.dim() else 1
+        if output.dim() == 0 or examples <= 0 or rows == examples or rows % examples:
+            return self.exact_output_grad_columns(output)
+        grouped = self.group_positions(output, examples)
+        return self.ungroup_columns(self.exact_output_grad_columns(grouped), output.shape)
+
+    def group_positions(self, output: torch.Tensor, examples: int) -> torch.Tensor:
+        """``[examples * P, ...]`` as ``[examples, P, ...]`` (positions after the batch dimension)."""
+        return output.reshape((examples, output.shape[0] // examples) + tuple(output.shape[1:]))
+
+    def ungroup_columns(self, columns: torch.Tensor, shape) -> torch.Tensor:
+        return columns.reshape((columns.shape[0],) + tuple(shape))
 
     def exact_output_grad_columns(self, output: torch.Tensor) -> torch.Tensor:
         """Columns ``c * S_k`` with ``sum_k S_k S_k^T = H`` for every term; shape ``[K, *output.shape]``.
@@ -80,6 +113,9 @@ class SquaredError(OutputLikelihood):
         value = math.sqrt(2.0) * self.reduction_scale(output)
         return _one_hot_columns(output, torch.full_like(output, value))
 
+    def hessian_product(self, output, vector):
+        return vector * (2.0 * self.reduction_scale(output))
+
 
 class BinaryCrossEntropy(OutputLikelihood):
     """``nn.BCEWithLogitsLoss`` without ``weight``/``pos_weight``."""
@@ -102,6 +138,10 @@ class BinaryCrossEntropy(OutputLikelihood):
     def exact_output_grad_columns(self, output):
         prob = torch.sigmoid(output.detach())
         return _one_hot_columns(output, torch.sqrt(prob * (1 - prob)) * self.reduction_scale(output))
+
+    def hessian_product(self, output, vector):
+        prob = torch.sigmoid(output.detach())
+        return vector * (prob * (1 - prob)) * self.reduction_scale(output)
 
 
 class CrossEntropy(OutputLikelihood):
@@ -131,6 +171,26 @@ class CrossEntropy(OutputLikelihood):
         if output.dim() < 2:
             raise ValueError("CrossEntropyLoss curvature needs logits shaped [batch, classes, ...]; "
                              f"got shape {tuple(output.shape)}")
+
+    def check_input(self, output):
+        self._check_shape(output)
+
+    def group_positions(self, output, examples):
+        # [examples * P, C, *rest] -> [examples, C, P, *rest]: classes stay on dimension 1
+        return super().group_positions(output, examples).movedim(2, 1)
+
+    def ungroup_columns(self, columns, shape):
+        return columns.movedim(2, 3).reshape((columns.shape[0],) + tuple(shape))
+
+    def describe_columns(self, output):
+        positions = output[0, 0].numel()
+        return f"{output.shape[1]} classes x {positions} positions per example"
+
+    def hessian_product(self, output, vector):
+        # (diag(p) - p p^T) u along the class dimension
+        prob = torch.softmax(output.detach(), dim=1)
+        weighted = prob * vector
+        return (weighted - prob * weighted.sum(dim=1, keepdim=True)) * self.reduction_scale(output)
 
     def sampled_output_grads(self, output, generator, num_samples):
         prob = torch.softmax(output.detach(), dim=1)

@@ -123,7 +123,7 @@ class FisherDescent(torch.optim.Optimizer):
             if group["fallback_lr_scale"] is None:
                 group["fallback_lr_scale"] = DEFAULT_FALLBACK_LR_SCALE[group["fallback"]]
 
-        self.model = getattr(model, "module", model) if _is_wrapper(model) else model
+        self.model = _unwrapped(model)
         self.fisher = fisher
         self.structure = structure
         self.weight_sharing = weight_sharing
@@ -143,6 +143,7 @@ class FisherDescent(torch.optim.Optimizer):
         self._times = {key: 0.0 for key in TIME_KEYS}
         self._last_update: dict = {}
         self._warned_uninitialised = False
+        self._warned_criterion = False
         self._applied: dict = {}
 
         self.blocks: Dict[str, LayerCurvature] = self._build_blocks()
@@ -291,6 +292,8 @@ class FisherDescent(torch.optim.Optimizer):
         The captures stay pending: blocks with projected statistics need them once more.
         """
         forwards = self._hooks.hand_over()
+        if self._hooks.forwards_without_criterion:
+            self._warn_criterion_not_called()
         batches = {}
         for block in self.blocks.values():
             if block in forwards:
@@ -473,6 +476,17 @@ class FisherDescent(torch.optim.Optimizer):
                           "taking a plain gradient step for it", stacklevel=4)
             self._warned_uninitialised = True
 
+    def _warn_criterion_not_called(self) -> None:
+        if self._warned_criterion:
+            return
+        self._warned_criterion = True
+        warnings.warn(f"fisher={self.fisher!r}: the criterion object passed as loss_fn "
+                      f"({type(self._hooks.loss_fn).__name__}) was not called after a recorded training "
+                      "forward, so the curvature was taken at the model's output as if the criterion were "
+                      "applied to it directly. That is wrong if your code reshapes, slices or scales the "
+                      "output first: compute the loss with that very object (loss_fn(z, target)), not with "
+                      "a functional form such as F.cross_entropy or a second instance.", stacklevel=5)
+
     def _skip(self, reason: str) -> None:
         self._skipped[reason] += 1
         if sum(self._skipped.values()) == 1:
@@ -589,5 +603,16 @@ def _without_tied_parameters(layers):
     return kept
 
 
-def _is_wrapper(model: nn.Module) -> bool:
-    return isinstance(model, (nn.DataParallel, nn.parallel.DistributedDataParallel))
+def _unwrapped(model: nn.Module) -> nn.Module:
+    """The user's own network inside DDP / DataParallel / ``torch.compile`` wrappers (any nesting).
+
+    Blocks, diagnostics and logs then carry the eager model's layer names, and the
+    hooks sit on the modules that the wrapped call runs.
+    """
+    while True:
+        if isinstance(model, (nn.DataParallel, nn.parallel.DistributedDataParallel)):
+            model = model.module
+        elif isinstance(getattr(model, "_orig_mod", None), nn.Module):  # torch.compile's OptimizedModule
+            model = model._orig_mod
+        else:
+            return model

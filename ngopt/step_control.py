@@ -9,12 +9,16 @@ def kl_trust_scale(direction_dot_grad: float, lr: float, max_step_kl: Optional[f
     """``nu = min(1, sqrt(kappa / (lr^2 * delta^T grad)))`` (Ba, Grosse & Martens, ICLR 2017).
 
     For a natural-gradient direction ``delta = C^-1 grad``, ``delta^T grad`` is
-    ``delta^T C delta``, so ``lr^2 nu^2 delta^T grad / 2`` is the KL divergence of
-    the step under the quadratic model, and the scaling keeps it at most ``kappa / 2``.
+    ``delta^T C delta``, so ``lr^2 nu^2 delta^T grad`` is the step's squared length in the
+    curvature's metric (twice its KL divergence under the quadratic model), and the
+    scaling keeps it at most ``kappa``.  ``lr = 0`` moves nothing and needs no scaling;
+    the comparison is made on square roots, so tiny or huge values cannot overflow.
     """
-    if max_step_kl is None or direction_dot_grad <= 0 or not math.isfinite(direction_dot_grad):
+    if max_step_kl is None or lr <= 0 or direction_dot_grad <= 0 or not math.isfinite(direction_dot_grad):
         return 1.0
-    return min(1.0, math.sqrt(max_step_kl / (lr * lr * direction_dot_grad)))
+    length = lr * math.sqrt(direction_dot_grad)
+    bound = math.sqrt(max_step_kl)
+    return 1.0 if length <= bound else bound / length
 
 
 def reduction_ratio(loss_before: float, loss_after: float, predicted_change: float) -> Optional[float]:

@@ -457,13 +457,14 @@ def test_first_refresh_sets_statistics_outright_then_blends():
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        opt = ngopt.FisherDescent(model, nn.MSELoss(), lr=0.1, momentum=0.0, damping=1e-3, fisher="exact",
+        loss_fn = nn.MSELoss()
+        opt = ngopt.FisherDescent(model, loss_fn, lr=0.1, momentum=0.0, damping=1e-3, fisher="exact",
                                   stats_interval=1, inverse_interval=1, stats_memory=0.9, max_step_kl=None)
     expected_out = (2.0 / 3.0) * np.eye(3)
     expected_in = None
     for x, y in batches:
         opt.zero_grad()
-        nn.functional.mse_loss(model(x), y).backward()
+        loss_fn(model(x), y).backward()
         opt.step()
         expected_in = input_factor(x) if expected_in is None else 0.9 * expected_in + 0.1 * input_factor(x)
         state = opt.state[model.weight]

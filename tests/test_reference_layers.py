@@ -348,7 +348,7 @@ def embedding_state_bytes(vocab, dim, structure):
     started = time.perf_counter()
     for _ in range(2):
         opt.zero_grad()
-        nn.functional.cross_entropy(model(tokens), targets).backward()
+        nn.CrossEntropyLoss()(model(tokens), targets).backward()
         opt.step()
     seconds = (time.perf_counter() - started) / 2
     state = opt.state[model[0].weight]
@@ -545,7 +545,7 @@ def train(model, opt, inputs, labels, steps):
     losses = []
     for _ in range(steps):
         opt.zero_grad()
-        loss = nn.functional.cross_entropy(model(inputs), labels)
+        loss = nn.CrossEntropyLoss()(model(inputs), labels)
         loss.backward()
         opt.step()
         losses.append(float(loss.detach()))
