@@ -132,7 +132,7 @@ def peak_rss_bytes() -> int:
 
 # Parts of the optimizer's own timing that happen inside step(); the others it reports
 # (capture hooks, extra backward passes) run inside the closure's forward and backward.
-STEP_PARTS = ("statistics", "inversion", "precondition", "fallback")
+STEP_PARTS = ("statistics", "inversion", "precondition", "rules", "fallback")
 
 
 def current_rss_bytes() -> Optional[int]:

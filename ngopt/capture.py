@@ -91,17 +91,17 @@ class ForwardRecord:
     handles: list = field(default_factory=list)
 
     def drop_tensors(self) -> None:
-        """Forget the outputs: breaks the cycles, and is safe inside a running hook."""
+        """Forget the layer outputs: breaks the cycles, and is safe inside a running hook."""
         for call in self.calls:
             call.output = None
-        for criterion in self.criteria:
-            criterion.input = None
 
     def release(self) -> None:
         for handle in self.handles:
             handle.remove()
         self.handles.clear()
         self.drop_tensors()
+        for criterion in self.criteria:  # a criterion call may be shared with a later record
+            criterion.input = None
 
 
 class FisherSource:
@@ -291,6 +291,8 @@ class CaptureHooks:
         outputs = [call.output for call in record.calls]
         for index, criterion in enumerate(record.criteria):
             z = criterion.input
+            if z is None:
+                continue
             vectors, scale = self.source.output_vectors(z.detach(), record.examples)
             grads = batched_output_grads(z, outputs, vectors)
             for call, g in zip(record.calls, grads):

@@ -29,6 +29,7 @@ import math
 import time
 import warnings
 from collections import ChainMap
+from types import SimpleNamespace
 from typing import Callable, Dict, List, Optional
 
 import torch
@@ -40,13 +41,20 @@ from .blocks.factory import STRUCTURES, make_block
 from .blocks.layers import adapter_for
 from .capture import CaptureHooks, FisherSource
 from .likelihoods import likelihood_for
+from .quadratic_model import BatchEvaluator
+from .recording import BatchRecorder
+from .rules import DAMPING_RULES, STEP_RULES
+from .rules.base import StepInputs
+from .rules.damping import reduction_ratio
 from .spectra import block_summary
-from .step_control import kl_trust_scale, levenberg_marquardt_damping, reduction_ratio
 from .validation import check_arguments
 
 SKIP_REASONS = ("nonfinite_loss", "nonfinite_gradient", "nonfinite_statistics", "nonfinite_update")
-TIME_KEYS = ("statistics", "inversion", "precondition", "fallback", "step_total")
+TIME_KEYS = ("statistics", "inversion", "precondition", "rules", "fallback", "step_total")
 DEFAULT_FALLBACK_LR_SCALE = {"sgd": 1.0, "adam": 1e-2}
+# Defaults that depend on the step rule: under "quadratic" lr multiplies the step the model chooses
+# and momentum caps mu; under "fixed" they are the step size and heavy-ball coefficient themselves.
+RULE_DEFAULTS = {"quadratic": {"lr": 1.0, "momentum": 0.9}, "fixed": {"lr": 0.3, "momentum": 0.5}}
 
 
 class FisherDescent(torch.optim.Optimizer):
@@ -87,19 +95,29 @@ class FisherDescent(torch.optim.Optimizer):
             examples) or ``'reduce'`` (summed per example first).
     """
 
-    def __init__(self, model: nn.Module, loss_fn=None, *, lr: float = 0.3, momentum: float = 0.5,
-                 weight_decay: float = 0.0, damping: float = 1e-2, fisher: str = "sampled",
-                 structure: str = "kfac", stats_interval: int = 10, inverse_interval: int = 20,
-                 stats_memory: float = 0.9, max_step_kl: Optional[float] = 1e-2, damping_rule: str = "fixed",
-                 fallback: str = "sgd", fallback_lr_scale: Optional[float] = None, fisher_samples: int = 1,
-                 damping_range=(1e-6, 1e2), damping_interval: int = 5, param_groups=None,
-                 seed: Optional[int] = None, weight_sharing: str = "expand"):
+    def __init__(self, model: nn.Module, loss_fn=None, *, lr: Optional[float] = None,
+                 momentum: Optional[float] = None, weight_decay: float = 0.0, damping: float = 1e-2,
+                 fisher: str = "sampled", structure: str = "kfac", stats_interval: int = 10,
+                 inverse_interval: int = 20, stats_memory: float = 0.9, max_step_kl: Optional[float] = 1e-2,
+                 damping_rule: str = "lm", damping_interval: int = 5, step_rule: str = "quadratic",
+                 rule_interval: int = 1, rule_batch_fraction: float = 0.25, fallback: str = "sgd",
+                 fallback_lr_scale: Optional[float] = None, fisher_samples: int = 1, damping_range=(1e-6, 1e2),
+                 param_groups=None, seed: Optional[int] = None, weight_sharing: str = "expand"):
+        check_arguments(step_rule=step_rule)
+        lr = RULE_DEFAULTS[step_rule]["lr"] if lr is None else lr
+        momentum = RULE_DEFAULTS[step_rule]["momentum"] if momentum is None else momentum
         check_arguments(model=model, loss_fn=loss_fn, lr=lr, momentum=momentum, weight_decay=weight_decay,
                         damping=damping, fisher=fisher, structure=structure, stats_interval=stats_interval,
                         inverse_interval=inverse_interval, stats_memory=stats_memory, max_step_kl=max_step_kl,
                         damping_rule=damping_rule, fallback=fallback, fallback_lr_scale=fallback_lr_scale,
                         fisher_samples=fisher_samples, damping_range=damping_range, damping_interval=damping_interval,
-                        seed=seed, param_groups=param_groups, weight_sharing=weight_sharing)
+                        seed=seed, param_groups=param_groups, weight_sharing=weight_sharing,
+                        rule_interval=rule_interval, rule_batch_fraction=rule_batch_fraction)
+        self.likelihood = _closed_form_likelihood(loss_fn)
+        if step_rule == "quadratic" and self.likelihood is None:
+            raise ValueError(f"step_rule='quadratic' needs a criterion with a closed-form output Hessian "
+                             f"(nn.MSELoss, nn.CrossEntropyLoss, nn.BCEWithLogitsLoss), got "
+                             f"{type(loss_fn).__name__}; pass loss_fn, or use step_rule='fixed'")
         source = None
         if fisher != "empirical":
             if loss_fn is None:
@@ -133,6 +151,12 @@ class FisherDescent(torch.optim.Optimizer):
         self.damping_rule = damping_rule
         self.damping_range = tuple(float(x) for x in damping_range)
         self.damping_interval = damping_interval
+        self.step_rule = step_rule
+        self.rule_interval = rule_interval
+        self.rule_batch_fraction = rule_batch_fraction
+        self.loss_fn = loss_fn
+        self.rules = SimpleNamespace(step=STEP_RULES[step_rule](rule_interval, rule_batch_fraction),
+                                     damping=DAMPING_RULES[damping_rule](damping_interval, damping_range))
         self.track_spectra = False
         # Set by ngopt.distributed to share statistics and inversions across ranks; None = one process.
         self.communicator = None
@@ -144,12 +168,15 @@ class FisherDescent(torch.optim.Optimizer):
         self._last_update: dict = {}
         self._warned_uninitialised = False
         self._warned_criterion = False
+        self._warned_replay = False
         self._applied: dict = {}
 
         self.blocks: Dict[str, LayerCurvature] = self._build_blocks()
         self._hooks = CaptureHooks(self.model, {b.layer.module: b for b in self.blocks.values()}, source,
                                    loss_fn)
         self._hooks.armed = True
+        self._recorder = BatchRecorder(self.model, loss_fn)
+        self._recorder.armed = self._batch_due(0)
         if isinstance(model, nn.parallel.DistributedDataParallel):
             # Share statistics and inversions over DDP's own group, so that the user's loop needs
             # nothing beyond the DDP wrapping; ngopt.distributed.share_curvature(opt, ...) replaces it.
@@ -191,7 +218,8 @@ class FisherDescent(torch.optim.Optimizer):
     def __repr__(self) -> str:
         lines = [f"FisherDescent(fisher={self.fisher!r}, structure={self.structure!r}, "
                  f"stats_interval={self.stats_interval}, inverse_interval={self.inverse_interval}, "
-                 f"stats_memory={self.stats_memory}, damping_rule={self.damping_rule!r})"]
+                 f"stats_memory={self.stats_memory}, step_rule={self.step_rule!r}, "
+                 f"damping_rule={self.damping_rule!r})"]
         for i, group in enumerate(self.param_groups):
             settings = ", ".join(f"{k}={group[k]}" for k in ("lr", "momentum", "weight_decay", "damping",
                                                                "max_step_kl", "fallback"))
@@ -208,32 +236,32 @@ class FisherDescent(torch.optim.Optimizer):
     @torch.no_grad()
     def step(self, closure: Optional[Callable[[], torch.Tensor]] = None):
         """One natural-gradient step; returns ``closure()``'s loss when a closure is given."""
-        if self.damping_rule == "lm" and closure is None:
-            self._hooks.discard()  # the refused step must not leave its batch behind for the next one
-            raise ValueError("damping_rule='lm' needs step(closure): the closure re-evaluates the loss on the "
-                             "same batch to measure the reduction ratio")
         loss = None
         if closure is not None:
             with torch.enable_grad():
                 loss = closure()
         started = time.perf_counter()
         step_index = self._steps
-        reason = self._attempt(loss, step_index)
+        batch = self._recorder.take()
+        reason = self._attempt(loss, step_index, batch, closure)
         if loss is not None and self._last_update:
             self._last_update["loss"] = float(loss)
         if reason is not None:
             self._skip(reason)
-        elif self.damping_rule == "lm" and (step_index + 1) % self.damping_interval == 0:
-            self._adapt_damping(closure, loss)
         self._steps += 1
         self._hooks.armed = self._statistics_due(self._steps)
+        self._recorder.armed = self._batch_due(self._steps)
         self._times["step_total"] += time.perf_counter() - started
         return loss
 
     def _statistics_due(self, step_index: int) -> bool:
         return step_index % self.stats_interval == 0 or not all(b.has_statistics for b in self.blocks.values())
 
-    def _attempt(self, loss, step_index: int) -> Optional[str]:
+    def _batch_due(self, step_index: int) -> bool:
+        """Whether a rule will evaluate the loss on the batch of step ``step_index``."""
+        return self.rules.step.wants_batch(step_index) or self.rules.damping.wants_ratio(step_index)
+
+    def _attempt(self, loss, step_index: int, batch, closure) -> Optional[str]:
         """Compute the whole step, then write it; return a skip reason instead of writing."""
         if loss is not None and not self._finite_everywhere(loss):
             self._hooks.discard()
@@ -263,9 +291,16 @@ class FisherDescent(torch.optim.Optimizer):
                 block.clear_pending()
 
         tick = time.perf_counter()
-        directions = self._block_directions(statistics, inverses)
+        inputs = self._step_inputs(statistics, inverses, step_index)
         self._times["precondition"] += time.perf_counter() - tick
-        if directions is None:
+        if inputs is None:
+            return "nonfinite_update"
+        tick = time.perf_counter()
+        evaluator = self._evaluator(batch, step_index, closure)
+        inputs.evaluator = evaluator if self.step_rule == "quadratic" else None
+        result = self.rules.step.updates(inputs)
+        self._times["rules"] += time.perf_counter() - tick
+        if not _all_finite(list(result.updates.values())) or not _finite_numbers(result.diagnostics):
             return "nonfinite_update"
 
         for block, tensors in statistics.items():
@@ -273,10 +308,15 @@ class FisherDescent(torch.optim.Optimizer):
         for block, (tensors, info) in inverses.items():
             block.commit(tensors)
             block.info = dict(info, inversion_step=step_index)
-        self._apply_block_updates(directions)
+        self._apply_block_updates(result.updates)
         tick = time.perf_counter()
         self._apply_fallback()
         self._times["fallback"] += time.perf_counter() - tick
+        self._record_update(result)
+        if self.rules.damping.wants_ratio(step_index):
+            tick = time.perf_counter()
+            self._adapt_damping(result, evaluator, batch, closure, loss)
+            self._times["rules"] += time.perf_counter() - tick
         return None
 
     def _finite_everywhere(self, loss) -> bool:
@@ -362,8 +402,8 @@ class FisherDescent(torch.optim.Optimizer):
             return None
         return inverses
 
-    def _block_directions(self, statistics, inverses):
-        """``{block: (grad_matrix, nu * delta)}`` for every block with a gradient, or None if non-finite."""
+    def _step_inputs(self, statistics, inverses, step_index: int):
+        """Every block's gradient matrix and preconditioned gradient, with their dot products."""
         directions = {}
         per_group: Dict[int, List] = {}
         for block in self.blocks.values():
@@ -380,79 +420,48 @@ class FisherDescent(torch.optim.Optimizer):
             grad_matrix = layer.gradient_matrix(weight_grad, bias_grad)
             view = self._tentative_view(block, statistics, inverses)
             if all(key in view for key in block.inverse_keys):
-                delta = block.precondition(grad_matrix, group["damping"], view)
+                proposal = block.precondition(grad_matrix, group["damping"], view)
             else:
                 self._warn_uninitialised(layer.name)
-                delta = grad_matrix
-            directions[block] = (grad_matrix, delta)
+                proposal = grad_matrix
+            directions[block] = (grad_matrix, proposal)
             per_group.setdefault(self._block_group[block], []).append(block)
-        if not directions:
-            self._last_update = {}
-            return directions
+        dots = {}
+        if directions:
+            # One reduction for all the scalars the step needs: <p, g>, |p|^2, |g|^2 per block.
+            order = list(directions)
+            scalars = []
+            for grad_matrix, proposal in (directions[b] for b in order):
+                g, d = grad_matrix.reshape(-1), proposal.reshape(-1)
+                scalars += [torch.dot(d, g), torch.dot(d, d), torch.dot(g, g)]
+            sums = torch.stack(scalars).double().cpu()
+            if not bool(torch.isfinite(sums).all()):
+                return None
+            values = sums.tolist()
+            dots = {block: tuple(values[3 * i:3 * i + 3]) for i, block in enumerate(order)}
+        average = self.communicator.average_scalars if self.communicator is not None else (lambda *v: v)
+        return StepInputs(self.param_groups, per_group, directions, dots, step_index, average=average)
 
-        # One reduction for all the scalars the step needs: <delta, g>, |delta|^2, |g|^2 per block.
-        order = list(directions)
-        scalars = []
-        for grad_matrix, delta in (directions[b] for b in order):
-            g, d = grad_matrix.reshape(-1), delta.reshape(-1)
-            scalars += [torch.dot(d, g), torch.dot(d, d), torch.dot(g, g)]
-        sums = torch.stack(scalars).double().cpu()
-        if not bool(torch.isfinite(sums).all()):
-            return None
-        values = sums.tolist()
-        per_block = {block: values[3 * i:3 * i + 3] for i, block in enumerate(order)}
-        self._record_update(per_group, per_block)
-        scaled = {}
-        for index, blocks in per_group.items():
-            nu = self._last_update["trust_scale_by_group"][index]
-            for block in blocks:
-                grad_matrix, delta = directions[block]
-                scaled[block] = (grad_matrix, delta.mul_(nu) if nu != 1.0 else delta)
-        return scaled
-
-    def _record_update(self, per_group, per_block) -> None:
-        dot = sum(v[0] for v in per_block.values())
-        delta_sq = sum(v[1] for v in per_block.values())
-        grad_sq = sum(v[2] for v in per_block.values())
-        scales, kl, predicted, update_sq = {}, 0.0, 0.0, 0.0
-        for index, blocks in per_group.items():
-            group = self.param_groups[index]
-            group_dot = sum(per_block[b][0] for b in blocks)
-            nu = kl_trust_scale(group_dot, group["lr"], group["max_step_kl"])
-            scales[index] = nu
-            step = group["lr"] * nu
-            kl += 0.5 * step * step * group_dot
-            predicted += -step * group_dot + 0.5 * step * step * group_dot
-            update_sq += nu * nu * sum(per_block[b][1] for b in blocks)
-        denom = math.sqrt(delta_sq * grad_sq)
+    def _record_update(self, result) -> None:
         group0 = self.param_groups[0]
-        self._last_update = {
-            "grad_norm": math.sqrt(grad_sq), "direction_norm": math.sqrt(update_sq),
-            "cosine": dot / denom if denom > 0 else 0.0,
-            "trust_scale": min(scales.values()), "trust_scale_by_group": scales,
-            "kl_estimate": kl, "predicted_change": predicted, "reduction_ratio": None,
-            "damping": group0["damping"], "lr": group0["lr"], "loss": None,
-        }
+        update = dict(result.diagnostics)
+        update.update(damping=group0["damping"], lr=group0["lr"], loss=None, reduction_ratio=None,
+                      actual_change=None)
+        update.setdefault("alpha", None)
+        update.setdefault("mu", None)
+        self._last_update = update if result.updates else {}
 
-    def _apply_block_updates(self, directions) -> None:
-        self._applied = {}
-        for block, (_, delta) in directions.items():
-            group = self.param_groups[self._block_group[block]]
-            weight_part, bias_part = block.layer.split_matrix(delta)
-            moved = []
+    def _apply_block_updates(self, updates) -> None:
+        """``w += u`` for every block; the quadratic rule keeps ``u`` as the next step's momentum direction."""
+        self._applied = updates
+        keep = self.step_rule == "quadratic"
+        for block, update in updates.items():
+            weight_part, bias_part = block.layer.split_matrix(update)
             for param, part in ((block.layer.weight, weight_part), (block.layer.bias, bias_part)):
-                if part is None or param.grad is None:
-                    moved.append(None)
-                    continue
-                moved.append(self._momentum_step(param, part, group["momentum"], group["lr"]))
-            if self.damping_rule == "lm":  # the reduction ratio needs the change actually made
-                self._applied[block] = block.layer.gradient_matrix(*moved).mul(-group["lr"])
-
-    def _momentum_step(self, param, direction, momentum, lr) -> torch.Tensor:
-        """``p -= lr * d`` with heavy-ball ``d``; returns ``d``."""
-        direction = fallback_rules.heavy_ball(self.state[param], direction, momentum)
-        param.add_(direction, alpha=-lr)
-        return direction
+                if part is not None and param.grad is not None:
+                    param.add_(part)
+            if keep:
+                block.state["previous_update"] = update
 
     def _apply_fallback(self) -> None:
         for group in self.param_groups:
@@ -494,23 +503,57 @@ class FisherDescent(torch.optim.Optimizer):
                           "state left unchanged. Further skips are counted in diagnostics()['skipped_steps'].",
                           stacklevel=3)
 
-    # ------------------------------------------------------------------ damping adaptation
-    def _adapt_damping(self, closure, loss_before) -> None:
-        """Levenberg-Marquardt: compare the loss change with the quadratic model's prediction."""
-        predicted = self._model_change()
-        with self.no_capture(), torch.enable_grad():
-            loss_after = closure()
-        before, after = float(loss_before), float(loss_after)
+    # ------------------------------------------------------------------ evaluations on the batch
+    def _evaluator(self, batch, step_index: int, closure):
+        """A :class:`BatchEvaluator` on this step's recorded batch when a rule needs one, else None."""
+        wanted = (self.step_rule == "quadratic" and self.rules.step.wants_batch(step_index)) \
+            or self.rules.damping.wants_ratio(step_index)
+        if not wanted:
+            return None
+        if batch is None or not batch.replayable:
+            if closure is None or self.step_rule == "quadratic":
+                self._warn_not_replayable(batch, closure)
+            return None
+        fraction = self.rule_batch_fraction if self.step_rule == "quadratic" else 1.0
+        return BatchEvaluator(self.model, self.loss_fn, self.likelihood, batch, fraction)
+
+    def _warn_not_replayable(self, batch, closure) -> None:
+        if self._warned_replay:
+            return
+        self._warned_replay = True
+        what = ("no training forward was recorded on this step" if batch is None else
+                "the criterion's input is not the model's output (or an element or reshape of it)")
+        rule = f"step_rule={self.step_rule!r}" if self.step_rule == "quadratic" else \
+            f"damping_rule={self.damping_rule!r}"
+        fallback = "the step falls back to the blocks' own model with the KL bound" \
+            if self.step_rule == "quadratic" else "lambda stays as it is"
+        warnings.warn(f"{rule} evaluates the loss on the recorded batch, but {what}, so {fallback}. Apply "
+                      "loss_fn to the model's output (or a dict/tuple entry or view of it), or pass "
+                      "step(closure) for the damping rule.", stacklevel=5)
+
+    def _adapt_damping(self, result, evaluator, batch, closure, loss) -> None:
+        """Levenberg-Marquardt: the loss change on the same rows against the quadratic model's prediction."""
+        # Before any re-evaluation: a closure's backward overwrites the gradients the model uses.
+        predicted = result.predicted_change if self.step_rule == "quadratic" else self._model_change()
+        before = after = None
+        if evaluator is not None:
+            before = result.loss_before if result.loss_before is not None else batch.loss_value
+            after = evaluator.loss()
+        elif closure is not None and loss is not None:
+            before = float(loss)
+            with self.no_capture(), torch.enable_grad():
+                after = float(closure().detach())
+        if before is None:
+            return
         if self.communicator is not None:  # the ratio of the global batch, the same on every rank
             before, after = self.communicator.average_scalars(before, after)
         rho = reduction_ratio(before, after, predicted)
         for group in self.param_groups:
-            group["damping"] = levenberg_marquardt_damping(group["damping"], rho, self.damping_interval,
-                                                           self.damping_range)
-        self._last_update["reduction_ratio"] = rho
-        self._last_update["damping"] = self.param_groups[0]["damping"]
+            group["damping"] = self.rules.damping.adapt(group["damping"], rho)
+        self._last_update.update(reduction_ratio=rho, actual_change=after - before,
+                                 damping=self.param_groups[0]["damping"])
 
-    def _model_change(self) -> float:
+    def _model_change(self) -> Optional[float]:
         """``M(delta) = grad^T delta + delta^T C delta / 2`` for the update just applied (blocks only)."""
         total = 0.0
         for block, delta in self._applied.items():
@@ -553,6 +596,7 @@ class FisherDescent(torch.optim.Optimizer):
             "steps": self._steps, "skipped": dict(self._skipped), "seed": self._seed,
             "generator_state": None if self._generator is None else self._generator.get_state(),
             "generator_device": None if self._generator is None else str(self._generator.device),
+            "step_rule": self.rules.step.state_dict(), "damping_rule": self.rules.damping.state_dict(),
         }
         return state
 
@@ -570,11 +614,27 @@ class FisherDescent(torch.optim.Optimizer):
             if extra["generator_state"] is not None:
                 self._generator = torch.Generator(device=extra["generator_device"])
                 self._generator.set_state(extra["generator_state"].to(torch.uint8).cpu())
+            self.rules.step.load_state_dict(extra.get("step_rule", {}))
+            self.rules.damping.load_state_dict(extra.get("damping_rule", {}))
         self._hooks.armed = self._statistics_due(self._steps)
+        self._recorder.armed = self._batch_due(self._steps)
 
     def remove_hooks(self) -> None:
-        """Detach the capture hooks from the model (the optimizer then only preconditions)."""
+        """Detach the capture and recording hooks from the model (the optimizer then only preconditions)."""
         self._hooks.remove()
+        self._recorder.remove()
+
+
+def _closed_form_likelihood(loss_fn):
+    """The criterion's closed-form likelihood, or None for criteria without one."""
+    try:
+        return likelihood_for(loss_fn) if loss_fn is not None else None
+    except ValueError:
+        return None
+
+
+def _finite_numbers(values: dict) -> bool:
+    return all(math.isfinite(v) for v in values.values() if isinstance(v, float))
 
 
 def _all_finite(tensors: List[torch.Tensor]) -> bool:

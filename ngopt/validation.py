@@ -8,7 +8,7 @@ from torch import nn
 
 CHOICES = {"fisher": ("sampled", "exact", "empirical"), "structure": ("kfac", "ekfac", "diag"),
            "fallback": ("sgd", "adam"), "weight_sharing": ("expand", "reduce"),
-           "damping_rule": ("fixed", "lm")}
+           "damping_rule": ("fixed", "lm"), "step_rule": ("fixed", "quadratic")}
 PLANNED: dict = {}  # {argument: {value: message}} for values announced but not built yet
 
 
@@ -59,6 +59,9 @@ CHECKS = {
     "fallback": lambda v: _choice("fallback", v),
     "weight_sharing": lambda v: _choice("weight_sharing", v),
     "damping_rule": lambda v: _choice("damping_rule", v),
+    "step_rule": lambda v: _choice("step_rule", v),
+    "rule_interval": lambda v: _integer("rule_interval", v, low=1),
+    "rule_batch_fraction": lambda v: _real("rule_batch_fraction", v, low=0.0, high=1.0, low_open=True),
 }
 
 

@@ -87,7 +87,7 @@ def data(seed=0):
 
 def exact_optimizer(model, loss_fn, **overrides):
     settings = dict(fisher="exact", lr=0.5, momentum=0.0, max_step_kl=None, stats_memory=0.0, stats_interval=1,
-                    inverse_interval=1, damping=1e-3)
+                    inverse_interval=1, damping=1e-3, step_rule="fixed", damping_rule="fixed")
     settings.update(overrides)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the exact Fisher's cost note

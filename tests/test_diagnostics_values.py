@@ -33,7 +33,7 @@ def gradient_matrix(layer):
 
 def make_optimizer(model, loss_fn, **options):
     settings = dict(lr=0.5, momentum=0.0, fisher="exact", stats_memory=0.0, stats_interval=1, inverse_interval=1,
-                    max_step_kl=None, damping=1e-3)
+                    max_step_kl=None, damping=1e-3, step_rule="fixed", damping_rule="fixed")
     settings.update(options)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # tiny damping warns, on purpose here

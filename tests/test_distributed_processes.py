@@ -48,7 +48,8 @@ FAULT_TIMEOUT_SECONDS = 3   # share_curvature(timeout=...) in the fault jobs
 STEPS = 6
 CHECKPOINT_STEP = 3
 GLOBAL_BATCH = 24
-SETTINGS = dict(lr=0.3, momentum=0.5, damping=1e-2, stats_interval=2, inverse_interval=3, stats_memory=0.9, max_step_kl=1e-2)
+SETTINGS = dict(lr=0.3, momentum=0.5, damping=1e-2, stats_interval=2, inverse_interval=3, stats_memory=0.9, max_step_kl=1e-2,
+                step_rule="fixed", damping_rule="fixed")
 
 
 # ---------------------------------------------------------------------------------------- shared by jobs and tests

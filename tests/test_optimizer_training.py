@@ -30,7 +30,8 @@ TARGET_LOSS = 0.01
 MAX_STEPS = 40               # the optimizer needed 11 (MLP) and 15 (CNN)
 SGD_LEARNING_RATES = (0.1, 0.3, 1.0)
 SETTINGS = dict(fisher="sampled", structure="kfac", lr=0.3, momentum=0.9, weight_decay=0.0, damping=1e-2,
-                stats_interval=10, inverse_interval=20, stats_memory=0.9, max_step_kl=1e-2, seed=0)
+                stats_interval=10, inverse_interval=20, stats_memory=0.9, max_step_kl=1e-2, seed=0,
+                step_rule="fixed", damping_rule="fixed")
 
 
 @pytest.fixture(scope="module")

@@ -66,7 +66,7 @@ def test_damping_follows_the_closed_form_reduction_ratio(objective_scale, lr, di
     damping = 1e-2
     opt = ngopt.FisherDescent(model, criterion, lr=lr, momentum=0.0, damping=damping, fisher="exact",
                               stats_interval=1, inverse_interval=1, stats_memory=0.0, max_step_kl=None,
-                              damping_rule="lm", damping_interval=1)
+                              damping_rule="lm", damping_interval=1, step_rule="fixed")
 
     def closure():
         opt.zero_grad()
@@ -100,7 +100,7 @@ def test_damping_keeps_rising_while_the_model_is_wrong_and_stays_in_range():
     criterion = nn.MSELoss()
     opt = ngopt.FisherDescent(model, criterion, lr=0.55, momentum=0.0, damping=1e-2, fisher="exact",
                               stats_interval=1, inverse_interval=1, max_step_kl=None, damping_rule="lm",
-                              damping_interval=2, damping_range=(1e-4, 1.5e-2))
+                              damping_interval=2, damping_range=(1e-4, 1.5e-2), step_rule="fixed")
 
     def closure():
         opt.zero_grad()

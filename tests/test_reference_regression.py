@@ -25,7 +25,7 @@ def exact_newton_like(model, loss_fn, damping, structure="kfac"):
         warnings.simplefilter("ignore")  # tiny damping is asked for on purpose
         return ngopt.FisherDescent(model, loss_fn, lr=1.0, momentum=0.0, weight_decay=0.0, damping=damping,
                                    fisher="exact", structure=structure, stats_interval=1, inverse_interval=1,
-                                   stats_memory=0.0, max_step_kl=None)
+                                   stats_memory=0.0, max_step_kl=None, step_rule="fixed", damping_rule="fixed")
 
 
 def train(model, loss_fn, opt, inputs, targets, steps):

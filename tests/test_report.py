@@ -32,6 +32,7 @@ def digits_run(tmp_path, name="run.jsonl", steps=40, damping=1e-2, probe=True, *
     loss_fn = nn.CrossEntropyLoss()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
+        options = {"step_rule": "fixed", "damping_rule": "fixed", **options}
         opt = ngopt.FisherDescent(model, loss_fn, lr=0.3, damping=damping, stats_interval=2, inverse_interval=5,
                                   **options)
     path = tmp_path / name

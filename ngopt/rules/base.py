@@ -1,0 +1,52 @@
+"""What the optimizer hands a step rule, and what it gets back."""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Callable, Dict, List, Optional, Tuple
+
+import torch
+
+
+@dataclass
+class StepInputs:
+    """The step's preconditioned proposals, grouped as the optimizer's param groups are.
+
+    ``directions[block] = (g, p)``: the block's gradient matrix ``g`` (weight decay
+    included) and its preconditioned gradient ``p = C^-1 g``; ``dots[block]`` holds
+    ``(p.g, p.p, g.g)`` as Python floats (one host sync for all blocks).
+    """
+
+    groups: list
+    blocks_by_group: Dict[int, list]
+    directions: Dict[object, Tuple[torch.Tensor, torch.Tensor]]
+    dots: Dict[object, Tuple[float, float, float]]
+    step_index: int
+    evaluator: Optional[object] = None               # quadratic_model.BatchEvaluator on solve steps
+    average: Callable[..., tuple] = lambda *values: values   # mean over ranks (identity in one process)
+
+
+@dataclass
+class StepResult:
+    updates: Dict[object, torch.Tensor]              # block -> change added to its weights (matrix layout)
+    diagnostics: dict = field(default_factory=dict)
+    loss_before: Optional[float] = None              # on the evaluator's rows, when the rule measured it
+    predicted_change: Optional[float] = None         # M(delta) for the update returned
+
+
+def group_of(inputs: StepInputs) -> Dict[object, dict]:
+    return {block: inputs.groups[index] for index, blocks in inputs.blocks_by_group.items() for block in blocks}
+
+
+def norms(inputs: StepInputs, scale_of: Dict[object, float]) -> dict:
+    """Gradient norm, norm of the scaled preconditioned direction, and the cosine between them."""
+    dot = sum(inputs.dots[b][0] for b in inputs.dots)
+    grad_sq = sum(inputs.dots[b][2] for b in inputs.dots)
+    direction_sq = sum(scale_of[b] ** 2 * inputs.dots[b][1] for b in inputs.dots)
+    proposal_sq = sum(inputs.dots[b][1] for b in inputs.dots)
+    denom = (proposal_sq * grad_sq) ** 0.5
+    return {"grad_norm": grad_sq ** 0.5, "direction_norm": direction_sq ** 0.5,
+            "cosine": dot / denom if denom > 0 else 0.0}
+
+
+def blocks_in(inputs: StepInputs) -> List[object]:
+    return [b for blocks in inputs.blocks_by_group.values() for b in blocks]

@@ -1,0 +1,70 @@
+"""Damping rules: keep lambda as given, or adapt it by Levenberg-Marquardt."""
+from __future__ import annotations
+
+import math
+from typing import Optional, Tuple
+
+
+def reduction_ratio(loss_before: float, loss_after: float, predicted_change: Optional[float]) -> Optional[float]:
+    """``rho = (L(theta + delta) - L(theta)) / M(delta)``; ``None`` when the model predicts no decrease."""
+    if predicted_change is None or predicted_change >= 0 or not math.isfinite(predicted_change) \
+            or not math.isfinite(loss_before) or not math.isfinite(loss_after):
+        return None
+    return (loss_after - loss_before) / predicted_change
+
+
+class FixedDamping:
+    """lambda stays what the param groups say (schedulers may still change it)."""
+
+    name = "fixed"
+
+    def __init__(self, interval: int = 1, damping_range: Tuple[float, float] = (1e-6, 1e2)):
+        self.interval = interval
+
+    def wants_ratio(self, step_index: int) -> bool:
+        return False
+
+    def adapt(self, damping: float, rho: Optional[float]) -> float:
+        return damping
+
+    def state_dict(self) -> dict:
+        return {}
+
+    def load_state_dict(self, state: dict) -> None:
+        pass
+
+
+class LevenbergMarquardt(FixedDamping):
+    """Martens & Grosse 2015, sec. 6.5: every ``interval`` steps, from the reduction ratio rho,
+    shrink lambda by ``omega = (19/20)^interval`` when ``rho > 3/4`` and grow it by ``1/omega``
+    when ``rho < 1/4``; lambda stays within ``damping_range``.
+    """
+
+    name = "lm"
+
+    def __init__(self, interval: int = 5, damping_range: Tuple[float, float] = (1e-6, 1e2)):
+        super().__init__(interval, damping_range)
+        self.damping_range = tuple(float(x) for x in damping_range)
+
+    def wants_ratio(self, step_index: int) -> bool:
+        return (step_index + 1) % self.interval == 0
+
+    def adapt(self, damping: float, rho: Optional[float]) -> float:
+        if rho is None:
+            return damping
+        omega = (19.0 / 20.0) ** self.interval
+        if rho > 0.75:
+            damping *= omega
+        elif rho < 0.25:
+            damping /= omega
+        low, high = self.damping_range
+        return min(max(damping, low), high)
+
+
+def levenberg_marquardt_damping(damping: float, rho: Optional[float], interval: int,
+                                damping_range: Tuple[float, float]) -> float:
+    """One Levenberg-Marquardt update of ``damping`` (see :class:`LevenbergMarquardt`)."""
+    return LevenbergMarquardt(interval, damping_range).adapt(damping, rho)
+
+
+DAMPING_RULES = {"fixed": FixedDamping, "lm": LevenbergMarquardt}

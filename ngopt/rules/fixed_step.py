@@ -1,0 +1,48 @@
+"""``step_rule="fixed"``: the step the user sets, ``w -= lr * buf`` with ``buf = momentum * buf + nu * C^-1 g``.
+
+``nu`` is the KL trust bound of each param group (:mod:`ngopt.rules.trust`).
+"""
+from __future__ import annotations
+
+from ..fallback import heavy_ball
+from .base import StepInputs, StepResult, norms
+from .trust import kl_trust_scale
+
+
+class FixedStep:
+    name = "fixed"
+    needs_batch = False
+
+    def __init__(self, interval: int = 1, batch_fraction: float = 1.0):
+        pass
+
+    def wants_batch(self, step_index: int) -> bool:
+        return False
+
+    def updates(self, inputs: StepInputs) -> StepResult:
+        updates, scales, scale_of = {}, {}, {}
+        kl = predicted = 0.0
+        for index, blocks in inputs.blocks_by_group.items():
+            group = inputs.groups[index]
+            dot = sum(inputs.dots[b][0] for b in blocks)
+            nu = kl_trust_scale(dot, group["lr"], group["max_step_kl"])
+            scales[index] = nu
+            step = group["lr"] * nu
+            kl += 0.5 * step * step * dot
+            predicted += -step * dot + 0.5 * step * step * dot  # the blocks' model, momentum left out
+            for block in blocks:
+                _, proposal = inputs.directions[block]
+                scale_of[block] = nu
+                direction = heavy_ball(block.state, proposal.mul(nu) if nu != 1.0 else proposal,
+                                       group["momentum"])
+                updates[block] = direction.mul(-group["lr"])
+        diagnostics = norms(inputs, scale_of)
+        diagnostics.update(trust_scale=min(scales.values()) if scales else 1.0, trust_scale_by_group=scales,
+                           kl_estimate=kl, predicted_change=predicted)
+        return StepResult(updates, diagnostics, predicted_change=predicted)
+
+    def state_dict(self) -> dict:
+        return {}
+
+    def load_state_dict(self, state: dict) -> None:
+        pass
