@@ -71,7 +71,7 @@ def test_report_command_writes_the_figures_and_summary(tmp_path):
         assert str(out / name) in done.stdout
     summary = (out / "summary.txt").read_text()
     assert "steps 5 .. 40" in summary
-    assert "Fisher probe (step 21, 128 examples)" in summary
+    assert "Fisher probe (step 21, 128 examples;" in summary
     assert "logging cost:" in summary and "time split" in summary
 
 
