@@ -184,8 +184,9 @@ def _draw_spectrum(fig, ax, steps, spectra, damping, title):
                          norm=LogNorm(vmin=1, vmax=max(int(counts.max()), 2)), shading="flat")
     ax.set_yscale("log")
     if _has_data(damping):
-        ax.step(steps, damping, where="post", color="crimson", linestyle="--", linewidth=1.8,
-                label="damping added to the diagonal")
+        # one level per column, across the whole column (the last one included)
+        ax.stairs(damping, _column_edges(steps), baseline=None, color="crimson", linestyle="--", linewidth=1.8,
+                  label="damping added to the diagonal")
         ax.legend(loc="lower left", fontsize=8)
     clipped_now = int(np.sum(spectra[-1] <= floor))
     note = f"\n{clipped_now} of them ~0 (below 1e-12 x max), drawn in the bottom row" if clipped_now else ""
@@ -441,8 +442,9 @@ def _step_rule_multipliers(ax, steps, alpha, mu):
 
 def _step_rule_ratio(ax, steps, rho):
     ax.axhspan(0.25, 0.75, color=STEP_RULE_COLOURS["rho"], alpha=0.12, label=r"$1/4 \leq \rho \leq 3/4$")
-    ax.plot(steps, rho, color=STEP_RULE_COLOURS["rho"], marker="D", markersize=3, linestyle="-",
-            label=r"$\rho$ = actual / predicted")
+    measured = np.isfinite(rho)  # rho exists only on the steps where the loss change was measured
+    ax.plot(steps[measured], rho[measured], color=STEP_RULE_COLOURS["rho"], marker="D", markersize=3,
+            linestyle="-", label=r"$\rho$ = actual / predicted")
     ax.axhline(1.0, color="0.3", linestyle=":", linewidth=1, label="model exact")
     ax.set_ylabel(r"reduction ratio $\rho$ (1)")
     ax.set_title("how well the quadratic model predicted the step", fontsize=10)
@@ -454,21 +456,27 @@ def _step_rule_damping(ax, steps, lam):
     if (np.nan_to_num(lam) > 0).any():
         ax.set_yscale("log")
     ax.set_ylabel(r"damping $\lambda$ (curvature units)")
-    ax.set_title(r"Levenberg-Marquardt damping $\lambda$", fontsize=10)
+    ax.set_title(r"damping $\lambda$ (adapted by Levenberg-Marquardt when on)", fontsize=10)
     ax.legend(fontsize=8, loc="best")
 
 
 def _step_rule_changes(ax, steps, predicted, actual):
-    ax.plot(steps, predicted, color=STEP_RULE_COLOURS["predicted"], linewidth=2.0,
-            label=r"predicted $M(\delta)$")
-    ax.plot(steps, actual, color=STEP_RULE_COLOURS["actual"], linestyle="none", marker="x", markersize=5,
-            label=r"measured $L(\theta + \delta) - L(\theta)$")
-    ax.axhline(0.0, color="0.5", linewidth=0.8)
     both = np.concatenate([predicted[np.isfinite(predicted)], actual[np.isfinite(actual)]])
-    if both.size and np.abs(both).max() > 0:
-        # changes span decades and both signs: linear near zero, logarithmic beyond
-        ax.set_yscale("symlog", linthresh=max(1e-3 * float(np.abs(both).max()), 1e-12))
-    ax.set_ylabel("loss change on the batch (loss units)")
+    decreases = both.size > 0 and bool((both < 0).all())
+    sign, minus = (-1.0, "-") if decreases else (1.0, "")  # every step went down: the decrease on a log axis
+    ax.plot(steps, sign * predicted, color=STEP_RULE_COLOURS["predicted"], linewidth=2.0,
+            label=rf"predicted ${minus}M(\delta)$")
+    ax.plot(steps, sign * actual, color=STEP_RULE_COLOURS["actual"], linestyle="none", marker="x", markersize=5,
+            label=rf"measured ${minus}(L(\theta + \delta) - L(\theta))$")
+    if decreases:
+        ax.set_yscale("log")
+        ax.set_ylabel("loss decrease on the batch, -change (loss units)")
+    else:
+        ax.axhline(0.0, color="0.5", linewidth=0.8)
+        if both.size and np.abs(both).max() > 0:
+            # changes of both signs spanning decades: linear near zero, logarithmic beyond
+            ax.set_yscale("symlog", linthresh=max(1e-3 * float(np.abs(both).max()), 1e-12))
+        ax.set_ylabel("loss change on the batch (loss units)")
     ax.set_title("predicted against measured change", fontsize=10)
     ax.legend(fontsize=8, loc="best")
 
@@ -530,8 +538,13 @@ def plot_probe(records: list, path: Path):
     right.set_title("natural-gradient direction error")
     right.axhline(PROBE_ANGLE_WARNING_DEG, color="black", linestyle=":", linewidth=1,
                   label=f"warning level {PROBE_ANGLE_WARNING_DEG:.0f} deg")
+    shares = [_number(layers[n].get("exact_below_damping")) for n in names]
+    # near 100%, every damped direction is about g / lambda and the angles say little
+    angle_ticks = [f"{n}\n({100 * share:.0f}% of F's eigenvalues < lambda)" if share == share else n
+                   for n, share in zip(names, shares)]
+    left.set_xticks(x, names, rotation=30, ha="right")
+    right.set_xticks(x, angle_ticks, fontsize=8)
     for ax in (left, right):
-        ax.set_xticks(x, names, rotation=30, ha="right")
         ax.set_xlabel("layer")
         ax.legend(fontsize=8)
         ax.grid(True, axis="y", alpha=0.3)
@@ -693,12 +706,17 @@ PROBE_COLUMNS = (
 )
 
 
+def _percent(share) -> str:
+    number = _number(share)
+    return "-" if math.isnan(number) else f"{100 * number:.0f}%"
+
+
 def _probe_row(name: str, e: dict) -> tuple:
     ratio = _number(e.get("block_trace")) / _number(e.get("exact_trace")) if _number(e.get("exact_trace")) else math.nan
     return (name, e.get("params", "-"), _text(e.get("block_error")), _text(e.get("fresh_error")),
             _text(e.get("statistics_gap")), _text(ratio), f"{_text(e.get('block_angle_deg'), '.1f')} deg",
             f"{_text(e.get('diag_error'))} / {_text(e.get('diag_angle_deg'), '.1f')} deg",
-            f"{_text(100 * _number(e.get('exact_below_damping')), '.0f')}%",
+            _percent(e.get("exact_below_damping")),
             f"{_text(e.get('empirical_vs_sampled_angle_deg'), '.1f')} deg")
 
 
