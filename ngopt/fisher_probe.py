@@ -72,7 +72,8 @@ Fisher can point the step elsewhere).
 
 The probe runs the model in ``eval()`` mode (restored afterwards) so that the
 optimizer's capture hooks record nothing; with dropout or batch norm that is a
-slightly different function from the training one.
+slightly different function from the training one (batch norm then uses its
+running statistics, and ``statistics_gap`` holds that difference too).
 """
 from __future__ import annotations
 

@@ -402,3 +402,36 @@ def test_exact_layer_fisher_leaves_an_armed_optimizer_alone():
     refresh(opt, model, loss_fn, x, y)
     x1 = with_ones(x.numpy().astype(np.float64))  # A = E[a a^T] of the training batch alone
     np.testing.assert_allclose(opt.blocks["0"].state["factor_in"].numpy(), x1.T @ x1 / 16, rtol=1e-5, atol=1e-6)
+
+
+class EveryLayerKind(nn.Module):
+    """Embedding, Conv1d, batch norm on batch statistics, LayerNorm and Linear in one small model."""
+
+    def __init__(self):
+        super().__init__()
+        self.emb = nn.Embedding(7, 4)
+        self.conv = nn.Conv1d(4, 3, 2)
+        self.bn = nn.BatchNorm1d(3, track_running_stats=False)  # the same function in train and eval mode
+        self.ln = nn.LayerNorm(6)
+        self.fc = nn.Linear(6, 3)
+
+    def forward(self, idx):
+        h = torch.tanh(self.bn(self.conv(self.emb(idx).transpose(1, 2))))
+        return self.fc(self.ln(h.flatten(1)))
+
+
+@pytest.mark.parametrize("structure", ["kfac", "ekfac", "diag"])
+def test_fresh_blocks_of_every_layer_kind_match_a_refresh_on_the_probe_batch(structure):
+    # Consistency by definition: the optimizer refreshed with fisher='exact', stats_memory=0 on the probe
+    # batch at (practically) the probe's weights holds exactly what the fresh block holds.
+    torch.manual_seed(17)
+    model = EveryLayerKind().double()
+    loss_fn = nn.CrossEntropyLoss()
+    x, y = torch.randint(0, 7, (20, 3)), torch.randint(0, 3, (20,))
+    opt = exact_step_optimizer(model, loss_fn, structure=structure)
+    refresh(opt, model, loss_fn, x, y)
+    result = probe_fisher_quality(opt, model, loss_fn, x, y, warn_angle_deg=180.0, warn_error=1e9)
+    assert sorted(result["layers"]) == ["bn", "conv", "emb", "fc", "ln"]
+    for name, entry in result["layers"].items():
+        assert entry["statistics_gap"] < 1e-6, name  # float64 round-off and a 1e-12 step
+        assert entry["fresh_error"] == pytest.approx(entry["block_error"], rel=1e-5, abs=1e-9)
