@@ -53,14 +53,26 @@ key                                meaning                                      
 ``wall_time``                      time the record was taken (``time.time()``)                        s (epoch)
 ``log_seconds``                    time spent by this logger before this record, cumulative           s
 ``update.grad_norm``               norm of the gradient of the curvature-block parameters             loss/param
-``update.direction_norm``             norm of the preconditioned update nu C^-1 g of those parameters    param / lr
+``update.direction_norm``          norm of the preconditioned update nu C^-1 g of those parameters    param / lr
                                    (before the step size lr and momentum)
 ``update.cosine``                  cosine between gradient and preconditioned direction               1
 ``update.trust_scale``             factor the KL bound applied to the step (1 = not limited)          1
 ``update.kl_estimate``             KL divergence of the step under the quadratic model                nats
-``update.predicted_change``        quadratic model's predicted change of the loss                     loss
-``update.reduction_ratio``         actual / predicted loss change (only with a closure), else null    1
-``update.damping``                 Tikhonov damping lambda in use                                     curvature
+``update.predicted_change``        quadratic model's predicted change of the loss; with               loss
+                                   ``step_rule='quadratic'`` M(delta) = g^T delta + delta^T C delta / 2
+                                   for the step taken
+``update.reduction_ratio``         rho = actual / predicted loss change (``damping_rule='lm'`` or     1
+                                   ``step_rule='quadratic'`` on the steps where it is measured),
+                                   else null
+``update.alpha``                   quadratic step rule: multiplier on the new preconditioned          1
+                                   proposal C^-1 g, chosen to minimise the model (null when not
+                                   computed)
+``update.mu``                      quadratic step rule: multiplier on the previous update, the        1
+                                   momentum the model chose (null when not computed)
+``update.actual_change``           L(theta + delta) - L(theta) on the same batch, when measured,      loss
+                                   else null
+``update.damping``                 Tikhonov damping lambda in use (adapted by the                     curvature
+                                   Levenberg-Marquardt rule when it is on)
 ``update.lr``                      step size                                                          1
 ``update.loss``                    loss of the step: the optimizer's (``step(closure)``), else the    loss
                                    latest value given to ``handle.note_loss(loss)``, else null
@@ -108,7 +120,9 @@ key                                meaning                                      
 ``layers.<name>.pair_eig_mean``    mean eigenvalue of those blocks                                    curvature
 ``layers.<name>.pair_eig_values``  all their eigenvalues, ascending (JSONL / TensorBoard only)        curvature
 ``probe.*``                        result of ``ngopt.fisher_probe.probe_fisher_quality``, written     see there
-                                   by ``handle.log_probe(result)``
+                                   by ``handle.log_probe(result)``: per-layer errors and angles
+                                   against the exact Fisher, the optimizer settings they are read
+                                   with, and the warning texts (``probe.findings``)
 =================================  =================================================================  ==========
 
 A = E[a a^T] over layer inputs a (bias as a constant 1), G = E[g g^T] over
@@ -150,6 +164,8 @@ __all__ = [
 _NAMED_CHILDREN = ("layers",)
 _NONFINITE_TO_TEXT = {math.inf: "Infinity", -math.inf: "-Infinity"}
 _TEXT_TO_NONFINITE = {"Infinity": math.inf, "-Infinity": -math.inf, "NaN": math.nan}
+ACCEPTED_TARGETS = ("give a .jsonl or .csv path, a TensorBoard SummaryWriter, a logging.Logger, "
+                    "or a non-empty list or tuple of these")
 
 
 # --------------------------------------------------------------------------
@@ -446,10 +462,7 @@ def make_writer(target: Any, append: bool = False):
         raise ValueError(f"target path must end in .jsonl or .csv, got {str(target)!r}")
     if callable(getattr(target, "add_scalar", None)) and callable(getattr(target, "add_histogram", None)):
         return TensorBoardWriter(target)
-    raise TypeError(
-        "target must be a .jsonl or .csv path, a TensorBoard SummaryWriter, a logging.Logger, "
-        f"or a list of these; got {type(target).__name__}"
-    )
+    raise TypeError(f"target: {ACCEPTED_TARGETS}; got {type(target).__name__}")
 
 
 # --------------------------------------------------------------------------
@@ -573,7 +586,7 @@ def log_diagnostics(opt: Any, target: Any, every: int = 50, *, spectra: bool = T
                             f"got {type(opt).__name__}")
     targets = list(target) if isinstance(target, (list, tuple)) else [target]
     if not targets:
-        raise ValueError("target must name at least one destination")
+        raise ValueError(f"target: {ACCEPTED_TARGETS}; got an empty {type(target).__name__}")
     writers = []
     try:
         for item in targets:

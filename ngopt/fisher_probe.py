@@ -4,10 +4,10 @@
     handle.log_probe(result)          # optional: into the diagnostics log
 
 For every curvature block with at most ``max_params`` parameters, on one probe
-batch (x_n, y_n), n = 1..N, at the current weights:
+batch (x_n, y_n), n = 1..N, at the current weights, three matrices are built:
 
-* the exact per-layer Fisher of the loss L = c sum_n l_n as the user defined it
-  (c = 1/#terms for ``reduction='mean'``, 1 for ``'sum'``)
+* ``F``, the exact per-layer Fisher of the loss L = c sum_n l_n as the user
+  defined it (c = 1/#terms for ``reduction='mean'``, 1 for ``'sum'``)
 
       F = c sum_n J_n^T H_n J_n,
 
@@ -16,31 +16,68 @@ batch (x_n, y_n), n = 1..N, at the current weights:
   (``torch.func.hessian``), which for these criteria is the output Fisher
   E_{y~p(y|f_n)}[grad l grad l^T]: softmax cross-entropy diag(p) - p p^T,
   squared error 2 I, sigmoid binary cross-entropy diag(s (1 - s));
-* against the optimizer's block ``C = block.dense_curvature()`` (A (x) G for
-  K-FAC, the diagonal for ``structure='diag'``) and against the diagonal of F:
-  relative Frobenius error ||C - F||_F / ||F||_F, and the angle between the
-  damped natural-gradient directions (C + lambda I)^-1 g and (F + lambda I)^-1 g,
-  g the layer gradient on the probe batch (same damping on both sides, so the
-  angle is the approximation's alone); ``step_angle_deg`` compares instead the
-  direction the optimizer takes, with its own damping (factored for K-FAC);
-* the empirical Fisher (1/c) sum_n J_n^T u_n u_n^T J_n, u_n = dL_n/df_n with
-  the observed targets, against the sampled Fisher, the same with targets drawn
-  from the model's predictive distribution (``samples`` draws per example): relative
-  Frobenius error and angle between their damped directions. ``warnings.warn``
-  when that angle exceeds ``warn_angle_deg`` (Kunstner, Balles & Hennig 2019 on
-  why the empirical Fisher can point the step elsewhere).
+* ``C``, the optimizer's block as it stands (``block.dense_curvature()``: A (x) G
+  for K-FAC, the diagonal for ``structure='diag'``), built from its *running*
+  statistics: an average over earlier training batches (``stats_memory``),
+  refreshed every ``stats_interval`` steps, with output gradients from the
+  optimizer's Fisher source (one Monte Carlo draw per example by default);
+* ``C_fresh``, the same structure built from the probe batch alone, with the
+  exact expectation over the model's predictive distribution: what the block
+  would hold with ``fisher='exact'``, ``stats_memory=0`` and a refresh now.
 
-The optimizer's statistics are running averages over earlier batches, so the
-block error mixes the factorization error with estimation noise and staleness;
-for the pure factorization error take one step on the probe batch with
-``stats_memory=0`` first.
+All matrices are compared undamped.  Per layer the result holds
+
+==========================  ====================================================
+``block_error``             ||C - F|| / ||F|| (Frobenius): the optimizer's block
+                            against the current Fisher, everything included
+``fresh_error``             ||C_fresh - F|| / ||F||: the structure's own error
+                            (the Kronecker or diagonal form), no lag, no noise
+``statistics_gap``          ||C - C_fresh|| / ||C_fresh||: how far the running
+                            statistics are from this batch's (lag of the
+                            average, Monte Carlo noise, a different batch)
+``block_trace``,            traces of C, C_fresh and F: a lagging average of a
+``fresh_trace``,            shrinking Fisher shows as block_trace >> exact_trace
+``exact_trace``
+``block_angle_deg``         angle between the damped directions (C + lambda I)^-1 g
+                            and (F + lambda I)^-1 g, g the layer gradient on the
+                            probe batch (the same lambda on both sides)
+``fresh_angle_deg``         the same for C_fresh
+``step_angle_deg``          the direction the optimizer takes, with its own
+                            damping (factored for K-FAC), against the exact one
+``diag_error``,             the diagonal of F itself as the approximation
+``diag_angle_deg``
+``exact_eig_max``,          largest eigenvalue of F and the share of its
+``exact_below_damping``     eigenvalues under lambda; near 1, every damped
+                            direction is close to g / lambda and small angles
+                            say little about the approximation
+``empirical_vs_sampled_*``  the empirical Fisher (1/c) sum_n J_n^T u_n u_n^T J_n,
+                            u_n = dL_n/df_n with the observed targets, against
+                            the sampled one (targets drawn from the model,
+                            ``samples`` draws per example): error and angle
+==========================  ====================================================
+
+A relative error of 1 is what the zero matrix scores: a block with a tiny
+trace (say, a sampled Fisher whose single draws all fell on the predicted
+class of a confident model) scores about 1 whatever its shape; a block ten
+times too large scores about 9.
+
+Warnings (``warnings.warn``): when ``block_error`` exceeds ``warn_error``, the
+probe says which part is off: the statistics (``statistics_gap`` above
+``warn_error`` or a trace off by more than ten times; the remedies are a
+smaller ``stats_memory`` or ``stats_interval``, or more Monte Carlo draws),
+the structure (``fresh_error`` above ``warn_error``), or both; and when the
+empirical Fisher turns the damped direction further than ``warn_angle_deg``
+from the sampled one (Kunstner, Balles & Hennig 2019 on why the empirical
+Fisher can point the step elsewhere).
 
 The probe runs the model in ``eval()`` mode (restored afterwards) so that the
 optimizer's capture hooks record nothing; with dropout or batch norm that is a
-slightly different function from the training one.
+slightly different function from the training one (batch norm then uses its
+running statistics, and ``statistics_gap`` holds that difference too).
 """
 from __future__ import annotations
 
+import contextlib
 import math
 import warnings
 from typing import Optional
@@ -50,10 +87,16 @@ from torch import nn
 from torch.func import functional_call, hessian, jacrev, vmap
 
 from .blocks.layers import adapter_for
+from .likelihoods import likelihood_for
 
-__all__ = ["probe_fisher_quality", "exact_layer_fisher", "relative_frobenius_error", "direction_angle_deg"]
+__all__ = ["probe_fisher_quality", "exact_layer_fisher", "fresh_blocks", "far_from_fisher",
+           "relative_frobenius_error", "direction_angle_deg"]
 
 SUPPORTED_LOSSES = (nn.MSELoss, nn.CrossEntropyLoss, nn.BCEWithLogitsLoss)
+# Statistics whose trace is off from the current Fisher's by more than this factor are called far off.
+TRACE_RATIO_WARNING = 10.0
+# Share of the exact Fisher's eigenvalues under lambda from which damping is said to dominate it.
+DAMPING_DOMINATES_SHARE = 0.9
 
 
 # --------------------------------------------------------------------------
@@ -211,11 +254,31 @@ def output_gradients(loss_fn, outputs: torch.Tensor, targets: torch.Tensor) -> t
     return grad.to(torch.float64)
 
 
+@contextlib.contextmanager
+def evaluation_mode(model: nn.Module):
+    """The whole model in ``eval()`` mode, each module's own mode restored afterwards.
+
+    The optimizer's capture hooks record only training-mode forwards, so the
+    probe's passes neither reach its statistics nor trigger its extra backward.
+    """
+    was_training = {m: m.training for m in model.modules()}
+    model.eval()
+    try:
+        yield
+    finally:
+        for module, mode in was_training.items():
+            module.train(mode)
+
+
 def exact_layer_fisher(model: nn.Module, module: nn.Module, loss_fn, inputs: torch.Tensor,
                        targets: torch.Tensor) -> torch.Tensor:
-    """The exact Fisher block F = c sum_n J_n^T H_n J_n of one layer, in the blocks' ordering."""
+    """The exact Fisher block F = c sum_n J_n^T H_n J_n of one layer, in the blocks' ordering.
+
+    The model runs in ``eval()`` mode (restored afterwards), as in the probe.
+    """
     _check_loss(loss_fn)
-    outputs, jac = layer_jacobian(model, module, inputs)
+    with evaluation_mode(model):
+        outputs, jac = layer_jacobian(model, module, inputs)
     return _exact_from(loss_fn, outputs, targets, jac)
 
 
@@ -231,6 +294,73 @@ def _outer_fisher(loss_fn, outputs, jac, grads) -> torch.Tensor:
 
 
 # --------------------------------------------------------------------------
+# the same structure, from the probe batch alone
+# --------------------------------------------------------------------------
+
+def _record_layer_calls(model: nn.Module, blocks: dict, inputs: torch.Tensor):
+    """One forward: the model output and, per block, its calls as (input rows, layer output)."""
+    calls = {name: [] for name in blocks}
+    handles = []
+
+    def recorder(name, layer):
+        def hook(module, args, output):
+            calls[name].append((layer.input_rows(args[0].detach()), output))
+            return output.clone()  # downstream in-place ops must not touch the tensor we differentiate
+        return hook
+
+    for name, block in blocks.items():
+        handles.append(block.layer.module.register_forward_hook(recorder(name, block.layer)))
+    try:
+        with torch.enable_grad():
+            output = model(inputs)
+    finally:
+        for handle in handles:
+            handle.remove()
+    return output, calls
+
+
+def fresh_blocks(blocks: dict, model: nn.Module, loss_fn, inputs: torch.Tensor, damping: dict) -> dict:
+    """``{name: block}``: new blocks of the same classes holding the probe batch's statistics only.
+
+    The output gradients are the columns of the output Fisher's square root
+    (``fisher='exact'``), so each block holds the exact expectation over the
+    model's predictive distribution, with no running average and no Monte Carlo
+    noise; ``damping`` {name: lambda} is needed only for blocks whose statistics
+    live in an eigenbasis (EKFAC).  The caller puts the model in ``eval()`` mode.
+    """
+    likelihood = likelihood_for(loss_fn)
+    output, calls = _record_layer_calls(model, blocks, inputs)
+    columns = likelihood.exact_output_grad_columns(output.detach())
+    scale = 1.0 / likelihood.reduction_scale(output)
+    order = [(name, index) for name in blocks for index in range(len(calls[name]))]
+    layer_outputs = [calls[name][index][1] for name, index in order]
+    per_column = [torch.autograd.grad(output, layer_outputs, grad_outputs=column, retain_graph=True,
+                                      allow_unused=True) for column in columns]
+    fresh = {name: type(block)(block.layer, {}, weight_sharing=block.weight_sharing)
+             for name, block in blocks.items()}
+    for position, (name, index) in enumerate(order):
+        grads = [column_grads[position] for column_grads in per_column]
+        if any(g is None for g in grads):
+            continue  # this call does not reach the output
+        rows = blocks[name].layer.output_rows(torch.stack(grads).detach())
+        fresh[name].add_capture(calls[name][index][0], rows, scale, 0)
+    built = {}
+    for name, block in fresh.items():
+        statistics = block.batch_statistics(1)
+        if statistics is None:
+            continue
+        block.commit(statistics)
+        if block.projected_keys:
+            tensors, _ = block.prepare_inverse(block.state, damping[name], False)
+            block.commit(tensors)
+            block.commit(block.blend_projected(block.projected_batch_statistics(block.state, 1),
+                                               block.state, True, 0.0))
+        block.clear_pending()
+        built[name] = block
+    return built
+
+
+# --------------------------------------------------------------------------
 # the probe
 # --------------------------------------------------------------------------
 
@@ -241,14 +371,18 @@ def _group_damping(opt, weight: torch.Tensor) -> float:
     raise ValueError("the optimizer has no param group holding this layer's weight")
 
 
-def _probe_layer(opt, block, model, loss_fn, inputs, targets, generator, samples):
+def _dense(block, damping: float = 0.0) -> torch.Tensor:
+    return block.dense_curvature(damping).detach().to(device="cpu", dtype=torch.float64)
+
+
+def _probe_layer(opt, block, fresh, model, loss_fn, inputs, targets, generator, samples):
     module = block.layer.module
     damping = _group_damping(opt, block.layer.weight)
     outputs, jac = layer_jacobian(model, module, inputs, block.layer)
     exact = _exact_from(loss_fn, outputs, targets, jac)
     grad = torch.einsum("ndp,nd->p", jac, output_gradients(loss_fn, outputs, targets))
-    approx = block.dense_curvature().detach().to(device="cpu", dtype=torch.float64)
-    approx_damped = block.dense_curvature(damping).detach().to(device="cpu", dtype=torch.float64)
+    approx = _dense(block)
+    current = _dense(fresh) if fresh is not None else None
     diagonal = torch.diag(torch.diagonal(exact))
     empirical = _outer_fisher(loss_fn, outputs, jac, output_gradients(loss_fn, outputs, targets))
     sampled = sum(_outer_fisher(loss_fn, outputs, jac,
@@ -257,14 +391,17 @@ def _probe_layer(opt, block, model, loss_fn, inputs, targets, generator, samples
     directions = {
         "exact": damped_direction(exact, grad, damping),
         "block": damped_direction(approx, grad, damping),
-        "step": torch.linalg.solve(approx_damped, grad),
+        "step": torch.linalg.solve(_dense(block, damping), grad),
         "diag": damped_direction(diagonal, grad, damping),
         "empirical": damped_direction(empirical, grad, damping),
         "sampled": damped_direction(sampled, grad, damping),
     }
+    eigenvalues = torch.linalg.eigvalsh(exact)
     entry = {
         "params": int(exact.shape[0]), "structure": block.structure, "damping": damping,
-        "exact_trace": float(torch.trace(exact)),
+        "exact_trace": float(torch.trace(exact)), "block_trace": float(torch.trace(approx)),
+        "exact_eig_max": float(eigenvalues[-1]),
+        "exact_below_damping": float((eigenvalues < damping).double().mean()),
         "block_error": relative_frobenius_error(approx, exact),
         "block_angle_deg": direction_angle_deg(directions["block"], directions["exact"]),
         "step_angle_deg": direction_angle_deg(directions["step"], directions["exact"]),
@@ -274,12 +411,26 @@ def _probe_layer(opt, block, model, loss_fn, inputs, targets, generator, samples
         "empirical_vs_sampled_angle_deg": direction_angle_deg(directions["empirical"], directions["sampled"]),
         "sampled_vs_exact_angle_deg": direction_angle_deg(directions["sampled"], directions["exact"]),
     }
+    if current is not None:
+        entry.update({
+            "fresh_trace": float(torch.trace(current)),
+            "fresh_error": relative_frobenius_error(current, exact),
+            "fresh_angle_deg": direction_angle_deg(damped_direction(current, grad, damping), directions["exact"]),
+            "statistics_gap": relative_frobenius_error(approx, current),
+        })
     return entry, directions
+
+
+def _settings(opt, warn_error: float) -> dict:
+    """The optimizer settings the warnings name (plain values, logged with the result)."""
+    return {"fisher": getattr(opt, "fisher", None), "stats_interval": getattr(opt, "stats_interval", None),
+            "stats_memory": getattr(opt, "stats_memory", None), "warn_error": warn_error}
 
 
 def probe_fisher_quality(opt, model: nn.Module, loss_fn, inputs: torch.Tensor, targets: torch.Tensor, *,
                          max_params: int = 4096, samples: int = 8, seed: int = 0,
-                         warn_angle_deg: float = 45.0, layers: Optional[list] = None) -> dict:
+                         warn_angle_deg: float = 45.0, warn_error: float = 1.0,
+                         layers: Optional[list] = None) -> dict:
     """Exact per-layer Fisher on a probe batch against the optimizer's approximation.
 
     Args:
@@ -292,19 +443,21 @@ def probe_fisher_quality(opt, model: nn.Module, loss_fn, inputs: torch.Tensor, t
         seed: seed of the private generator for those draws.
         warn_angle_deg: warn when the empirical Fisher turns the damped
             natural-gradient direction further than this from the sampled one.
+        warn_error: warn when a block's relative error against the exact Fisher
+            exceeds this (1 is the error of the zero matrix), saying whether its
+            statistics or its structure are off.
         layers: names of the blocks to probe (default: all small enough).
 
     Returns:
-        a plain dict: ``step``, ``batch_size``, ``layers`` {name: entry}, ``skipped_layers``
-        {name: reason}, and over all probed layers together ``empirical_vs_sampled_angle_deg``,
-        ``block_angle_deg``, ``step_angle_deg``. Entry keys (errors are relative Frobenius
-        errors, angles in degrees): ``params``, ``curvature``, ``damping``, ``exact_trace``,
-        ``block_error``, ``block_angle_deg``, ``step_angle_deg``,
-        ``diag_error``, ``diag_angle_deg``, ``empirical_vs_sampled_error``,
-        ``empirical_vs_sampled_angle_deg``, ``sampled_vs_exact_angle_deg``.
+        a plain dict: ``step``, ``batch_size``, ``settings`` (the optimizer's ``fisher``,
+        ``stats_interval``, ``stats_memory`` and ``warn_error``), ``layers`` {name: entry},
+        ``skipped_layers`` {name: reason}, ``findings`` (the warning texts), and over all
+        probed layers together ``empirical_vs_sampled_angle_deg``, ``block_angle_deg``,
+        ``step_angle_deg``. Entry keys are tabled in this module's docstring (errors are
+        relative Frobenius errors, angles in degrees, traces in curvature units).
     """
     _check_loss(loss_fn)
-    _check_probe_arguments(max_params, samples, warn_angle_deg)
+    _check_probe_arguments(max_params, samples, warn_angle_deg, warn_error)
     blocks = getattr(opt, "blocks", None)
     if not isinstance(blocks, dict):
         raise TypeError(f"opt must be an ngopt.FisherDescent (with .blocks); got {type(opt).__name__}")
@@ -314,42 +467,106 @@ def probe_fisher_quality(opt, model: nn.Module, loss_fn, inputs: torch.Tensor, t
             raise ValueError(f"layers: unknown block names {unknown}; the optimizer has {list(blocks)}")
     generator = torch.Generator().manual_seed(seed)
     result = {"step": int(opt.diagnostics()["step"]), "batch_size": int(inputs.shape[0]),
-              "layers": {}, "skipped_layers": {}}
+              "settings": _settings(opt, warn_error), "layers": {}, "skipped_layers": {}}
+    chosen = {}
+    for name, block in blocks.items():
+        if layers is not None and name not in layers:
+            continue
+        size = sum(p.numel() for p in block.layer.params())
+        if size > max_params:
+            result["skipped_layers"][name] = f"{size} parameters > max_params={max_params}"
+        elif not block.has_statistics:
+            result["skipped_layers"][name] = "no curvature statistics yet"
+        else:
+            chosen[name] = block
     joined = {"exact": [], "block": [], "step": [], "empirical": [], "sampled": []}
-    was_training = {m: m.training for m in model.modules()}
-    model.eval()  # the optimizer's capture hooks record nothing in eval mode
-    try:
-        for name, block in blocks.items():
-            if layers is not None and name not in layers:
-                continue
-            size = sum(p.numel() for p in block.layer.params())
-            if size > max_params:
-                result["skipped_layers"][name] = f"{size} parameters > max_params={max_params}"
-                continue
-            if not block.has_statistics:
-                result["skipped_layers"][name] = "no curvature statistics yet"
-                continue
-            entry, directions = _probe_layer(opt, block, model, loss_fn, inputs, targets, generator, samples)
+    with evaluation_mode(model):
+        damping = {name: _group_damping(opt, block.layer.weight) for name, block in chosen.items()}
+        current = fresh_blocks(chosen, model, loss_fn, inputs, damping) if chosen else {}
+        for name, block in chosen.items():
+            entry, directions = _probe_layer(opt, block, current.get(name), model, loss_fn, inputs, targets,
+                                             generator, samples)
             result["layers"][name] = entry
             for key in joined:
                 joined[key].append(directions[key])
-    finally:
-        for module, mode in was_training.items():
-            module.train(mode)
     if result["layers"]:
         whole = {key: torch.cat(parts) for key, parts in joined.items()}
         result["block_angle_deg"] = direction_angle_deg(whole["block"], whole["exact"])
         result["step_angle_deg"] = direction_angle_deg(whole["step"], whole["exact"])
         result["empirical_vs_sampled_angle_deg"] = direction_angle_deg(whole["empirical"], whole["sampled"])
-        angle = result["empirical_vs_sampled_angle_deg"]
-        if angle > warn_angle_deg:
-            warnings.warn(f"the empirical Fisher turns the natural-gradient step {angle:.0f} degrees away from "
-                          f"the sampled Fisher on this probe batch (threshold {warn_angle_deg:g}); it is not the "
-                          "curvature here: prefer fisher='sampled' or 'exact'", stacklevel=2)
+    result["findings"] = far_from_fisher(result, warn_angle_deg)
+    for message in result["findings"]:
+        warnings.warn(message, stacklevel=2)
     return result
 
 
-def _check_probe_arguments(max_params, samples, warn_angle_deg) -> None:
+# --------------------------------------------------------------------------
+# reading a result: what is far off, and why
+# --------------------------------------------------------------------------
+
+def _number(value) -> float:
+    return float(value) if isinstance(value, (int, float)) and not isinstance(value, bool) else math.nan
+
+
+def _statistics_cause(ratio: float, settings: dict) -> str:
+    """Why the running statistics (trace ``ratio`` times this batch's) differ, as far as the settings tell."""
+    memory, interval, fisher = settings.get("stats_memory"), settings.get("stats_interval"), settings.get("fisher")
+    lag = (f"the running statistics lag a fast-changing Fisher (refreshed every {interval} steps, "
+           f"stats_memory={memory:g}): lower stats_memory or stats_interval"
+           if (memory or 0.0) > 0.0 or (interval or 1) > 1 else None)
+    noise = None
+    if fisher == "sampled" and ratio < 1.0 / TRACE_RATIO_WARNING:
+        noise = ("the sampled Fisher undershoots: draws from a confident model rarely leave the predicted class, "
+                 "so a few draws per example miss most of the expectation (raise fisher_samples or use "
+                 "fisher='exact')")
+    elif fisher == "sampled":
+        noise = ("the sampled Fisher is a noisy estimate (a confident model's rare draws off the predicted "
+                 "class weigh heavily): raise fisher_samples or use fisher='exact'")
+    elif fisher == "empirical":
+        noise = "fisher='empirical' is not the expected curvature: prefer fisher='sampled' or 'exact'"
+    causes = [lag, noise] if ratio > 1.0 else [noise, lag]  # a lagging average of a shrinking Fisher is too big
+    causes = [cause for cause in causes if cause]
+    return "; or ".join(causes) or "the statistics come from other batches or weights than the probe's"
+
+
+def _layer_findings(name: str, entry: dict, settings: dict) -> list:
+    if "fresh_error" not in entry:
+        return []
+    limit = _number(settings.get("warn_error", 1.0))
+    error, fresh, gap = (_number(entry.get(key)) for key in ("block_error", "fresh_error", "statistics_gap"))
+    block_trace, fresh_trace = _number(entry.get("block_trace")), _number(entry.get("fresh_trace"))
+    ratio = block_trace / fresh_trace if fresh_trace > 0 else math.inf
+    off_scale = not 1.0 / TRACE_RATIO_WARNING <= ratio <= TRACE_RATIO_WARNING
+    found = []
+    if off_scale or (error > limit and gap > limit):
+        found.append(f"layer {name}: the optimizer's block is far from the current Fisher (error {error:.3g}, "
+                     f"trace {block_trace:.3g} against {fresh_trace:.3g} for this batch, gap to this batch's "
+                     f"statistics {gap:.3g}): " + _statistics_cause(ratio, settings))
+    if fresh > limit:
+        found.append(f"layer {name}: the {entry.get('structure')} structure itself is far from the exact Fisher "
+                     f"(error {fresh:.3g} even when built from this batch with the exact expectation): "
+                     "fresher statistics will not help; a richer structure (structure='ekfac') may")
+    return found
+
+
+def far_from_fisher(result: dict, warn_angle_deg: float = 45.0) -> list:
+    """Plain-text findings for a probe result: blocks far from the exact Fisher, and why.
+
+    Reads only the plain dict, so a logged result gives the same texts.
+    """
+    settings = result.get("settings") or {}
+    found = []
+    for name, entry in (result.get("layers") or {}).items():
+        found += _layer_findings(name, entry, settings)
+    angle = _number(result.get("empirical_vs_sampled_angle_deg"))
+    if angle > warn_angle_deg:
+        found.append(f"the empirical Fisher turns the natural-gradient step {angle:.0f} degrees away from "
+                     f"the sampled Fisher on this probe batch (threshold {warn_angle_deg:g}); it is not the "
+                     "curvature here: prefer fisher='sampled' or 'exact'")
+    return found
+
+
+def _check_probe_arguments(max_params, samples, warn_angle_deg, warn_error) -> None:
     for name, value in (("max_params", max_params), ("samples", samples)):
         if isinstance(value, bool) or not isinstance(value, int):
             raise TypeError(f"{name} must be an int, got {type(value).__name__}")
@@ -357,3 +574,5 @@ def _check_probe_arguments(max_params, samples, warn_angle_deg) -> None:
             raise ValueError(f"{name} must be >= 1, got {value}")
     if not isinstance(warn_angle_deg, (int, float)) or not 0.0 <= warn_angle_deg <= 180.0:
         raise ValueError(f"warn_angle_deg must be a number in [0, 180], got {warn_angle_deg!r}")
+    if isinstance(warn_error, bool) or not isinstance(warn_error, (int, float)) or not warn_error > 0.0:
+        raise ValueError(f"warn_error must be a number > 0, got {warn_error!r}")

@@ -16,6 +16,9 @@ file                       message
 ``loss.png``               loss and the quadratic model's reduction ratio
 ``time.png``               where the optimizer's time goes, per step and in total
 ``probe.png``              Fisher-probe errors and angles per layer (when logged)
+``step_rule.png``          the quadratic step rule's multipliers alpha and mu, the
+                           reduction ratio rho, the damping lambda, and the
+                           predicted against the measured loss change (when logged)
 ``summary.txt``            plain-text summary with warnings
 =========================  ==========================================================
 
@@ -34,12 +37,18 @@ from pathlib import Path
 import numpy as np
 
 from .diagnostics_log import read_log
+from .fisher_probe import DAMPING_DOMINATES_SHARE, far_from_fisher
 
 __all__ = ["write_report", "summarize", "main"]
 
 CONDITION_WARNING = 1e8          # damped condition number called ill-conditioned
 SKIPPED_WARNING_FRACTION = 0.05  # share of skipped steps called "many"
 PROBE_ANGLE_WARNING_DEG = 45.0   # angle between directions called "far apart"
+DAMPING_DOMINATES_FRACTION = 0.9  # share of a factor's eigenvalues under its damping called "dominated"
+DAMPING_DOMINATES_SPREAD = 10.0   # ... while the largest is within this factor of the damping
+STEP_RULE_KEYS = ("alpha", "mu", "reduction_ratio", "damping", "predicted_change", "actual_change")
+LOSS_NOT_LOGGED = ("not logged (call handle.note_loss(loss) after loss.backward(), "
+                   "or pass a closure to opt.step)")
 STEP_TIME_KEYS = ("statistics", "inversion", "precondition", "fallback")  # parts of time.step_total
 OUTSIDE_STEP_LABELS = {"capture": "capture hooks (in forward/backward)",
                        "extra_backward": "extra backward (sampled/exact Fisher)"}
@@ -175,8 +184,9 @@ def _draw_spectrum(fig, ax, steps, spectra, damping, title):
                          norm=LogNorm(vmin=1, vmax=max(int(counts.max()), 2)), shading="flat")
     ax.set_yscale("log")
     if _has_data(damping):
-        ax.step(steps, damping, where="post", color="crimson", linestyle="--", linewidth=1.8,
-                label="damping added to the diagonal")
+        # one level per column, across the whole column (the last one included)
+        ax.stairs(damping, _column_edges(steps), baseline=None, color="crimson", linestyle="--", linewidth=1.8,
+                  label="damping added to the diagonal")
         ax.legend(loc="lower left", fontsize=8)
     clipped_now = int(np.sum(spectra[-1] <= floor))
     note = f"\n{clipped_now} of them ~0 (below 1e-12 x max), drawn in the bottom row" if clipped_now else ""
@@ -410,6 +420,87 @@ def plot_time(records: list, path: Path):
     return _save(fig, path)
 
 
+def has_step_rule(records: list) -> bool:
+    """Whether the log holds the quadratic step rule's multipliers (``update.alpha``, ``update.mu``)."""
+    return any(_has_data(series(records, "update", key)[1]) for key in ("alpha", "mu"))
+
+
+STEP_RULE_COLOURS = {"alpha": "#1f6f8b", "mu": "#d1495b", "rho": "#66a182", "lambda": "#3d3b30",
+                     "predicted": "#edae49", "actual": "#5c4d7d"}
+
+
+def _step_rule_multipliers(ax, steps, alpha, mu):
+    ax.plot(steps, alpha, color=STEP_RULE_COLOURS["alpha"], marker="o", markersize=3,
+            label=r"$\alpha$: on the new preconditioned proposal")
+    ax.plot(steps, mu, color=STEP_RULE_COLOURS["mu"], marker="s", markersize=3,
+            label=r"$\mu$: on the previous update")
+    ax.axhline(0.0, color="0.5", linewidth=0.8)
+    ax.set_ylabel("multiplier (1)")
+    ax.set_title(r"step multipliers $\delta = \alpha\, C^{-1} g + \mu\, \delta_{prev}$", fontsize=10)
+    ax.legend(fontsize=8, loc="best")
+
+
+def _step_rule_ratio(ax, steps, rho):
+    ax.axhspan(0.25, 0.75, color=STEP_RULE_COLOURS["rho"], alpha=0.12, label=r"$1/4 \leq \rho \leq 3/4$")
+    measured = np.isfinite(rho)  # rho exists only on the steps where the loss change was measured
+    ax.plot(steps[measured], rho[measured], color=STEP_RULE_COLOURS["rho"], marker="D", markersize=3,
+            linestyle="-", label=r"$\rho$ = actual / predicted")
+    ax.axhline(1.0, color="0.3", linestyle=":", linewidth=1, label="model exact")
+    ax.set_ylabel(r"reduction ratio $\rho$ (1)")
+    ax.set_title("how well the quadratic model predicted the step", fontsize=10)
+    ax.legend(fontsize=8, loc="best")
+
+
+def _step_rule_damping(ax, steps, lam):
+    ax.step(steps, lam, where="post", color=STEP_RULE_COLOURS["lambda"], linewidth=1.6, label=r"$\lambda$")
+    if (np.nan_to_num(lam) > 0).any():
+        ax.set_yscale("log")
+    ax.set_ylabel(r"damping $\lambda$ (curvature units)")
+    ax.set_title(r"damping $\lambda$ (adapted by Levenberg-Marquardt when on)", fontsize=10)
+    ax.legend(fontsize=8, loc="best")
+
+
+def _step_rule_changes(ax, steps, predicted, actual):
+    both = np.concatenate([predicted[np.isfinite(predicted)], actual[np.isfinite(actual)]])
+    decreases = both.size > 0 and bool((both < 0).all())
+    sign, minus = (-1.0, "-") if decreases else (1.0, "")  # every step went down: the decrease on a log axis
+    ax.plot(steps, sign * predicted, color=STEP_RULE_COLOURS["predicted"], linewidth=2.0,
+            label=rf"predicted ${minus}M(\delta)$")
+    ax.plot(steps, sign * actual, color=STEP_RULE_COLOURS["actual"], linestyle="none", marker="x", markersize=5,
+            label=rf"measured ${minus}(L(\theta + \delta) - L(\theta))$")
+    if decreases:
+        ax.set_yscale("log")
+        ax.set_ylabel("loss decrease on the batch, -change (loss units)")
+    else:
+        ax.axhline(0.0, color="0.5", linewidth=0.8)
+        if both.size and np.abs(both).max() > 0:
+            # changes of both signs spanning decades: linear near zero, logarithmic beyond
+            ax.set_yscale("symlog", linthresh=max(1e-3 * float(np.abs(both).max()), 1e-12))
+        ax.set_ylabel("loss change on the batch (loss units)")
+    ax.set_title("predicted against measured change", fontsize=10)
+    ax.legend(fontsize=8, loc="best")
+
+
+def plot_step_rule(records: list, path: Path):
+    """alpha and mu, rho, lambda, and predicted against actual change, over steps (quadratic step rule)."""
+    if not has_step_rule(records):
+        return None
+    steps = series(records, "update", "alpha")[0]
+    values = {key: series(records, "update", key)[1] for key in STEP_RULE_KEYS}
+    plt = _pyplot()
+    fig, axes = plt.subplots(2, 2, figsize=(12, 7.5), sharex=True, constrained_layout=True)
+    _step_rule_multipliers(axes[0, 0], steps, values["alpha"], values["mu"])
+    _step_rule_ratio(axes[0, 1], steps, values["reduction_ratio"])
+    _step_rule_damping(axes[1, 0], steps, values["damping"])
+    _step_rule_changes(axes[1, 1], steps, values["predicted_change"], values["actual_change"])
+    for ax in axes.flat:
+        ax.grid(True, alpha=0.3)
+    for ax in axes[1]:
+        ax.set_xlabel("optimizer step")
+    fig.suptitle("Quadratic step rule: the chosen multipliers, the model's accuracy and the damping it sets")
+    return _save(fig, path)
+
+
 def last_probe(records: list):
     for record in reversed(records):
         if isinstance(record.get("probe"), dict):
@@ -427,22 +518,33 @@ def plot_probe(records: list, path: Path):
     plt = _pyplot()
     fig, (left, right) = plt.subplots(1, 2, figsize=(12, 4.5), constrained_layout=True)
     x = np.arange(len(names))
-    width = 0.38
+    width = 0.27
     kinds = {layers[n].get("structure") for n in names}
     block_label = "optimizer's block (Kronecker A (x) G)" if kinds == {"kfac"} else "optimizer's block"
-    for offset, kind, label in ((-width / 2, "block", block_label), (width / 2, "diag", "diagonal of the exact Fisher")):
+    bars = ((-width, "block", block_label),
+            (0.0, "fresh", "same structure, from the probe batch alone"),
+            (width, "diag", "diagonal of the exact Fisher"))
+    for offset, kind, label in bars:
         errors = [_number(layers[n].get(f"{kind}_error")) for n in names]
         angles = [_number(layers[n].get(f"{kind}_angle_deg")) for n in names]
         left.bar(x + offset, errors, width, label=label)
         right.bar(x + offset, angles, width, label=label)
+    left.axhline(1.0, color="black", linestyle="--", linewidth=1, label="error of the zero matrix")
+    if any(_number(layers[n].get("block_error")) > 10 for n in names):
+        left.set_yscale("log")
     left.set_ylabel("relative Frobenius error ||F_approx - F|| / ||F||")
     left.set_title("curvature block error")
     right.set_ylabel("angle to the exact natural gradient (degrees)")
     right.set_title("natural-gradient direction error")
     right.axhline(PROBE_ANGLE_WARNING_DEG, color="black", linestyle=":", linewidth=1,
                   label=f"warning level {PROBE_ANGLE_WARNING_DEG:.0f} deg")
+    shares = [_number(layers[n].get("exact_below_damping")) for n in names]
+    # near 100%, every damped direction is about g / lambda and the angles say little
+    angle_ticks = [f"{n}\n({100 * share:.0f}% of F's eigenvalues < lambda)" if share == share else n
+                   for n, share in zip(names, shares)]
+    left.set_xticks(x, names, rotation=30, ha="right")
+    right.set_xticks(x, angle_ticks, fontsize=8)
     for ax in (left, right):
-        ax.set_xticks(x, names, rotation=30, ha="right")
         ax.set_xlabel("layer")
         ax.legend(fontsize=8)
         ax.grid(True, axis="y", alpha=0.3)
@@ -497,17 +599,62 @@ def _probe_warnings(records: list) -> list:
     if found is None:
         return []
     step, probe = found
-    messages = []
-    angle = _number(probe.get("empirical_vs_sampled_angle_deg"))
-    if angle > PROBE_ANGLE_WARNING_DEG:
-        messages.append(f"at step {step} the empirical Fisher turns the step {angle:.0f} degrees away "
-                        "from the sampled Fisher: prefer fisher='sampled' or 'exact'")
+    messages = [f"at step {step}: {text}" for text in far_from_fisher(probe, PROBE_ANGLE_WARNING_DEG)]
     for name, entry in (probe.get("layers") or {}).items():
         block_angle = _number(entry.get("block_angle_deg"))
         if block_angle > PROBE_ANGLE_WARNING_DEG:
             messages.append(f"layer {name}: the optimizer's direction is {block_angle:.0f} degrees from the "
                             f"exact natural gradient at step {step}")
     return messages
+
+
+def _damping_panels(entry: dict, lam: float) -> list:
+    """(values, max, damping added, name) per curvature part that damping is added to."""
+    kronecker = entry.get("structure") == "kfac"  # EKFAC adds lambda to its scales, not to A and G
+    parts = []
+    if kronecker:
+        parts += [("in", _number(entry.get("in_damping")), "input factor A"),
+                  ("out", _number(entry.get("out_damping")), "output-gradient factor G")]
+    parts += [("diag", lam, "diagonal Fisher"), ("scale", lam, "EKFAC scales"),
+              ("pair_eig", lam, "norm-layer (gamma, beta) blocks")]
+    panels = []
+    for prefix, shift, name in parts:
+        values_key = f"{prefix}_eigenvalues" if prefix in ("in", "out") else f"{prefix}_values"
+        largest_key = f"{prefix}_eig_max" if prefix in ("in", "out") else f"{prefix}_max"
+        values = entry.get(values_key)
+        largest = _number(entry.get(largest_key))
+        if math.isfinite(largest) and math.isfinite(shift):
+            panels.append((values if isinstance(values, list) and values else None, largest, shift, name))
+    return panels
+
+
+def damping_dominance(records: list) -> list:
+    """Layers where (nearly) every eigenvalue of a factor lies under the damping added to it.
+
+    Dominated: at least ``DAMPING_DOMINATES_FRACTION`` of the eigenvalues under
+    the damping and the largest within ``DAMPING_DOMINATES_SPREAD`` times it, so
+    the damped factor is close to a multiple of the identity in every direction
+    (a few large eigenvalues above the damping still shape the step, and are
+    not called dominated).  Reads the final record: the full spectra where
+    logged (JSONL), else the largest eigenvalue (CSV: every eigenvalue under).
+    """
+    final = records[-1]
+    lam = _number(_get(final, ("update", "damping")))
+    found = []
+    for name, entry in (final.get("layers") or {}).items():
+        for values, largest, shift, part in _damping_panels(entry, lam):
+            if values is not None:
+                under, total = sum(1 for v in values if _number(v) < shift), len(values)
+                dominated = under >= DAMPING_DOMINATES_FRACTION * total and largest < DAMPING_DOMINATES_SPREAD * shift
+                count = f"{under} of {total} eigenvalues"
+            else:
+                dominated, count = largest < shift, "every eigenvalue"
+            if dominated:
+                found.append(f"layer {name}: damping dominates the {part}: {count} lie under the damping added to "
+                             f"it ({shift:.3g}, lambda = {lam:.3g}; largest eigenvalue {largest:.3g}) at step "
+                             f"{final['step']}; the step there is mostly the gradient scaled by 1/damping. Lower "
+                             "damping (or use damping_rule='lm') if this persists")
+    return found
 
 
 def _format_table(rows: list) -> list:
@@ -546,20 +693,45 @@ def _logging_cost_line(records: list) -> str:
     return f"logging cost: {log_seconds:.4f} s in total, {1e3 * per_record:.2f} ms per record{share}"
 
 
+PROBE_COLUMNS = (
+    ("block error", "the optimizer's block (running statistics) against the exact Fisher F of the probe batch"),
+    ("fresh error", "the same structure built from the probe batch alone (exact expectation): the structure's "
+                    "own error"),
+    ("stats gap", "the running statistics against the probe batch's (lag of the average, Monte Carlo noise)"),
+    ("trace C/F", "trace of the optimizer's block over the trace of F"),
+    ("block angle", "damped direction (C + lambda I)^-1 g against (F + lambda I)^-1 g"),
+    ("diag error/angle", "the diagonal of F itself as the approximation"),
+    ("F eig < lambda", "share of F's eigenvalues under the damping: near 100%, every damped direction is close "
+                       "to g / lambda and small angles say little"),
+)
+
+
+def _percent(share) -> str:
+    number = _number(share)
+    return "-" if math.isnan(number) else f"{100 * number:.0f}%"
+
+
+def _probe_row(name: str, e: dict) -> tuple:
+    ratio = _number(e.get("block_trace")) / _number(e.get("exact_trace")) if _number(e.get("exact_trace")) else math.nan
+    return (name, e.get("params", "-"), _text(e.get("block_error")), _text(e.get("fresh_error")),
+            _text(e.get("statistics_gap")), _text(ratio), f"{_text(e.get('block_angle_deg'), '.1f')} deg",
+            f"{_text(e.get('diag_error'))} / {_text(e.get('diag_angle_deg'), '.1f')} deg",
+            _percent(e.get("exact_below_damping")),
+            f"{_text(e.get('empirical_vs_sampled_angle_deg'), '.1f')} deg")
+
+
 def _probe_lines(records: list) -> list:
     found = last_probe(records)
     if found is None:
         return []
     step, probe = found
-    lines = [f"Fisher probe (step {step}, {probe.get('batch_size', '?')} examples):"]
-    rows = [("layer", "params", "block error", "block angle", "diag error", "diag angle", "emp/sampled angle")]
-    for name, e in (probe.get("layers") or {}).items():
-        rows.append((name, e.get("params", "-"), f"{_number(e.get('block_error')):.3g}",
-                     f"{_number(e.get('block_angle_deg')):.1f} deg", f"{_number(e.get('diag_error')):.3g}",
-                     f"{_number(e.get('diag_angle_deg')):.1f} deg",
-                     f"{_number(e.get('empirical_vs_sampled_angle_deg')):.1f} deg"))
+    lines = [f"Fisher probe (step {step}, {probe.get('batch_size', '?')} examples; errors are relative "
+             "Frobenius errors of the undamped matrices, 1 = as far as the zero matrix):"]
+    rows = [("layer", "params") + tuple(title for title, _ in PROBE_COLUMNS) + ("emp/sampled angle",)]
+    rows += [_probe_row(name, e) for name, e in (probe.get("layers") or {}).items()]
     if len(rows) > 1:
         lines += _format_table(rows)
+        lines += [f"    {title}: {meaning}" for title, meaning in PROBE_COLUMNS]
     skipped = probe.get("skipped_layers") or {}
     lines += [f"  {name}: not probed ({why})" for name, why in skipped.items()]
     angle = _number(probe.get("empirical_vs_sampled_angle_deg"))
@@ -569,19 +741,29 @@ def _probe_lines(records: list) -> list:
     return lines
 
 
+def _loss_text(records: list) -> str:
+    steps, loss = series(records, "update", "loss")
+    logged = np.flatnonzero(np.isfinite(loss))
+    if not logged.size:
+        return LOSS_NOT_LOGGED
+    last = logged[-1]
+    at = "" if last == len(records) - 1 else f" (step {int(steps[last])}, the latest logged)"
+    return _text(loss[last], ".4g") + at
+
+
 def summarize(records: list, source: str = "log") -> tuple[str, list]:
     """The text summary and the list of warnings."""
     if not records:
         raise ValueError(f"{source}: the log holds no records")
     final = records[-1]
-    warnings_found = (_condition_warnings(records) + _skip_warnings(final)
+    warnings_found = (_condition_warnings(records) + damping_dominance(records) + _skip_warnings(final)
                       + _update_warnings(records) + _probe_warnings(records))
     update = final.get("update") or {}
     wall = [r.get("wall_time") for r in records if isinstance(r.get("wall_time"), Real)]
     lines = [f"ngopt diagnostics report for {source}",
              f"records: {len(records)} (steps {records[0]['step']} .. {final['step']})"
              + (f", {wall[-1] - wall[0]:.1f} s of wall time between first and last" if len(wall) > 1 else ""),
-             f"final: loss {_text(update.get('loss'), '.4g')}, damping {_text(update.get('damping'))}, "
+             f"final: loss {_loss_text(records)}, damping {_text(update.get('damping'))}, "
              f"lr {_text(update.get('lr'))}",
              f"skipped steps: {final.get('skipped_steps', 0)} of {final['step']}",
              _logging_cost_line(records), "",
@@ -590,6 +772,9 @@ def summarize(records: list, source: str = "log") -> tuple[str, list]:
     probe = _probe_lines(records)
     if probe:
         lines += ["", *probe]
+    if not has_step_rule(records):
+        lines += ["", "step rule: no alpha/mu/reduction-ratio records (step_rule='quadratic' logs them); "
+                      "step_rule.png not drawn"]
     lines += ["", "warnings:"] + ([f"  - {w}" for w in warnings_found] or ["  (none)"])
     return "\n".join(lines) + "\n", warnings_found
 
@@ -615,7 +800,8 @@ def write_report(log_path, out_dir) -> dict:
                 plot_update(records, out_dir / "update.png"),
                 plot_loss(records, out_dir / "loss.png"),
                 plot_time(records, out_dir / "time.png"),
-                plot_probe(all_records, out_dir / "probe.png")]
+                plot_probe(all_records, out_dir / "probe.png"),
+                plot_step_rule(records, out_dir / "step_rule.png")]
     summary_path = out_dir / "summary.txt"
     summary_path.write_text(text, encoding="utf-8")
     return {"figures": [p for p in figures if p is not None], "summary": summary_path, "warnings": found}

@@ -136,6 +136,16 @@ def test_bad_arguments_are_named():
         log_diagnostics(torch.optim.SGD(model.parameters(), lr=0.1), "run.jsonl")
     with pytest.raises(ValueError, match="target path must end in .jsonl or .csv"):
         log_diagnostics(opt, "run.txt")
+    accepted = ("target: give a .jsonl or .csv path, a TensorBoard SummaryWriter, a logging.Logger, "
+                "or a non-empty list or tuple of these; got ")
+    with pytest.raises(ValueError) as empty:
+        log_diagnostics(opt, [])
+    assert str(empty.value) == accepted + "an empty list"  # the README calls a list a sink: say so
+    with pytest.raises(ValueError, match="got an empty tuple"):
+        log_diagnostics(opt, ())
+    with pytest.raises(TypeError) as wrong:
+        log_diagnostics(opt, [42])
+    assert str(wrong.value) == accepted + "int"
 
 
 def test_skipped_steps_reach_the_log(tmp_path):

@@ -170,7 +170,7 @@ def test_logger_target_writes_one_line(caplog):
 def test_make_writer_rejects_bad_targets(tmp_path):
     with pytest.raises(ValueError, match="must end in .jsonl or .csv"):
         make_writer(tmp_path / "run.txt")
-    with pytest.raises(TypeError, match="target must be"):
+    with pytest.raises(TypeError, match="target: give a .jsonl or .csv path, .* or a non-empty list"):
         make_writer(42)
     with pytest.raises(ValueError, match="must end in .jsonl or .csv"):
         read_log(tmp_path / "run.txt")

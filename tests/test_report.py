@@ -6,6 +6,7 @@ import warnings
 from pathlib import Path
 
 import matplotlib
+import numpy as np
 
 matplotlib.use("Agg")
 import matplotlib.image  # noqa: E402
@@ -17,7 +18,8 @@ from torch import nn  # noqa: E402
 import ngopt  # noqa: E402
 from ngopt.diagnostics_log import log_diagnostics  # noqa: E402
 from ngopt.fisher_probe import probe_fisher_quality  # noqa: E402
-from ngopt.report import main, write_report  # noqa: E402
+from ngopt.diagnostics_log import read_log  # noqa: E402
+from ngopt.report import main, one_record_per_step, summarize, write_report  # noqa: E402
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -52,6 +54,16 @@ def digits_run(tmp_path, name="run.jsonl", steps=40, damping=1e-2, probe=True, *
     return path
 
 
+def plain_logged_run(opt, model, loss_fn, x, y, path, steps, every):
+    """The plain loop (no loss given to the log), logged to ``path``."""
+    with log_diagnostics(opt, path, every=every):
+        for _ in range(steps):
+            opt.zero_grad()
+            loss_fn(model(x), y).backward()
+            opt.step()
+    return path
+
+
 def assert_png(path: Path):
     assert path.is_file() and path.stat().st_size > 10_000, path
     image = matplotlib.image.imread(path)
@@ -72,7 +84,7 @@ def test_report_command_writes_the_figures_and_summary(tmp_path):
         assert str(out / name) in done.stdout
     summary = (out / "summary.txt").read_text()
     assert "steps 5 .. 40" in summary
-    assert "Fisher probe (step 21, 128 examples)" in summary
+    assert "Fisher probe (step 21, 128 examples;" in summary
     assert "logging cost:" in summary and "time split" in summary
 
 
@@ -82,12 +94,7 @@ def test_csv_log_gives_the_figures_without_spectra(tmp_path):
     model = nn.Sequential(nn.Linear(5, 6), nn.Tanh(), nn.Linear(6, 2))
     loss_fn = nn.MSELoss()
     opt = ngopt.FisherDescent(model, loss_fn, lr=0.2)
-    with log_diagnostics(opt, tmp_path / "run.csv", every=3):
-        for _ in range(12):
-            opt.zero_grad()
-            loss_fn(model(x), y).backward()
-            opt.step()
-    result = write_report(tmp_path / "run.csv", tmp_path / "out")
+    result = write_report(plain_logged_run(opt, model, loss_fn, x, y, tmp_path / "run.csv", 12, 3), tmp_path / "out")
     names = sorted(p.name for p in result["figures"])
     assert names == ["conditioning.png", "damping.png", "time.png", "update.png"]
     for path in result["figures"]:
@@ -178,3 +185,165 @@ def test_reduction_ratio_figure_from_a_closure_run(tmp_path):
     result = write_report(tmp_path / "run.jsonl", tmp_path / "out")
     assert tmp_path / "out" / "loss.png" in result["figures"]
     assert_png(tmp_path / "out" / "loss.png")
+
+
+# --------------------------------------------------------------------------
+# damping that dominates a factor, the missing loss, the probe's findings
+# --------------------------------------------------------------------------
+
+def write_jsonl(path: Path, records: list) -> Path:
+    path.write_text("".join(json.dumps(r) + "\n" for r in records))
+    return path
+
+
+def factor_with_spectrum(eigenvalues, seed):
+    """A symmetric matrix Q diag(eigenvalues) Q^T with a random orthogonal Q (numpy.linalg.qr)."""
+    rng = np.random.default_rng(seed)
+    q, _ = np.linalg.qr(rng.normal(size=(len(eigenvalues), len(eigenvalues))))
+    return q @ np.diag(eigenvalues) @ q.T
+
+
+def kronecker_record(step, factor_in, shift_in, factor_out, shift_out, damping):
+    eig_in, eig_out = np.linalg.eigvalsh(factor_in), np.linalg.eigvalsh(factor_out)  # numpy.linalg.eigvalsh
+    entry = {"block": "linear", "structure": "kfac", "in_dim": len(eig_in), "out_dim": len(eig_out),
+             "in_eigenvalues": eig_in.tolist(), "out_eigenvalues": eig_out.tolist(),
+             "in_eig_max": float(eig_in[-1]), "out_eig_max": float(eig_out[-1]),
+             "in_damping": shift_in, "out_damping": shift_out}
+    return {"step": step, "update": {"damping": damping}, "layers": {"fc": entry}}
+
+
+def test_damping_that_dominates_a_factor_is_warned_with_its_numbers(tmp_path):
+    # A constructed input factor whose spectrum lies wholly under the damping added to it, and an output
+    # factor whose spectrum lies above it: only the first is dominated.
+    under = np.linspace(1e-4, 5e-3, 12)
+    above = np.linspace(0.5, 2.0, 4)
+    record = kronecker_record(30, factor_with_spectrum(under, 0), 1e-2, factor_with_spectrum(above, 1), 1e-2, 1e-4)
+    from ngopt.report import damping_dominance
+
+    found = damping_dominance([record])
+    assert len(found) == 1
+    assert found[0].startswith("layer fc: damping dominates the input factor A: 12 of 12 eigenvalues lie under "
+                               "the damping added to it (0.01, lambda = 0.0001; largest eigenvalue 0.005)")
+    summary, warned = summarize(read_log(write_jsonl(tmp_path / "run.jsonl", [record])))
+    assert found[0] in warned and f"  - {found[0]}" in summary
+
+
+def test_a_few_large_eigenvalues_above_the_damping_keep_the_factor_undominated():
+    # 92% of the eigenvalues under the damping, but the largest 40 x above it: the damped factor still
+    # shapes the step (the digits MLP's first layer looks like this)
+    spectrum = np.concatenate([np.full(23, 1e-4), [0.4, 0.4]])
+    record = kronecker_record(5, factor_with_spectrum(spectrum, 2), 1e-2, factor_with_spectrum(spectrum, 3), 1e-2,
+                              1e-4)
+    from ngopt.report import damping_dominance
+
+    assert damping_dominance([record]) == []
+    nearly = np.concatenate([np.full(23, 1e-4), [0.05, 0.05]])  # 92% under, largest 5 x the damping
+    record = kronecker_record(5, factor_with_spectrum(nearly, 2), 1e-2, factor_with_spectrum(spectrum, 3), 1e-2,
+                              1e-4)
+    assert [f.split(":")[1] for f in damping_dominance([record])] == [" damping dominates the input factor A"]
+
+
+def test_damping_of_a_real_run_dominates_every_factor(tmp_path):
+    # damping 1e4 on the digits MLP: pi sqrt(lambda) and sqrt(lambda) / pi are each far above every
+    # eigenvalue of A and G (their product is lambda; factors' eigenvalues below 12 in these runs)
+    log = digits_run(tmp_path, steps=10, probe=False, damping=1e4)
+    records = [json.loads(line) for line in log.read_text().splitlines()]
+    final = records[-1]["layers"]
+    _, found = summarize(records)  # the text alone: figures are tested elsewhere
+    for name in ("0", "2"):
+        for side, part in (("in", "input factor A"), ("out", "output-gradient factor G")):
+            assert max(final[name][f"{side}_eigenvalues"]) < final[name][f"{side}_damping"]
+            assert any(w.startswith(f"layer {name}: damping dominates the {part}") for w in found)
+
+
+def test_summary_says_how_to_log_the_loss(tmp_path):
+    torch.manual_seed(4)
+    model, loss_fn = nn.Linear(4, 2), nn.MSELoss()
+    opt = ngopt.FisherDescent(model, loss_fn, lr=0.1)
+    log = plain_logged_run(opt, model, loss_fn, torch.randn(32, 4), torch.randn(32, 2), tmp_path / "run.jsonl", 4, 2)
+    summary, _ = summarize(read_log(log))
+    assert "final: loss not logged (call handle.note_loss(loss) after loss.backward(), or pass a closure" in summary
+    assert "loss -" not in summary
+
+
+def test_logged_probe_findings_reach_the_summary(tmp_path):
+    # statistics from inputs 10 x the probe's: for a bias-free linear layer with squared error K-FAC is
+    # exact and its block is exactly 100 F (A = E[x x^T]); the report names the lag, not the structure
+    torch.manual_seed(5)
+    x, y = torch.randn(40, 3), torch.randn(40, 2)
+    model = nn.Linear(3, 2, bias=False)
+    loss_fn = nn.MSELoss()
+    opt = ngopt.FisherDescent(model, loss_fn, lr=1e-12, fisher="exact", stats_memory=0.5, max_step_kl=None)
+    with log_diagnostics(opt, tmp_path / "run.jsonl", every=1) as handle:
+        opt.zero_grad()
+        loss_fn(model(10 * x), y).backward()
+        opt.step()
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            handle.log_probe(probe_fisher_quality(opt, model, loss_fn, x, y))
+    summary, found = summarize(one_record_per_step(read_log(tmp_path / "run.jsonl")))
+    lag = [w for w in found if "far from the current Fisher" in w]
+    assert len(lag) == 1 and "stats_memory=0.5" in lag[0] and "error 99" in lag[0]
+    assert "fresh error" in summary and "stats gap" in summary and "trace C/F" in summary
+    row = next(line for line in summary.splitlines() if line.startswith("  Linear ") and "deg" in line).split()
+    assert row[2] == "99" and float(row[3]) < 1e-5 and row[4:6] == ["99", "100"]  # error, fresh, gap, C/F
+
+
+def step_rule_records(steps=12):
+    """A synthetic log of the quadratic step rule: alpha, mu, rho, lambda, predicted and actual change."""
+    records = []
+    for step in range(1, steps + 1):
+        predicted = -0.5 / step
+        actual = predicted * (0.6 + 0.05 * (step % 3)) if step % 2 == 0 else None
+        records.append({"step": step, "update": {
+            "alpha": 0.8 + 0.01 * step, "mu": 0.3 - 0.01 * step, "reduction_ratio": actual / predicted
+            if actual is not None else None, "damping": 1e-2 * 1.5 ** (-(step // 4)),
+            "predicted_change": predicted, "actual_change": actual, "loss": 1.0 / step}})
+    return records
+
+
+def test_step_rule_figure_from_a_synthetic_log(tmp_path):
+    log = write_jsonl(tmp_path / "rule.jsonl", step_rule_records())
+    code = main([str(log), "--out", str(tmp_path / "out")])
+    assert code == 0
+    assert_png(tmp_path / "out" / "step_rule.png")
+    assert "step rule:" not in (tmp_path / "out" / "summary.txt").read_text()
+
+
+def test_step_rule_figure_draws_the_logged_series(tmp_path, monkeypatch):
+    from ngopt import report
+
+    drawn = {}
+    monkeypatch.setattr(report, "_save", lambda fig, path: drawn.setdefault("axes", fig.axes) and path)
+    records = step_rule_records()
+    report.plot_step_rule(records, tmp_path / "step_rule.png")
+    lines = {line.get_label(): line for ax in drawn["axes"] for line in ax.get_lines()}
+    alpha = [r["update"]["alpha"] for r in records]
+    np.testing.assert_allclose(lines[r"$\alpha$: on the new preconditioned proposal"].get_ydata(), alpha)
+    # every change is a decrease here, drawn as -change on a log axis
+    measured = lines[r"measured $-(L(\theta + \delta) - L(\theta))$"].get_ydata().astype(float)
+    assert np.isnan(measured[0]) and measured[1] == pytest.approx(-records[1]["update"]["actual_change"])
+
+
+def test_log_without_step_rule_keys_gets_a_one_line_note(tmp_path):
+    records = [{"step": s, "update": {"damping": 1e-2, "loss": 1.0}} for s in (1, 2)]
+    result = write_report(write_jsonl(tmp_path / "plain.jsonl", records), tmp_path / "out")
+    assert not (tmp_path / "out" / "step_rule.png").exists()
+    notes = [line for line in (tmp_path / "out" / "summary.txt").read_text().splitlines() if "step rule" in line]
+    assert notes == ["step rule: no alpha/mu/reduction-ratio records (step_rule='quadratic' logs them); "
+                     "step_rule.png not drawn"]
+    assert result["warnings"] == []
+
+
+def test_step_rule_figure_keeps_the_sign_when_a_step_went_up(tmp_path, monkeypatch):
+    from ngopt import report
+
+    drawn = {}
+    monkeypatch.setattr(report, "_save", lambda fig, path: drawn.setdefault("axes", fig.axes) and path)
+    records = step_rule_records()
+    records[3]["update"]["actual_change"] = 0.02  # a step that raised the loss
+    report.plot_step_rule(records, tmp_path / "step_rule.png")
+    changes = drawn["axes"][3]
+    assert changes.get_yscale() == "symlog"
+    lines = {line.get_label(): line for line in changes.get_lines()}
+    assert lines[r"measured $(L(\theta + \delta) - L(\theta))$"].get_ydata()[3] == pytest.approx(0.02)
