@@ -99,7 +99,7 @@ class FisherDescent(torch.optim.Optimizer):
                  momentum: Optional[float] = None, weight_decay: float = 0.0, damping: float = 1e-2,
                  fisher: str = "sampled", structure: str = "kfac", stats_interval: int = 10,
                  inverse_interval: int = 20, stats_memory: float = 0.9, max_step_kl: Optional[float] = 1e-2,
-                 damping_rule: str = "lm", damping_interval: int = 5, step_rule: str = "quadratic",
+                 damping_rule: str = "lm", damping_interval: int = 5, step_rule: str = "fixed",
                  rule_interval: int = 1, rule_batch_fraction: float = 0.25, fallback: str = "sgd",
                  fallback_lr_scale: Optional[float] = None, fisher_samples: int = 1, damping_range=(1e-6, 1e2),
                  param_groups=None, seed: Optional[int] = None, weight_sharing: str = "expand"):
@@ -169,6 +169,7 @@ class FisherDescent(torch.optim.Optimizer):
         self._warned_uninitialised = False
         self._warned_criterion = False
         self._warned_replay = False
+        self.held_out_ratio = True
         self._applied: dict = {}
 
         self.blocks: Dict[str, LayerCurvature] = self._build_blocks()
@@ -303,6 +304,16 @@ class FisherDescent(torch.optim.Optimizer):
         if not _all_finite(list(result.updates.values())) or not _finite_numbers(result.diagnostics):
             return "nonfinite_update"
 
+        held_out = None
+        if self.rules.damping.wants_ratio(step_index) and evaluator is not None and self.held_out_ratio \
+                and evaluator.subsampled:
+            # rho on rows the quadratic model was not solved on: a step that overfits the rows it was
+            # chosen on then makes lambda grow instead of shrink.
+            tick = time.perf_counter()
+            held = evaluator.held_out()
+            held_out = (held, held.loss())
+            self._times["rules"] += time.perf_counter() - tick
+
         for block, tensors in statistics.items():
             block.commit(tensors)
         for block, (tensors, info) in inverses.items():
@@ -315,7 +326,7 @@ class FisherDescent(torch.optim.Optimizer):
         self._record_update(result)
         if self.rules.damping.wants_ratio(step_index):
             tick = time.perf_counter()
-            self._adapt_damping(result, evaluator, batch, closure, loss)
+            self._adapt_damping(result, evaluator, batch, closure, loss, held_out)
             self._times["rules"] += time.perf_counter() - tick
         return None
 
@@ -510,6 +521,8 @@ class FisherDescent(torch.optim.Optimizer):
             or self.rules.damping.wants_ratio(step_index)
         if not wanted:
             return None
+        if closure is not None and self.step_rule != "quadratic":
+            return None  # the damping rule measures the closure's loss itself
         if batch is None or not batch.replayable:
             if closure is None or self.step_rule == "quadratic":
                 self._warn_not_replayable(batch, closure)
@@ -531,18 +544,20 @@ class FisherDescent(torch.optim.Optimizer):
                       "loss_fn to the model's output (or a dict/tuple entry or view of it), or pass "
                       "step(closure) for the damping rule.", stacklevel=5)
 
-    def _adapt_damping(self, result, evaluator, batch, closure, loss) -> None:
+    def _adapt_damping(self, result, evaluator, batch, closure, loss, held_out=None) -> None:
         """Levenberg-Marquardt: the loss change on the same rows against the quadratic model's prediction."""
         # Before any re-evaluation: a closure's backward overwrites the gradients the model uses.
         predicted = result.predicted_change if self.step_rule == "quadratic" else self._model_change()
         before = after = None
-        if evaluator is not None:
-            before = result.loss_before if result.loss_before is not None else batch.loss_value
-            after = evaluator.loss()
-        elif closure is not None and loss is not None:
+        if closure is not None and loss is not None:  # the closure defines the loss: it is honoured
             before = float(loss)
             with self.no_capture(), torch.enable_grad():
                 after = float(closure().detach())
+        elif held_out is not None:
+            before, after = held_out[1], held_out[0].loss()
+        elif evaluator is not None:
+            before = result.loss_before if result.loss_before is not None else batch.loss_value
+            after = evaluator.loss()
         if before is None:
             return
         if self.communicator is not None:  # the ratio of the global batch, the same on every rank

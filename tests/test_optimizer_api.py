@@ -187,7 +187,7 @@ def test_unsupported_criterion_is_fine_with_the_empirical_fisher():
     assert len(opt.blocks) == 2
     # The quadratic rule needs the criterion's closed-form output Hessian: a clear error instead.
     with pytest.raises(ValueError, match="step_rule='quadratic' needs a criterion"):
-        ngopt.FisherDescent(small_mlp(), nn.L1Loss(), fisher="empirical")
+        ngopt.FisherDescent(small_mlp(), nn.L1Loss(), fisher="empirical", step_rule="quadratic")
 
 
 # ---------------------------------------------------------------------------- warnings and repr
@@ -413,11 +413,11 @@ def test_step_with_closure_returns_the_closure_loss():
 def test_lm_damping_needs_no_closure():
     # API behaviour 12: the reduction ratio comes from the recorded batch; the damping moves by
     # the Levenberg-Marquardt factor (19/20)^T or its inverse (Martens & Grosse 2015, sec. 6.5).
-    model = small_mlp()
-    opt = quiet_optimizer(model, nn.MSELoss(), damping_rule="lm", damping_interval=1, fisher="exact")
+    model, loss_fn = small_mlp(), nn.MSELoss()
+    opt = quiet_optimizer(model, loss_fn, damping_rule="lm", damping_interval=1, fisher="exact")
     x, y = regression_batches(1)[0]
     opt.zero_grad()
-    nn.MSELoss()(model(x), y).backward()
+    loss_fn(model(x), y).backward()
     opt.step()
     rho = opt.diagnostics()["update"]["reduction_ratio"]
     damping = opt.param_groups[0]["damping"]

@@ -56,7 +56,7 @@ def cnn():
 def steps_to_target(model, opt, data, max_steps):
     """Steps taken before the full-batch loss first drops below ``TARGET_LOSS`` (None: not within max_steps)."""
     inputs, labels = data
-    loss_fn = nn.CrossEntropyLoss()
+    loss_fn = getattr(opt, "loss_fn", None) or nn.CrossEntropyLoss()  # FisherDescent's own criterion object
     for step in range(max_steps + 1):
         opt.zero_grad()
         loss = loss_fn(model(inputs), labels)

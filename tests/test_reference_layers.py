@@ -341,14 +341,15 @@ def test_embedding_reduce_weight_sharing_keeps_the_diagonal_of_the_reduced_input
 def embedding_state_bytes(vocab, dim, structure):
     torch.manual_seed(0)
     model = nn.Sequential(nn.Embedding(vocab, dim), nn.Flatten(), nn.Linear(4 * dim, 5))
-    opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss(), structure=structure, stats_interval=1,
+    loss_fn = nn.CrossEntropyLoss()
+    opt = ngopt.FisherDescent(model, loss_fn, structure=structure, stats_interval=1,
                               inverse_interval=1, momentum=0.0)
     tokens = torch.randint(0, vocab, (64, 4))
     targets = torch.randint(0, 5, (64,))
     started = time.perf_counter()
     for _ in range(2):
         opt.zero_grad()
-        nn.CrossEntropyLoss()(model(tokens), targets).backward()
+        loss_fn(model(tokens), targets).backward()
         opt.step()
     seconds = (time.perf_counter() - started) / 2
     state = opt.state[model[0].weight]
@@ -545,7 +546,7 @@ def train(model, opt, inputs, labels, steps):
     losses = []
     for _ in range(steps):
         opt.zero_grad()
-        loss = nn.CrossEntropyLoss()(model(inputs), labels)
+        loss = opt.loss_fn(model(inputs), labels)
         loss.backward()
         opt.step()
         losses.append(float(loss.detach()))

@@ -186,7 +186,8 @@ def test_evaluations_leave_batch_norm_statistics_rng_and_gradients_alone():
     model = nn.Sequential(nn.Linear(4, 6), nn.BatchNorm1d(6), nn.Dropout(0.3), nn.Tanh(), nn.Linear(6, 2))
     plain = copy.deepcopy(model)
     x, y = torch.randn(16, 4), torch.randn(16, 2)
-    steered = ngopt.FisherDescent(model, nn.MSELoss(), damping_rule="lm", damping_interval=1, seed=2)
+    steered = ngopt.FisherDescent(model, nn.MSELoss(), step_rule="quadratic", damping_rule="lm", damping_interval=1,
+                                  seed=2)
     fixed = ngopt.FisherDescent(plain, nn.MSELoss(), step_rule="fixed", damping_rule="fixed", seed=2)
     states = []
     for net, opt in ((model, steered), (plain, fixed)):
@@ -217,7 +218,8 @@ def test_resume_continues_exactly_with_the_rules_state():
             opt.loss_fn(net(bx), by).backward()
             opt.step()
 
-    settings = dict(damping_rule="lm", damping_interval=2, rule_interval=2, seed=3, stats_interval=2,
+    settings = dict(step_rule="quadratic", damping_rule="lm", damping_interval=2, rule_interval=2, seed=3,
+                    stats_interval=2,
                     inverse_interval=3)
     whole = copy.deepcopy(model)
     whole_opt = ngopt.FisherDescent(whole, nn.CrossEntropyLoss(), **settings)
@@ -239,7 +241,7 @@ def test_resume_continues_exactly_with_the_rules_state():
 
 def test_non_finite_rule_scalars_skip_the_step(monkeypatch):
     model, loss_fn, x, y = lm_problem(7)
-    opt = ngopt.FisherDescent(model, loss_fn)
+    opt = ngopt.FisherDescent(model, loss_fn, step_rule="quadratic")
     monkeypatch.setattr(BatchEvaluator, "curvature_products",
                         lambda self, directions: (math.nan, [[math.nan] * len(directions)] * len(directions)))
     before = copy.deepcopy(model.state_dict())
@@ -257,7 +259,7 @@ def test_an_unreplayable_loss_warns_once_and_still_steps():
     # A loss on a slice of the output cannot be replayed from the model alone: one warning,
     # and the step falls back to the blocks' own model.
     model, loss_fn, x, y = lm_problem(8)
-    opt = ngopt.FisherDescent(model, loss_fn)
+    opt = ngopt.FisherDescent(model, loss_fn, step_rule="quadratic")
     start = float(loss_fn(model(x), y))
     with pytest.warns(UserWarning, match="recorded batch") as caught:
         for _ in range(5):
