@@ -169,7 +169,6 @@ class FisherDescent(torch.optim.Optimizer):
         self._warned_uninitialised = False
         self._warned_criterion = False
         self._warned_replay = False
-        self.held_out_ratio = True
         self._applied: dict = {}
 
         self.blocks: Dict[str, LayerCurvature] = self._build_blocks()
@@ -304,16 +303,6 @@ class FisherDescent(torch.optim.Optimizer):
         if not _all_finite(list(result.updates.values())) or not _finite_numbers(result.diagnostics):
             return "nonfinite_update"
 
-        held_out = None
-        if self.rules.damping.wants_ratio(step_index) and evaluator is not None and self.held_out_ratio \
-                and evaluator.subsampled:
-            # rho on rows the quadratic model was not solved on: a step that overfits the rows it was
-            # chosen on then makes lambda grow instead of shrink.
-            tick = time.perf_counter()
-            held = evaluator.held_out()
-            held_out = (held, held.loss())
-            self._times["rules"] += time.perf_counter() - tick
-
         for block, tensors in statistics.items():
             block.commit(tensors)
         for block, (tensors, info) in inverses.items():
@@ -326,7 +315,7 @@ class FisherDescent(torch.optim.Optimizer):
         self._record_update(result)
         if self.rules.damping.wants_ratio(step_index):
             tick = time.perf_counter()
-            self._adapt_damping(result, evaluator, batch, closure, loss, held_out)
+            self._adapt_damping(result, evaluator, batch, closure, loss)
             self._times["rules"] += time.perf_counter() - tick
         return None
 
@@ -544,7 +533,7 @@ class FisherDescent(torch.optim.Optimizer):
                       "loss_fn to the model's output (or a dict/tuple entry or view of it), or pass "
                       "step(closure) for the damping rule.", stacklevel=5)
 
-    def _adapt_damping(self, result, evaluator, batch, closure, loss, held_out=None) -> None:
+    def _adapt_damping(self, result, evaluator, batch, closure, loss) -> None:
         """Levenberg-Marquardt: the loss change on the same rows against the quadratic model's prediction."""
         # Before any re-evaluation: a closure's backward overwrites the gradients the model uses.
         predicted = result.predicted_change if self.step_rule == "quadratic" else self._model_change()
@@ -553,8 +542,6 @@ class FisherDescent(torch.optim.Optimizer):
             before = float(loss)
             with self.no_capture(), torch.enable_grad():
                 after = float(closure().detach())
-        elif held_out is not None:
-            before, after = held_out[1], held_out[0].loss()
         elif evaluator is not None:
             before = result.loss_before if result.loss_before is not None else batch.loss_value
             after = evaluator.loss()

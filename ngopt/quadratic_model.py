@@ -32,16 +32,14 @@ from .likelihoods import OutputLikelihood
 from .recording import RecordedBatch, follow
 
 
-def _rows(value, examples: int, keep: int, from_end: bool = False):
-    """The first (or last) ``keep`` of ``examples`` rows of every batch-shaped tensor in ``value``."""
+def _rows(value, examples: int, keep: int):
+    """The first ``keep`` of ``examples`` rows of every batch-shaped tensor in ``value``."""
     if isinstance(value, torch.Tensor):
-        if not value.dim() or value.shape[0] != examples:
-            return value
-        return value[examples - keep:] if from_end else value[:keep]
+        return value[:keep] if value.dim() and value.shape[0] == examples else value
     if isinstance(value, (list, tuple)):
-        return type(value)(_rows(v, examples, keep, from_end) for v in value)
+        return type(value)(_rows(v, examples, keep) for v in value)
     if isinstance(value, dict):
-        return {k: _rows(v, examples, keep, from_end) for k, v in value.items()}
+        return {k: _rows(v, examples, keep) for k, v in value.items()}
     return value
 
 
@@ -69,15 +67,14 @@ class BatchEvaluator:
     """Loss values and exact curvature products on (a subsample of) one recorded batch."""
 
     def __init__(self, model: nn.Module, loss_fn, likelihood: Optional[OutputLikelihood], batch: RecordedBatch,
-                 fraction: float = 1.0, from_end: bool = False):
+                 fraction: float = 1.0):
         self.model, self.loss_fn, self.likelihood, self.batch = model, loss_fn, likelihood, batch
         examples = batch.examples
         keep = max(1, math.ceil(fraction * examples)) if examples else 0
         self.subsampled = bool(examples) and keep < examples and self._targets_divide(examples, keep)
         keep = keep if self.subsampled else examples
-        self.from_end = from_end
-        self.args = _rows(batch.args, examples, keep, from_end) if self.subsampled else batch.args
-        self.kwargs = _rows(batch.kwargs, examples, keep, from_end) if self.subsampled else batch.kwargs
+        self.args = _rows(batch.args, examples, keep) if self.subsampled else batch.args
+        self.kwargs = _rows(batch.kwargs, examples, keep) if self.subsampled else batch.kwargs
         self.targets = [self._target_rows(c.target, examples, keep) for c in batch.criteria]
         # A sum-reduced loss over a subsample is a fraction of the whole; a mean is not.
         self.loss_scale = examples / keep if self.subsampled and getattr(loss_fn, "reduction", "mean") == "sum" \
@@ -95,8 +92,7 @@ class BatchEvaluator:
     def _target_rows(self, target, examples: int, keep: int):
         if not self.subsampled or not isinstance(target, torch.Tensor) or not target.dim():
             return target
-        rows = target.shape[0] * keep // examples
-        return target[target.shape[0] - rows:] if self.from_end else target[:rows]
+        return target[:target.shape[0] * keep // examples]
 
     def _criterion_inputs(self, overrides: Dict[str, torch.Tensor]) -> List[torch.Tensor]:
         """The criterion's inputs on the evaluated rows, with ``overrides`` for some parameters."""
@@ -107,13 +103,6 @@ class BatchEvaluator:
             torch.set_rng_state(self.batch.rng_state)
             output = functional_call(self.model, {**overrides, **buffers}, self.args, self.kwargs)
         return [follow(output, c.path, c.shape) for c in self.batch.criteria]
-
-    def held_out(self) -> "BatchEvaluator":
-        """An evaluator on the other end of the batch: rows the quadratic model was not fitted on."""
-        fraction = len(self.targets[0]) / len(self.batch.criteria[0].target) if self.subsampled and \
-            isinstance(self.batch.criteria[0].target, torch.Tensor) else 1.0
-        return BatchEvaluator(self.model, self.loss_fn, self.likelihood, self.batch, fraction,
-                              from_end=not self.from_end)
 
     def loss(self) -> float:
         """The loss at the model's current weights (criterion calls summed), on the evaluated rows."""
