@@ -25,7 +25,7 @@ import time
 import warnings
 import weakref
 from dataclasses import dataclass, field
-from typing import Callable, Dict, List, Optional
+from typing import Callable, Dict, Iterable, List, Optional
 
 import torch
 from torch import nn
@@ -47,6 +47,11 @@ class LayerCall:
     output: torch.Tensor
     grad_rows: Optional[torch.Tensor] = None
     scale: float = 1.0
+    # Output gradients -> rows, when the call covers part of its layer (default: block.layer.output_rows).
+    output_rows: Optional[Callable[[torch.Tensor], torch.Tensor]] = None
+
+    def rows_of(self, grads: torch.Tensor) -> torch.Tensor:
+        return (self.output_rows or self.block.layer.output_rows)(grads)
 
 
 @dataclass
@@ -127,9 +132,19 @@ def batched_output_grads(output: torch.Tensor, targets: List[torch.Tensor],
 class CaptureHooks:
     """Installs the hooks on ``model`` and collects finished records for the optimizer."""
 
-    def __init__(self, model: nn.Module, blocks: Dict[nn.Module, LayerCurvature],
+    def __init__(self, model: nn.Module, blocks: Iterable[LayerCurvature],
                  source: Optional[FisherSource], loss_fn=None):
-        self.blocks = blocks
+        # Layers a module hook sees, by module; layers applied inside another module's forward
+        # (attention projections, blocks/attention.py) by that owner, which installs its own hooks.
+        self.blocks: Dict[nn.Module, LayerCurvature] = {}
+        owned: Dict[nn.Module, List[LayerCurvature]] = {}
+        for block in blocks:
+            owner = getattr(block.layer, "owner", None)
+            if owner is None:
+                self.blocks[block.layer.module] = block
+            else:
+                owned.setdefault(owner, []).append(block)
+        self._all_blocks = list(self.blocks.values()) + [b for group in owned.values() for b in group]
         self.source = source          # None means the empirical Fisher
         self.loss_fn = loss_fn
         self.armed = True
@@ -145,8 +160,10 @@ class CaptureHooks:
                           stacklevel=4)
         _HOOKED_MODELS[model] = weakref.ref(self)
         self._handles = [model.register_forward_pre_hook(self._model_pre_hook)]
-        for module in blocks:
+        for module in self.blocks:
             self._handles.append(module.register_forward_hook(self._layer_hook))
+        for owner, group in owned.items():
+            self._handles += group[0].layer.install_capture(owner, group, self)
         # Last, so that it runs after the layer hooks even when the model is itself a layer.
         self._handles.append(model.register_forward_hook(self._model_post_hook))
 
@@ -164,13 +181,22 @@ class CaptureHooks:
             self._current = ForwardRecord()
 
     def _layer_hook(self, module, inputs, output):
-        record = self._current
-        if record is None or not module.training or not isinstance(output, torch.Tensor) \
+        if self._current is None or not module.training or not isinstance(output, torch.Tensor) \
                 or not output.requires_grad:
             return None
+        return self.record_call(self.blocks[module], inputs[0], output)
+
+    @property
+    def recording(self) -> bool:
+        """Whether a forward due a refresh is being recorded (for layers that install their own hooks)."""
+        return self._current is not None
+
+    def record_call(self, block: LayerCurvature, layer_input: torch.Tensor, output: torch.Tensor,
+                    output_rows=None) -> torch.Tensor:
+        """Record one call of ``block``'s layer; returns the copy of ``output`` the network goes on with."""
+        record = self._current
         started = time.perf_counter()
-        block = self.blocks[module]
-        call = LayerCall(block, block.layer.input_rows(inputs[0].detach()), output)
+        call = LayerCall(block, block.layer.input_rows(layer_input.detach()), output, output_rows=output_rows)
         record.calls.append(call)
         if self.source is None:
             record.handles.append(output.register_hook(lambda grad, call=call: self._empirical_grad(call, grad)))
@@ -198,7 +224,7 @@ class CaptureHooks:
 
     def _empirical_grad(self, call: LayerCall, grad: torch.Tensor):
         if call.grad_rows is None:
-            call.grad_rows = call.block.layer.output_rows(grad.detach().unsqueeze(0))
+            call.grad_rows = call.rows_of(grad.detach().unsqueeze(0))
         return None
 
     def _extra_backward(self, record: ForwardRecord):
@@ -211,7 +237,7 @@ class CaptureHooks:
         grads = batched_output_grads(output, [call.output for call in record.calls], vectors)
         for call, grad in zip(record.calls, grads):
             if grad is not None:
-                call.grad_rows = call.block.layer.output_rows(grad.detach())
+                call.grad_rows = call.rows_of(grad.detach())
                 call.scale = scale
         self.seconds["extra_backward"] += time.perf_counter() - started
         record.drop_tensors()
@@ -238,5 +264,5 @@ class CaptureHooks:
         for record in self.records:
             record.release()
         self.records.clear()
-        for block in self.blocks.values():
+        for block in self._all_blocks:
             block.clear_pending()

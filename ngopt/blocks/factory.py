@@ -1,14 +1,17 @@
 """Which curvature block a layer gets: its layer kind and the chosen structure decide."""
 from __future__ import annotations
 
-from typing import Dict, Type
+from typing import Dict, List, Type
+
+from torch import nn
 
 from .base import LayerCurvature
 from .diagonal import DiagonalBlock
 from .eigenbasis import EigenbasisBlock
 from .embedding import EmbeddingDiagonalBlock, EmbeddingEigenbasisBlock, EmbeddingKroneckerBlock
 from .kronecker import KroneckerBlock
-from .layers import LayerAdapter
+from .attention import attention_adapters
+from .layers import LayerAdapter, _plain, adapter_for
 from .norm import NormDiagonalBlock, NormPairBlock
 
 # Blocks built from the generic rows a = inputs, g = output gradients (Linear, Conv1d, Conv2d).
@@ -23,7 +26,18 @@ LAYER_BLOCKS: Dict[str, Dict[str, Type[LayerCurvature]]] = {
                   "diag": EmbeddingDiagonalBlock},
     "layer_norm": _NORM_BLOCKS,
     "batch_norm": _NORM_BLOCKS,
+    "group_norm": _NORM_BLOCKS,
+    "instance_norm": _NORM_BLOCKS,
+    "rms_norm": _NORM_BLOCKS,
 }
+
+
+def adapters_for(module: nn.Module, name: str) -> List[LayerAdapter]:
+    """The adapters of every layer ``module`` applies itself (several for attention), ``[]`` if none."""
+    if _plain(module, nn.MultiheadAttention):
+        return attention_adapters(module, name)
+    layer = adapter_for(module, name)
+    return [] if layer is None else [layer]
 
 
 def block_class(layer: LayerAdapter, structure: str) -> Type[LayerCurvature]:
@@ -32,5 +46,11 @@ def block_class(layer: LayerAdapter, structure: str) -> Type[LayerCurvature]:
     return LAYER_BLOCKS.get(layer.kind, STRUCTURES)[structure]
 
 
+# Layers whose input is a constant: summing positions first ("reduce") gives their exact Fisher.
+_CONSTANT_INPUT_KINDS = ("attention_in_bias",)
+
+
 def make_block(layer: LayerAdapter, structure: str, state: dict, weight_sharing: str = "expand") -> LayerCurvature:
+    if layer.kind in _CONSTANT_INPUT_KINDS:
+        weight_sharing = "reduce"
     return block_class(layer, structure)(layer, state, weight_sharing=weight_sharing)
