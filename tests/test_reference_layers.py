@@ -37,17 +37,21 @@ def module_name(model, module):
     return next(name for name, m in model.named_modules() if m is module)
 
 
-def batch_jacobian(model, module, inputs):
-    """``{"weight": [N, O, *shape], "bias": ...}``: Jacobian of the flattened batch output in the layer's parameters."""
+def batch_jacobian(model, module, inputs, parameter_names=("weight", "bias")):
+    """``{"weight": [N, O, *shape], "bias": ...}``: Jacobian of the flattened batch output in the layer's parameters.
+
+    ``parameter_names``: the module's attributes that play weight and bias (e.g. ``in_proj_weight``).
+    """
     prefix = module_name(model, module)
-    names = ["weight"] + (["bias"] if getattr(module, "bias", None) is not None else [])
-    params = {(f"{prefix}.{k}" if prefix else k): getattr(module, k).detach() for k in names}
+    roles = {name: role for name, role in zip(parameter_names, ("weight", "bias"))
+             if getattr(module, name, None) is not None}
+    params = {(f"{prefix}.{k}" if prefix else k): getattr(module, k).detach() for k in roles}
 
     def output(p):
         return functional_call(model, p, (inputs,), strict=False).reshape(len(inputs), -1)
 
     jac = jacrev(output)(params)
-    return output(params).detach(), {k.rsplit(".", 1)[-1]: v for k, v in jac.items()}
+    return output(params).detach(), {roles[k.rsplit(".", 1)[-1]]: v for k, v in jac.items()}
 
 
 def block_ordered(kind, jac):
@@ -65,16 +69,16 @@ def block_ordered(kind, jac):
 
 
 def without_running_statistics(model):
-    """Batch norm on batch statistics only, as in training, minus the buffer updates torch.func refuses."""
+    """Batch (and instance) norm on batch statistics only, as in training, minus the buffer updates torch.func refuses."""
     for m in model.modules():
-        if isinstance(m, nn.modules.batchnorm._BatchNorm):
+        if isinstance(m, (nn.modules.batchnorm._BatchNorm, nn.modules.instancenorm._InstanceNorm)):
             m.track_running_stats, m.running_mean, m.running_var, m.num_batches_tracked = False, None, None, None
     return model
 
 
-def exact_fisher(model, module, inputs, kind, criterion):
+def exact_fisher(model, module, inputs, kind, criterion, parameter_names=("weight", "bias")):
     """The exact per-layer Fisher of a mean-reduced ``MSELoss`` or ``CrossEntropyLoss`` (training mode)."""
-    output, jac = batch_jacobian(model, module, inputs)
+    output, jac = batch_jacobian(model, module, inputs, parameter_names)
     jacobian = block_ordered(kind, jac).detach()
     if criterion == "mse":
         return 2.0 / output.numel() * torch.einsum("nop,noq->pq", jacobian, jacobian)
@@ -399,7 +403,7 @@ def pair_mask(channels, k):
 def randomize_affine(norm):
     with torch.no_grad():
         norm.weight.normal_(1.0, 0.5)
-        if norm.bias is not None:
+        if getattr(norm, "bias", None) is not None:
             norm.bias.normal_(0.0, 0.5)
 
 
@@ -435,7 +439,32 @@ def batch_norm_problem(kind, n=8, seed=51):
     return model, "1", inputs.double(), channels
 
 
+def channel_norm_problem(kind, n=6, seed=52):
+    """GroupNorm / InstanceNorm (affine) after a convolution, RMSNorm on sequence positions."""
+    torch.manual_seed(seed)
+    if kind == "rms":
+        norm = nn.RMSNorm(4)
+        model = nn.Sequential(nn.Linear(3, 4), norm, nn.Flatten(), nn.Tanh(), nn.Linear(5 * 4, 3))
+        inputs, channels = torch.randn(n, 5, 3), 4
+    else:
+        norm = {"group": nn.GroupNorm(2, 4), "instance2d": nn.InstanceNorm2d(4, affine=True)}.get(kind)
+        if kind == "instance1d":  # unused running statistics: training mode normalises by the input's own
+            norm = nn.InstanceNorm1d(4, affine=True, track_running_stats=True)
+            model = nn.Sequential(nn.Conv1d(2, 4, 2), norm, nn.Tanh(), nn.Flatten(), nn.Linear(4 * 5, 3))
+            inputs = torch.randn(n, 2, 6)
+        else:
+            model = nn.Sequential(nn.Conv2d(1, 4, 2), norm, nn.Tanh(), nn.Flatten(), nn.Linear(4 * 9, 3))
+            inputs = torch.randn(n, 1, 4, 4)
+        channels = 4
+    model = model.double()
+    randomize_affine(norm)
+    return model, "1", inputs.double(), channels
+
+
 NORM_PROBLEMS = {
+    "groupnorm": lambda: channel_norm_problem("group"),
+    "instancenorm2d": lambda: channel_norm_problem("instance2d"),
+    "instancenorm1d-running-stats": lambda: channel_norm_problem("instance1d"),
     "layernorm": lambda: layer_norm_problem((6,), True),
     "layernorm-nobias": lambda: layer_norm_problem((6,), False),
     "layernorm-2d-positions": lambda: layer_norm_problem((2, 3), True),
@@ -443,6 +472,8 @@ NORM_PROBLEMS = {
     "batchnorm1d-seq": lambda: batch_norm_problem("bn1d-seq"),
     "batchnorm2d": lambda: batch_norm_problem("bn2d"),
 }
+if hasattr(nn, "RMSNorm"):  # torch >= 2.4
+    NORM_PROBLEMS["rmsnorm"] = lambda: channel_norm_problem("rms")
 
 
 @pytest.mark.parametrize("problem", list(NORM_PROBLEMS))
@@ -453,7 +484,7 @@ def test_norm_blocks_equal_the_exact_fisher_restricted_to_channel_pairs(problem)
     # each channel's (gamma_c, beta_c) pair, the diagonal block exactly its diagonal.
     model, path, inputs, channels = NORM_PROBLEMS[problem]()
     targets = targets_for("ce", len(inputs))
-    k = 1 + int(model.get_submodule(path).bias is not None)
+    k = 1 + int(getattr(model.get_submodule(path), "bias", None) is not None)
     for structure in ("kfac", "ekfac", "diag"):
         reference, opt = reference_and_optimizer(copy.deepcopy(model), path, inputs, targets, "norm", "ce",
                                                  structure=structure)

@@ -268,13 +268,71 @@ class BatchNormLayer(_NormLayer):
         return grads.reshape(k, n, c, -1).transpose(2, 3)
 
 
+class GroupNormLayer(_NormLayer):
+    """``nn.GroupNorm`` with ``affine=True``: ``x_hat`` normalised per example and group, affine per channel."""
+
+    kind = "group_norm"
+
+    def input_rows(self, inputs):
+        normalized = F.group_norm(inputs, self.module.num_groups, eps=self.module.eps)
+        return normalized.reshape(inputs.shape[0], inputs.shape[1], -1).transpose(1, 2)
+
+    def output_rows(self, grads):
+        k, n, c = grads.shape[:3]
+        return grads.reshape(k, n, c, -1).transpose(2, 3)
+
+
+class InstanceNormLayer(GroupNormLayer):
+    """``nn.InstanceNorm1d/2d/3d`` with ``affine=True`` in training mode: one group per channel.
+
+    With ``track_running_stats=True`` training mode still normalises by the input's own
+    statistics, which is what the rows use.
+    """
+
+    kind = "instance_norm"
+
+    def _batched(self, tensor, extra):
+        unbatched = tensor.dim() - extra == self.module._get_no_batch_dim()
+        return tensor.unsqueeze(extra) if unbatched else tensor
+
+    def input_rows(self, inputs):
+        inputs = self._batched(inputs, 0)
+        normalized = F.instance_norm(inputs, eps=self.module.eps)
+        return normalized.reshape(inputs.shape[0], inputs.shape[1], -1).transpose(1, 2)
+
+    def output_rows(self, grads):
+        return super().output_rows(self._batched(grads, 1))
+
+
+class RMSNormLayer(LayerNormLayer):
+    """``nn.RMSNorm`` (torch >= 2.4): ``y = gamma x / rms(x)``, a weight and no bias."""
+
+    kind = "rms_norm"
+
+    def __init__(self, module, name):
+        self.module, self.name, self.weight, self.bias = module, name, module.weight, None
+
+    def input_rows(self, inputs):
+        module = self.module
+        inputs = self._batched(inputs, 0)
+        normalized = F.rms_norm(inputs, module.normalized_shape, eps=module.eps)
+        return normalized.reshape(inputs.shape[0], -1, self.out_dim)
+
+
 def _plain(module: nn.Module, cls) -> bool:
     """An instance of ``cls`` that computes what ``cls`` computes (subclasses may change the forward)."""
     return isinstance(module, cls) and type(module).forward is cls.forward
 
 
+# nn.MultiheadAttention's out_proj: its forward never runs; blocks/attention.py adapts it with its owner.
+_ATTENTION_OUTPUT = getattr(nn.modules.linear, "NonDynamicallyQuantizableLinear", None)
+_RMS_NORM = getattr(nn, "RMSNorm", None)  # torch >= 2.4
+
+
 def adapter_for(module: nn.Module, name: str) -> Optional[LayerAdapter]:
     """The adapter for a supported layer, ``None`` (with a warning where useful) otherwise."""
+    if _ATTENTION_OUTPUT is not None and type(module) is _ATTENTION_OUTPUT:
+        return None
     if _plain(module, nn.Linear):
         return LinearLayer(module, name)
     for cls, adapter in ((nn.Conv2d, Conv2dLayer), (nn.Conv1d, Conv1dLayer)):
@@ -291,6 +349,13 @@ def adapter_for(module: nn.Module, name: str) -> Optional[LayerAdapter]:
     if isinstance(module, (nn.BatchNorm1d, nn.BatchNorm2d, nn.BatchNorm3d)) \
             and type(module).forward is nn.modules.batchnorm._BatchNorm.forward and module.affine:
         return BatchNormLayer(module, name)
+    if _plain(module, nn.GroupNorm) and module.affine:
+        return GroupNormLayer(module, name)
+    if isinstance(module, nn.modules.instancenorm._InstanceNorm) \
+            and type(module).forward is nn.modules.instancenorm._InstanceNorm.forward and module.affine:
+        return InstanceNormLayer(module, name)
+    if _RMS_NORM is not None and _plain(module, _RMS_NORM) and module.weight is not None:
+        return RMSNormLayer(module, name)
     return None
 
 
