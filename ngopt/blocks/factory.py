@@ -9,6 +9,7 @@ from .base import LayerCurvature
 from .diagonal import DiagonalBlock
 from .eigenbasis import EigenbasisBlock
 from .embedding import EmbeddingDiagonalBlock, EmbeddingEigenbasisBlock, EmbeddingKroneckerBlock
+from .grouped import GroupedDiagonalBlock, GroupedEigenbasisBlock, GroupedKroneckerBlock
 from .kronecker import KroneckerBlock
 from .attention import attention_adapters
 from .layers import LayerAdapter, _plain, adapter_for
@@ -21,11 +22,15 @@ STRUCTURES: Dict[str, Type[LayerCurvature]] = {
 # Layer kinds whose curvature has a structure of its own: {layer kind: {structure: block class}}.
 # Norm layers: "kfac" and "ekfac" both give the exact per-channel 2x2 blocks (blocks/norm.py).
 _NORM_BLOCKS = {"kfac": NormPairBlock, "ekfac": NormPairBlock, "diag": NormDiagonalBlock}
+# Grouped convolutions: a block-diagonal output factor, one input factor shared by the groups (blocks/grouped.py).
+_GROUPED_BLOCKS = {"kfac": GroupedKroneckerBlock, "ekfac": GroupedEigenbasisBlock, "diag": GroupedDiagonalBlock}
 LAYER_BLOCKS: Dict[str, Dict[str, Type[LayerCurvature]]] = {
     "embedding": {"kfac": EmbeddingKroneckerBlock, "ekfac": EmbeddingEigenbasisBlock,
                   "diag": EmbeddingDiagonalBlock},
     "layer_norm": _NORM_BLOCKS,
     "batch_norm": _NORM_BLOCKS,
+    "grouped_conv1d": _GROUPED_BLOCKS,
+    "grouped_conv2d": _GROUPED_BLOCKS,
     "group_norm": _NORM_BLOCKS,
     "instance_norm": _NORM_BLOCKS,
     "rms_norm": _NORM_BLOCKS,

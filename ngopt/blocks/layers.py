@@ -94,7 +94,7 @@ class LinearLayer(LayerAdapter):
 
 
 class _ConvolutionLayer(LayerAdapter):
-    """Convolutions with ``groups=1`` (KFC): rows are input patches at every output position."""
+    """Convolutions (KFC): rows are input patches at every output position."""
 
     spatial_dims = 2
 
@@ -114,13 +114,17 @@ class _ConvolutionLayer(LayerAdapter):
     def _patches(self, padded):
         raise NotImplementedError
 
-    def input_rows(self, inputs):
+    def _patch_rows(self, inputs):
+        """``[N, L, C*prod(kernel)]``: the input patch at every output position."""
         module = self.module
         if inputs.dim() == self.spatial_dims + 1:  # unbatched
             inputs = inputs.unsqueeze(0)
         mode = "constant" if module.padding_mode == "zeros" else module.padding_mode
         padded = F.pad(inputs, self._explicit_padding(), mode=mode)
-        return self._append_ones(self._patches(padded).transpose(1, 2))  # [N, L, C*prod(kernel)]
+        return self._patches(padded).transpose(1, 2)
+
+    def input_rows(self, inputs):
+        return self._append_ones(self._patch_rows(inputs))
 
     def output_rows(self, grads):
         if grads.dim() == self.spatial_dims + 2:  # unbatched output [K, C, *spatial]
@@ -130,7 +134,7 @@ class _ConvolutionLayer(LayerAdapter):
 
 
 class Conv2dLayer(_ConvolutionLayer):
-    """``nn.Conv2d`` with ``groups=1``."""
+    """``nn.Conv2d`` with ``groups=1`` (``groups > 1``: ``GroupedConv2dLayer``)."""
 
     kind = "conv2d"
 
@@ -149,6 +153,31 @@ class Conv1dLayer(_ConvolutionLayer):
         module = self.module
         return F.unfold(padded.unsqueeze(2), (1, module.kernel_size[0]), dilation=(1, module.dilation[0]),
                         stride=(1, module.stride[0]))
+
+
+class _GroupedRows:
+    """Convolutions with ``groups > 1``: rows per group, ``[N, L, groups, d (+1)]`` and ``[K, N, L, groups, o]``.
+
+    ``d = C_in / groups * prod(kernel)``: the patch of a group's own input channels (the
+    patch's channel-major order puts them next to each other); ``o = C_out / groups``.
+    """
+
+    def input_rows(self, inputs):
+        patches = self._patch_rows(inputs)
+        groups = self.module.groups
+        return self._append_ones(patches.reshape(patches.shape[0], patches.shape[1], groups, -1))
+
+    def output_rows(self, grads):
+        rows = super().output_rows(grads)
+        return rows.reshape(rows.shape[:-1] + (self.module.groups, -1))
+
+
+class GroupedConv2dLayer(_GroupedRows, Conv2dLayer):
+    kind = "grouped_conv2d"
+
+
+class GroupedConv1dLayer(_GroupedRows, Conv1dLayer):
+    kind = "grouped_conv1d"
 
 
 class EmbeddingLayer(LayerAdapter):
@@ -335,13 +364,10 @@ def adapter_for(module: nn.Module, name: str) -> Optional[LayerAdapter]:
         return None
     if _plain(module, nn.Linear):
         return LinearLayer(module, name)
-    for cls, adapter in ((nn.Conv2d, Conv2dLayer), (nn.Conv1d, Conv1dLayer)):
+    for cls, adapter, grouped in ((nn.Conv2d, Conv2dLayer, GroupedConv2dLayer),
+                                  (nn.Conv1d, Conv1dLayer, GroupedConv1dLayer)):
         if _plain(module, cls):
-            if module.groups != 1:
-                warnings.warn(f"{name}: {cls.__name__} with groups={module.groups} has no Kronecker block; "
-                              "its parameters use the fallback rule", stacklevel=3)
-                return None
-            return adapter(module, name)
+            return adapter(module, name) if module.groups == 1 else grouped(module, name)
     if _plain(module, nn.Embedding):
         return _embedding_adapter(module, name)
     if _plain(module, nn.LayerNorm) and module.weight is not None:
