@@ -56,8 +56,9 @@ class FisherDescent(torch.optim.Optimizer):
 
     Args:
         model: the ``nn.Module`` being trained. Its ``nn.Linear``, ``nn.Conv1d``/``nn.Conv2d``
-            (groups=1), ``nn.Embedding``, ``nn.LayerNorm`` and ``nn.BatchNorm*`` layers get
-            curvature blocks; other parameters use ``fallback``.
+            (grouped too), ``nn.Embedding``, ``nn.MultiheadAttention`` (so torch's transformer
+            layers), ``nn.LayerNorm``, ``nn.BatchNorm*``, ``nn.GroupNorm``, ``nn.InstanceNorm*``
+            (affine) and ``nn.RMSNorm`` layers get curvature blocks; other parameters use ``fallback``.
         loss_fn: the training criterion object with its own reduction (needed for
             ``fisher='sampled'`` and ``'exact'``).
         lr: step size on the preconditioned direction (per group).

@@ -30,7 +30,14 @@ def _groups(block) -> int:
     return block.layer.module.groups
 
 
+def _describe(block) -> str:
+    layer = block.layer
+    return f"{layer.kind} {block.structure} [{layer.out_dim} x {layer.in_dim}] ({_groups(block)} groups)"
+
+
 class GroupedKroneckerBlock(KroneckerBlock):
+    describe = _describe
+
     def batch_statistics(self, num_forwards):
         if not self.pending:
             return None
@@ -57,6 +64,7 @@ def _per_example_square_sum(input_rows, grad_rows):
 
 class GroupedDiagonalBlock(DiagonalBlock):
     square_sum = staticmethod(_per_example_square_sum)
+    describe = _describe
 
 
 class GroupedEigenbasisBlock(GroupedKroneckerBlock, EigenbasisBlock):
