@@ -508,8 +508,9 @@ class FisherDescent(torch.optim.Optimizer):
                    "used outside the layer's own forward (e.g. a functional call such as F.linear(x, "
                    "layer.weight)), or their output does not reach the model output the loss is applied to")
         else:
-            why = ("this step's forward/backward was not recorded: the model ran in eval() mode, under "
-                   "torch.no_grad(), under opt.no_capture(), or after remove_hooks()")
+            why = ("no layer call of this step's forward/backward was recorded: the model ran in eval() mode, "
+                   "under torch.no_grad() or opt.no_capture(), after remove_hooks(), or its layers' parameters "
+                   "are used outside the layers' own forward")
         raise RuntimeError(f"{names}: a gradient but no curvature statistics after a refresh was due; {why}. "
                            "Train such parameters with another optimizer (leave them out of this one's "
                            "param_groups), or call the layer as a module in a recorded training forward.")
