@@ -74,7 +74,7 @@ def forward_backward(model, inputs, seed=81):
     output = model(inputs)
     loss = output.square().sum() + (0.0 if model.weights is None else model.weights.square().sum())
     loss.backward()
-    return output.detach(), {name: p.grad.clone() for name, p in model.named_parameters()}
+    return output.detach(), {name: p.grad.clone() for name, p in model.named_parameters() if p.grad is not None}
 
 
 def quiet_optimizer(model, loss_fn=None, **options):
@@ -119,6 +119,25 @@ def test_capture_leaves_outputs_and_gradients_bit_identical(setting):
     if "bias" not in setting and "kdim" in setting:
         expected.add("attention.in_proj_bias")
     assert set(opt.blocks) == expected
+
+
+@pytest.mark.parametrize("mode, options", [("kv", {}), ("qkv", dict(kdim=5, vdim=3))])
+def test_frozen_in_projections_leave_the_output_projection_its_block(mode, options):
+    torch.manual_seed(89)
+    model = Attention(mode, masks=True, **options).double()
+    for name, param in model.attention.named_parameters():
+        param.requires_grad_(name.startswith("out_proj"))
+    inputs = attention_inputs()
+    reference = forward_backward(copy.deepcopy(model), inputs)
+    opt = quiet_optimizer(model, fisher="empirical")
+    captured = forward_backward(model, inputs)
+    assert torch.equal(captured[0], reference[0])
+    assert set(captured[1]) == {"attention.out_proj.weight", "attention.out_proj.bias"}
+    for name, grad in reference[1].items():
+        assert torch.equal(captured[1][name], grad), name
+    assert list(opt.blocks) == ["attention.out_proj"]
+    opt.step()
+    assert opt.blocks["attention.out_proj"].has_statistics
 
 
 def recorded_attention(model, inputs, structure, **options):

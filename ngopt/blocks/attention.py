@@ -135,7 +135,7 @@ class _Recorder(TorchFunctionMode):
     def project_in(self, inputs, weight, bias, offset):
         """One in-projection call; ``offset``: its first row in the packed ``[3E, ...]`` layout."""
         output = F.linear(inputs, weight, bias)
-        if "attention_in" in self.blocks:
+        if self.owner._qkv_same_embed_dim:
             return self._record("attention_in", inputs, output, offset)
         letter = "qkv"[offset // output.shape[-1]]  # separate weights: one call per projection
         output = self._record(f"attention_{letter}", inputs, output)
