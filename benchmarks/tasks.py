@@ -194,6 +194,34 @@ def corpus_transformer() -> TinyTransformer:
     return TinyTransformer(corpus.VOCABULARY, corpus.SEQUENCE_LENGTH, **TRANSFORMER_SHAPE)
 
 
+class TorchLayersTransformer(nn.Module):
+    """The same language model built from torch's own layers: ``nn.TransformerEncoderLayer``
+    (pre-norm, GELU, no dropout) with a causal mask, so the attention is ``nn.MultiheadAttention``
+    with its packed in-projection; logits ``[n, vocabulary, T]`` as for ``TinyTransformer``.
+    """
+
+    def __init__(self, vocabulary: int, max_length: int, width: int, heads: int, hidden: int, depth: int):
+        super().__init__()
+        self.tokens = nn.Embedding(vocabulary, width)
+        self.positions = nn.Embedding(max_length, width)
+        layer = nn.TransformerEncoderLayer(width, heads, dim_feedforward=hidden, dropout=0.0, activation="gelu",
+                                           batch_first=True, norm_first=True)
+        self.blocks = nn.TransformerEncoder(layer, depth, enable_nested_tensor=False)
+        self.norm = nn.LayerNorm(width)
+        self.read_out = nn.Linear(width, vocabulary)
+        self.register_buffer("causal", nn.Transformer.generate_square_subsequent_mask(max_length), persistent=False)
+
+    def forward(self, tokens: torch.Tensor) -> torch.Tensor:
+        n, t = tokens.shape
+        positions = torch.arange(t, device=tokens.device).expand(n, t)
+        h = self.blocks(self.tokens(tokens) + self.positions(positions), mask=self.causal[:t, :t], is_causal=True)
+        return self.read_out(self.norm(h)).transpose(1, 2)
+
+
+def corpus_torch_transformer() -> TorchLayersTransformer:
+    return TorchLayersTransformer(corpus.VOCABULARY, corpus.SEQUENCE_LENGTH, **TRANSFORMER_SHAPE)
+
+
 def accuracy(outputs: torch.Tensor, labels: torch.Tensor) -> float:
     """Share of argmax predictions over class dim 1 that match; for sequences, over every position."""
     return (outputs.argmax(dim=1) == labels).float().mean().item()
@@ -228,6 +256,12 @@ LANGUAGE_MODEL_REASON = (
     "Measured: ngopt (lr 0.3) reached it in 237 steps and adam (lr 0.01) in 246 of the 300 quick "
     "steps; sgd (lr 0.3) ended at 2.31"
 )
+
+# `python -m benchmarks --quick --threads 1 --tasks corpus_torch_transformer` (commit d5e870a, 2 cores,
+# load average up to 17.6; medians over 3 seeds).
+TORCH_LAYERS_REASON = "the same target as corpus_transformer, for the same reason: " + LANGUAGE_MODEL_REASON.split(
+    ". Measured:")[0] + (". Measured: ngopt (lr 0.3) reached it in 210 steps and adam (lr 0.01) in 228 of the 300 "
+                         "quick steps; sgd (lr 0.3) ended at 2.32")
 
 
 TASKS: dict[str, Task] = {
@@ -348,6 +382,21 @@ TASKS: dict[str, Task] = {
             metric="accuracy",
             target_loss=2.0,
             target_reason=LANGUAGE_MODEL_REASON,
+            batch_size=64,
+            steps=1000,
+            quick_steps=300,
+        ),
+        Task(
+            name="corpus_torch_transformer",
+            description="corpus_transformer's language model and data, the blocks built from torch's own "
+            "nn.TransformerEncoderLayer (pre-norm, GELU, causal mask; nn.MultiheadAttention with its packed "
+            "in-projection)",
+            load_data=datasets.next_tokens,
+            build_model=corpus_torch_transformer,
+            make_loss=nn.CrossEntropyLoss,
+            metric="accuracy",
+            target_loss=2.0,
+            target_reason=TORCH_LAYERS_REASON,
             batch_size=64,
             steps=1000,
             quick_steps=300,

@@ -36,7 +36,7 @@ import time
 import warnings
 import weakref
 from dataclasses import dataclass, field
-from typing import Callable, Dict, List, Optional, Tuple
+from typing import Callable, Dict, Iterable, List, Optional, Tuple
 
 import torch
 from torch import nn
@@ -70,6 +70,11 @@ class LayerCall:
     output: Optional[torch.Tensor]
     # (grad rows, scale, index of the criterion call they come from); one entry per Fisher pass
     grads: List[Tuple[torch.Tensor, float, int]] = field(default_factory=list)
+    # Output gradients -> rows, when the call covers part of its layer (default: block.layer.output_rows).
+    output_rows: Optional[Callable[[torch.Tensor], torch.Tensor]] = None
+
+    def rows_of(self, grads: torch.Tensor) -> torch.Tensor:
+        return (self.output_rows or self.block.layer.output_rows)(grads)
 
 
 @dataclass
@@ -169,9 +174,19 @@ def batched_output_grads(output: torch.Tensor, targets: List[torch.Tensor],
 class CaptureHooks:
     """Installs the hooks on ``model`` (and ``loss_fn``) and collects finished records for the optimizer."""
 
-    def __init__(self, model: nn.Module, blocks: Dict[nn.Module, LayerCurvature],
+    def __init__(self, model: nn.Module, blocks: Iterable[LayerCurvature],
                  source: Optional[FisherSource], loss_fn=None):
-        self.blocks = blocks
+        # Layers a module hook sees, by module; layers applied inside another module's forward
+        # (attention projections, blocks/attention.py) by that owner, which installs its own hooks.
+        self.blocks: Dict[nn.Module, LayerCurvature] = {}
+        owned: Dict[nn.Module, List[LayerCurvature]] = {}
+        for block in blocks:
+            owner = getattr(block.layer, "owner", None)
+            if owner is None:
+                self.blocks[block.layer.module] = block
+            else:
+                owned.setdefault(owner, []).append(block)
+        self._all_blocks = list(self.blocks.values()) + [b for group in owned.values() for b in group]
         self.source = source          # None means the empirical Fisher
         self.loss_fn = loss_fn
         self.armed = True
@@ -188,8 +203,10 @@ class CaptureHooks:
                           stacklevel=4)
         _HOOKED_MODELS[model] = weakref.ref(self)
         self._handles = [model.register_forward_pre_hook(run_eagerly(self._model_pre_hook))]
-        for module in blocks:
+        for module in self.blocks:
             self._handles.append(module.register_forward_hook(run_eagerly(self._layer_hook)))
+        for owner, group in owned.items():
+            self._handles += group[0].layer.install_capture(owner, group, self)
         # Last, so that it runs after the layer hooks even when the model is itself a layer.
         self._handles.append(model.register_forward_hook(run_eagerly(self._model_post_hook)))
         if isinstance(loss_fn, nn.Module):
@@ -212,13 +229,22 @@ class CaptureHooks:
             self._current = ForwardRecord(examples=first.shape[0] if first is not None and first.dim() else 0)
 
     def _layer_hook(self, module, inputs, output):
-        record = self._current
-        if record is None or module not in self.blocks or not module.training or not isinstance(output, torch.Tensor) \
-                or not output.requires_grad:
+        if self._current is None or module not in self.blocks or not module.training \
+                or not isinstance(output, torch.Tensor) or not output.requires_grad:
             return None
+        return self.record_call(self.blocks[module], inputs[0], output)
+
+    @property
+    def recording(self) -> bool:
+        """Whether a forward due a refresh is being recorded (for layers that install their own hooks)."""
+        return self._current is not None
+
+    def record_call(self, block: LayerCurvature, layer_input: torch.Tensor, output: torch.Tensor,
+                    output_rows=None) -> torch.Tensor:
+        """Record one call of ``block``'s layer; returns the copy of ``output`` the network goes on with."""
+        record = self._current
         started = time.perf_counter()
-        block = self.blocks[module]
-        call = LayerCall(block, block.layer.input_rows(inputs[0].detach()), output)
+        call = LayerCall(block, block.layer.input_rows(layer_input.detach()), output, output_rows=output_rows)
         record.calls.append(call)
         if self.source is None:
             record.handles.append(output.register_hook(lambda grad, call=call: self._empirical_grad(call, grad)))
@@ -273,7 +299,7 @@ class CaptureHooks:
     def _empirical_grad(self, call: LayerCall, grad: torch.Tensor):
         if call.grads and call.grads[0][0] is None:
             _, scale, index = call.grads[0]
-            call.grads[0] = (call.block.layer.output_rows(grad.detach().unsqueeze(0)), scale, index)
+            call.grads[0] = (call.rows_of(grad.detach().unsqueeze(0)), scale, index)
         return None
 
     def _loss_grad(self, record: ForwardRecord, criterion_call: CriterionCall, grad: torch.Tensor):
@@ -297,7 +323,7 @@ class CaptureHooks:
             grads = batched_output_grads(z, outputs, vectors)
             for call, g in zip(record.calls, grads):
                 if g is not None:
-                    call.grads.append((call.block.layer.output_rows(g.detach()), scale, index))
+                    call.grads.append((call.rows_of(g.detach()), scale, index))
         self.seconds["extra_backward"] += time.perf_counter() - started
         record.drop_tensors()
 
@@ -335,5 +361,5 @@ class CaptureHooks:
         for record in self.records:
             record.release()
         self.records.clear()
-        for block in self.blocks.values():
+        for block in self._all_blocks:
             block.clear_pending()

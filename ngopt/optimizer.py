@@ -37,8 +37,7 @@ from torch import nn
 
 from . import fallback as fallback_rules
 from .blocks.base import LayerCurvature
-from .blocks.factory import STRUCTURES, make_block
-from .blocks.layers import adapter_for
+from .blocks.factory import STRUCTURES, adapters_for, make_block
 from .capture import CaptureHooks, FisherSource
 from .likelihoods import likelihood_for
 from .quadratic_model import BatchEvaluator
@@ -55,6 +54,7 @@ DEFAULT_FALLBACK_LR_SCALE = {"sgd": 1.0, "adam": 1e-2}
 # Defaults that depend on the step rule: under "quadratic" lr multiplies the step the model chooses
 # and momentum caps mu; under "fixed" they are the step size and heavy-ball coefficient themselves.
 RULE_DEFAULTS = {"quadratic": {"lr": 1.0, "momentum": 0.9}, "fixed": {"lr": 0.3, "momentum": 0.5}}
+FALLBACK_WARNING_SHARE = 0.1  # warn at construction when more of the trainable parameters have no block
 
 
 class FisherDescent(torch.optim.Optimizer):
@@ -64,8 +64,9 @@ class FisherDescent(torch.optim.Optimizer):
 
     Args:
         model: the ``nn.Module`` being trained. Its ``nn.Linear``, ``nn.Conv1d``/``nn.Conv2d``
-            (groups=1), ``nn.Embedding``, ``nn.LayerNorm`` and ``nn.BatchNorm*`` layers get
-            curvature blocks; other parameters use ``fallback``.
+            (grouped too), ``nn.Embedding``, ``nn.MultiheadAttention`` (so torch's transformer
+            layers), ``nn.LayerNorm``, ``nn.BatchNorm*``, ``nn.GroupNorm``, ``nn.InstanceNorm*``
+            (affine) and ``nn.RMSNorm`` layers get curvature blocks; other parameters use ``fallback``.
         loss_fn: the training criterion object with its own reduction (needed for
             ``fisher='sampled'`` and ``'exact'``).
         lr: step size on the preconditioned direction (per group).
@@ -166,14 +167,13 @@ class FisherDescent(torch.optim.Optimizer):
         self._skipped = {reason: 0 for reason in SKIP_REASONS}
         self._times = {key: 0.0 for key in TIME_KEYS}
         self._last_update: dict = {}
-        self._warned_uninitialised = False
         self._warned_criterion = False
         self._warned_replay = False
         self._applied: dict = {}
 
         self.blocks: Dict[str, LayerCurvature] = self._build_blocks()
-        self._hooks = CaptureHooks(self.model, {b.layer.module: b for b in self.blocks.values()}, source,
-                                   loss_fn)
+        self._warn_fallback_share()
+        self._hooks = CaptureHooks(self.model, list(self.blocks.values()), source, loss_fn)
         self._hooks.armed = True
         self._recorder = BatchRecorder(self.model, loss_fn)
         self._recorder.armed = self._batch_due(0)
@@ -193,14 +193,14 @@ class FisherDescent(torch.optim.Optimizer):
                 # The finiteness checks and the fallback rules work on dense gradients only.
                 raise ValueError(f"{name}: nn.EmbeddingBag(sparse=True) is not supported (sparse gradients); "
                                  "use sparse=False or freeze it")
-            layer = adapter_for(module, name or type(module).__name__)
-            if layer is None or not layer.weight.requires_grad or layer.weight not in group_of:
-                continue
-            if layer.has_bias and not layer.bias.requires_grad:
-                layer.bias = None  # a frozen bias is left alone; the block covers the weight only
-            if layer.has_bias and group_of.get(layer.bias) != group_of[layer.weight]:
-                raise ValueError(f"param_groups: {name}.weight and {name}.bias must be in the same group")
-            layers.append(layer)
+            for layer in adapters_for(module, name or type(module).__name__):
+                if not layer.weight.requires_grad or layer.weight not in group_of:
+                    continue
+                if layer.has_bias and not layer.bias.requires_grad:
+                    layer.bias = None  # a frozen bias is left alone; the block covers the weight only
+                if layer.has_bias and group_of.get(layer.bias) != group_of[layer.weight]:
+                    raise ValueError(f"param_groups: {layer.name}: its weight and bias must be in the same group")
+                layers.append(layer)
         blocks: Dict[str, LayerCurvature] = {}
         for layer in _without_tied_parameters(layers):
             blocks[layer.name] = make_block(layer, self.structure, self.state[layer.weight],
@@ -208,6 +208,30 @@ class FisherDescent(torch.optim.Optimizer):
         self._block_group = {b: group_of[b.layer.weight] for b in blocks.values()}
         self._block_params = {p for b in blocks.values() for p in b.layer.params()}
         return blocks
+
+    def _fallback_parameters_by_kind(self) -> Dict[str, int]:
+        """Trainable parameters outside every block, counted by the class of the module that holds them."""
+        holder = {}
+        for module in self.model.modules():
+            for param in module.parameters(recurse=False):
+                holder.setdefault(param, type(module).__name__)
+        counts: Dict[str, int] = {}
+        for group in self.param_groups:
+            for param in group["params"]:
+                if param.requires_grad and param not in self._block_params:
+                    kind = holder.get(param, "outside the model")
+                    counts[kind] = counts.get(kind, 0) + param.numel()
+        return dict(sorted(counts.items(), key=lambda item: -item[1]))
+
+    def _warn_fallback_share(self) -> None:
+        counts = self._fallback_parameters_by_kind()
+        outside = sum(counts.values())
+        total = sum(p.numel() for g in self.param_groups for p in g["params"] if p.requires_grad)
+        if total and outside > FALLBACK_WARNING_SHARE * total:
+            kinds = ", ".join(f"{kind} {count}" for kind, count in counts.items())
+            warnings.warn(f"{outside / total:.0%} of the trainable parameters ({outside} of {total}) have no "
+                          f"curvature block and take the fallback rule: {kinds}. print(opt) lists the blocks; "
+                          "the README's layer table lists the layer kinds with a block", stacklevel=3)
 
     def _generator_for(self, device: torch.device) -> torch.Generator:
         if self._generator is None or self._generator.device != device:
@@ -229,7 +253,9 @@ class FisherDescent(torch.optim.Optimizer):
         others = [p for g in self.param_groups for p in g["params"] if p not in self._block_params]
         if others:
             count = sum(p.numel() for p in others)
-            lines.append(f"  fallback rule: {len(others)} tensors, {count} parameters")
+            kinds = ", ".join(f"{kind} {n}" for kind, n in self._fallback_parameters_by_kind().items())
+            lines.append(f"  fallback rule: {len(others)} tensors, {count} parameters"
+                         + (f" ({kinds})" if kinds else ""))
         return "\n".join(lines)
 
     # ------------------------------------------------------------------ the step
@@ -406,6 +432,7 @@ class FisherDescent(torch.optim.Optimizer):
         """Every block's gradient matrix and preconditioned gradient, with their dot products."""
         directions = {}
         per_group: Dict[int, List] = {}
+        missing: List[LayerCurvature] = []  # blocks with a gradient and still no curvature
         for block in self.blocks.values():
             layer = block.layer
             if layer.weight.grad is None:
@@ -422,7 +449,7 @@ class FisherDescent(torch.optim.Optimizer):
             if all(key in view for key in block.inverse_keys):
                 proposal = block.precondition(grad_matrix, group["damping"], view)
             else:
-                self._warn_uninitialised(layer.name)
+                missing.append(block)
                 proposal = grad_matrix
             directions[block] = (grad_matrix, proposal)
             per_group.setdefault(self._block_group[block], []).append(block)
@@ -439,6 +466,7 @@ class FisherDescent(torch.optim.Optimizer):
                 return None
             values = sums.tolist()
             dots = {block: tuple(values[3 * i:3 * i + 3]) for i, block in enumerate(order)}
+            self._refuse_blocks_without_statistics([b for b in missing if dots[b][2] > 0.0], bool(statistics))
         average = self.communicator.average_scalars if self.communicator is not None else (lambda *v: v)
         return StepInputs(self.param_groups, per_group, directions, dots, step_index, average=average)
 
@@ -479,11 +507,25 @@ class FisherDescent(torch.optim.Optimizer):
             step = group["lr"] * group["fallback_lr_scale"]
             torch._foreach_add_(params, directions, alpha=-step)
 
-    def _warn_uninitialised(self, name: str) -> None:
-        if not self._warned_uninitialised:
-            warnings.warn(f"{name}: no curvature statistics yet (no recorded training forward/backward); "
-                          "taking a plain gradient step for it", stacklevel=4)
-            self._warned_uninitialised = True
+    def _refuse_blocks_without_statistics(self, blocks: List[LayerCurvature], recorded: bool) -> None:
+        """A nonzero gradient on a block that a due refresh left without statistics is an error.
+
+        Raised before anything is written, so the step leaves weights and state as they were.
+        """
+        if not blocks:
+            return
+        names = ", ".join(f"{b.layer.name} ({b.layer.kind})" for b in blocks)
+        if recorded:
+            why = ("the capture hooks recorded this step's forward but not these layers: their parameters are "
+                   "used outside the layer's own forward (e.g. a functional call such as F.linear(x, "
+                   "layer.weight)), or their output does not reach the model output the loss is applied to")
+        else:
+            why = ("no layer call of this step's forward/backward was recorded: the model ran in eval() mode, "
+                   "under torch.no_grad() or opt.no_capture(), after remove_hooks(), or its layers' parameters "
+                   "are used outside the layers' own forward")
+        raise RuntimeError(f"{names}: a gradient but no curvature statistics after a refresh was due; {why}. "
+                           "Train such parameters with another optimizer (leave them out of this one's "
+                           "param_groups), or call the layer as a module in a recorded training forward.")
 
     def _warn_criterion_not_called(self) -> None:
         if self._warned_criterion:

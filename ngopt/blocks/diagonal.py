@@ -36,6 +36,7 @@ class DiagonalBlock(LayerCurvature):
     structure = "diag"
     statistic_keys = ("fisher_diagonal",)
     inverse_keys = ("fisher_diagonal",)
+    square_sum = staticmethod(per_example_square_sum)  # of the layer kind's rows
 
     def batch_statistics(self, num_forwards):
         if not self.pending:
@@ -43,7 +44,7 @@ class DiagonalBlock(LayerCurvature):
         dtype = self.layer.weight.dtype
         total = None
         for input_rows, grad_rows, scale in self.calls_joined_per_forward():
-            term = per_example_square_sum(input_rows.to(dtype), grad_rows.to(dtype)) * scale
+            term = self.square_sum(input_rows.to(dtype), grad_rows.to(dtype)) * scale
             total = term if total is None else total + term
         return {"fisher_diagonal": total / num_forwards}
 

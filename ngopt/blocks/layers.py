@@ -94,7 +94,7 @@ class LinearLayer(LayerAdapter):
 
 
 class _ConvolutionLayer(LayerAdapter):
-    """Convolutions with ``groups=1`` (KFC): rows are input patches at every output position."""
+    """Convolutions (KFC): rows are input patches at every output position."""
 
     spatial_dims = 2
 
@@ -114,13 +114,17 @@ class _ConvolutionLayer(LayerAdapter):
     def _patches(self, padded):
         raise NotImplementedError
 
-    def input_rows(self, inputs):
+    def _patch_rows(self, inputs):
+        """``[N, L, C*prod(kernel)]``: the input patch at every output position."""
         module = self.module
         if inputs.dim() == self.spatial_dims + 1:  # unbatched
             inputs = inputs.unsqueeze(0)
         mode = "constant" if module.padding_mode == "zeros" else module.padding_mode
         padded = F.pad(inputs, self._explicit_padding(), mode=mode)
-        return self._append_ones(self._patches(padded).transpose(1, 2))  # [N, L, C*prod(kernel)]
+        return self._patches(padded).transpose(1, 2)
+
+    def input_rows(self, inputs):
+        return self._append_ones(self._patch_rows(inputs))
 
     def output_rows(self, grads):
         if grads.dim() == self.spatial_dims + 2:  # unbatched output [K, C, *spatial]
@@ -130,7 +134,7 @@ class _ConvolutionLayer(LayerAdapter):
 
 
 class Conv2dLayer(_ConvolutionLayer):
-    """``nn.Conv2d`` with ``groups=1``."""
+    """``nn.Conv2d`` with ``groups=1`` (``groups > 1``: ``GroupedConv2dLayer``)."""
 
     kind = "conv2d"
 
@@ -149,6 +153,31 @@ class Conv1dLayer(_ConvolutionLayer):
         module = self.module
         return F.unfold(padded.unsqueeze(2), (1, module.kernel_size[0]), dilation=(1, module.dilation[0]),
                         stride=(1, module.stride[0]))
+
+
+class _GroupedRows:
+    """Convolutions with ``groups > 1``: rows per group, ``[N, L, groups, d (+1)]`` and ``[K, N, L, groups, o]``.
+
+    ``d = C_in / groups * prod(kernel)``: the patch of a group's own input channels (the
+    patch's channel-major order puts them next to each other); ``o = C_out / groups``.
+    """
+
+    def input_rows(self, inputs):
+        patches = self._patch_rows(inputs)
+        groups = self.module.groups
+        return self._append_ones(patches.reshape(patches.shape[0], patches.shape[1], groups, -1))
+
+    def output_rows(self, grads):
+        rows = super().output_rows(grads)
+        return rows.reshape(rows.shape[:-1] + (self.module.groups, -1))
+
+
+class GroupedConv2dLayer(_GroupedRows, Conv2dLayer):
+    kind = "grouped_conv2d"
+
+
+class GroupedConv1dLayer(_GroupedRows, Conv1dLayer):
+    kind = "grouped_conv1d"
 
 
 class EmbeddingLayer(LayerAdapter):
@@ -268,22 +297,77 @@ class BatchNormLayer(_NormLayer):
         return grads.reshape(k, n, c, -1).transpose(2, 3)
 
 
+class GroupNormLayer(_NormLayer):
+    """``nn.GroupNorm`` with ``affine=True``: ``x_hat`` normalised per example and group, affine per channel."""
+
+    kind = "group_norm"
+
+    def input_rows(self, inputs):
+        normalized = F.group_norm(inputs, self.module.num_groups, eps=self.module.eps)
+        return normalized.reshape(inputs.shape[0], inputs.shape[1], -1).transpose(1, 2)
+
+    def output_rows(self, grads):
+        k, n, c = grads.shape[:3]
+        return grads.reshape(k, n, c, -1).transpose(2, 3)
+
+
+class InstanceNormLayer(GroupNormLayer):
+    """``nn.InstanceNorm1d/2d/3d`` with ``affine=True`` in training mode: one group per channel.
+
+    With ``track_running_stats=True`` training mode still normalises by the input's own
+    statistics, which is what the rows use.
+    """
+
+    kind = "instance_norm"
+
+    def _batched(self, tensor, extra):
+        unbatched = tensor.dim() - extra == self.module._get_no_batch_dim()
+        return tensor.unsqueeze(extra) if unbatched else tensor
+
+    def input_rows(self, inputs):
+        inputs = self._batched(inputs, 0)
+        normalized = F.instance_norm(inputs, eps=self.module.eps)
+        return normalized.reshape(inputs.shape[0], inputs.shape[1], -1).transpose(1, 2)
+
+    def output_rows(self, grads):
+        return super().output_rows(self._batched(grads, 1))
+
+
+class RMSNormLayer(LayerNormLayer):
+    """``nn.RMSNorm`` (torch >= 2.4): ``y = gamma x / rms(x)``, a weight and no bias."""
+
+    kind = "rms_norm"
+
+    def __init__(self, module, name):
+        self.module, self.name, self.weight, self.bias = module, name, module.weight, None
+
+    def input_rows(self, inputs):
+        module = self.module
+        inputs = self._batched(inputs, 0)
+        normalized = F.rms_norm(inputs, module.normalized_shape, eps=module.eps)
+        return normalized.reshape(inputs.shape[0], -1, self.out_dim)
+
+
 def _plain(module: nn.Module, cls) -> bool:
     """An instance of ``cls`` that computes what ``cls`` computes (subclasses may change the forward)."""
     return isinstance(module, cls) and type(module).forward is cls.forward
 
 
+# nn.MultiheadAttention's out_proj: its forward never runs; blocks/attention.py adapts it with its owner.
+_ATTENTION_OUTPUT = getattr(nn.modules.linear, "NonDynamicallyQuantizableLinear", None)
+_RMS_NORM = getattr(nn, "RMSNorm", None)  # torch >= 2.4
+
+
 def adapter_for(module: nn.Module, name: str) -> Optional[LayerAdapter]:
     """The adapter for a supported layer, ``None`` (with a warning where useful) otherwise."""
+    if _ATTENTION_OUTPUT is not None and type(module) is _ATTENTION_OUTPUT:
+        return None
     if _plain(module, nn.Linear):
         return LinearLayer(module, name)
-    for cls, adapter in ((nn.Conv2d, Conv2dLayer), (nn.Conv1d, Conv1dLayer)):
+    for cls, adapter, grouped in ((nn.Conv2d, Conv2dLayer, GroupedConv2dLayer),
+                                  (nn.Conv1d, Conv1dLayer, GroupedConv1dLayer)):
         if _plain(module, cls):
-            if module.groups != 1:
-                warnings.warn(f"{name}: {cls.__name__} with groups={module.groups} has no Kronecker block; "
-                              "its parameters use the fallback rule", stacklevel=3)
-                return None
-            return adapter(module, name)
+            return adapter(module, name) if module.groups == 1 else grouped(module, name)
     if _plain(module, nn.Embedding):
         return _embedding_adapter(module, name)
     if _plain(module, nn.LayerNorm) and module.weight is not None:
@@ -291,6 +375,13 @@ def adapter_for(module: nn.Module, name: str) -> Optional[LayerAdapter]:
     if isinstance(module, (nn.BatchNorm1d, nn.BatchNorm2d, nn.BatchNorm3d)) \
             and type(module).forward is nn.modules.batchnorm._BatchNorm.forward and module.affine:
         return BatchNormLayer(module, name)
+    if _plain(module, nn.GroupNorm) and module.affine:
+        return GroupNormLayer(module, name)
+    if isinstance(module, nn.modules.instancenorm._InstanceNorm) \
+            and type(module).forward is nn.modules.instancenorm._InstanceNorm.forward and module.affine:
+        return InstanceNormLayer(module, name)
+    if _RMS_NORM is not None and _plain(module, _RMS_NORM) and module.weight is not None:
+        return RMSNormLayer(module, name)
     return None
 
 
