@@ -8,13 +8,16 @@ only step counts are reported (they do not depend on the machine's load).
 from __future__ import annotations
 
 import argparse
+import sys
 import warnings
+from pathlib import Path
 
 import torch
 
-import ngopt
-from benchmarks.tasks import TASKS
-from benchmarks.training import evaluate, minibatches
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # the built-in tasks live beside ngopt/
+import ngopt  # noqa: E402
+from benchmarks.tasks import TASKS  # noqa: E402
+from benchmarks.training import evaluate, minibatches  # noqa: E402
 
 CONFIGURATIONS = {
     "fixed step, fixed damping": {"step_rule": "fixed", "damping_rule": "fixed"},
