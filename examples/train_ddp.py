@@ -49,7 +49,7 @@ def parse_args(argv=None):
                         help="every this many steps, copy rank 0's weights and buffers to the other ranks "
                              "(one broadcast the size of the model). Ranks apply the same update but may "
                              "round it differently (other thread counts, kernels or CPUs), so without it "
-                             "their weights drift apart by rounding, about 0.5 sqrt(steps) x eps x max|w| "
+                             "their weights drift apart by rounding, up to about 0.5 sqrt(steps) x eps x max|w| "
                              "(eps: the dtype's machine epsilon); with it, by at most that of this many "
                              "steps. Default: never; the report prints the ranks' largest weight difference")
     parser.add_argument("--threads", type=int, default=None,

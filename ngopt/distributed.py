@@ -40,7 +40,7 @@ rank of the process group:
   it differently in another process (thread count, memory alignment, another
   CPU's instruction set).  The ranks' weights therefore agree to within rounding,
   not bit for bit.  The gap does not feed back (every rank's next step is again
-  computed from shared bits), so it is a random walk of rounding errors, about
+  computed from shared bits), so it is a random walk of rounding errors, up to about
   ``0.5 sqrt(steps) * eps * max|w|`` (``scripts/replica_drift.py``);
   ``resync_every`` resets it to zero by broadcasting the first rank's parameters.
 
@@ -118,7 +118,7 @@ def share_curvature(opt, process_group=None, shard_inversions: bool = True,
         resync_every: every this many steps, copy the group's first rank's parameters and
             buffers to the others (one broadcast per dtype, the size of the model).  Replicas
             otherwise drift apart by rounding (kernels may round the same update differently
-            in another process or on another CPU), by about ``0.5 sqrt(steps) * eps * max|w|``;
+            in another process or on another CPU), by up to about ``0.5 sqrt(steps) * eps * max|w|``;
             with it the gap is at most that of ``resync_every`` steps.  ``None`` never
             resynchronizes.
     Returns:
@@ -192,7 +192,10 @@ class CurvatureCommunicator:
         return averaged
 
     def invert(self, opt, jobs: Sequence[Tuple[LayerCurvature, dict, float]]):
-        """``{block: (tensors, info)}`` as ``block.prepare_inverse`` gives it, identical on every rank."""
+        """``{block: (tensors, info)}`` as ``block.prepare_inverse`` gives it, the same on every rank.
+
+        Sharded blocks carry their owner's bits; blocks every rank inverts itself agree to within rounding.
+        """
         want = opt.track_spectra
         sharding = self.shard_inversions and self.world_size > 1
         shared = [job for job in jobs if sharding and _has_own_inverse(job[0])]
@@ -661,7 +664,7 @@ def max_parameter_difference(module: nn.Module, process_group=None, timeout: Opt
 def save_on_rank0(obj, path: str, process_group=None, timeout: Optional[float] = None) -> None:
     """``torch.save(obj, path)`` on rank 0 only (written to a temporary name, then renamed), then a barrier.
 
-    The optimizer's state is the same on every rank, so rank 0's ``state_dict()`` is
+    The optimizer's state is the same on every rank (to within rounding), so rank 0's ``state_dict()`` is
     the whole state and loads into any world size, a single process included.
     """
     if dist.get_rank(process_group) == 0:
