@@ -46,7 +46,12 @@ def parse_args(argv=None):
     parser.add_argument("--replicate-inversions", action="store_true",
                         help="every rank inverts every block (no inverse traffic, R times the compute)")
     parser.add_argument("--resync-every", type=int, default=None,
-                        help="copy rank 0's weights to the others every this many steps (see README)")
+                        help="every this many steps, copy rank 0's weights and buffers to the other ranks "
+                             "(one broadcast the size of the model). Ranks apply the same update but may "
+                             "round it differently (other thread counts, kernels or CPUs), so without it "
+                             "their weights drift apart by rounding, up to about 0.5 sqrt(steps) x eps x max|w| "
+                             "(eps: the dtype's machine epsilon); with it, by at most that of this many "
+                             "steps. Default: never; the report prints the ranks' largest weight difference")
     parser.add_argument("--threads", type=int, default=None,
                         help="torch threads per process (default: CPU cores / processes)")
     parser.add_argument("--seed", type=int, default=0)

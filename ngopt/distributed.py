@@ -35,11 +35,14 @@ rank of the process group:
   reduction ratio comes from each rank's own batch, so after every
   Levenberg-Marquardt update the ranks take the first rank's damping (one
   tiny broadcast).
-* **replicas** — every rank applies the same update, but a BLAS whose result
-  depends on memory alignment (MKL, unless ``MKL_CBWR=AUTO,STRICT``) can round
-  it differently on different ranks; the weights then differ by a random walk
-  of rounding errors (about 1e-7 after 25 steps of a 256-wide MLP here), which
-  ``resync_every`` resets by broadcasting the first rank's parameters.
+* **replicas** — every rank computes its step from the same bits (DDP's averaged
+  gradients, the averaged statistics, the owners' inverses), but kernels may round
+  it differently in another process (thread count, memory alignment, another
+  CPU's instruction set).  The ranks' weights therefore agree to within rounding,
+  not bit for bit.  The gap does not feed back (every rank's next step is again
+  computed from shared bits), so it is a random walk of rounding errors, up to about
+  ``0.5 sqrt(steps) * eps * max|w|`` (``scripts/replica_drift.py``);
+  ``resync_every`` resets it to zero by broadcasting the first rank's parameters.
 
 Gradients are averaged by ``DistributedDataParallel`` as usual; plain
 ``torch.distributed`` code calls :func:`average_gradients` after ``backward()``
@@ -66,8 +69,11 @@ Failures: every collective is waited on with the communicator's ``timeout``
 the others raise :class:`CurvatureSyncError` naming the step and the exchange.
 An exception inside an owner's inversion is sent to all ranks, which all raise it.
 
-Private optimizer attributes this module relies on: ``opt._steps``,
-``opt._seed``, ``opt._statistics_due`` and ``opt._hooks.source.generator_for``.
+The optimizer is used only through its public surface (``steps_taken``,
+``statistics_due()``, ``seed``, ``sample_targets_with()``, ``blocks``,
+``register_step_post_hook``); importing this module sets
+``FisherDescent.attach_data_parallel``, which makes an optimizer built on a DDP
+model share its curvature by itself.
 """
 from __future__ import annotations
 
@@ -83,6 +89,7 @@ import torch.distributed as dist
 from torch import nn
 
 from .blocks.base import LayerCurvature
+from .optimizer import FisherDescent
 
 _HEADER_LENGTH_BYTES = 8
 
@@ -109,14 +116,14 @@ def share_curvature(opt, process_group=None, shard_inversions: bool = True,
         timeout: seconds to wait on each collective before raising
             :class:`CurvatureSyncError`; ``None`` uses the process group's timeout.
         resync_every: every this many steps, copy the group's first rank's parameters and
-            buffers to the others (one broadcast).  Replicas otherwise drift apart by
-            rounding where the BLAS result depends on memory alignment (MKL unless
-            ``MKL_CBWR=AUTO,STRICT``); ``None`` never resynchronizes.
+            buffers to the others (one broadcast per dtype, the size of the model).  Replicas
+            otherwise drift apart by rounding (kernels may round the same update differently
+            in another process or on another CPU), by up to about ``0.5 sqrt(steps) * eps * max|w|``;
+            with it the gap is at most that of ``resync_every`` steps.  ``None`` never
+            resynchronizes.
     Returns:
         the communicator, also set as ``opt.communicator``.
     """
-    from .optimizer import FisherDescent  # late: the optimizer module imports nothing from here
-
     if not isinstance(opt, FisherDescent):
         raise TypeError(f"opt must be an ngopt.FisherDescent, got {type(opt).__name__}")
     if not isinstance(shard_inversions, bool):
@@ -150,10 +157,7 @@ class CurvatureCommunicator:
         self.device = _communication_device(process_group)
         self._opt = opt
         self._sampler = RankSampler(opt, self.rank)
-        source = opt._hooks.source
-        self._own_generator_for = None if source is None else source.generator_for
-        if source is not None:
-            source.generator_for = self._sampler.generator_for
+        opt.sample_targets_with(self._sampler.generator_for)
         self.resync_every = resync_every
         # "auto" picks the cheaper of "all_gather" and "all_reduce" from the owners' payload sizes.
         self.inverse_collective = "auto"
@@ -173,7 +177,7 @@ class CurvatureCommunicator:
 
         ``projected``: the second-phase statistics (EKFAC's scales) of the blocks that have them.
         """
-        if self.world_size == 1 or not opt._statistics_due(opt._steps):
+        if self.world_size == 1 or not opt.statistics_due():
             return batches
         blocks = list(opt.blocks.values())
         if projected:
@@ -188,7 +192,10 @@ class CurvatureCommunicator:
         return averaged
 
     def invert(self, opt, jobs: Sequence[Tuple[LayerCurvature, dict, float]]):
-        """``{block: (tensors, info)}`` as ``block.prepare_inverse`` gives it, identical on every rank."""
+        """``{block: (tensors, info)}`` as ``block.prepare_inverse`` gives it, the same on every rank.
+
+        Sharded blocks carry their owner's bits; blocks every rank inverts itself agree to within rounding.
+        """
         want = opt.track_spectra
         sharding = self.shard_inversions and self.world_size > 1
         shared = [job for job in jobs if sharding and _has_own_inverse(job[0])]
@@ -213,8 +220,7 @@ class CurvatureCommunicator:
 
     def close(self) -> None:
         """Detach from the optimizer: its own sampling generator and no hooks (``share_curvature`` calls it)."""
-        if self._own_generator_for is not None:
-            self._opt._hooks.source.generator_for = self._own_generator_for
+        self._opt.sample_targets_with(None)
         for handle in self._hooks:
             handle.remove()
         self._hooks.clear()
@@ -229,7 +235,7 @@ class CurvatureCommunicator:
         could move ``damping`` differently and their inverses drift apart; one tiny
         broadcast on the adaptation schedule keeps them equal.
         """
-        if opt._steps % opt.damping_interval != 0:
+        if opt.steps_taken % opt.damping_interval != 0:
             return
         values = torch.tensor([g["damping"] for g in opt.param_groups], dtype=torch.float64, device=self.device)
         self._wait(lambda: dist.broadcast(values, src=_first_rank(self.group), group=self.group, async_op=True),
@@ -238,7 +244,7 @@ class CurvatureCommunicator:
             group["damping"] = value
 
     def _resync(self, opt) -> None:
-        if opt._steps % self.resync_every == 0:
+        if opt.steps_taken % self.resync_every == 0:
             sync_parameters(opt.model, src=_first_rank(self.group), process_group=self.group,
                                  timeout=None if self.timeout is None else self.timeout.total_seconds())
 
@@ -277,7 +283,7 @@ class CurvatureCommunicator:
     def _wait(self, start, what: str, clock: str) -> None:
         """Run one collective to completion; ``clock`` names the ``totals`` entry its seconds go to."""
         started = time.perf_counter()
-        _complete(start, f"{what} at step {self._opt._steps}", self.timeout, self.group)
+        _complete(start, f"{what} at step {self._opt.steps_taken}", self.timeout, self.group)
         if clock:
             self.totals[clock] += time.perf_counter() - started
 
@@ -575,13 +581,13 @@ class RankSampler:
         self._key = None
 
     def seed_for(self, step: int) -> int:
-        return rank_step_seed(self._opt._seed, self.rank, step)
+        return rank_step_seed(self._opt.seed, self.rank, step)
 
     def generator_for(self, device: torch.device) -> torch.Generator:
-        key = (self._opt._seed, self._opt._steps, str(device))
+        key = (self._opt.seed, self._opt.steps_taken, str(device))
         if self._generator is None or self._key != key:
             self._generator = torch.Generator(device=device)
-            self._generator.manual_seed(self.seed_for(self._opt._steps))
+            self._generator.manual_seed(self.seed_for(self._opt.steps_taken))
             self._key = key
         return self._generator
 
@@ -658,7 +664,7 @@ def max_parameter_difference(module: nn.Module, process_group=None, timeout: Opt
 def save_on_rank0(obj, path: str, process_group=None, timeout: Optional[float] = None) -> None:
     """``torch.save(obj, path)`` on rank 0 only (written to a temporary name, then renamed), then a barrier.
 
-    The optimizer's state is the same on every rank, so rank 0's ``state_dict()`` is
+    The optimizer's state is the same on every rank (to within rounding), so rank 0's ``state_dict()`` is
     the whole state and loads into any world size, a single process included.
     """
     if dist.get_rank(process_group) == 0:
@@ -759,7 +765,11 @@ def _parameters(params) -> Iterable[torch.Tensor]:
 
 def _setup_fingerprint(opt) -> int:
     """A 62-bit hash of what must match across ranks: blocks, sizes, schedule, step count."""
-    parts = [opt.fisher, opt.structure, opt.stats_interval, opt.inverse_interval, opt._steps]
+    parts = [opt.fisher, opt.structure, opt.stats_interval, opt.inverse_interval, opt.steps_taken]
     parts += [(name, b.structure, b.layer.in_dim, b.layer.out_dim) for name, b in opt.blocks.items()]
     digest = hashlib.blake2b(repr(parts).encode(), digest_size=8).digest()
     return int.from_bytes(digest, "little") >> 2
+
+
+# An optimizer built on a DistributedDataParallel model calls this with DDP's own group.
+FisherDescent.attach_data_parallel = staticmethod(share_curvature)

@@ -177,11 +177,10 @@ class FisherDescent(torch.optim.Optimizer):
         self._hooks.armed = True
         self._recorder = BatchRecorder(self.model, loss_fn)
         self._recorder.armed = self._batch_due(0)
-        if isinstance(model, nn.parallel.DistributedDataParallel):
+        if isinstance(model, nn.parallel.DistributedDataParallel) and self.attach_data_parallel is not None:
             # Share statistics and inversions over DDP's own group, so that the user's loop needs
             # nothing beyond the DDP wrapping; ngopt.distributed.share_curvature(opt, ...) replaces it.
-            from .distributed import share_curvature  # deferred: torch.distributed only when used
-            share_curvature(self, process_group=model.process_group)
+            self.attach_data_parallel(self, model.process_group)
 
     # ------------------------------------------------------------------ construction
     def _build_blocks(self) -> Dict[str, LayerCurvature]:
@@ -679,6 +678,29 @@ def _closed_form_likelihood(loss_fn):
 
 def _finite_numbers(values: dict) -> bool:
     return all(math.isfinite(v) for v in values.values() if isinstance(v, float))
+
+    # ------------------------------------------------------------------ what a communicator needs
+    #: ``attach_data_parallel(opt, process_group)`` runs at construction for a DistributedDataParallel
+    #: model; ``ngopt.distributed`` sets it (``import ngopt`` imports that module), so that this module
+    #: never imports the one that uses it.
+    attach_data_parallel: Optional[Callable] = None
+
+    @property
+    def seed(self) -> int:
+        """Seed of the generator for sampled targets (``seed=`` or ``torch.initial_seed()``; in ``state_dict``)."""
+        return self._seed
+
+    def statistics_due(self) -> bool:
+        """Whether step number ``steps_taken`` (the one running, or the next) refreshes the statistics."""
+        return self._statistics_due(self._steps)
+
+    def sample_targets_with(self, generator_for: Optional[Callable[[torch.device], torch.Generator]]) -> None:
+        """Draw sampled targets from ``generator_for(device)`` from now on; ``None`` restores the own generator.
+
+        Nothing is drawn with ``fisher='empirical'``, so there it has no effect.
+        """
+        if self._hooks.source is not None:
+            self._hooks.source.generator_for = self._generator_for if generator_for is None else generator_for
 
 
 def _all_finite(tensors: List[torch.Tensor]) -> bool:

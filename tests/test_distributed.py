@@ -7,7 +7,9 @@ from __future__ import annotations
 
 import itertools
 import math
+import re
 import warnings
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -206,6 +208,47 @@ def test_rank_step_seeds_are_distinct_and_repeatable():
     assert len(seeds) == 8 * 500
     assert nd.rank_step_seed(5, 1, 7) == nd.rank_step_seed(5, 1, 7) != nd.rank_step_seed(6, 1, 7)
     assert all(0 <= s < 2 ** 63 for s in seeds)
+
+
+# ---------------------------------------------------------------------------------------- the optimizer's surface
+def test_the_communicator_reads_no_private_optimizer_attribute():
+    # The arrow runs one way: ngopt.distributed uses the optimizer's public surface, and the
+    # optimizer module imports nothing from ngopt.distributed (it registers itself).
+    source = Path(nd.__file__).read_text()
+    assert not re.findall(r"\b(?:opt|o|self\._opt)\._[a-z]\w*", source)
+    optimizer_source = Path(ngopt.optimizer.__file__).read_text()
+    assert not re.search(r"^\s*(?:from|import)\s+[.\w]*distributed", optimizer_source, re.MULTILINE)
+    assert ngopt.FisherDescent.attach_data_parallel is nd.share_curvature
+
+
+def test_public_schedule_seed_and_sampling_generator():
+    model, loss_fn = mlp(), nn.CrossEntropyLoss()
+    opt = quiet_optimizer(model, loss_fn, stats_interval=3, seed=11)
+    assert opt.seed == 11
+    drawn_on = []
+
+    def recording(device):
+        drawn_on.append(opt.steps_taken)
+        return torch.Generator(device=device).manual_seed(0)
+
+    generator = torch.Generator().manual_seed(5)
+    due = []
+    for step in range(7):
+        if step == 4:
+            opt.sample_targets_with(None)  # back to the optimizer's own generator
+        elif step == 0:
+            opt.sample_targets_with(recording)
+        due.append(opt.statistics_due())
+        opt.zero_grad()
+        loss_fn(model(torch.randn(8, 6, generator=generator, dtype=torch.float64)),
+                torch.randint(0, 4, (8,), generator=generator)).backward()
+        opt.step()
+    assert due == [True, False, False, True, False, False, True]  # every stats_interval = 3 steps
+    assert drawn_on == [0, 3]  # targets are drawn on refresh steps only, and not after the reset
+    state = opt.state_dict()
+    other = quiet_optimizer(mlp(), loss_fn, stats_interval=3, seed=0)
+    other.load_state_dict(state)
+    assert other.seed == 11 and other.steps_taken == 7
 
 
 # ---------------------------------------------------------------------------------------- entry point checks

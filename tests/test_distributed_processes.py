@@ -13,15 +13,21 @@ References:
   by ngopt, so every step is the same computation regrouped (float64: to ~1e-12;
   float32: to float32 rounding, amplified by the damped inverses);
 * the greedy owner assignment only changes *where* an inversion runs, so sharded and
-  replicated inversions must agree bit for bit on one machine (same inputs, same kernels;
-  the workers ask MKL for results that do not depend on memory alignment, see
-  ngopt/distributed.py, "replicas").
+  replicated inversions, and the ranks' weights, agree to within the rounding bound of
+  :func:`rounding_bound` (never bit for bit: kernels may round differently in another
+  process, thread count or CPU).
+
+Conditions of the train job: ``NGOPT_TEST_THREADS`` sets the torch threads per rank (``1``,
+``2``, ``1,2``; also the example's); rank 1 runs the next narrower vector kernels than rank 0
+unless ``NGOPT_TEST_KERNELS=same``, so that the ranks round differently on every machine, as
+ranks on two kinds of CPU do.  ``MKL_CBWR`` is left as the environment has it.
 """
 from __future__ import annotations
 
 import datetime
 import importlib.util
 import json
+import math
 import os
 import re
 import socket
@@ -42,6 +48,8 @@ REPOSITORY = Path(__file__).resolve().parents[1]
 EXAMPLE = REPOSITORY / "examples" / "train_ddp.py"
 EXAMPLE_ARGS = ["--steps", "8", "--warmup", "2", "--hidden", "16", "--fisher", "exact", "--stats-interval", "2",
                 "--inverse-interval", "4"]
+THREADS_VARIABLE = "NGOPT_TEST_THREADS"
+KERNELS_VARIABLE = "NGOPT_TEST_KERNELS"
 JOB_SECONDS = 120           # hard bound on one spawned job (generous: a loaded 2-core machine)
 GROUP_TIMEOUT_SECONDS = 10  # the process group's own timeout inside the jobs
 FAULT_TIMEOUT_SECONDS = 3   # share_curvature(timeout=...) in the fault jobs
@@ -142,15 +150,16 @@ def _plain_run(rank, world, dtype):
 
 
 def _sampled_resume(rank, world):
-    """6 steps in one go vs 3 steps, a state_dict round trip into fresh objects, 3 more steps."""
+    """6 steps in one go vs 3 steps, a state_dict round trip into fresh objects, 3 more steps;
+    and, as a control, 6 steps in one go with other draws (another seed)."""
     import ngopt.distributed as nd
     dtype, rows = torch.float64, _rank_rows(rank, world)
     runs = []
-    for stop_at in (None, CHECKPOINT_STEP):
+    for stop_at, seed in ((None, 7), (CHECKPOINT_STEP, 7), (None, 8)):
         model = build_model(dtype)
         wrapped = nn.parallel.DistributedDataParallel(model)
         loss_fn = nn.CrossEntropyLoss()
-        opt = make_optimizer(wrapped, loss_fn, fisher="sampled", seed=7)
+        opt = make_optimizer(wrapped, loss_fn, fisher="sampled", seed=seed)
         nd.share_curvature(opt)
         data = batches(dtype)
         if stop_at is None:
@@ -203,7 +212,7 @@ def _resync_run(rank, world):
             with torch.no_grad():
                 model[0].weight.add_(1e-3)
         differences.append(nd.max_parameter_difference(model))
-    return differences
+    return differences, weights(model)
 
 
 def _mismatched_setup(rank):
@@ -298,7 +307,7 @@ def worker_main(argv):
     job, rank, world, port, out_dir = argv[:5]
     rank, world, out_dir = int(rank), int(world), Path(out_dir)
     import torch.distributed as dist
-    torch.set_num_threads(1)
+    torch.set_num_threads(int(os.environ.get("OMP_NUM_THREADS", "1")))  # Job.workers sets it per rank
     dist.init_process_group("gloo", init_method=f"tcp://127.0.0.1:{port}", rank=rank, world_size=world,
                             timeout=datetime.timedelta(seconds=GROUP_TIMEOUT_SECONDS))
     if job == "train":
@@ -316,31 +325,71 @@ def _free_port():
         return sock.getsockname()[1]
 
 
+def threads_per_rank():
+    """Torch threads of each rank: ``NGOPT_TEST_THREADS=2`` (every rank) or ``=1,2`` (per rank); default 1.
+
+    Other thread counts (and other CPUs) take other summation orders in the kernels: the tests
+    must pass under each, which is what makes them independent of any bitwise code path.
+    """
+    counts = [int(part) for part in os.environ.get(THREADS_VARIABLE, "1").split(",")]
+    if len(counts) == 1:
+        counts *= WORLD
+    if len(counts) != WORLD or min(counts) < 1:
+        raise ValueError(f"{THREADS_VARIABLE} must be one count or {WORLD} comma-separated counts >= 1")
+    return counts
+
+
+# One level below each vector-kernel level, for torch's own kernels and MKL's.
+_LOWER_KERNELS = {"AVX512": {"ATEN_CPU_CAPABILITY": "avx2", "MKL_ENABLE_INSTRUCTIONS": "AVX2"},
+                  "AVX2": {"ATEN_CPU_CAPABILITY": "default", "MKL_ENABLE_INSTRUCTIONS": "SSE4_2"}}
+
+
+def kernels_per_rank():
+    """Extra environment of each rank: rank 1 runs narrower vector kernels than rank 0.
+
+    Narrower kernels sum in another order, as another kind of CPU does, so the ranks round
+    differently even where one machine's BLAS happens to be bitwise reproducible.
+    ``NGOPT_TEST_KERNELS=same`` runs every rank on the machine's own kernels.
+    """
+    choice = os.environ.get(KERNELS_VARIABLE, "mixed")
+    if choice not in ("mixed", "same"):
+        raise ValueError(f"{KERNELS_VARIABLE} must be 'mixed' or 'same', got {choice!r}")
+    capability = getattr(torch.backends.cpu, "get_cpu_capability", lambda: "")()
+    lower = _LOWER_KERNELS.get(capability, {}) if choice == "mixed" else {}
+    return [{}] + [lower] * (WORLD - 1)
+
+
 class Job:
     """Processes started at once; :meth:`finish` waits for some (bounded) and kills the leftovers."""
 
-    def __init__(self, commands, out_dir, wait_for=None):
-        env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONUNBUFFERED="1", PYTHONWARNINGS="ignore",
-                   MKL_CBWR="AUTO,STRICT")  # bitwise-equal replicas need alignment-independent BLAS
+    def __init__(self, commands, out_dir, wait_for=None, envs=None):
+        env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONUNBUFFERED="1", PYTHONWARNINGS="ignore")
         if Path("/sys/class/net/lo").exists():
             env["GLOO_SOCKET_IFNAME"] = "lo"  # keep gloo's own sockets on loopback as well
+        envs = envs or [{}] * len(commands)
         self.out_dir = out_dir
         self.wait_for = range(len(commands)) if wait_for is None else wait_for
         self.logs = [out_dir / f"process{index}.log" for index in range(len(commands))]
         self.deadline = time.monotonic() + JOB_SECONDS
         self.procs = []
-        for command, log in zip(commands, self.logs):
+        for command, log, extra in zip(commands, self.logs, envs):
             with open(log, "w") as stream:
-                self.procs.append(subprocess.Popen(command, stdout=stream, stderr=subprocess.STDOUT, env=env,
-                                                   cwd=REPOSITORY))
+                self.procs.append(subprocess.Popen(command, stdout=stream, stderr=subprocess.STDOUT,
+                                                   env=dict(env, **extra), cwd=REPOSITORY))
         self._result = None
 
     @classmethod
-    def workers(cls, job, out_dir, *extra, wait_for=None):
-        """``WORLD`` ranks of one of this file's jobs, meeting at a fresh port on 127.0.0.1."""
+    def workers(cls, job, out_dir, *extra, wait_for=None, conditions=True):
+        """``WORLD`` ranks of one of this file's jobs, meeting at a fresh port on 127.0.0.1.
+
+        ``conditions``: the ranks take the threads and kernels of :func:`threads_per_rank` and
+        :func:`kernels_per_rank`; otherwise one thread each on the machine's own kernels.
+        """
         port = str(_free_port())
+        envs = [dict(kernels, OMP_NUM_THREADS=str(threads))
+                for threads, kernels in zip(threads_per_rank(), kernels_per_rank())] if conditions else None
         return cls([[sys.executable, __file__, job, str(rank), str(WORLD), port, str(out_dir), *extra]
-                    for rank in range(WORLD)], out_dir, wait_for)
+                    for rank in range(WORLD)], out_dir, wait_for, envs)
 
     def finish(self):
         """``(return codes, logs)``; a process killed at the deadline has a negative code."""
@@ -370,10 +419,14 @@ def jobs(tmp_path_factory):
     """Every job of this module, running side by side (they spend most of their time importing torch)."""
     started = {"train": Job.workers("train", tmp_path_factory.mktemp("distributed_train"))}
     for mode in FAULT_MODES:
-        started[mode] = Job.workers("fault", tmp_path_factory.mktemp(f"distributed_{mode}"), mode, wait_for=[0])
+        # the fault jobs time a failure, not numerics: one thread each keeps a loaded machine from
+        # stretching their steps past the communicator's short timeout
+        started[mode] = Job.workers("fault", tmp_path_factory.mktemp(f"distributed_{mode}"), mode, wait_for=[0],
+                                    conditions=False)
     example = tmp_path_factory.mktemp("distributed_example")
     started["example"] = Job([[sys.executable, "-m", "torch.distributed.run", "--standalone", "--nproc_per_node=2",
-                               str(EXAMPLE), *EXAMPLE_ARGS, "--json", str(example / "report.json"),
+                               str(EXAMPLE), *EXAMPLE_ARGS, "--threads", str(max(threads_per_rank())),
+                               "--json", str(example / "report.json"),
                                "--checkpoint", str(example / "checkpoint.pt")]], example)
     yield started
     for job in started.values():
@@ -437,18 +490,95 @@ def test_ekfac_matches_one_process(trained):
         assert_same_weights(rank["ddp_ekfac_f64"], reference, **F64)
 
 
+# ---------------------------------------------------------------------------------------- replicas: rounding only
+PRODUCT_LENGTH = 13  # longest inner dimension of the preconditioning products G^-1 V A^-1 here (12 + bias)
+
+
+def rounding_bound(dtype, steps, weights, condition=0.0):
+    """Largest gap that rounding alone can open between two replicas of ``weights`` in ``steps`` steps.
+
+    Derivation (forward error analysis, Higham 2002, "Accuracy and Stability of Numerical
+    Algorithms", 2nd ed.: eq. (3.13) for matrix products, sec. 14.3 for inverses):
+
+    * no feedback: every rank computes its step from the same bits (DDP's averaged gradients, the
+      all-reduced statistics and, when sharded, the broadcast inverses), so a gap between the
+      replicas' weights never changes what a rank computes next: per-step gaps only add up, at
+      most linearly in ``steps`` (in practice a random walk, see scripts/replica_drift.py);
+    * per step each weight becomes ``w - lr * u``: two ranks' roundings of that subtraction differ
+      by at most ``eps |w|``; ``u`` comes from two products of inner length ``d <= PRODUCT_LENGTH``,
+      each within ``gamma_d ~ d eps`` of exact on each rank (``4 d eps`` between two ranks), and an
+      inverse computed on each rank itself adds ``d kappa eps`` per rank (``condition``: the
+      largest damped condition number ``kappa``; 0 where the inverses are the owner's bits);
+      momentum ``m`` sums the past differences, a factor ``1 / (1 - m)``;
+    * ``lr |u| <= max |w|`` (the trust bound keeps each step below a third of the largest weight
+      in these runs: measured);
+
+    so after ``steps`` steps ``|w_0 - w_1| <= steps (1 + 2 d (2 + kappa) / (1 - m)) eps max|w|``.
+    """
+    eps = torch.finfo(dtype).eps
+    per_step = 1 + 2 * PRODUCT_LENGTH * (2 + condition) / (1 - SETTINGS["momentum"])
+    return steps * per_step * eps * max(float(w.abs().max()) for w in weights)
+
+
+def largest_gap(first, second):
+    return max(float((a - b).abs().max()) for a, b in zip(first, second))
+
+
+def largest_damped_condition(diagnostics):
+    return max(value for layer in diagnostics.values() for key, value in layer.items()
+               if key.endswith("_condition_damped"))
+
+
+def assert_same_diagnostics(first, second, relative):
+    """Layer summaries agree: sizes, kinds and steps exactly, numbers to within rounding.
+
+    ``relative``: the relative gap between the weights the two summaries come from.  The factors
+    are smooth in the weights (common practice: tanh layers, O(1) activations), so their entries,
+    and by Weyl's inequality (``|d lambda| <= ||dF||``) their eigenvalues, traces and factored
+    damping, move by at most about ``relative`` times the layer's largest eigenvalue (plus their own
+    eigensolver rounding, ``PRODUCT_LENGTH eps_64`` relative).  A condition number ``hi/lo`` of a
+    nearly singular factor is compared through its reciprocal ``lo/hi``, which that moves by at most
+    ``2 relative``; a damped one ``c = (hi+s)/(lo+s) >= 1`` by at most ``2 relative (1 + c)`` relative,
+    and the product of two by the sum of theirs: at most ``8 relative c^2`` in all.
+    """
+    relative = relative + PRODUCT_LENGTH * torch.finfo(torch.float64).eps
+    assert first.keys() == second.keys()
+    for name in first:
+        a, b = first[name], second[name]
+        assert a.keys() == b.keys(), name
+        numbers = [k for k in a if isinstance(a[k], float) and not isinstance(a[k], bool)]
+        assert {k: a[k] for k in a if k not in numbers} == {k: b[k] for k in b if k not in numbers}, name
+        scale = max(abs(a[k]) for k in numbers if "condition" not in k and math.isfinite(a[k]))
+        for key in numbers:
+            x, y = a[key], b[key]
+            if x == y or (math.isnan(x) and math.isnan(y)):
+                continue
+            if key.endswith("_condition"):  # undamped: hi/lo, infinite for a singular factor
+                assert abs(1 / x - 1 / y) <= 2 * relative, (name, key, x, y)
+            elif "condition" in key:  # damped, and "condition", the product of the two sides' (<= 8 rel c^2)
+                assert abs(x - y) <= 8 * relative * max(x, y) ** 2, (name, key, x, y)
+            else:
+                assert abs(x - y) <= 2 * relative * scale, (name, key, x, y)
+
+
 def test_sharded_inversion_equals_everyone_inverting(trained):
     ranks, _ = trained
     for rank in ranks:
-        for sharded, replicated in (("ddp_exact_f32_sharded", "ddp_exact_f32_replicated"),
-                                    ("ddp_exact_f32_reduced", "ddp_exact_f32_replicated"),
-                                    ("ddp_exact_f64_sharded", "ddp_exact_f64_replicated")):
-            for a, b in zip(rank[sharded], rank[replicated]):
-                assert torch.equal(a, b), f"{sharded} vs {replicated}"
-        # the info that came with the inverses (traces, damping, condition numbers) too
-        assert rank["diagnostics"]["ddp_exact_f32_sharded"] == rank["diagnostics"]["ddp_exact_f32_replicated"]
-        assert rank["diagnostics"]["ddp_exact_f32_reduced"] == rank["diagnostics"]["ddp_exact_f32_replicated"]
-    assert ranks[0]["diagnostics"] == ranks[1]["diagnostics"]
+        for sharded, replicated, dtype in (("ddp_exact_f32_sharded", "ddp_exact_f32_replicated", torch.float32),
+                                           ("ddp_exact_f32_reduced", "ddp_exact_f32_replicated", torch.float32),
+                                           ("ddp_exact_f64_sharded", "ddp_exact_f64_replicated", torch.float64)):
+            # an inverse made in another process vs one made here: the same inputs, other roundings
+            kappa = largest_damped_condition(rank["diagnostics"][replicated])
+            bound = rounding_bound(dtype, STEPS, rank[replicated], condition=kappa)
+            assert largest_gap(rank[sharded], rank[replicated]) <= bound, f"{sharded} vs {replicated}"
+            # the info that came with the inverses (traces, damping, condition numbers) too
+            scale = max(float(w.abs().max()) for w in rank[replicated])
+            assert_same_diagnostics(rank["diagnostics"][sharded], rank["diagnostics"][replicated], bound / scale)
+    for run in ranks[0]["diagnostics"]:  # rank 0 vs rank 1: the same factors, the inverses of their owner
+        dtype = torch.float32 if "f32" in run else torch.float64
+        bound = rounding_bound(dtype, STEPS, ranks[0][run])
+        scale = max(float(w.abs().max()) for w in ranks[0][run])
+        assert_same_diagnostics(ranks[0]["diagnostics"][run], ranks[1]["diagnostics"][run], bound / scale)
     sharded = [r["ddp_exact_f32_sharded_summary"] for r in ranks]
     replicated = [r["ddp_exact_f32_replicated_summary"] for r in ranks]
     # 3 blocks, 2 inversion rounds: the owners split the work; replicated ranks each do all of it.
@@ -457,10 +587,18 @@ def test_sharded_inversion_equals_everyone_inverting(trained):
     assert all(s["inverse_bytes"] > 0 for s in sharded) and all(s["inverse_bytes"] == 0 for s in replicated)
 
 
+def _run_weights(rank, name):
+    return rank["adaptive_damping"][0] if name == "adaptive_damping" else rank[name]
+
+
 def test_every_rank_holds_the_same_weights(trained):
+    # To within rounding_bound; the inverses each rank makes itself (replicated) add their conditioning.
     ranks, _ = trained
-    for rank in ranks:
-        assert all(difference == 0.0 for difference in rank["sync"].values()), rank["sync"]
+    for name, gap in ranks[0]["sync"].items():
+        assert ranks[1]["sync"][name] == gap  # the same all-reduced number on both ranks
+        dtype = torch.float32 if "f32" in name else torch.float64
+        kappa = largest_damped_condition(ranks[0]["diagnostics"][name]) if "replicated" in name else 0.0
+        assert gap <= rounding_bound(dtype, STEPS, _run_weights(ranks[0], name), condition=kappa), (name, gap)
 
 
 def test_checkpoint_from_two_ranks_resumes_in_one_process(trained):
@@ -473,24 +611,27 @@ def test_checkpoint_from_two_ranks_resumes_in_one_process(trained):
 def test_sampled_fisher_resume_repeats_the_draws(trained):
     ranks, _ = trained
     for rank in ranks:
-        straight, resumed = rank["sampled_resume"]
-        for a, b in zip(straight, resumed):
-            assert torch.equal(a, b)
+        straight, resumed, other_draws = rank["sampled_resume"]
+        # the same draws: the two runs differ by rounding at most (same process, other allocations)
+        bound = rounding_bound(torch.float64, STEPS, straight)
+        assert largest_gap(straight, resumed) <= bound
+        assert largest_gap(straight, other_draws) > 1e3 * bound  # other draws are far outside it
 
 
 def test_adaptive_damping_stays_equal_on_all_ranks(trained):
     ranks, _ = trained
-    (_, history0), (_, history1) = ranks[0]["adaptive_damping"], ranks[1]["adaptive_damping"]
-    assert history0 == history1
+    (weights0, history0), (_, history1) = ranks[0]["adaptive_damping"], ranks[1]["adaptive_damping"]
+    assert history0 == history1  # rank 0's value, copied to the others by a broadcast: equal by construction
     assert len(set(history0)) > 1  # the rule did move damping
-    assert ranks[0]["sync"]["adaptive_damping"] == 0.0
+    assert ranks[0]["sync"]["adaptive_damping"] <= rounding_bound(torch.float64, STEPS, weights0)
 
 
 def test_resync_restores_rank_zeros_weights(trained):
     ranks, _ = trained
-    after_knock, after_resync, after_next = ranks[0]["resync"]
+    (after_knock, after_resync, after_next), weights_now = ranks[0]["resync"]
     assert after_knock == pytest.approx(1e-3, rel=1e-6)  # what rank 1 added
-    assert after_resync == 0.0 and after_next == 0.0
+    assert after_resync == 0.0  # a broadcast copy of rank 0's weights: equal by construction
+    assert after_next <= rounding_bound(torch.float64, 1, weights_now)  # one step of rounding since
 
 
 def test_measured_statistics_bytes_match_the_formula(trained):
