@@ -37,7 +37,7 @@ from torch import nn
 
 from . import fallback as fallback_rules
 from .blocks.base import LayerCurvature
-from .blocks.factory import STRUCTURES, adapters_for, make_block
+from .blocks.factory import adapters_for, make_block
 from .capture import CaptureHooks, FisherSource
 from .likelihoods import likelihood_for
 from .quadratic_model import BatchEvaluator
@@ -667,18 +667,6 @@ class FisherDescent(torch.optim.Optimizer):
         self._hooks.remove()
         self._recorder.remove()
 
-
-def _closed_form_likelihood(loss_fn):
-    """The criterion's closed-form likelihood, or None for criteria without one."""
-    try:
-        return likelihood_for(loss_fn) if loss_fn is not None else None
-    except ValueError:
-        return None
-
-
-def _finite_numbers(values: dict) -> bool:
-    return all(math.isfinite(v) for v in values.values() if isinstance(v, float))
-
     # ------------------------------------------------------------------ what a communicator needs
     #: ``attach_data_parallel(opt, process_group)`` runs at construction for a DistributedDataParallel
     #: model; ``ngopt.distributed`` sets it (``import ngopt`` imports that module), so that this module
@@ -702,6 +690,17 @@ def _finite_numbers(values: dict) -> bool:
         if self._hooks.source is not None:
             self._hooks.source.generator_for = self._generator_for if generator_for is None else generator_for
 
+
+def _closed_form_likelihood(loss_fn):
+    """The criterion's closed-form likelihood, or None for criteria without one."""
+    try:
+        return likelihood_for(loss_fn) if loss_fn is not None else None
+    except ValueError:
+        return None
+
+
+def _finite_numbers(values: dict) -> bool:
+    return all(math.isfinite(v) for v in values.values() if isinstance(v, float))
 
 def _all_finite(tensors: List[torch.Tensor]) -> bool:
     """Whether every entry of every tensor is finite: one fused reduction and one host sync."""

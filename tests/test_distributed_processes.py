@@ -60,6 +60,10 @@ SETTINGS = dict(lr=0.3, momentum=0.5, damping=1e-2, stats_interval=2, inverse_in
                 step_rule="fixed", damping_rule="fixed")
 
 
+# The quadratic rule on the whole recorded batch of each rank, LM damping every other step.
+QUADRATIC_RULES = dict(step_rule="quadratic", damping_rule="lm", damping_interval=2, rule_batch_fraction=1.0)
+
+
 # ---------------------------------------------------------------------------------------- shared by jobs and tests
 def build_model(dtype):
     """Three Kronecker blocks of different costs, so that both ranks own inversions."""
@@ -97,11 +101,11 @@ def weights(model):
     return [p.detach().clone() for p in model.parameters()]
 
 
-def single_process(dtype, fisher="exact", structure="kfac", regression=False, start_from=None):
+def single_process(dtype, fisher="exact", structure="kfac", regression=False, start_from=None, **overrides):
     """The reference: one process, the whole batch, no communicator."""
     model = build_model(dtype)
     loss_fn = nn.MSELoss() if regression else nn.CrossEntropyLoss()
-    opt = make_optimizer(model, loss_fn, fisher=fisher, structure=structure)
+    opt = make_optimizer(model, loss_fn, fisher=fisher, structure=structure, **overrides)
     start = 0
     if start_from is not None:
         model.load_state_dict(start_from["model"])
@@ -240,6 +244,7 @@ def job_train(rank, world, out_dir):
         "ddp_exact_f64_replicated": dict(dtype=torch.float64, shard=False),
         "ddp_diag_f64": dict(dtype=torch.float64, structure="diag"),
         "ddp_ekfac_f64": dict(dtype=torch.float64, structure="ekfac"),
+        "ddp_quadratic_lm_f64": dict(dtype=torch.float64, **QUADRATIC_RULES),
     }
     diagnostics = {}
     for name, options in runs.items():
@@ -480,6 +485,16 @@ def test_diagonal_curvature_matches_one_process(trained):
     reference = single_process(torch.float64, structure="diag")
     for rank in ranks:
         assert_same_weights(rank["ddp_diag_f64"], reference, **F64)
+
+
+def test_quadratic_rule_and_lm_damping_match_one_process(trained):
+    # The 2x2 system's products and the losses behind rho are averaged over the ranks before use:
+    # with equal shares and a mean-reduced loss that is the whole batch's value, so both ranks take the
+    # step (and the damping) one process with the whole batch takes.
+    ranks, _ = trained
+    reference = single_process(torch.float64, **QUADRATIC_RULES)
+    for rank in ranks:
+        assert_same_weights(rank["ddp_quadratic_lm_f64"], reference, **F64)
 
 
 def test_ekfac_matches_one_process(trained):
