@@ -7,9 +7,12 @@ training steps on the larger tasks, so it is done densely only where it
 decides something:
 
 - every ``fine`` steps while the run is near the target: the smallest
-  minibatch loss since the last evaluation, or the last evaluated loss, is at
-  most ``NEAR_FACTOR`` times the target (the minibatch losses come free with
-  the training steps);
+  minibatch loss since the last evaluation, or the last evaluated loss, has
+  covered the last ``NEAR_SHARE`` of the way from the initial loss L_0 down to
+  the target on a log scale, i.e. is at most target * (L_0 / target) **
+  NEAR_SHARE (the minibatch losses come free with the training steps; a log
+  scale, because a cross-entropy target sits far from zero on some tasks and
+  decades below the start on others);
 - every ``coarse`` steps otherwise (far above the target, or after reaching it),
   and at the last step.
 
@@ -22,6 +25,7 @@ does unless the minibatch losses run well above the whole-set loss, at most
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Callable, Optional
 
@@ -29,7 +33,7 @@ import torch
 
 CURVE_POINTS = 100  # evaluations per run at the fine interval
 COARSE_EVERY = 5  # the coarse interval is this many fine ones
-NEAR_FACTOR = 4.0  # "near the target": a loss within this factor of it
+NEAR_SHARE = 0.25  # "near the target": within this share of the log-way from the initial loss to it
 
 
 @dataclass(frozen=True)
@@ -47,14 +51,19 @@ class EvaluationSchedule:
         return step == self.steps or step % (self.fine if near else self.coarse) == 0
 
     def as_dict(self) -> dict:
-        return {"fine_every": self.fine, "coarse_every": self.coarse, "near_factor": NEAR_FACTOR}
+        return {"fine_every": self.fine, "coarse_every": self.coarse, "near_share": NEAR_SHARE}
 
 
-def near_target(loss: Optional[float], target: float) -> bool:
+def near_threshold(initial: float, target: float) -> float:
+    """The loss below which a run counts as near the target (+inf: always, where no log scale applies)."""
+    if not (target > 0 and initial > target and math.isfinite(initial)):
+        return math.inf
+    return target * (initial / target) ** NEAR_SHARE
+
+
+def near_target(loss: Optional[float], threshold: float) -> bool:
     """Whether a loss is close enough to the target to evaluate densely (unknown counts as near)."""
-    if loss is None or target <= 0:
-        return True
-    return loss <= NEAR_FACTOR * target
+    return loss is None or loss <= threshold
 
 
 @torch.no_grad()
@@ -98,8 +107,9 @@ def test_metric(metric: Optional[str], model: torch.nn.Module, loss_fn: torch.nn
 def describe_rule() -> str:
     """The evaluation rule in words, for any budget (each task's intervals are in its results entry)."""
     return (f"the training loss is the loss on the whole training set (eval mode, no autograd), evaluated "
-            f"every max(1, steps // {CURVE_POINTS}) steps while a run is within {NEAR_FACTOR:g}x of the target "
-            f"(judged from its minibatch losses and last evaluation) and {COARSE_EVERY} times less often "
-            "otherwise, and at the last step; steps to target are exact to within the gap between the "
+            f"every max(1, steps // {CURVE_POINTS}) steps while a run is near the target (its minibatch losses "
+            f"or last evaluation below target x (initial loss / target)^{NEAR_SHARE:g}, the last "
+            f"{NEAR_SHARE:.0%} of the way on a log scale), {COARSE_EVERY} times less often otherwise, "
+            "and at the last step; steps to target are exact to within the gap between the "
             "evaluation that first met the target and the one before it (target_resolution in results.json, "
             "the fine interval unless a run's minibatch losses ran well above its whole-set loss)")

@@ -15,7 +15,7 @@ from typing import Optional
 from benchmarks import plots, report, results
 from benchmarks.harness import TaskOutcome
 
-RUNNING = "still running when this was written (or killed before it could say more)"
+RUNNING = "still running when this was written, or killed"
 
 
 class ProgressiveOutputs:
@@ -39,14 +39,14 @@ class ProgressiveOutputs:
         if reason is None:
             return {"complete": True, "finished_runs": self.finished_count, "planned_runs": self.total}
         return {"complete": False, "reason": reason, "finished_runs": self.finished_count,
-                "planned_runs": self.total, "stopped_at": self.where()}
+                "planned_runs": self.total, "at": self.where()}
 
     def where(self) -> str:
         """Where the benchmark stands, in words."""
         current = self.current
         if current is None:
             last = self.outcomes[-1].task.name if self.outcomes else None
-            return f"after task {last}, before the next one" if last else "before the first run finished"
+            return f"after task {last}" if last else "before the first run finished"
         text = f"in task {current.task.name}, after {current.finished_runs} of its {current.planned_runs} runs"
         run = current.last_run
         if run is not None:

@@ -116,8 +116,8 @@ def reference_line(entry: dict) -> Optional[str]:
 def progress_line(entry: dict) -> Optional[str]:
     if entry.get("complete", True):
         return None
-    return (f"stopped early: {entry['finished_runs']} of {entry['planned_runs']} runs finished; the "
-            "figures above cover those runs only (an lr chosen from part of its grid)")
+    return (f"unfinished: {entry['finished_runs']} of {entry['planned_runs']} runs finished; the figures "
+            "above cover those runs only (an lr may be chosen from part of its grid)")
 
 
 def task_header(entry: dict) -> str:
@@ -181,9 +181,9 @@ def stop_note(results: dict) -> Optional[str]:
     status = results.get("status", {})
     if status.get("complete", True):
         return None
-    return (f"This benchmark stopped before the end ({status['reason']}): {status['finished_runs']} of "
-            f"{status['planned_runs']} runs finished; it stopped {status['stopped_at']}. Everything below "
-            "comes from the finished runs.")
+    return (f"This benchmark is unfinished ({status['reason']}): {status['finished_runs']} of "
+            f"{status['planned_runs']} runs finished, {status['at']}. Everything below comes from the "
+            "finished runs.")
 
 
 def console_summary(results: dict, with_tasks: bool = True) -> str:

@@ -31,7 +31,7 @@ from typing import Callable, Iterator, Optional
 import torch
 
 from benchmarks.coverage import parameter_coverage
-from benchmarks.evaluation import EvaluationSchedule, evaluate, near_target, test_metric
+from benchmarks.evaluation import EvaluationSchedule, evaluate, near_target, near_threshold, test_metric
 from benchmarks.optimizers import OptimizerSpec
 from benchmarks.tasks import Task
 
@@ -164,9 +164,12 @@ class Trace:
     seconds_to_target: Optional[float] = None
     target_resolution: Optional[int] = None
     diverged: bool = False
+    near_below: float = math.inf  # losses below this count as near the target (set from the first one)
 
     def record(self, step: int, elapsed: float, loss: float, target: float) -> None:
         previous = self.curve_steps[-1] if self.curve_steps else step
+        if not self.curve_steps:
+            self.near_below = near_threshold(loss, target)
         self.curve_steps.append(step)
         self.curve_seconds.append(elapsed)
         self.curve_losses.append(_finite_or_none(loss))
@@ -176,12 +179,13 @@ class Trace:
             self.steps_to_target, self.seconds_to_target = step, elapsed
             self.target_resolution = step - previous
 
-    def near(self, batch_loss: Optional[float], target: float) -> bool:
+    def near(self, batch_loss: Optional[float]) -> bool:
         """Whether to evaluate densely: the target not yet met and a recent loss close to it."""
         if self.steps_to_target is not None:
             return False
         last = self.curve_losses[-1] if self.curve_losses else None
-        return near_target(batch_loss, target) or (last is not None and near_target(last, target))
+        return near_target(batch_loss, self.near_below) or (
+            last is not None and near_target(last, self.near_below))
 
 
 def batch_loss_of(returned) -> Optional[float]:
@@ -220,7 +224,7 @@ def timed_training(task: Task, model, loss_fn, optimizer, data, seed: int, steps
         batch_loss = batch_loss_of(returned)
         if batch_loss is not None:
             lowest_batch_loss = batch_loss if lowest_batch_loss is None else min(lowest_batch_loss, batch_loss)
-        if schedule.due(step, trace.near(lowest_batch_loss, task.target_loss)):
+        if schedule.due(step, trace.near(lowest_batch_loss)):
             loss = evaluate(model, loss_fn, data.train_x, data.train_y)
             trace.record(step, elapsed, loss, task.target_loss)
             lowest_batch_loss = None

@@ -56,7 +56,7 @@ def task_verdict(entry: dict, threads: Optional[int]) -> str:
             text += f"; {', '.join(missed)} did not reach it"
     text += "."
     if not entry.get("complete", True):
-        text += f" (stopped early: {entry['finished_runs']} of {entry['planned_runs']} runs finished.)"
+        text += f" Unfinished: only {entry['finished_runs']} of {entry['planned_runs']} runs finished."
     warning = contention_warning(entry.get("load_average_max"), threads)
     if warning:
         text += f" Caution: {warning}."

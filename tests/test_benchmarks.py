@@ -188,12 +188,14 @@ def test_data_order_is_a_fixed_permutation_per_epoch():
     assert [batch.tolist() for batch, _ in zip(minibatches(10, 3, seed=7), range(6))] == first
 
 
-def test_diagnostics_option_logs_every_natural_gradient_run(tmp_path):
+def test_diagnostics_option_logs_every_natural_gradient_run(tmp_path, capsys):
     if not diagnostics_available():
         pytest.skip("ngopt.log_diagnostics is not available")
     argv = ["--tasks", "digits_mlp", "--optimizers", "ngopt,sgd", "--steps", "6", "--grid", "1",
             "--seeds", "1", "--diagnostics", "2", "--out", str(tmp_path), "--no-progress"]
     assert main(argv) == 0
+    closing = capsys.readouterr().out.strip().splitlines()[-1]
+    assert closing.startswith(f"results written to {tmp_path}/") and "diagnostics/" in closing
     logs = list((tmp_path / "diagnostics").iterdir())
     assert [path.name for path in logs] == ["digits_mlp_ngopt_lrdefault_seed0.jsonl"]  # none for sgd
     records = [json.loads(line) for line in logs[0].read_text().splitlines()]
@@ -416,7 +418,7 @@ def test_an_interrupted_benchmark_keeps_its_finished_runs(tmp_path, monkeypatch)
     status = results["status"]
     assert status["complete"] is False and "interrupted" in status["reason"]
     assert status["finished_runs"] == 2 and status["planned_runs"] == 2 * (2 + 1)
-    assert "in task digits_mlp, after 2 of its 6 runs" in status["stopped_at"]
+    assert "in task digits_mlp, after 2 of its 6 runs" in status["at"]
     entry = results["tasks"][0]
     assert entry["complete"] is False
     grids = {name: OPTIMIZERS[name].lr_grid(2) for name in ("sgd", "adam")}
@@ -426,7 +428,7 @@ def test_an_interrupted_benchmark_keeps_its_finished_runs(tmp_path, monkeypatch)
         curve_runs = {(row["optimizer"], float(row["lr"])) for row in csv.DictReader(handle)}
     assert curve_runs == {("sgd", grids["sgd"][0]), ("adam", grids["adam"][0])}
     report = (tmp_path / "report.md").read_text()
-    assert "stopped before the end (interrupted" in report and "2 of 6 runs finished" in report
+    assert "This benchmark is unfinished (interrupted" in report and "2 of 6 runs finished" in report
     assert (tmp_path / "loss_digits_mlp.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert not list(tmp_path.glob(".*partial"))  # no temporary file left behind
 
