@@ -60,8 +60,10 @@ def propose_target(task: Task, steps: int, seed: int, source: str) -> Task:
     best = min(progressed, key=progressed.get)
     target = back_off(progressed[best], initial)
     low = progressed[best]
-    rule = (f"on a log scale: {low:.4g} x ({initial:.4g} / {low:.4g})^{BACK_SHARE:g} = {target:.4g}"
-            if low > 0 else f"on a linear scale: {low:.4g} + {BACK_SHARE:g} x ({initial:.4g} - {low:.4g}) = {target:.4g}")
+    if low > 0:
+        rule = f"on a log scale: {low:.4g} x ({initial:.4g} / {low:.4g})^{BACK_SHARE:g} = {target:.4g}"
+    else:
+        rule = f"on a linear scale: {low:.4g} + {BACK_SHARE:g} x ({initial:.4g} - {low:.4g}) = {target:.4g}"
     reason = (f"proposed by the harness ({source} sets none): in a pilot run of {steps} steps on seed {seed}, "
               f"{' and '.join(f'{name} (lr {OPTIMIZERS[name].lr_centre:g})' for name in PILOT_OPTIMIZERS)} "
               f"took the training loss from {initial:.4g} down to "

@@ -77,7 +77,8 @@ def main(argv=None):
 
     print(f"width {args.width}, threads {args.threads}, {args.steps} timed steps x {args.rounds} rounds, "
           f"curvature {args.structure}")
-    print(f"{'batch':>6} {'sgd ms':>8} {'ngopt ms':>9} {'ratio(mean)':>11} {'ratio(median)':>13} {'flop est.':>9}  ngopt split (% of its step)")
+    print(f"{'batch':>6} {'sgd ms':>8} {'ngopt ms':>9} {'ratio(mean)':>11} {'ratio(median)':>13} "
+          f"{'flop est.':>9}  ngopt split (% of its step)")
     for batch in args.batches:
         sgd_times, ng_times, optimizer = [], [], None
         for _ in range(args.rounds):  # interleave so that machine noise hits both alike

@@ -515,3 +515,12 @@ def test_verdict_names_the_first_to_the_target_and_the_time_ratio():
     entry["summary"] = {"sgd": summary_of(None, 0, final=0.2), "adam": summary_of(None, 0, final=0.1)}
     assert "no optimizer reached the target; the lowest final training loss was adam's, 0.1" in \
         task_verdict(entry, threads=2)
+
+
+def test_near_the_target_means_the_last_quarter_of_the_way_on_a_log_scale():
+    from benchmarks.evaluation import near_threshold
+
+    # from chance-level cross-entropy log 10 to 0.01: 0.01 * (log(10) / 0.01) ** 0.25, by hand
+    assert near_threshold(math.log(10), 0.01) == pytest.approx(0.01 * (100 * math.log(10)) ** 0.25, rel=1e-12)
+    assert near_threshold(0.5, 1.0) == math.inf  # already below the target: evaluate densely
+    assert near_threshold(1.0, 0.0) == near_threshold(1.0, -math.inf) == math.inf  # no log scale
