@@ -272,7 +272,7 @@ def run_tasks(config: Config, argv: list[str]) -> dict:
             print("\n" + report.task_block(results.task_entry(outcome), threads=config.threads) + "\n",
                   flush=True)
     except KeyboardInterrupt:
-        outputs.stopped("interrupted (Ctrl-C / SIGINT)")
+        outputs.stopped("interrupted by Ctrl-C / SIGINT")
         print(report.console_summary(outputs.results(), with_tasks=False), flush=True)
         print(closing_message(config, outputs, interrupted=True), flush=True)
         raise

@@ -46,7 +46,8 @@ class ProgressiveOutputs:
         current = self.current
         if current is None:
             last = self.outcomes[-1].task.name if self.outcomes else None
-            return f"after task {last}" if last else "before the first run finished"
+            return f"after task {last}, before any run of the next one finished" if last else \
+                "before the first run finished"
         text = f"in task {current.task.name}, after {current.finished_runs} of its {current.planned_runs} runs"
         run = current.last_run
         if run is not None:
