@@ -57,9 +57,25 @@ def task_verdict(entry: dict, threads: Optional[int]) -> str:
     text += "."
     if not entry.get("complete", True):
         text += f" Unfinished: only {entry['finished_runs']} of {entry['planned_runs']} runs finished."
-    warning = contention_warning(entry.get("load_average_max"), threads)
-    if warning:
-        text += f" Caution: {warning}."
+    if contention_warning(entry.get("load_average_max"), threads):
+        text += f" [load {entry['load_average_max']:.1f}]"
+    return text
+
+
+def caution(results: dict) -> Optional[str]:
+    """One warning for every task whose runs shared the CPU with other work (marked [load L])."""
+    threads = results["settings"].get("threads")
+    loads = [entry.get("load_average_max") for entry in results["tasks"]
+             if contention_warning(entry.get("load_average_max"), threads)]
+    if not loads:
+        return None
+    text = (f"Caution [load L]: the machine's load average reached L (up to {max(loads):.1f}) with {threads} "
+            "torch thread(s): other processes competed for the CPU, so those wall-clock times are inflated "
+            "and noisy; compare them only with the others of the same task.")
+    if threads and threads > 1:
+        # measured: digits_autoencoder SGD steps 33x slower at 2 threads than at 1 beside one busy process
+        text += (" On a busy machine several torch threads wait for each other and can slow every step many "
+                 "times over; --threads 1 suffers least.")
     return text
 
 
@@ -69,7 +85,8 @@ def verdict_lines(results: dict) -> list[str]:
 
 
 def verdict_text(results: dict, markdown: bool = False) -> str:
-    lines = verdict_lines(results)
+    lines, warning = verdict_lines(results), caution(results)
     if markdown:
-        return "\n".join(["## Verdict", "", HEADING + ".", ""] + [f"- {line}" for line in lines])
-    return "\n".join([HEADING] + [f"* {line}" for line in lines])
+        return "\n".join(["## Verdict", "", HEADING + ".", ""] + [f"- {line}" for line in lines]
+                         + ([""] + [warning] if warning else []))
+    return "\n".join([HEADING] + [f"* {line}" for line in lines] + ([warning] if warning else []))

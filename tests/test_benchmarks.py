@@ -498,7 +498,7 @@ def summary_of(seconds, reached=3, tuned=True, final=0.01):
 
 
 def test_verdict_names_the_first_to_the_target_and_the_time_ratio():
-    from benchmarks.verdict import task_verdict
+    from benchmarks.verdict import caution, task_verdict
 
     entry = {"task": "t", "target_loss": 0.01, "steps": 100, "load_average_max": 1.0,
              "summary": {"ngopt": summary_of(0.58, tuned=False), "sgd": summary_of(None, reached=0),
@@ -506,9 +506,10 @@ def test_verdict_names_the_first_to_the_target_and_the_time_ratio():
     text = task_verdict(entry, threads=2)
     assert "ngopt (untuned) reached the target first, in 0.58 s" in text
     assert "0.58× adam's time (1 s), the next fastest" in text and "sgd did not reach it" in text
-    assert "Caution" not in text
+    assert "[load" not in text
     entry["load_average_max"] = 5.0  # above the 2 threads: other processes competed
-    assert "Caution: the machine's load average reached 5.0" in task_verdict(entry, threads=2)
+    assert task_verdict(entry, threads=2).endswith(". [load 5.0]")
+    assert "load average reached L (up to 5.0) with 2" in caution({"settings": {"threads": 2}, "tasks": [entry]})
     entry["summary"]["ngopt"] = summary_of(1.5, tuned=False)
     text = task_verdict(entry, threads=2)
     assert "adam reached the target first" in text and "ngopt (untuned) took 1.50× adam's time" in text
