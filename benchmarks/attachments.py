@@ -25,17 +25,21 @@ def diagnostics_available() -> bool:
 
 
 def diagnostics_attacher(directory: Path, every: int) -> AttachFactory:
-    """For each ngopt run, a JSON-lines log ``<task>_ngopt_lr<lr>_seed<seed>.jsonl`` in ``directory``."""
+    """For each FisherDescent run, a JSON-lines log ``<task>_<row>_lr<lr>_seed<seed>.jsonl`` in ``directory``.
+
+    ``<lr>`` is ``default`` for an untuned row (built without an lr).
+    """
     if not diagnostics_available():
         raise ValueError("--diagnostics needs ngopt.log_diagnostics, which this ngopt does not provide")
     import ngopt
 
     directory.mkdir(parents=True, exist_ok=True)
 
-    def attach_for(task: Task, spec: OptimizerSpec, lr: float, seed: int) -> Optional[Attach]:
-        if spec.name != "ngopt":
+    def attach_for(task: Task, spec: OptimizerSpec, lr: Optional[float], seed: int) -> Optional[Attach]:
+        if spec.natural_gradient_options is None:
             return None
-        path = directory / f"{task.name}_ngopt_lr{lr:.3g}_seed{seed}.jsonl"
+        lr_text = "default" if lr is None else f"{lr:.3g}"
+        path = directory / f"{task.name}_{spec.name}_lr{lr_text}_seed{seed}.jsonl"
 
         def attach(optimizer):
             handle = ngopt.log_diagnostics(optimizer, str(path), every=every)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import ast
+import gc
 import json
 import shlex
 import sys
@@ -16,11 +17,15 @@ import torch
 from benchmarks import optimizers as optimizer_registry
 from benchmarks import plots, report, results, scaling
 from benchmarks.attachments import diagnostics_attacher, diagnostics_available
-from benchmarks.harness import TaskOutcome, benchmark_task
+from benchmarks.evaluation import describe_rule
+from benchmarks.harness import benchmark_task, planned_runs
 from benchmarks.machine import machine_info
 from benchmarks.optimizers import GRID_DECADES, OptimizerSpec, resolve_optimizers
+from benchmarks.outputs import ProgressiveOutputs
+from benchmarks.pilot import propose_target
 from benchmarks.profiling import write_profile
-from benchmarks.tasks import TASKS, Task, resolve_tasks
+from benchmarks.task_file import load_task_file
+from benchmarks.tasks import ON_REQUEST_TASKS, TASKS, Task, resolve_tasks
 from benchmarks.training import load_average
 
 FULL_GRID, QUICK_GRID = 5, 3
@@ -45,6 +50,7 @@ class Config:
     diagnostics_every: Optional[int]
     profile: bool
     scaling: bool
+    task_file: Optional[Path] = None
     flush_denormal: bool = False  # whether subnormal floats are flushed to zero (CPU support)
 
 
@@ -57,7 +63,13 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--quick", action="store_true",
                         help=f"short budget: each task's quick step count, {QUICK_GRID}-point lr grids "
                              f"(default: full step counts, {FULL_GRID}-point grids)")
-    parser.add_argument("--tasks", help=f"comma-separated task names (default all: {', '.join(TASKS)})")
+    parser.add_argument("--tasks", help="comma-separated task names (default: "
+                        f"{', '.join(n for n in TASKS if n not in ON_REQUEST_TASKS)}; on request: "
+                        f"{', '.join(ON_REQUEST_TASKS)})")
+    parser.add_argument("--task-file", type=Path, metavar="FILE.py",
+                        help="run the comparison on your own problem described in FILE.py (data, make_model, "
+                             "criterion, batch_size, steps, optional target_loss; see examples/my_task.py) "
+                             "instead of the built-in tasks")
     parser.add_argument("--optimizers", help="comma-separated optimizer names (default: "
                                              f"{', '.join(optimizer_registry.DEFAULT_OPTIMIZERS)}; all: "
                                              f"{', '.join(optimizer_registry.OPTIMIZERS)})")
@@ -81,9 +93,12 @@ def build_parser() -> argparse.ArgumentParser:
                         help="after the benchmark, profile one ngopt run per task at its chosen lr "
                              "with cProfile into OUT/profile_<task>_ngopt.txt (needs --out)")
     parser.add_argument("--ngopt-option", action="append", default=[], metavar="KEY=VALUE",
-                        help="override one FisherDescent default for every task alike, e.g. "
-                             "--ngopt-option momentum=0.9 (repeatable; for tuning the defaults)")
-    parser.add_argument("--no-progress", action="store_true", help="no progress bars")
+                        help="pass one keyword to FisherDescent in every ngopt row and task alike, e.g. "
+                             "--ngopt-option structure=ekfac or --ngopt-option lr=0.1 (repeatable; values "
+                             "are Python literals; keys go to FisherDescent unchecked)")
+    parser.add_argument("--no-progress", action="store_true",
+                        help="no progress output (by default a bar per run on a terminal, one line per "
+                             "finished run when stderr is redirected)")
     return parser
 
 
@@ -124,7 +139,12 @@ def parse_options(items: list[str]) -> dict:
 
 def make_config(args: argparse.Namespace) -> Config:
     """Check and resolve the options; every problem is a ValueError naming the option."""
-    tasks = resolve_tasks(split_names(args.tasks))
+    if args.task_file is not None and args.tasks is not None:
+        raise ValueError("--task-file and --tasks exclude each other: the task file is the one task run")
+    if args.task_file is not None and args.scaling:
+        raise ValueError("--task-file and --scaling exclude each other")
+    tasks = [load_task_file(args.task_file)] if args.task_file is not None else \
+        resolve_tasks(split_names(args.tasks))
     ngopt_options = parse_options(args.ngopt_option)
     specs = [optimizer_registry.with_natural_gradient_options(spec, ngopt_options)
              if spec.natural_gradient_options is not None else spec
@@ -143,12 +163,12 @@ def make_config(args: argparse.Namespace) -> Config:
         raise ValueError("--profile needs --out")
     steps = {task.name: args.steps or (task.quick_steps if args.quick else task.steps) for task in tasks}
     return Config(tasks, specs, seeds, grid, steps, args.steps, ngopt_options, args.quick, args.threads, args.out,
-                  not args.no_progress, args.diagnostics, args.profile, args.scaling)
+                  not args.no_progress, args.diagnostics, args.profile, args.scaling, args.task_file)
 
 
 def natural_gradient_settings(spec: OptimizerSpec) -> dict:
-    """The group hyperparameters FisherDescent ends up with (defaults plus any overrides)."""
-    optimizer = spec.build(torch.nn.Linear(2, 1), torch.nn.MSELoss(), spec.lr_centre)
+    """The group hyperparameters FisherDescent ends up with (its defaults plus any options given)."""
+    optimizer = spec.build(torch.nn.Linear(2, 1), torch.nn.MSELoss(), None)
     return json.loads(json.dumps(optimizer.defaults, default=repr))
 
 
@@ -167,25 +187,14 @@ def settings_of(config: Config, argv: list[str]) -> dict:
         "threads": config.threads,
         "flush_denormal": config.flush_denormal,
         "diagnostics_every": config.diagnostics_every,
+        "evaluation": describe_rule(),
+        "task_file": None if config.task_file is None else str(config.task_file),
     }
     for spec in config.specs:
         if spec.name == "ngopt":
             settings["ngopt_group_settings"] = natural_gradient_settings(spec)
             settings["ngopt_options"] = config.ngopt_options
     return settings
-
-
-def write_outputs(config: Config, results_dict: dict, outcomes: list[TaskOutcome]) -> None:
-    out = config.out
-    out.mkdir(parents=True, exist_ok=True)
-    results.write_json(results_dict, out / "results.json")
-    results.write_curves(outcomes, out / "curves.csv")
-    plot_files = {}
-    for outcome in outcomes:
-        name = f"loss_{outcome.task.name}.png"
-        plots.plot_task(outcome, out / name)
-        plot_files[outcome.task.name] = name
-    (out / "report.md").write_text(report.markdown_report(results_dict, plot_files))
 
 
 def check_ready(config: Config) -> None:
@@ -198,45 +207,104 @@ def check_ready(config: Config) -> None:
         if not available:
             raise ValueError(f"optimizer ngopt: ngopt.FisherDescent does not import ({reason}); "
                              "run the baselines alone with --optimizers sgd,adam")
-    if config.ngopt_options and "ngopt" in names:
-        spec = next(spec for spec in config.specs if spec.name == "ngopt")
+    natural = [spec for spec in config.specs if spec.natural_gradient_options is not None]
+    if natural and not names & {"ngopt"}:
+        available, reason = optimizer_registry.natural_gradient_available()
+        if not available:
+            raise ValueError(f"optimizers {', '.join(spec.name for spec in natural)}: ngopt.FisherDescent "
+                             f"does not import ({reason})")
+    for spec in natural:
         try:
             natural_gradient_settings(spec)
+            spec.lr_grid(config.grid_size)  # ngopt-tuned reads its grid centre from the library
         except (TypeError, ValueError) as error:
-            raise ValueError(f"--ngopt-option: FisherDescent rejects {config.ngopt_options}: {error}")
+            raise ValueError(f"--ngopt-option: FisherDescent ({spec.name}) rejects "
+                             f"{spec.natural_gradient_options}: {error}")
+    if config.task_file is not None and natural:
+        check_task_model(config.tasks[0], natural[0])
     if config.diagnostics_every is not None and not diagnostics_available():
         raise ValueError("--diagnostics needs ngopt.log_diagnostics, which this ngopt does not provide")
 
 
+def check_task_model(task: Task, spec: OptimizerSpec) -> None:
+    """FisherDescent builds on the task file's model (layers it has no block for are fine)."""
+    torch.manual_seed(0)
+    try:
+        optimizer = spec.build(task.build_model(), task.make_loss(), None)
+    except (TypeError, ValueError) as error:
+        raise ValueError(f"{task.name}: ngopt.FisherDescent rejects the model of the task file: {error}; "
+                         "run the baselines alone with --optimizers sgd,adam")
+    if hasattr(optimizer, "remove_hooks"):
+        optimizer.remove_hooks()
+
+
+def with_targets(config: Config) -> list[Task]:
+    """The tasks, each task without a target (a task file may give none) given one from a pilot run."""
+    tasks = []
+    for task in config.tasks:
+        if task.target_loss is None:
+            print(f"{task.name}: no target_loss given; proposing one from a pilot run of sgd and adam "
+                  f"({config.steps[task.name]} steps each)", flush=True)
+            task = propose_target(task, config.steps[task.name], config.seeds[0],
+                                  config.task_file.name if config.task_file else task.name)
+            print(f"{task.name}: target training loss {task.target_loss:.4g} ({task.target_reason})", flush=True)
+        tasks.append(task)
+    return tasks
+
+
 def run_tasks(config: Config, argv: list[str]) -> dict:
+    """Every task through the protocol, writing the files after every finished run.
+
+    An interruption (Ctrl-C) or an error leaves the files of the finished runs,
+    marked with where the benchmark stopped; Ctrl-C then ends with status 130.
+    """
     attach_for = None
     if config.diagnostics_every is not None:
         attach_for = diagnostics_attacher(config.out / "diagnostics", config.diagnostics_every)
     settings = settings_of(config, argv)
     settings["load_average_start"] = load_average()
-    machine = machine_info()
-    outcomes = []
-    for task in config.tasks:
-        outcome = benchmark_task(task, config.specs, config.seeds, config.grid_size,
-                                 config.steps[task.name], progress=config.progress, attach_for=attach_for)
-        outcomes.append(outcome)
-        print("\n" + report.task_block(results.task_entry(outcome), threads=config.threads) + "\n",
-              flush=True)
+    total = len(config.tasks) * planned_runs(config.specs, config.grid_size, config.seeds)
+    outputs = ProgressiveOutputs(config.out, machine_info(), settings, total)
+    try:
+        for task in with_targets(config):
+            outcome = benchmark_task(task, config.specs, config.seeds, config.grid_size,
+                                     config.steps[task.name], progress=config.progress,
+                                     attach_for=attach_for, on_run=outputs.run_finished)
+            outputs.task_finished(outcome)
+            print("\n" + report.task_block(results.task_entry(outcome), threads=config.threads) + "\n",
+                  flush=True)
+    except KeyboardInterrupt:
+        outputs.stopped("interrupted by Ctrl-C / SIGINT")
+        print(report.console_summary(outputs.results(), with_tasks=False), flush=True)
+        print(closing_message(config, outputs, interrupted=True), flush=True)
+        raise
+    except Exception as error:
+        outputs.stopped(f"error: {type(error).__name__}: {error}")
+        print(closing_message(config, outputs, interrupted=True), flush=True)
+        raise
     settings["load_average_end"] = load_average()
-    results_dict = results.build_results(machine, settings, outcomes)
-    summary = report.console_summary(results_dict, with_tasks=False)
-    if summary:
-        print(summary, flush=True)
-    if config.out is not None:
-        write_outputs(config, results_dict, outcomes)
-        if config.profile and "ngopt" in {spec.name for spec in config.specs}:
-            for outcome in outcomes:
-                chosen = outcome.outcomes["ngopt"]
-                path = write_profile(outcome.task, chosen.spec, chosen.best_lr, config.seeds[0],
-                                     config.steps[outcome.task.name], config.out)
-                print(f"profile written to {path}")
-        print(f"results written to {config.out}/ (results.json, curves.csv, report.md, loss_*.png)")
+    results_dict = outputs.finished()
+    print(report.console_summary(results_dict, with_tasks=False), flush=True)
+    if config.out is not None and config.profile and "ngopt" in {spec.name for spec in config.specs}:
+        for outcome in outputs.outcomes:
+            chosen = outcome.outcomes["ngopt"]
+            path = write_profile(outcome.task, chosen.spec, None if not chosen.spec.tuned else chosen.best_lr,
+                                 config.seeds[0], config.steps[outcome.task.name], config.out)
+            outputs.written.append(path.name)
+    print(closing_message(config, outputs), flush=True)
     return results_dict
+
+
+def closing_message(config: Config, outputs: ProgressiveOutputs, interrupted: bool = False) -> str:
+    if config.out is None:
+        return "nothing written (no --out)" if interrupted else ""
+    files = ["results.json", "curves.csv", "report.md"] + sorted(set(outputs.written))
+    if config.diagnostics_every is not None:
+        files.append("diagnostics/ (one JSON-lines log per ngopt run; `python -m ngopt.report LOG --out DIR` "
+                     "draws one)")
+    head = (f"the finished runs ({outputs.finished_count} of {outputs.total}) are written to"
+            if interrupted else "results written to")
+    return f"{head} {config.out}/: " + ", ".join(files)
 
 
 def run_scaling_study(config: Config, argv: list[str]) -> list[dict]:
@@ -282,7 +350,10 @@ def main(argv: Optional[list[str]] = None) -> int:
             run_scaling_study(config, argv)
         else:
             run_tasks(config, argv)
+    except KeyboardInterrupt:
+        return 130  # the shell's status for a process ended by SIGINT
     finally:  # leave the process as it was when main() is called from Python
+        gc.unfreeze()  # the harness sets live objects aside from garbage collection (see harness)
         torch.set_flush_denormal(False)
         torch.set_num_threads(threads_before)
     return 0

@@ -2,35 +2,39 @@
 
 For each task and optimizer:
 
-1. run every learning rate of the optimizer's grid (same size for all) on the
-   first seed;
+1. run every learning rate of the optimizer's grid (same size for all tuned
+   optimizers) on the first seed; an untuned row (ngopt at its defaults) has
+   a single point, the optimizer's own default;
 2. pick the learning rate with the lowest final training loss (a diverged run
    counts as +inf);
 3. run that learning rate on the remaining seeds;
 4. summarize the runs at the chosen rate (first seed included) by medians.
 
 Seeds, batch size, step budget, initial weights and data order are shared by
-all optimizers (see :mod:`benchmarks.training`).
+all optimizers (see :mod:`benchmarks.training`). After every finished run the
+harness hands the task's outcome so far to a callback, so that an interrupted
+benchmark can still write what it measured.
 """
 
 from __future__ import annotations
 
+import gc
 import math
 import statistics
+import sys
 from dataclasses import dataclass, field
 from typing import Callable, Optional
 
 import torch
 from tqdm import tqdm
 
+from benchmarks.evaluation import EvaluationSchedule
 from benchmarks.optimizers import OptimizerSpec
 from benchmarks.tasks import Task
 from benchmarks.training import Attach, RunResult, train_run
 
-CURVE_POINTS = 100  # evaluations of the full training loss per run (at most)
-
 # attach_for(task, spec, lr, seed) -> Attach or None
-AttachFactory = Callable[[Task, OptimizerSpec, float, int], Optional[Attach]]
+AttachFactory = Callable[[Task, OptimizerSpec, Optional[float], int], Optional[Attach]]
 
 
 @dataclass
@@ -54,8 +58,15 @@ class OptimizerOutcome:
 class TaskOutcome:
     task: Task
     steps: int
-    eval_every: int
+    schedule: EvaluationSchedule
     outcomes: dict[str, OptimizerOutcome] = field(default_factory=dict)
+    finished_runs: int = 0
+    planned_runs: int = 0
+    last_run: Optional[RunResult] = None  # the run that finished last
+
+    @property
+    def complete(self) -> bool:
+        return self.finished_runs == self.planned_runs
 
 
 WARMUP_STEPS = 3
@@ -74,8 +85,17 @@ def warm_up(task: Task) -> None:
         loss_fn(model(data.train_x), data.train_y)
 
 
-def eval_interval(steps: int) -> int:
-    return max(1, steps // CURVE_POINTS)
+def set_aside_live_objects() -> None:
+    """Collect garbage once, then exempt every live object from later collections (gc.freeze).
+
+    Each run ends with a garbage collection so that its memory figures see only
+    what outlives the run; with the libraries, data and earlier results set
+    aside, that collection scans just the objects the run made (milliseconds,
+    instead of a tenth of a second or more for a full scan). ``main`` undoes it
+    at the end (gc.unfreeze).
+    """
+    gc.collect()
+    gc.freeze()
 
 
 def selection_key(run: RunResult) -> float:
@@ -114,6 +134,7 @@ def summarize(outcome: OptimizerOutcome) -> dict:
     return {
         "optimizer": outcome.spec.name,
         "label": outcome.spec.label,
+        "lr_tuned": outcome.spec.tuned,
         "lr_grid": outcome.lr_grid,
         "best_lr": outcome.best_lr,
         "seeds": [run.seed for run in runs],
@@ -121,6 +142,8 @@ def summarize(outcome: OptimizerOutcome) -> dict:
         "runs": len(runs),
         "steps_to_target": median_missing_last([run.steps_to_target for run in runs]),
         "seconds_to_target": median_missing_last([run.seconds_to_target for run in runs]),
+        "target_resolution_max": max((run.target_resolution for run in runs
+                                      if run.target_resolution is not None), default=None),
         "final_train_loss": median_missing_last([run.final_train_loss for run in runs]),
         "final_test_metric": median_present([run.final_test_metric for run in runs]),
         "step_seconds_median": statistics.median(run.step_seconds_median for run in runs),
@@ -128,28 +151,74 @@ def summarize(outcome: OptimizerOutcome) -> dict:
         "train_seconds": statistics.median(run.train_seconds for run in runs),
         "diverged": sum(run.diverged for run in runs),
         "time_split_per_step": per_step_split(runs),
+        "parameter_coverage": runs[0].parameter_coverage,
         "optimizer_state_bytes": max(run.optimizer_state_bytes for run in runs),
         "process_peak_rss_bytes": max(run.process_peak_rss_bytes for run in runs),
         "rss_growth_bytes": median_present([run.rss_growth_bytes for run in runs]),
     }
 
 
+def planned_runs(specs: list[OptimizerSpec], grid_size: int, seeds: list[int]) -> int:
+    """Runs of the protocol on one task: each grid on the first seed, the chosen lr on the others."""
+    return sum(len(spec.lr_grid(grid_size)) + len(seeds) - 1 for spec in specs)
+
+
+def run_line(task: Task, run: RunResult, index: int, total: int) -> str:
+    """One plain line per finished run, for logs where a progress bar would be noise."""
+    reached = (f"target at step {run.steps_to_target} ({run.seconds_to_target:.3g} s)"
+               if run.steps_to_target is not None else "target not reached")
+    final = "diverged" if run.diverged else f"final loss {run.final_train_loss:.4g}"
+    return (f"{task.name} run {index}/{total}: {run.optimizer} lr={run.lr:.3g} seed={run.seed}, "
+            f"{run.steps_run} steps in {run.train_seconds:.3g} s, {reached}, {final}")
+
+
 class RunScheduler:
-    """Runs one task's trainings, reporting each to a progress bar."""
+    """Runs one task's trainings: a progress bar per run on a terminal, a plain line per run elsewhere."""
 
-    def __init__(self, task: Task, steps: int, bar: tqdm, attach_for: Optional[AttachFactory]):
-        self.task, self.steps, self.bar, self.attach_for = task, steps, bar, attach_for
-        self.done_steps = 0
+    def __init__(self, task: Task, steps: int, schedule: EvaluationSchedule, total: int,
+                 progress: bool, attach_for: Optional[AttachFactory]):
+        self.task, self.steps, self.schedule, self.total = task, steps, schedule, total
+        self.progress, self.attach_for = progress, attach_for
+        self.done = 0
+        self.last: Optional[RunResult] = None
 
-    def run(self, spec: OptimizerSpec, lr: float, seed: int) -> RunResult:
-        self.bar.set_postfix_str(f"{spec.name} lr={lr:.3g} seed={seed}")
+    def run(self, spec: OptimizerSpec, lr: Optional[float], seed: int) -> RunResult:
+        lr_text = "default lr" if lr is None else f"lr={lr:.3g}"
+        description = f"{self.task.name} {self.done + 1}/{self.total} {spec.name} {lr_text} seed={seed}"
         attach = self.attach_for(self.task, spec, lr, seed) if self.attach_for is not None else None
-        result = train_run(self.task, spec, lr, seed, self.steps, eval_interval(self.steps),
-                           on_step=self.bar.update, attach=attach)
-        self.done_steps += self.steps  # a diverged run stops early: count its unused steps too
-        self.bar.n = self.done_steps
-        self.bar.refresh()
+        # disable=None: tqdm draws only on a terminal, so a redirected log gets no refresh lines
+        with tqdm(total=self.steps, desc=description, unit="step", leave=False, dynamic_ncols=True,
+                  disable=None if self.progress else True, mininterval=0.5) as bar:
+            result = train_run(self.task, spec, lr, seed, self.steps, self.schedule,
+                               on_step=bar.update, attach=attach)
+        self.done += 1
+        self.last = result
+        if self.progress and not _stderr_is_terminal():
+            print(run_line(self.task, result, self.done, self.total), file=sys.stderr, flush=True)
         return result
+
+
+def _stderr_is_terminal() -> bool:
+    try:
+        return sys.stderr.isatty()
+    except (AttributeError, ValueError):
+        return False
+
+
+def outcome_so_far(task: Task, steps: int, schedule: EvaluationSchedule, specs: list[OptimizerSpec],
+                   grids: dict, tuning: dict, repeats: dict, scheduler: RunScheduler) -> TaskOutcome:
+    """The task's outcome from the runs finished so far (every optimizer with at least one run)."""
+    result = TaskOutcome(task, steps, schedule, finished_runs=scheduler.done, planned_runs=scheduler.total,
+                         last_run=scheduler.last)
+    for spec in specs:
+        runs = tuning[spec.name]
+        if not runs:
+            continue
+        best = min(runs, key=selection_key).lr
+        result.outcomes[spec.name] = OptimizerOutcome(
+            spec, [run.lr for run in runs] if not spec.tuned else grids[spec.name], best, runs,
+            repeats[spec.name])
+    return result
 
 
 def benchmark_task(
@@ -160,8 +229,9 @@ def benchmark_task(
     steps: int,
     progress: bool = True,
     attach_for: Optional[AttachFactory] = None,
+    on_run: Optional[Callable[[TaskOutcome], None]] = None,
 ) -> TaskOutcome:
-    """The whole protocol on one task, with one progress bar over all its steps.
+    """The whole protocol on one task; ``on_run`` gets the outcome so far after every finished run.
 
     The optimizers take turns run by run (first every optimizer's smallest lr,
     then the next lr, ...; then each repeat seed for every optimizer), so that a
@@ -169,22 +239,29 @@ def benchmark_task(
     instead of on whichever happened to run then.
     """
     warm_up(task)
+    set_aside_live_objects()
+    schedule = EvaluationSchedule.for_steps(steps)
     grids = {spec.name: spec.lr_grid(grid_size) for spec in specs}
-    total = len(specs) * (grid_size + len(seeds) - 1) * steps
-    with tqdm(total=total, desc=task.name, unit="step", disable=not progress, leave=True,
-              dynamic_ncols=True) as bar:
-        scheduler = RunScheduler(task, steps, bar, attach_for)
-        tuning: dict[str, list[RunResult]] = {spec.name: [] for spec in specs}
-        for index in range(grid_size):
-            for spec in specs:
+    total = planned_runs(specs, grid_size, seeds)
+    scheduler = RunScheduler(task, steps, schedule, total, progress, attach_for)
+    tuning: dict[str, list[RunResult]] = {spec.name: [] for spec in specs}
+    repeats: dict[str, list[RunResult]] = {spec.name: [] for spec in specs}
+
+    def finished() -> TaskOutcome:
+        outcome = outcome_so_far(task, steps, schedule, specs, grids, tuning, repeats, scheduler)
+        if on_run is not None:
+            on_run(outcome)
+        return outcome
+
+    for index in range(grid_size):
+        for spec in specs:
+            if index < len(grids[spec.name]):
                 tuning[spec.name].append(scheduler.run(spec, grids[spec.name][index], seeds[0]))
-        best = {name: min(runs, key=selection_key).lr for name, runs in tuning.items()}
-        repeats: dict[str, list[RunResult]] = {spec.name: [] for spec in specs}
-        for seed in seeds[1:]:
-            for spec in specs:
-                repeats[spec.name].append(scheduler.run(spec, best[spec.name], seed))
-    result = TaskOutcome(task, steps, eval_interval(steps))
-    for spec in specs:
-        result.outcomes[spec.name] = OptimizerOutcome(
-            spec, grids[spec.name], best[spec.name], tuning[spec.name], repeats[spec.name])
-    return result
+                finished()
+    # an untuned row repeats as it was built: without an lr, at the optimizer's default
+    best = {spec.name: min(tuning[spec.name], key=selection_key).lr if spec.tuned else None for spec in specs}
+    for seed in seeds[1:]:
+        for spec in specs:
+            repeats[spec.name].append(scheduler.run(spec, best[spec.name], seed))
+            finished()
+    return outcome_so_far(task, steps, schedule, specs, grids, tuning, repeats, scheduler)

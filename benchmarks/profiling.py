@@ -6,8 +6,8 @@ import cProfile
 import io
 import pstats
 from pathlib import Path
+from typing import Optional
 
-from benchmarks.harness import eval_interval
 from benchmarks.optimizers import OptimizerSpec
 from benchmarks.tasks import Task
 from benchmarks.training import train_run
@@ -15,7 +15,7 @@ from benchmarks.training import train_run
 TOP_FUNCTIONS = 30
 
 
-def profile_run(task: Task, spec: OptimizerSpec, lr: float, seed: int, steps: int) -> str:
+def profile_run(task: Task, spec: OptimizerSpec, lr: Optional[float], seed: int, steps: int) -> str:
     """cProfile text of one run: the functions with the most own time, then the most cumulative time.
 
     The profile covers evaluation too (cProfile cannot leave it out), but
@@ -24,11 +24,11 @@ def profile_run(task: Task, spec: OptimizerSpec, lr: float, seed: int, steps: in
     """
     profiler = cProfile.Profile()
     profiler.enable()
-    train_run(task, spec, lr, seed, steps, eval_interval(steps))
+    run = train_run(task, spec, lr, seed, steps)
     profiler.disable()
     text = io.StringIO()
     stats = pstats.Stats(profiler, stream=text)
-    text.write(f"# cProfile of {task.name}, {spec.name} lr={lr:.3g} seed={seed}, {steps} steps\n")
+    text.write(f"# cProfile of {task.name}, {spec.name} lr={run.lr:.3g} seed={seed}, {steps} steps\n")
     text.write("\n## by own time (tottime)\n")
     stats.sort_stats("tottime").print_stats(TOP_FUNCTIONS)
     text.write("\n## by cumulative time\n")
@@ -36,7 +36,7 @@ def profile_run(task: Task, spec: OptimizerSpec, lr: float, seed: int, steps: in
     return text.getvalue()
 
 
-def write_profile(task: Task, spec: OptimizerSpec, lr: float, seed: int, steps: int, directory: Path) -> Path:
+def write_profile(task: Task, spec: OptimizerSpec, lr: Optional[float], seed: int, steps: int, directory: Path) -> Path:
     path = directory / f"profile_{task.name}_{spec.name}.txt"
     path.write_text(profile_run(task, spec, lr, seed, steps))
     return path

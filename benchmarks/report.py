@@ -4,54 +4,44 @@ from __future__ import annotations
 
 from typing import Optional
 
-from benchmarks.goals import NGOPT, describe_ratio, explain_miss
+from benchmarks.comparison import FLOP_ESTIMATE_TEXT, NGOPT, describe_ratio, step_time_breakdown
+from benchmarks.report_format import contention_warning, format_number, format_table
+from benchmarks.verdict import verdict_text
 
-TABLE_HEADERS = ["optimizer", "best lr", "reached", "steps to target", "s to target",
+TABLE_HEADERS = ["optimizer", "lr", "reached", "steps to target", "s to target",
                  "final train loss", "test {metric}", "step ms (median)"]
 
 
-def format_number(value: Optional[float], digits: int = 3) -> str:
+def lr_text(summary: dict) -> str:
+    if summary["lr_tuned"]:
+        return format_number(summary["best_lr"])
+    return f"{format_number(summary['best_lr'])} (default)"
+
+
+def metric_text(value: Optional[float], metric: Optional[str]) -> str:
     if value is None:
         return "-"
-    if isinstance(value, int):
-        return str(value)
-    if value != 0 and (abs(value) < 1e-3 or abs(value) >= 1e5):
-        return f"{value:.{digits - 1}e}"
-    return f"{value:.{digits}g}"
-
-
-def format_table(headers: list[str], rows: list[list[str]], markdown: bool = False) -> str:
-    """A plain aligned table for the console, or a GitHub markdown table."""
-    if markdown:
-        lines = ["| " + " | ".join(headers) + " |", "|" + "|".join("---" for _ in headers) + "|"]
-        lines += ["| " + " | ".join(row) + " |" for row in rows]
-        return "\n".join(lines)
-    widths = [max(len(str(cell)) for cell in column) for column in zip(headers, *rows)]
-    def line(cells):
-        return "  ".join(str(cell).ljust(width) for cell, width in zip(cells, widths)).rstrip()
-    return "\n".join([line(headers), line(["-" * width for width in widths])] + [line(r) for r in rows])
+    return f"{100 * value:.1f}%" if metric == "accuracy" else format_number(value)
 
 
 def task_rows(entry: dict) -> list[list[str]]:
     rows = []
     for name, summary in entry["summary"].items():
-        metric = summary["final_test_metric"]
         rows.append([
             name,
-            format_number(summary["best_lr"]),
+            lr_text(summary),
             f"{summary['reached']}/{summary['runs']}",
             format_number(summary["steps_to_target"]),
             format_number(summary["seconds_to_target"]),
             format_number(summary["final_train_loss"]),
-            "-" if metric is None else (f"{100 * metric:.1f}%" if entry["test_metric"] == "accuracy"
-                                        else format_number(metric)),
+            metric_text(summary["final_test_metric"], entry["test_metric"]),
             format_number(summary["step_seconds_median"] * 1e3),
         ])
     return rows
 
 
 def ratio_lines(entry: dict) -> list[str]:
-    """Time-to-target and step-time ratios of ngopt over each baseline, with the floor."""
+    """Time-to-target and step-time ratios of ngopt over each baseline, with the flop-count estimate."""
     comparison = entry["comparison"]
     lines = []
     if comparison["time_to_target"]:
@@ -61,9 +51,10 @@ def ratio_lines(entry: dict) -> list[str]:
             f"ngopt/{name}: {describe_ratio(value)}" for name, value in comparison["steps_to_target"].items()))
         step_parts = [f"ngopt/{name}: {value:.2f}" for name, value in comparison["step_time"].items()]
         line = "median step time, " + "; ".join(step_parts)
-        if comparison["step_time_floor"] is not None:
-            line += (f"  [floor 1 + 2d/(3B) = {comparison['step_time_floor']:.2f} over sgd, with d = "
-                     f"{comparison['floor_width']} (widest hidden width) and B = {comparison['floor_batch']}]")
+        if comparison["step_time_flop_estimate"] is not None:
+            line += (f"  [flop-count estimate 1 + 2d/(3B) = {comparison['step_time_flop_estimate']:.2f} "
+                     f"over sgd, with d = {comparison['estimate_width']} (widest hidden width) and B = "
+                     f"{comparison['estimate_batch']}]")
         lines.append(line)
     return lines
 
@@ -78,6 +69,20 @@ def split_line(entry: dict) -> Optional[str]:
     parts = ", ".join(f"{key} {value * 1e3:.2f} ms ({100 * value / total:.0f}%)"
                       for key, value in split.items() if total > 0)
     return f"ngopt time per step (median over seeds): {parts}; rest = forward/backward and untimed work"
+
+
+def coverage_line(entry: dict) -> Optional[str]:
+    """The share of parameters that FisherDescent left to its fallback rule, where any."""
+    for name, summary in entry["summary"].items():
+        coverage = summary.get("parameter_coverage")
+        if coverage and coverage["fallback_parameters"]:
+            tensors = ", ".join(coverage["fallback_tensors"][:6])
+            more = len(coverage["fallback_tensors"]) - 6
+            return (f"{100 * coverage['fallback_share']:.1f}% of the parameters "
+                    f"({coverage['fallback_parameters']} of {coverage['parameters']}) are in layers ngopt "
+                    f"has no curvature block for and took its fallback rule ({name}): {tensors}"
+                    + (f" and {more} more" if more > 0 else ""))
+    return None
 
 
 def memory_line(entry: dict) -> str:
@@ -108,27 +113,27 @@ def reference_line(entry: dict) -> Optional[str]:
             + ", ".join(verdicts))
 
 
+def progress_line(entry: dict) -> Optional[str]:
+    if entry.get("complete", True):
+        return None
+    return (f"unfinished: {entry['finished_runs']} of {entry['planned_runs']} runs finished; the figures "
+            "above cover those runs only (an lr may be chosen from part of its grid)")
+
+
 def task_header(entry: dict) -> str:
     seeds = max(summary["runs"] for summary in entry["summary"].values())
     return (f"{entry['task']}: target training loss {entry['target_loss']:g}; {entry['steps']} steps, "
             f"batch {entry['batch_size']}, medians over {seeds} seed(s)")
 
 
-def contention_line(entry: dict, threads: Optional[int]) -> Optional[str]:
-    """A warning when other processes competed for the CPU while the task ran."""
-    load = entry.get("load_average_max")
-    if load is None or threads is None or load <= threads + 0.5:
-        return None
-    return (f"warning: the machine's load average reached {load:.1f} during these runs (with {threads} "
-            "torch threads): other processes competed for the CPU, so wall-clock times are inflated "
-            "and noisy; the runs were interleaved across optimizers to spread the effect")
-
-
 def task_block(entry: dict, markdown: bool = False, threads: Optional[int] = None) -> str:
-    headers = [h.format(metric=entry["test_metric"]) for h in TABLE_HEADERS]
-    notes = ratio_lines(entry) + [line for line in (split_line(entry), memory_line(entry),
-                                                    reference_line(entry),
-                                                    contention_line(entry, threads)) if line]
+    headers = [h.format(metric=entry["test_metric"] or "metric") for h in TABLE_HEADERS]
+    warning = contention_warning(entry.get("load_average_max"), threads)
+    notes = ratio_lines(entry) + [line for line in (
+        step_time_breakdown(entry, "sgd"), split_line(entry), coverage_line(entry), memory_line(entry),
+        reference_line(entry), progress_line(entry),
+        warning and f"warning: {warning}; the runs were interleaved across optimizers to spread the effect",
+    ) if line]
     table = format_table(headers, task_rows(entry), markdown)
     if markdown:
         return table + "\n\n" + "\n".join(f"- {note}" for note in notes)
@@ -149,10 +154,10 @@ def overview_rows(results: dict) -> list[list[str]]:
     for entry in results["tasks"]:
         summaries, comparison = entry["summary"], entry["comparison"]
         step_ratio = comparison["step_time"].get("sgd")
-        floor = comparison["step_time_floor"]
+        estimate = comparison["step_time_flop_estimate"]
         step_text = "-" if step_ratio is None else f"{step_ratio:.2f}"
-        if step_ratio is not None and floor is not None:
-            step_text += f" (floor {floor:.2f})"
+        if step_ratio is not None and estimate is not None:
+            step_text += f" (flop estimate {estimate:.2f})"
         rows.append([
             entry["task"], f"{entry['target_loss']:g}",
             *[_time_and_steps(summaries.get(name)) for name in ("ngopt", "sgd", "adam")],
@@ -163,7 +168,7 @@ def overview_rows(results: dict) -> list[list[str]]:
     return rows
 
 
-OVERVIEW_HEADERS = ["task", "target", "ngopt: time (steps) to target", "sgd", "adam",
+OVERVIEW_HEADERS = ["task", "target", "ngopt (untuned): time (steps) to target", "sgd", "adam",
                     "time ngopt/sgd", "time ngopt/adam", "step time ngopt/sgd"]
 
 
@@ -171,41 +176,36 @@ def overview(results: dict, markdown: bool = False) -> str:
     return format_table(OVERVIEW_HEADERS, overview_rows(results), markdown)
 
 
-def goal_rows(results: dict) -> list[list[str]]:
-    return [[goal["goal"], goal["measured"], goal["status"].upper() if goal["status"] == "missed"
-             else goal["status"]] for goal in results["goals"]]
-
-
-def closing_notes(results: dict) -> list[str]:
-    """For every goal not met: what the measurements say limits it."""
-    by_task = {entry["task"]: entry for entry in results["tasks"]}
-    notes = []
-    for goal in results["goals"]:
-        if goal["status"] in ("missed", "undecided"):
-            notes.append(f"{goal['goal']} -- {goal['status']}: "
-                         f"{explain_miss(goal, by_task[goal['task']])}")
-    return notes
+def stop_note(results: dict) -> Optional[str]:
+    """Where an unfinished benchmark stopped (None when it finished)."""
+    status = results.get("status", {})
+    if status.get("complete", True):
+        return None
+    return (f"This benchmark is unfinished ({status['reason']}): {status['finished_runs']} of "
+            f"{status['planned_runs']} runs finished, {status['at']}. Everything below comes from the "
+            "finished runs.")
 
 
 def console_summary(results: dict, with_tasks: bool = True) -> str:
-    """The task tables (unless already printed), the goals and what limits the missed ones."""
+    """The task tables (unless already printed), the overview, and the verdict last."""
     threads = results["settings"].get("threads")
     blocks = [task_block(entry, threads=threads) for entry in results["tasks"]] if with_tasks else []
-    blocks.append("Overview (medians over seeds at each optimizer's chosen lr)\n" + overview(results))
-    if results["goals"]:
-        blocks.append("Goals\n" + format_table(["goal", "measured ngopt/baseline", "status"],
-                                               goal_rows(results)))
-        notes = closing_notes(results)
-        if notes:
-            blocks.append("What limits the goals not met\n" + "\n".join(f"* {n}" for n in notes))
+    if results["tasks"]:
+        blocks.append("Overview (medians over seeds; ngopt at its defaults, sgd and adam at their chosen lr)\n"
+                      + overview(results))
+        blocks.append(verdict_text(results))
+    note = stop_note(results)
+    if note:
+        blocks.append(note)
     return "\n\n".join(blocks)
 
 
 def settings_lines(results: dict) -> list[str]:
     settings, machine = results["settings"], results["machine"]
     grids = "; ".join(f"{name}: {', '.join(format_number(lr) for lr in grid)}"
-                      for name, grid in settings["lr_grids"].items())
-    return [
+                      for name, grid in settings["lr_grids"].items() if grid != [None])
+    untuned = [name for name, grid in settings["lr_grids"].items() if grid == [None]]
+    lines = [
         f"- command: `{settings['command']}`",
         f"- machine: {machine['cpu_model']}, {machine['logical_cpus']} logical CPUs, torch "
         f"{machine['packages'].get('torch')}, {machine['torch_threads']} torch threads, Python "
@@ -214,31 +214,34 @@ def settings_lines(results: dict) -> list[str]:
         f"{settings.get('load_average_end')} (other processes on the machine inflate wall-clock times)",
         "- optimizers: " + "; ".join(f"{name} = {label}" for name, label in
                                      settings["optimizer_labels"].items()),
-        f"- seeds {settings['seeds']}; lr grid of {settings['grid_size']} points per optimizer, "
-        f"{settings['grid_decades']:g} decades wide: {grids}",
+        f"- seeds {settings['seeds']}; lr grid of {settings['grid_size']} points per tuned optimizer, "
+        f"{settings['grid_decades']:g} decades wide: {grids or 'none'}"
+        + (f"; not tuned (built without an lr, one run per seed): {', '.join(untuned)}" if untuned else ""),
         "- protocol: every lr of the grid on the first seed, the lr with the lowest final training "
         "loss on the remaining seeds, medians over the seeds at that lr; time is the training "
         "steps alone (closure + step, evaluation excluded), summed with time.perf_counter; "
         f"subnormal floats flushed to zero: {settings.get('flush_denormal')}",
+        f"- evaluation: {settings['evaluation']}",
         f"- memory: {machine['memory_note']}",
     ]
+    if any(entry["comparison"]["step_time_flop_estimate"] is not None for entry in results["tasks"]):
+        lines.append(f"- step-time ratios: {FLOP_ESTIMATE_TEXT}")
+    return lines
 
 
 def markdown_report(results: dict, plot_files: dict[str, str]) -> str:
-    parts = ["# Benchmark: FisherDescent against SGD and Adam", "", *settings_lines(results), "",
-             "## Overview", "", "Medians over the seeds at each optimizer's chosen lr; ratios below 1 "
-             "favour ngopt; `<=` where the baseline never reached the target.", "",
-             overview(results, markdown=True), ""]
+    parts = ["# Benchmark: FisherDescent against SGD and Adam", ""]
+    note = stop_note(results)
+    if note:
+        parts += [f"**{note}**", ""]
+    parts += [verdict_text(results, markdown=True), "", "## Settings", "", *settings_lines(results), "",
+              "## Overview", "", "Medians over the seeds (ngopt at its defaults, the baselines at their "
+              "chosen lr); ratios below 1 favour ngopt; `<=` where the baseline never reached the target.",
+              "", overview(results, markdown=True), ""]
     for entry in results["tasks"]:
         parts += [f"## {entry['task']}", "", entry["description"] + ".", "",
                   f"Target training loss {entry['target_loss']:g}: {entry['target_reason']}", "",
                   task_block(entry, markdown=True, threads=results["settings"].get("threads")), ""]
         if entry["task"] in plot_files:
             parts += [f"![{entry['task']} training loss]({plot_files[entry['task']]})", ""]
-    if results["goals"]:
-        parts += ["## Goals", "", format_table(["goal", "measured ngopt/baseline", "status"],
-                                               goal_rows(results), markdown=True), ""]
-        notes = closing_notes(results)
-        if notes:
-            parts += ["## What limits the goals not met", ""] + [f"- {note}" for note in notes] + [""]
     return "\n".join(parts)

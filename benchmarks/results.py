@@ -1,14 +1,21 @@
-"""results.json (the schema documented in the README, with extra fields) and the CSV of loss curves."""
+"""results.json (the schema documented in the README, with extra fields) and the CSV of loss curves.
+
+Every file is written whole to a temporary name beside its final one and then
+moved over it (``os.replace``, atomic on one file system), so a benchmark
+interrupted while writing leaves the previous complete version, never half a file.
+"""
 
 from __future__ import annotations
 
 import csv
+import io
 import json
 import math
+import os
 from pathlib import Path
 from typing import Optional
 
-from benchmarks.goals import compare, evaluate_goals
+from benchmarks.comparison import compare
 from benchmarks.harness import TaskOutcome, summarize
 from benchmarks.training import RunResult
 
@@ -43,7 +50,10 @@ def run_entry(run: RunResult, role: str, selected: bool) -> dict:
         "process_peak_rss_bytes": run.process_peak_rss_bytes,
         "load_average": run.load_average,
         "rss_growth_bytes": run.rss_growth_bytes,
+        "target_resolution": run.target_resolution,
     })
+    if run.parameter_coverage is not None:
+        entry["parameter_coverage"] = run.parameter_coverage
     if run.time_split is not None:
         entry["time_split_seconds"] = run.time_split
         entry["skipped_steps"] = run.skipped_steps
@@ -69,8 +79,10 @@ def task_entry(outcome: TaskOutcome) -> dict:
         "reference_band": list(task.reference_band) if task.reference_band else None,
         "batch_size": task.batch_size,
         "steps": outcome.steps,
-        "eval_every": outcome.eval_every,
-        "floor_goal": task.floor_goal,
+        "evaluation": outcome.schedule.as_dict(),
+        "complete": outcome.complete,
+        "finished_runs": outcome.finished_runs,
+        "planned_runs": outcome.planned_runs,
         "load_average_max": max((run["load_average"] for run in runs if run["load_average"] is not None),
                                 default=None),
         "runs": runs,
@@ -79,19 +91,36 @@ def task_entry(outcome: TaskOutcome) -> dict:
     }
 
 
-def build_results(machine: dict, settings: dict, outcomes: list[TaskOutcome]) -> dict:
-    tasks = [task_entry(outcome) for outcome in outcomes]
+def build_results(machine: dict, settings: dict, outcomes: list[TaskOutcome],
+                  status: Optional[dict] = None) -> dict:
+    """The whole results dict; ``status`` says whether the benchmark finished and, if not, where it stopped."""
+    tasks = [task_entry(outcome) for outcome in outcomes if outcome.outcomes]
     return finite_or_none({
         "schema": SCHEMA,
+        "status": status or {"complete": True},
         "machine": machine,
         "settings": settings,
         "tasks": tasks,
-        "goals": evaluate_goals(tasks),
     })
 
 
+def write_atomically(path: Path, write) -> None:
+    """Call ``write(temporary_path)``, then move the result over ``path`` in one step."""
+    temporary = path.with_name(f".{path.name}.partial")
+    try:
+        write(temporary)
+        os.replace(temporary, path)
+    finally:
+        if temporary.exists():
+            temporary.unlink()
+
+
+def write_text(text: str, path: Path) -> None:
+    write_atomically(path, lambda temporary: temporary.write_text(text))
+
+
 def write_json(results: dict, path: Path) -> None:
-    path.write_text(json.dumps(results, indent=2, allow_nan=False) + "\n")
+    write_text(json.dumps(results, indent=2, allow_nan=False) + "\n", path)
 
 
 def curve_rows(outcomes: list[TaskOutcome]):
@@ -110,10 +139,11 @@ def write_curves(outcomes: list[TaskOutcome], path: Path) -> None:
     ``seconds`` is the summed training-step time up to that step; an empty
     ``train_loss`` marks a non-finite loss.
     """
-    with path.open("w", newline="") as handle:
-        writer = csv.writer(handle)
-        writer.writerow(CURVE_COLUMNS)
-        writer.writerows(curve_rows(outcomes))
+    buffer = io.StringIO(newline="")
+    writer = csv.writer(buffer)
+    writer.writerow(CURVE_COLUMNS)
+    writer.writerows(curve_rows(outcomes))
+    write_atomically(path, lambda temporary: temporary.write_text(buffer.getvalue(), newline=""))
 
 
 def read_curves(path: Path) -> list[dict]:

@@ -25,10 +25,9 @@ class Task:
     """One benchmark problem.
 
     ``widest_width`` is the widest hidden width d of an all-linear network; the
-    harness uses it with the batch size B for the per-step cost floor
-    1 + 2d/(3B) of natural gradient over SGD (``None`` for networks where that
-    estimate does not apply). ``floor_goal`` marks the MLP tasks on which the
-    step-time goal is judged.
+    report sets the measured step-time ratio of natural gradient over SGD
+    beside the flop-count estimate 1 + 2d/(3B) with it and the batch size B
+    (``None`` for networks where that estimate does not apply).
     """
 
     name: str
@@ -36,14 +35,13 @@ class Task:
     load_data: Callable[[], datasets.Split]
     build_model: Callable[[], nn.Module]
     make_loss: Callable[[], nn.Module]
-    metric: str  # "accuracy" (higher is better) or "mse" (lower is better)
+    metric: Optional[str]  # "accuracy" (higher is better), "mse" or "loss" (lower is better), or None
     target_loss: float
     target_reason: str
     batch_size: int
     steps: int
     quick_steps: int
     widest_width: Optional[int] = None
-    floor_goal: bool = False
     reference: Optional[str] = None  # published figure to compare the test metric with
     reference_band: Optional[tuple[float, float]] = None
 
@@ -222,46 +220,28 @@ def corpus_torch_transformer() -> TorchLayersTransformer:
     return TorchLayersTransformer(corpus.VOCABULARY, corpus.SEQUENCE_LENGTH, **TRANSFORMER_SHAPE)
 
 
-def accuracy(outputs: torch.Tensor, labels: torch.Tensor) -> float:
-    """Share of argmax predictions over class dim 1 that match; for sequences, over every position."""
-    return (outputs.argmax(dim=1) == labels).float().mean().item()
-
-
-def mean_squared_error(outputs: torch.Tensor, targets: torch.Tensor) -> float:
-    return torch.mean((outputs - targets) ** 2).item()
-
-
-METRICS = {"accuracy": accuracy, "mse": mean_squared_error}
-
 CLASSIFIER_FIT_REASON = (
     "the training set fitted almost exactly: cross-entropy 0.01 is a geometric-mean probability of "
     "0.99 on the true class, more than two decades below log 10 = 2.30 at chance, and the test "
     "accuracy has long stopped improving; well-tuned runs reach it within the quick budget"
 )
 
-# The two reasons below quote `python -m benchmarks --quick --tasks corpus_transformer,digits_resnet`
-# (commit 6a77522 with ngopt of 88700b4, 2 cores, load average 0.5-1.9; medians over 3 seeds).
 RESNET_REASON = (
-    CLASSIFIER_FIT_REASON + "; measured: ngopt (lr 0.03) reached it in 58 steps, sgd (lr 0.3) in 118 "
-    "and adam (lr 0.01) in 126 of the 200 quick steps. The training loss is evaluated in eval() mode, "
-    "so with batch norm's running statistics, which lag behind weights that move fast"
+    CLASSIFIER_FIT_REASON + ". The training loss is evaluated in eval() mode, so with batch norm's "
+    "running statistics, which lag behind weights that move fast"
 )
 
 LANGUAGE_MODEL_REASON = (
     "between the grammar's own cross-entropy on the training sequences, 1.69 nats per token (the Bayes "
-    "floor: only memorizing gets below it), and 2.30, the best training loss of any predictor that sees "
+    "limit: only memorizing gets below it), and 2.30, the best training loss of any predictor that sees "
     "just the current token and its position (the maximum-likelihood table of those counts; 2.91 for the "
     "current token alone), from log 42 = 3.74 at chance: it cannot be reached without attending to "
-    "earlier tokens (the innermost open bracket, the key to recall, the word before a bracket). "
-    "Measured: ngopt (lr 0.3) reached it in 237 steps and adam (lr 0.01) in 246 of the 300 quick "
-    "steps; sgd (lr 0.3) ended at 2.31"
+    "earlier tokens (the innermost open bracket, the key to recall, the word before a bracket); "
+    "well-tuned runs reach it within the quick budget"
 )
 
-# `python -m benchmarks --quick --threads 1 --tasks corpus_torch_transformer` (commit d5e870a, 2 cores,
-# load average up to 17.6; medians over 3 seeds).
 TORCH_LAYERS_REASON = "the same target as corpus_transformer, for the same reason: " + LANGUAGE_MODEL_REASON.split(
-    ". Measured:")[0] + (". Measured: ngopt (lr 0.3) reached it in 210 steps and adam (lr 0.01) in 228 of the 300 "
-                         "quick steps; sgd (lr 0.3) ended at 2.32")
+    ". Measured:")[0]
 
 
 TASKS: dict[str, Task] = {
@@ -298,7 +278,6 @@ TASKS: dict[str, Task] = {
             steps=1000,
             quick_steps=300,
             widest_width=128,
-            floor_goal=True,
         ),
         Task(
             name="digits_cnn",
@@ -331,7 +310,6 @@ TASKS: dict[str, Task] = {
             steps=1500,
             quick_steps=500,
             widest_width=256,
-            floor_goal=True,
             reference="published MLP test accuracy on mnist1d is about 68% "
             "(Greydanus 2020; quoted from memory)",
             reference_band=(0.55, 0.80),
@@ -405,6 +383,12 @@ TASKS: dict[str, Task] = {
 }
 
 
+# Run when named with --tasks: the built-in language model rebuilt from torch's own layers.
+ON_REQUEST_TASKS = ("corpus_torch_transformer",)
+
+
 def resolve_tasks(names: Optional[list[str]]) -> list[Task]:
-    """The tasks with the given names, in the order given (all tasks for ``None``)."""
+    """The tasks with the given names, in the order given (for ``None``, all but the on-request ones)."""
+    if names is None:
+        return [task for name, task in TASKS.items() if name not in ON_REQUEST_TASKS]
     return select_by_name(TASKS, names, "tasks")

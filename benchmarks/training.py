@@ -3,16 +3,17 @@
 What is timed is the training step alone: the closure (zero_grad, forward,
 loss, backward) and ``optimizer.step``, each step between two
 ``time.perf_counter`` calls. Drawing the minibatch and every evaluation happen
-outside the timed region. The training loss is the loss on the whole training
-set, evaluated every ``eval_every`` steps in ``eval()`` mode under
-``torch.no_grad()`` (so no optimizer hook records anything); steps to target is
-the first evaluated step at which it is at or below the target, and seconds to
-target the summed step time up to and including that step.
+outside the timed region. When the training loss is evaluated, and how exact
+steps to target therefore are, is :mod:`benchmarks.evaluation`'s business;
+seconds to target is the summed step time up to and including the step at
+which the target was first seen met.
 
 The seed fixes the initial weights (``torch.manual_seed`` right before the
 model is built, so every optimizer starts from the same weights) and the data
 order (a separate generator for the minibatch permutations, so an optimizer
 that draws random numbers, as a sampled Fisher does, cannot change the order).
+An lr of ``None`` builds the optimizer without one (at its own default); the
+run records the lr the optimizer then holds.
 """
 
 from __future__ import annotations
@@ -29,8 +30,10 @@ from typing import Callable, Iterator, Optional
 
 import torch
 
+from benchmarks.coverage import parameter_coverage
+from benchmarks.evaluation import EvaluationSchedule, evaluate, near_target, near_threshold, test_metric
 from benchmarks.optimizers import OptimizerSpec
-from benchmarks.tasks import METRICS, Task
+from benchmarks.tasks import Task
 
 # attach(optimizer) -> detach(): a way to hang a logger on the optimizer of a run.
 Attach = Callable[[torch.optim.Optimizer], Callable[[], None]]
@@ -63,6 +66,8 @@ class RunResult:
     process_peak_rss_bytes: int = 0
     load_average: Optional[float] = None  # 1-minute load of the machine when the run started
     rss_growth_bytes: Optional[int] = None  # resident memory after the run minus before it
+    target_resolution: Optional[int] = None  # steps between the evaluation that met the target and the one before
+    parameter_coverage: Optional[dict] = None  # FisherDescent only: parameters in blocks / under the fallback rule
 
 
 def load_average() -> Optional[float]:
@@ -93,25 +98,6 @@ def minibatches(n_examples: int, batch_size: int, seed: int) -> Iterator[torch.T
 
 def _finite_or_none(value: float) -> Optional[float]:
     return value if math.isfinite(value) else None
-
-
-@torch.no_grad()
-def evaluate(model: torch.nn.Module, loss_fn: torch.nn.Module, inputs, targets) -> float:
-    """Loss on a whole data set, in eval mode and without autograd."""
-    model.eval()
-    try:
-        return loss_fn(model(inputs), targets).item()
-    finally:
-        model.train()
-
-
-@torch.no_grad()
-def test_metric(task: Task, model: torch.nn.Module, inputs, targets) -> float:
-    model.eval()
-    try:
-        return METRICS[task.metric](model(inputs), targets)
-    finally:
-        model.train()
 
 
 def tensor_bytes(obj) -> int:
@@ -176,9 +162,14 @@ class Trace:
     curve_losses: list[Optional[float]] = field(default_factory=list)
     steps_to_target: Optional[int] = None
     seconds_to_target: Optional[float] = None
+    target_resolution: Optional[int] = None
     diverged: bool = False
+    near_below: float = math.inf  # losses below this count as near the target (set from the first one)
 
     def record(self, step: int, elapsed: float, loss: float, target: float) -> None:
+        previous = self.curve_steps[-1] if self.curve_steps else step
+        if not self.curve_steps:
+            self.near_below = near_threshold(loss, target)
         self.curve_steps.append(step)
         self.curve_seconds.append(elapsed)
         self.curve_losses.append(_finite_or_none(loss))
@@ -186,15 +177,33 @@ class Trace:
             self.diverged = True
         elif self.steps_to_target is None and loss <= target:
             self.steps_to_target, self.seconds_to_target = step, elapsed
+            self.target_resolution = step - previous
+
+    def near(self, batch_loss: Optional[float]) -> bool:
+        """Whether to evaluate densely: the target not yet met and a recent loss close to it."""
+        if self.steps_to_target is not None:
+            return False
+        last = self.curve_losses[-1] if self.curve_losses else None
+        return near_target(batch_loss, self.near_below) or (
+            last is not None and near_target(last, self.near_below))
+
+
+def batch_loss_of(returned) -> Optional[float]:
+    """The minibatch loss a step returned (None when the optimizer returns nothing usable)."""
+    if isinstance(returned, torch.Tensor) and returned.numel() == 1:
+        value = returned.item()
+        return value if math.isfinite(value) else None
+    return None
 
 
 def timed_training(task: Task, model, loss_fn, optimizer, data, seed: int, steps: int,
-                   eval_every: int, on_step: Optional[Callable[[], None]]) -> Trace:
+                   schedule: EvaluationSchedule, on_step: Optional[Callable[[], None]]) -> Trace:
     """The training loop: only the closure and ``optimizer.step`` fall inside the timer."""
     batches = minibatches(len(data.train_x), task.batch_size, seed)
     trace = Trace()
     trace.record(0, 0.0, evaluate(model, loss_fn, data.train_x, data.train_y), task.target_loss)
     elapsed = 0.0
+    lowest_batch_loss: Optional[float] = None  # since the last evaluation
     for step in range(1, steps + 1):
         index = next(batches)
         inputs, targets = data.train_x[index], data.train_y[index]
@@ -206,15 +215,19 @@ def timed_training(task: Task, model, loss_fn, optimizer, data, seed: int, steps
             return loss
 
         start = time.perf_counter()
-        optimizer.step(closure)
+        returned = optimizer.step(closure)
         seconds = time.perf_counter() - start
         trace.step_seconds.append(seconds)
         elapsed += seconds
         if on_step is not None:
             on_step()
-        if step % eval_every == 0 or step == steps:
+        batch_loss = batch_loss_of(returned)
+        if batch_loss is not None:
+            lowest_batch_loss = batch_loss if lowest_batch_loss is None else min(lowest_batch_loss, batch_loss)
+        if schedule.due(step, trace.near(lowest_batch_loss)):
             loss = evaluate(model, loss_fn, data.train_x, data.train_y)
             trace.record(step, elapsed, loss, task.target_loss)
+            lowest_batch_loss = None
             if trace.diverged:
                 break
     return trace
@@ -226,20 +239,23 @@ def train_run(
     lr: float,
     seed: int,
     steps: int,
-    eval_every: int,
+    schedule: Optional[EvaluationSchedule] = None,
     on_step: Optional[Callable[[], None]] = None,
     attach: Optional[Attach] = None,
 ) -> RunResult:
     """Train ``task`` with ``spec`` at ``lr`` for ``steps`` steps from the weights of ``seed``."""
+    schedule = schedule or EvaluationSchedule.for_steps(steps)
     data = task.load_data()
     load, rss_before = load_average(), current_rss_bytes()
     torch.manual_seed(seed)
     model = task.build_model()
     loss_fn = task.make_loss()
     optimizer = spec.build(model, loss_fn, lr)
+    lr = float(optimizer.param_groups[0]["lr"]) if lr is None else lr
+    coverage = parameter_coverage(optimizer, model)
     detach = attach(optimizer) if attach is not None else None
     try:
-        trace = timed_training(task, model, loss_fn, optimizer, data, seed, steps, eval_every, on_step)
+        trace = timed_training(task, model, loss_fn, optimizer, data, seed, steps, schedule, on_step)
     finally:
         if detach is not None:
             detach()
@@ -247,7 +263,8 @@ def train_run(
     train_seconds = sum(trace.step_seconds)
     split, skipped = time_split(optimizer, train_seconds)
     state_bytes = tensor_bytes(optimizer.state_dict())
-    metric = None if trace.diverged else _finite_or_none(test_metric(task, model, data.test_x, data.test_y))
+    metric = None if trace.diverged else test_metric(task.metric, model, loss_fn, data.test_x, data.test_y)
+    metric = None if metric is None else _finite_or_none(metric)
     del optimizer, model  # what stays resident after this is held elsewhere
     gc.collect()
     rss_after = current_rss_bytes()
@@ -275,4 +292,6 @@ def train_run(
         process_peak_rss_bytes=peak_rss_bytes(),
         load_average=load,
         rss_growth_bytes=None if rss_before is None or rss_after is None else rss_after - rss_before,
+        target_resolution=trace.target_resolution,
+        parameter_coverage=coverage,
     )

@@ -1,10 +1,12 @@
 """Per-step wall time of FisherDescent (default refresh intervals) over torch.optim.SGD's.
 
 An MLP of width d (3 hidden layers of d units, 10 classes) on random data, batch B.
-Arithmetic floor of the ratio: forward+backward cost ~6 B d^2 flops per d x d
-layer and preconditioning ~4 d^3 per step, so ratio >= 1 + 2d / (3B) once
-statistics and inversions are amortized.  EKFAC rotates into and out of the
-eigenbasis, ~8 d^3 per step: floor 1 + 4d / (3B).
+Flop-count estimate of the ratio: forward+backward cost ~6 B d^2 flops per d x d
+layer and preconditioning ~4 d^3 per step, so the flops grow by 1 + 2d / (3B)
+once statistics and inversions are amortized; EKFAC rotates into and out of the
+eigenbasis, ~8 d^3 per step: 1 + 4d / (3B). It is an estimate, not a bound:
+step times are not proportional to flops, and measured ratios fall below it at
+small batch.
 
     python scripts/step_overhead.py --width 256 --batches 256 1024 [--structure ekfac]
 """
@@ -44,16 +46,27 @@ def time_steps(make_optimizer, width: int, batch: int, steps: int, warmup: int, 
     return times[warmup:], sum(times), optimizer
 
 
+def inverse_interval(structure: str) -> int:
+    """FisherDescent's default inverse_interval, read from the library (it may change)."""
+    return ngopt.FisherDescent(make_mlp(2, depth=1, classes=2), nn.CrossEntropyLoss(),
+                               structure=structure).inverse_interval
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--width", type=int, default=256)
     parser.add_argument("--batches", type=int, nargs="+", default=[256, 1024])
-    parser.add_argument("--steps", type=int, default=200, help="timed steps (a multiple of inverse_interval)")
+    parser.add_argument("--steps", type=int, default=200,
+                        help="timed steps per run; must be a multiple of FisherDescent's inverse_interval "
+                             "so that every run times whole refresh periods (default 200)")
     parser.add_argument("--warmup", type=int, default=20)
     parser.add_argument("--threads", type=int, default=2)
     parser.add_argument("--rounds", type=int, default=3, help="alternate SGD/ngopt runs this many times")
     parser.add_argument("--structure", choices=["kfac", "ekfac", "diag"], default="kfac")
     args = parser.parse_args(argv)
+    interval = inverse_interval(args.structure)
+    if args.steps < 1 or args.steps % interval:
+        parser.error(f"--steps must be a positive multiple of inverse_interval ({interval}), got {args.steps}")
     torch.set_num_threads(args.threads)
 
     def sgd(model, loss_fn):
@@ -64,7 +77,8 @@ def main(argv=None):
 
     print(f"width {args.width}, threads {args.threads}, {args.steps} timed steps x {args.rounds} rounds, "
           f"curvature {args.structure}")
-    print(f"{'batch':>6} {'sgd ms':>8} {'ngopt ms':>9} {'ratio(mean)':>11} {'ratio(median)':>13} {'floor':>6}  ngopt split (% of its step)")
+    print(f"{'batch':>6} {'sgd ms':>8} {'ngopt ms':>9} {'ratio(mean)':>11} {'ratio(median)':>13} "
+          f"{'flop est.':>9}  ngopt split (% of its step)")
     for batch in args.batches:
         sgd_times, ng_times, optimizer = [], [], None
         for _ in range(args.rounds):  # interleave so that machine noise hits both alike
@@ -75,11 +89,11 @@ def main(argv=None):
         split = optimizer.diagnostics()["time"]
         share = {k: 100 * split[k] / wall for k in ("statistics", "inversion", "precondition")}
         gemms = {"kfac": 2, "ekfac": 4, "diag": 0}[args.structure]  # d x d products per layer and step
-        floor = 1 + gemms * args.width / (3 * batch)
+        flop_estimate = 1 + gemms * args.width / (3 * batch)
         mean_ratio = statistics.mean(ng_times) / statistics.mean(sgd_times)
         median_ratio = statistics.median(ng_times) / statistics.median(sgd_times)
         print(f"{batch:>6} {1e3 * statistics.mean(sgd_times):>8.2f} {1e3 * statistics.mean(ng_times):>9.2f} "
-              f"{mean_ratio:>11.2f} {median_ratio:>13.2f} {floor:>6.2f}  "
+              f"{mean_ratio:>11.2f} {median_ratio:>13.2f} {flop_estimate:>9.2f}  "
               + ", ".join(f"{k} {v:.0f}%" for k, v in share.items()))
 
 
