@@ -24,6 +24,7 @@ from typing import Dict, List, Optional, Tuple
 import torch
 
 from .layers import LayerAdapter
+from .rows import join_positions
 
 Tensors = Dict[str, torch.Tensor]
 
@@ -69,7 +70,7 @@ class LayerCurvature:
             previous = joined.get(forward)
             if previous is not None and previous[0].shape[0] == input_rows.shape[0] \
                     and previous[1].shape[0] == grad_rows.shape[0] and previous[2] == scale:
-                joined[forward] = (torch.cat([previous[0], input_rows], dim=1),
+                joined[forward] = (join_positions([previous[0], input_rows]),
                                    torch.cat([previous[1], grad_rows], dim=2), scale)
             else:
                 key = forward if previous is None else (forward, len(joined))

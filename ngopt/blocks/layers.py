@@ -22,6 +22,8 @@ import torch
 from torch import nn
 import torch.nn.functional as F
 
+from .rows import HeldRows
+
 
 class LayerAdapter:
     kind = "layer"
@@ -56,6 +58,10 @@ class LayerAdapter:
 
     def input_rows(self, inputs: torch.Tensor) -> torch.Tensor:
         raise NotImplementedError
+
+    def recorded_rows(self, inputs: torch.Tensor):
+        """The rows a recorded call keeps until the refresh: ``input_rows`` or a compact stand-in (``rows.py``)."""
+        return self.input_rows(inputs)
 
     def output_rows(self, grads: torch.Tensor) -> torch.Tensor:
         """``grads`` is ``[K, *output.shape]``; returns ``[K, N, T, d_out]``."""
@@ -125,6 +131,12 @@ class _ConvolutionLayer(LayerAdapter):
 
     def input_rows(self, inputs):
         return self._append_ones(self._patch_rows(inputs))
+
+    def recorded_rows(self, inputs):
+        # The input, not its prod(kernel) times larger patches: blocks unfold a chunk at a time.
+        if inputs.dim() == self.spatial_dims + 1:  # unbatched
+            inputs = inputs.unsqueeze(0)
+        return HeldRows(self.input_rows, inputs)
 
     def output_rows(self, grads):
         if grads.dim() == self.spatial_dims + 2:  # unbatched output [K, C, *spatial]
