@@ -33,11 +33,19 @@ class HeldRows:
         self.shape = torch.Size((source.shape[0],) + tuple(first.shape[1:]))
         self.dtype = first.dtype
 
-    def examples(self, start: int, stop: int) -> torch.Tensor:
+    def _checked_source(self) -> torch.Tensor:
         if self.source._version != self.version:
             raise RuntimeError("a recorded layer input was modified in place after the layer ran; its "
                                "curvature statistics would be wrong (use an out-of-place operation there)")
-        return self.make(self.source[start:stop])
+        return self.source
+
+    def examples(self, start: int, stop: int) -> torch.Tensor:
+        return self.make(self._checked_source()[start:stop])
+
+    def select(self, indices: torch.Tensor) -> "HeldRows":
+        """The rows of the examples ``indices`` (a copy of their part of the input)."""
+        source = self._checked_source()
+        return HeldRows(self.make, source.index_select(0, indices.to(source.device)))
 
     def numel(self) -> int:
         return math.prod(self.shape)
