@@ -10,7 +10,8 @@ step (torch, the model and the data).  Steps are timed after one warm-up step;
 the default 20 timed steps hold the amortized share of refreshes (every
 ``stats_interval`` = 10 steps) and inversions (every ``inverse_interval`` = 20).
 
-    python scripts/conv_memory.py [--batch 128] [--steps 20] [--optimizers sgd kfac ekfac]
+    python scripts/conv_memory.py [--batch 128] [--steps 20] [--rounds 2] [--optimizers sgd kfac ekfac]
+        [--option stats_fraction=0.25]
 """
 from __future__ import annotations
 
@@ -84,6 +85,16 @@ def run_fresh(name: str, args) -> dict:
     return json.loads(output.strip().splitlines()[-1])
 
 
+def merged_rounds(results) -> dict:
+    """Peaks: the largest of the rounds; step times: the mean (median) over every timed step of all rounds."""
+    merged = dict(results[-1])
+    merged["peak_bytes"] = max(r["peak_bytes"] for r in results)
+    merged["base_bytes"] = max(r["base_bytes"] for r in results)
+    merged["mean_step_s"] = statistics.mean(r["mean_step_s"] for r in results)
+    merged["median_step_s"] = statistics.median(r["median_step_s"] for r in results)
+    return merged
+
+
 def parse_options(pairs) -> dict:
     options = {}
     for pair in pairs:
@@ -97,6 +108,7 @@ def main(argv=None):
     parser.add_argument("--batch", type=int, default=128)
     parser.add_argument("--steps", type=int, default=20, help="timed steps after one warm-up step")
     parser.add_argument("--threads", type=int, default=2)
+    parser.add_argument("--rounds", type=int, default=1, help="fresh runs per optimizer, taking turns")
     parser.add_argument("--optimizers", nargs="+", default=["sgd", "kfac"], choices=["sgd", "kfac", "ekfac", "diag"])
     parser.add_argument("--option", action="append", default=[], metavar="KEY=JSON",
                         help="a FisherDescent keyword for the ngopt rows, e.g. stats_interval=5")
@@ -105,9 +117,13 @@ def main(argv=None):
     if args.worker:
         print(json.dumps(worker(args.worker, args.batch, args.steps, args.threads, parse_options(args.option))))
         return
-    print(f"CNN {'-'.join(map(str, CHANNELS))}, batch {args.batch}, {args.steps} timed steps, "
+    print(f"CNN {'-'.join(map(str, CHANNELS))}, batch {args.batch}, {args.steps} timed steps x {args.rounds} rounds, "
           f"threads {args.threads}, load average {os.getloadavg()[0]:.2f}")
-    rows = [run_fresh(name, args) for name in args.optimizers]
+    runs = {name: [] for name in args.optimizers}
+    for _ in range(args.rounds):  # take turns, so that a busy spell of the machine hits every optimizer
+        for name in args.optimizers:
+            runs[name].append(run_fresh(name, args))
+    rows = [merged_rounds(results) for results in runs.values()]
     reference = next((r for r in rows if r["optimizer"] == "sgd"), rows[0])
     print(f"{'optimizer':>9} {'peak MB':>8} {'above base':>10} {'x peak':>7} {'mean ms':>8} {'median ms':>9} "
           f"{'x mean':>7}")

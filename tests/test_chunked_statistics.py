@@ -129,3 +129,22 @@ def test_an_input_changed_in_place_after_recording_is_an_error():
     inputs.mul_(2.0)
     with pytest.raises(RuntimeError, match="modified in place"):
         held.examples(0, 1)
+
+
+@pytest.mark.parametrize("structure", ["kfac", "diag"])
+def test_chunked_batch_norm_pairs_equal_the_whole_batch_ones(monkeypatch, structure):
+    """Batch norm's rows: x_hat from the held input and its batch moments, chunked, against F.batch_norm."""
+    generator = torch.Generator().manual_seed(2)
+    norm = nn.BatchNorm2d(3).double()
+    inputs = 2.0 * torch.randn(6, 3, 5, 4, dtype=torch.float64, generator=generator) + 1.0
+    layer = adapter_for(norm, "norm")
+    grads = layer.output_rows(torch.randn((2,) + tuple(inputs.shape), dtype=torch.float64, generator=generator))
+    x_hat = F.batch_norm(inputs, None, None, training=True, eps=norm.eps)  # the whole batch's x_hat
+    whole = x_hat.reshape(6, 3, -1).transpose(1, 2)
+    reference = _statistics(structure, layer, whole, grads)
+    monkeypatch.setattr(rows_module, "CHUNK_ELEMENTS", 120)  # two examples (60 floats each) per chunk
+    held = layer.recorded_rows(inputs)
+    assert len(list(example_chunks(held))) == 3
+    chunked = _statistics(structure, layer, held, grads)
+    for key in reference:
+        assert relative(chunked[key], reference[key]) < RTOL, key

@@ -304,6 +304,18 @@ class BatchNormLayer(_NormLayer):
         normalized = F.batch_norm(inputs, None, None, training=True, eps=self.module.eps)
         return normalized.reshape(inputs.shape[0], inputs.shape[1], -1).transpose(1, 2)
 
+    def recorded_rows(self, inputs):
+        # The input and its per-channel batch moments, not a second input-sized x_hat: rows are
+        # normalized a chunk of examples at a time.
+        dims = [0] + list(range(2, inputs.dim()))
+        shape = (1, -1) + (1,) * (inputs.dim() - 2)
+        variance, mean = torch.var_mean(inputs, dim=dims, correction=0)
+        mean, scale = mean.reshape(shape), torch.rsqrt(variance + self.module.eps).reshape(shape)
+
+        def normalized_rows(part):
+            return ((part - mean) * scale).reshape(part.shape[0], part.shape[1], -1).transpose(1, 2)
+        return HeldRows(normalized_rows, inputs)
+
     def output_rows(self, grads):
         k, n, c = grads.shape[:3]
         return grads.reshape(k, n, c, -1).transpose(2, 3)
