@@ -494,17 +494,13 @@ class FisherDescent(torch.optim.Optimizer):
         """``w += u`` for every block; the quadratic rule keeps ``u`` as the next step's momentum direction."""
         self._applied = updates
         keep = self.step_rule == "quadratic"
-        params, parts = [], []
         for block, update in updates.items():
             weight_part, bias_part = block.layer.split_matrix(update)
             for param, part in ((block.layer.weight, weight_part), (block.layer.bias, bias_part)):
                 if part is not None and param.grad is not None:
-                    params.append(param)
-                    parts.append(part)
+                    param.add_(part)
             if keep:
                 block.state["previous_update"] = update
-        if params:
-            torch._foreach_add_(params, parts)  # one call for all blocks: small layers pay per call
 
     def _apply_fallback(self) -> None:
         for group in self.param_groups:
