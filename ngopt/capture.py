@@ -66,7 +66,7 @@ def _inside_function_transform() -> bool:
 @dataclass
 class LayerCall:
     block: LayerCurvature
-    input_rows: torch.Tensor
+    input_rows: torch.Tensor  # or a compact stand-in (blocks/rows.py)
     output: Optional[torch.Tensor]
     # (grad rows, scale, index of the criterion call they come from); one entry per Fisher pass
     grads: List[Tuple[torch.Tensor, float, int]] = field(default_factory=list)
@@ -244,7 +244,7 @@ class CaptureHooks:
         """Record one call of ``block``'s layer; returns the copy of ``output`` the network goes on with."""
         record = self._current
         started = time.perf_counter()
-        call = LayerCall(block, block.layer.input_rows(layer_input.detach()), output, output_rows=output_rows)
+        call = LayerCall(block, block.layer.recorded_rows(layer_input.detach()), output, output_rows=output_rows)
         record.calls.append(call)
         if self.source is None:
             record.handles.append(output.register_hook(lambda grad, call=call: self._empirical_grad(call, grad)))

@@ -38,6 +38,7 @@ from torch import nn
 from . import fallback as fallback_rules
 from .blocks.base import LayerCurvature
 from .blocks.factory import adapters_for, make_block
+from .blocks.subsample import ExampleSubsample
 from .capture import CaptureHooks, FisherSource
 from .likelihoods import likelihood_for
 from .quadratic_model import BatchEvaluator
@@ -94,6 +95,8 @@ class FisherDescent(torch.optim.Optimizer):
         weight_sharing: how the Kronecker factors treat a layer applied at many
             positions (sequences, convolutions): ``'expand'`` (positions as
             examples) or ``'reduce'`` (summed per example first).
+        stats_fraction: share of each recorded batch's examples the statistics are formed from
+            (drawn uniformly, weighted to stay unbiased; 1.0 uses them all).
     """
 
     def __init__(self, model: nn.Module, loss_fn=None, *, lr: Optional[float] = None,
@@ -103,7 +106,8 @@ class FisherDescent(torch.optim.Optimizer):
                  damping_rule: str = "lm", damping_interval: int = 5, step_rule: str = "fixed",
                  rule_interval: int = 1, rule_batch_fraction: float = 0.25, fallback: str = "sgd",
                  fallback_lr_scale: Optional[float] = None, fisher_samples: int = 1, damping_range=(1e-6, 1e2),
-                 param_groups=None, seed: Optional[int] = None, weight_sharing: str = "expand"):
+                 param_groups=None, seed: Optional[int] = None, weight_sharing: str = "expand",
+                 stats_fraction: float = 1.0):
         check_arguments(step_rule=step_rule)
         lr = RULE_DEFAULTS[step_rule]["lr"] if lr is None else lr
         momentum = RULE_DEFAULTS[step_rule]["momentum"] if momentum is None else momentum
@@ -113,7 +117,8 @@ class FisherDescent(torch.optim.Optimizer):
                         damping_rule=damping_rule, fallback=fallback, fallback_lr_scale=fallback_lr_scale,
                         fisher_samples=fisher_samples, damping_range=damping_range, damping_interval=damping_interval,
                         seed=seed, param_groups=param_groups, weight_sharing=weight_sharing,
-                        rule_interval=rule_interval, rule_batch_fraction=rule_batch_fraction)
+                        rule_interval=rule_interval, rule_batch_fraction=rule_batch_fraction,
+                        stats_fraction=stats_fraction)
         self.likelihood = _closed_form_likelihood(loss_fn)
         if step_rule == "quadratic" and self.likelihood is None:
             raise ValueError(f"step_rule='quadratic' needs a criterion with a closed-form output Hessian "
@@ -155,6 +160,7 @@ class FisherDescent(torch.optim.Optimizer):
         self.step_rule = step_rule
         self.rule_interval = rule_interval
         self.rule_batch_fraction = rule_batch_fraction
+        self.stats_fraction = stats_fraction
         self.loss_fn = loss_fn
         self.rules = SimpleNamespace(step=STEP_RULES[step_rule](rule_interval, rule_batch_fraction),
                                      damping=DAMPING_RULES[damping_rule](damping_interval, damping_range))
@@ -204,6 +210,11 @@ class FisherDescent(torch.optim.Optimizer):
         for layer in _without_tied_parameters(layers):
             blocks[layer.name] = make_block(layer, self.structure, self.state[layer.weight],
                                             self.weight_sharing)
+        if self.stats_fraction < 1.0:
+            # One generator for all blocks, apart from the sampled targets' (seed + 1: a different stream).
+            subsample = ExampleSubsample(self.stats_fraction, self._seed + 1)
+            for block in blocks.values():
+                block.subsample = subsample
         self._block_group = {b: group_of[b.layer.weight] for b in blocks.values()}
         self._block_params = {p for b in blocks.values() for p in b.layer.params()}
         return blocks
@@ -641,7 +652,13 @@ class FisherDescent(torch.optim.Optimizer):
             "generator_device": None if self._generator is None else str(self._generator.device),
             "step_rule": self.rules.step.state_dict(), "damping_rule": self.rules.damping.state_dict(),
         }
+        subsample = self._subsample()
+        if subsample is not None:
+            state["natural_gradient"]["subsample_generator_state"] = subsample.generator.get_state()
         return state
+
+    def _subsample(self):
+        return next(iter(self.blocks.values())).subsample if self.blocks else None
 
     def load_state_dict(self, state_dict: dict) -> None:
         state_dict = dict(state_dict)
@@ -659,6 +676,9 @@ class FisherDescent(torch.optim.Optimizer):
                 self._generator.set_state(extra["generator_state"].to(torch.uint8).cpu())
             self.rules.step.load_state_dict(extra.get("step_rule", {}))
             self.rules.damping.load_state_dict(extra.get("damping_rule", {}))
+            subsample = self._subsample()
+            if subsample is not None and extra.get("subsample_generator_state") is not None:
+                subsample.generator.set_state(extra["subsample_generator_state"].to(torch.uint8).cpu())
         self._hooks.armed = self._statistics_due(self._steps)
         self._recorder.armed = self._batch_due(self._steps)
 

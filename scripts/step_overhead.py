@@ -9,10 +9,12 @@ step times are not proportional to flops, and measured ratios fall below it at
 small batch.
 
     python scripts/step_overhead.py --width 256 --batches 256 1024 [--structure ekfac]
+    python scripts/step_overhead.py --widths 64 128 128 10 --batches 256      # the digits MLP
 """
 from __future__ import annotations
 
 import argparse
+import os
 import statistics
 import time
 
@@ -22,20 +24,31 @@ from torch import nn
 import ngopt
 
 
-def make_mlp(width: int, depth: int = 3, classes: int = 10) -> nn.Module:
+def layer_widths(width: int, depth: int = 3, classes: int = 10):
+    return [width] * (depth + 1) + [classes]
+
+
+def make_mlp(widths) -> nn.Module:
     layers = []
-    for _ in range(depth):
-        layers += [nn.Linear(width, width), nn.Tanh()]
-    return nn.Sequential(*layers, nn.Linear(width, classes))
+    for d_in, d_out in zip(widths[:-2], widths[1:-1]):
+        layers += [nn.Linear(d_in, d_out), nn.Tanh()]
+    return nn.Sequential(*layers, nn.Linear(widths[-2], widths[-1]))
 
 
-def time_steps(make_optimizer, width: int, batch: int, steps: int, warmup: int, seed: int = 0):
+def flop_count_estimate(widths, batch: int, gemms: int) -> float:
+    """1 + preconditioning flops / forward-backward flops: sum gemms/2 * 2 d_in d_out (d_in + d_out) over 6 B d_in d_out."""
+    pairs = list(zip(widths[:-1], widths[1:]))
+    extra = sum(gemms / 2 * 2 * i * o * (i + o) for i, o in pairs)
+    return 1 + extra / sum(6 * batch * i * o for i, o in pairs)
+
+
+def time_steps(make_optimizer, widths, batch: int, steps: int, warmup: int, seed: int = 0):
     torch.manual_seed(seed)
-    model = make_mlp(width)
+    model = make_mlp(widths)
     loss_fn = nn.CrossEntropyLoss()
     optimizer = make_optimizer(model, loss_fn)
-    inputs = torch.randn(batch, width)
-    targets = torch.randint(0, 10, (batch,))
+    inputs = torch.randn(batch, widths[0])
+    targets = torch.randint(0, widths[-1], (batch,))
     times = []
     for _ in range(warmup + steps):
         start = time.perf_counter()
@@ -48,13 +61,15 @@ def time_steps(make_optimizer, width: int, batch: int, steps: int, warmup: int, 
 
 def inverse_interval(structure: str) -> int:
     """FisherDescent's default inverse_interval, read from the library (it may change)."""
-    return ngopt.FisherDescent(make_mlp(2, depth=1, classes=2), nn.CrossEntropyLoss(),
+    return ngopt.FisherDescent(make_mlp(layer_widths(2, depth=1, classes=2)), nn.CrossEntropyLoss(),
                                structure=structure).inverse_interval
 
 
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--width", type=int, default=256)
+    parser.add_argument("--widths", type=int, nargs="+", default=None,
+                        help="layer widths, input to classes (e.g. the digits MLP: 64 128 128 10); overrides --width")
     parser.add_argument("--batches", type=int, nargs="+", default=[256, 1024])
     parser.add_argument("--steps", type=int, default=200,
                         help="timed steps per run; must be a multiple of FisherDescent's inverse_interval "
@@ -68,6 +83,7 @@ def main(argv=None):
     if args.steps < 1 or args.steps % interval:
         parser.error(f"--steps must be a positive multiple of inverse_interval ({interval}), got {args.steps}")
     torch.set_num_threads(args.threads)
+    widths = args.widths or layer_widths(args.width)
 
     def sgd(model, loss_fn):
         return torch.optim.SGD(model.parameters(), lr=0.01, momentum=0.9)
@@ -75,21 +91,21 @@ def main(argv=None):
     def natural(model, loss_fn):
         return ngopt.FisherDescent(model, loss_fn, lr=0.01, structure=args.structure)
 
-    print(f"width {args.width}, threads {args.threads}, {args.steps} timed steps x {args.rounds} rounds, "
+    print(f"widths {'-'.join(map(str, widths))}, load average {os.getloadavg()[0]:.2f}, threads {args.threads}, {args.steps} timed steps x {args.rounds} rounds, "
           f"curvature {args.structure}")
     print(f"{'batch':>6} {'sgd ms':>8} {'ngopt ms':>9} {'ratio(mean)':>11} {'ratio(median)':>13} "
           f"{'flop est.':>9}  ngopt split (% of its step)")
     for batch in args.batches:
         sgd_times, ng_times, optimizer = [], [], None
         for _ in range(args.rounds):  # interleave so that machine noise hits both alike
-            sgd_times += time_steps(sgd, args.width, batch, args.steps, args.warmup)[0]
-            times, wall, optimizer = time_steps(natural, args.width, batch, args.steps, args.warmup)
+            sgd_times += time_steps(sgd, widths, batch, args.steps, args.warmup)[0]
+            times, wall, optimizer = time_steps(natural, widths, batch, args.steps, args.warmup)
             ng_times += times
         # The optimizer's own clocks cover every step of its last run, warm-up included.
         split = optimizer.diagnostics()["time"]
         share = {k: 100 * split[k] / wall for k in ("statistics", "inversion", "precondition")}
         gemms = {"kfac": 2, "ekfac": 4, "diag": 0}[args.structure]  # d x d products per layer and step
-        flop_estimate = 1 + gemms * args.width / (3 * batch)
+        flop_estimate = flop_count_estimate(widths, batch, gemms)
         mean_ratio = statistics.mean(ng_times) / statistics.mean(sgd_times)
         median_ratio = statistics.median(ng_times) / statistics.median(sgd_times)
         print(f"{batch:>6} {1e3 * statistics.mean(sgd_times):>8.2f} {1e3 * statistics.mean(ng_times):>9.2f} "

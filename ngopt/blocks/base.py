@@ -24,6 +24,7 @@ from typing import Dict, List, Optional, Tuple
 import torch
 
 from .layers import LayerAdapter
+from .rows import join_positions
 
 Tensors = Dict[str, torch.Tensor]
 
@@ -49,14 +50,20 @@ class LayerCurvature:
         # (input rows, grad rows, scale, index of the model forward the call belongs to)
         self.pending: List[Tuple[torch.Tensor, torch.Tensor, float, int]] = []
         self.info: dict = {}  # latest diagnostics of this block (plain Python numbers)
+        # stats_fraction < 1: an ExampleSubsample (blocks/subsample.py) and the examples kept per forward
+        self.subsample = None
+        self._kept: dict = {}
 
     # -- capture -------------------------------------------------------------------------
     def add_capture(self, input_rows: torch.Tensor, grad_rows: torch.Tensor, scale: float,
                     forward: int = 0) -> None:
+        if self.subsample is not None:
+            input_rows, grad_rows, scale = self.subsample.take(self._kept, forward, input_rows, grad_rows, scale)
         self.pending.append((input_rows, grad_rows, scale, forward))
 
     def clear_pending(self) -> None:
         self.pending.clear()
+        self._kept.clear()
 
     def calls_joined_per_forward(self) -> List[Tuple[torch.Tensor, torch.Tensor, float]]:
         """Pending calls of one forward (shared weights) joined along positions.
@@ -69,7 +76,7 @@ class LayerCurvature:
             previous = joined.get(forward)
             if previous is not None and previous[0].shape[0] == input_rows.shape[0] \
                     and previous[1].shape[0] == grad_rows.shape[0] and previous[2] == scale:
-                joined[forward] = (torch.cat([previous[0], input_rows], dim=1),
+                joined[forward] = (join_positions([previous[0], input_rows]),
                                    torch.cat([previous[1], grad_rows], dim=2), scale)
             else:
                 key = forward if previous is None else (forward, len(joined))

@@ -15,6 +15,7 @@ import torch
 
 from ..spectra import diagonal_summary
 from .base import LayerCurvature
+from .rows import example_slice, materialize
 
 _PER_EXAMPLE_CHUNK = 64
 
@@ -22,11 +23,12 @@ _PER_EXAMPLE_CHUNK = 64
 def per_example_square_sum(input_rows: torch.Tensor, grad_rows: torch.Tensor) -> torch.Tensor:
     """``sum_{k,n} (sum_t g[k,n,t] a[n,t]^T)^2`` for ``a: [N,T,d_in]``, ``g: [K,N,T,d_out]``."""
     if input_rows.shape[1] == 1:
-        return torch.einsum("kno,nd->od", grad_rows[:, :, 0].square(), input_rows[:, 0].square())
-    total = input_rows.new_zeros(grad_rows.shape[-1], input_rows.shape[-1])
-    for k in range(grad_rows.shape[0]):
-        for start in range(0, input_rows.shape[0], _PER_EXAMPLE_CHUNK):
-            a = input_rows[start:start + _PER_EXAMPLE_CHUNK]
+        a = materialize(input_rows).to(grad_rows.dtype)
+        return torch.einsum("kno,nd->od", grad_rows[:, :, 0].square(), a[:, 0].square())
+    total = grad_rows.new_zeros(grad_rows.shape[-1], input_rows.shape[-1])
+    for start in range(0, input_rows.shape[0], _PER_EXAMPLE_CHUNK):
+        a = example_slice(input_rows, start, start + _PER_EXAMPLE_CHUNK).to(grad_rows.dtype)
+        for k in range(grad_rows.shape[0]):
             g = grad_rows[k, start:start + _PER_EXAMPLE_CHUNK]
             total += torch.einsum("nto,ntd->nod", g, a).square().sum(0)
     return total
@@ -44,7 +46,7 @@ class DiagonalBlock(LayerCurvature):
         dtype = self.layer.weight.dtype
         total = None
         for input_rows, grad_rows, scale in self.calls_joined_per_forward():
-            term = self.square_sum(input_rows.to(dtype), grad_rows.to(dtype)) * scale
+            term = self.square_sum(input_rows, grad_rows.to(dtype)) * scale  # rows cast chunk by chunk
             total = term if total is None else total + term
         return {"fisher_diagonal": total / num_forwards}
 

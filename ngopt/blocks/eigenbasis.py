@@ -27,6 +27,7 @@ from ..linalg import to_cpu64
 from ..spectra import diagonal_summary, kronecker_summary
 from .diagonal import per_example_square_sum
 from .kronecker import KroneckerBlock
+from .rows import example_chunks
 
 
 class EigenbasisBlock(KroneckerBlock):
@@ -62,10 +63,11 @@ class EigenbasisBlock(KroneckerBlock):
         basis_in, basis_out = view["basis_in"], view["basis_out"]
         total = None
         for input_rows, grad_rows, scale in self.calls_joined_per_forward():
-            projected_in = input_rows.to(dtype) @ basis_in     # rows of (Q_A^T a)^T
-            projected_out = grad_rows.to(dtype) @ basis_out    # rows of (Q_G^T g)^T
-            term = per_example_square_sum(projected_in, projected_out) * scale
-            total = term if total is None else total + term
+            projected_out = grad_rows.to(dtype) @ basis_out        # rows of (Q_G^T g)^T
+            for start, stop, a in example_chunks(input_rows):  # bounded memory for many positions
+                projected_in = a.to(dtype) @ basis_in              # rows of (Q_A^T a)^T
+                term = per_example_square_sum(projected_in, projected_out[:, start:stop]) * scale
+                total = term if total is None else total + term
         return {"scales": total / num_forwards}
 
     def blend_projected(self, batch, view, rebased, ema):

@@ -23,7 +23,8 @@ import torch
 from ..linalg import to_cpu64
 from .diagonal import DiagonalBlock
 from .eigenbasis import EigenbasisBlock
-from .kronecker import KroneckerBlock
+from .kronecker import KroneckerBlock, add_input_moment
+from .rows import example_chunks
 
 
 def _groups(block) -> int:
@@ -48,18 +49,20 @@ class GroupedKroneckerBlock(KroneckerBlock):
         blocks_out = torch.zeros(groups, per_group, per_group, dtype=ref.dtype, device=ref.device)
         rows = 0
         for input_rows, grad_rows, scale in self.factor_rows():
-            a = input_rows.reshape(-1, d_in).to(ref.dtype)
+            rows += add_input_moment(factor_in, input_rows)
             g = grad_rows.reshape(-1, groups, per_group).to(ref.dtype)
-            factor_in.addmm_(a.T, a)
             blocks_out.add_(torch.einsum("rjo,rjp->jop", g, g), alpha=scale)
-            rows += a.shape[0]
         return {"factor_in": factor_in / rows, "factor_out": torch.block_diag(*blocks_out) / num_forwards}
 
 
 def _per_example_square_sum(input_rows, grad_rows):
     """``sum_{k,n} (sum_t g[k,n,t,j] a[n,t,j]^T)^2`` as ``[C_out, d]`` for compact grouped rows."""
-    per_example = torch.einsum("kntjo,ntjd->knjod", grad_rows, input_rows)
-    return per_example.square().sum(dim=(0, 1)).reshape(-1, input_rows.shape[-1])
+    total = 0
+    for start, stop, a in example_chunks(input_rows):
+        a = a.to(grad_rows.dtype)
+        per_example = torch.einsum("kntjo,ntjd->knjod", grad_rows[:, start:stop], a)
+        total = total + per_example.square().sum(dim=(0, 1)).reshape(-1, a.shape[-1])
+    return total
 
 
 class GroupedDiagonalBlock(DiagonalBlock):
@@ -93,8 +96,9 @@ class GroupedEigenbasisBlock(GroupedKroneckerBlock, EigenbasisBlock):
         bases = basis_out.diagonal(dim1=0, dim2=2).permute(2, 0, 1)  # [groups, o, o]
         total = None
         for input_rows, grad_rows, scale in self.calls_joined_per_forward():
-            projected_in = input_rows.to(dtype) @ view["basis_in"]
             projected_out = torch.einsum("kntjo,joq->kntjq", grad_rows.to(dtype), bases)
-            term = _per_example_square_sum(projected_in, projected_out) * scale
-            total = term if total is None else total + term
+            for start, stop, a in example_chunks(input_rows):
+                projected_in = a.to(dtype) @ view["basis_in"]
+                term = _per_example_square_sum(projected_in, projected_out[:, start:stop]) * scale
+                total = term if total is None else total + term
         return {"scales": total / num_forwards}

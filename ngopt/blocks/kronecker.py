@@ -18,6 +18,18 @@ import torch
 from ..linalg import damped_inverse, factored_damping, to_cpu64
 from ..spectra import kronecker_summary
 from .base import LayerCurvature, Tensors
+from .rows import example_chunks, mean_over_positions
+
+
+def add_input_moment(factor_in: torch.Tensor, input_rows) -> int:
+    """``factor_in += sum over rows of a a^T``, a bounded chunk of examples at a time; returns the row count."""
+    d_in, count = factor_in.shape[0], 0
+    for _, _, chunk in example_chunks(input_rows):
+        # Rows may come in a lower precision (autocast); statistics accumulate in the factor's dtype.
+        a = chunk.reshape(-1, d_in).to(factor_in.dtype)
+        factor_in.addmm_(a.T, a)
+        count += a.shape[0]
+    return count
 
 
 class KroneckerBlock(LayerCurvature):
@@ -39,7 +51,7 @@ class KroneckerBlock(LayerCurvature):
         """
         if self.weight_sharing == "expand":
             return [(a, g, scale) for a, g, scale, _ in self.pending]
-        return [(a.mean(dim=1, keepdim=True), g.sum(dim=2, keepdim=True), scale)
+        return [(mean_over_positions(a), g.sum(dim=2, keepdim=True), scale)
                 for a, g, scale in self.calls_joined_per_forward()]
 
     def batch_statistics(self, num_forwards):
@@ -51,12 +63,9 @@ class KroneckerBlock(LayerCurvature):
         factor_out = torch.zeros(d_out, d_out, dtype=ref.dtype, device=ref.device)
         rows = 0
         for input_rows, grad_rows, scale in self.factor_rows():
-            # Rows may come in a lower precision (autocast); statistics accumulate in the weight's dtype.
-            a = input_rows.reshape(-1, d_in).to(ref.dtype)
+            rows += add_input_moment(factor_in, input_rows)
             g = grad_rows.reshape(-1, d_out).to(ref.dtype)
-            factor_in.addmm_(a.T, a)
             factor_out.addmm_(g.T, g, alpha=scale)
-            rows += a.shape[0]
         return {"factor_in": factor_in / rows, "factor_out": factor_out / num_forwards}
 
     def prepare_inverse(self, statistics, damping, want_spectrum):

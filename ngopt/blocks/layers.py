@@ -22,6 +22,8 @@ import torch
 from torch import nn
 import torch.nn.functional as F
 
+from .rows import HeldRows
+
 
 class LayerAdapter:
     kind = "layer"
@@ -56,6 +58,10 @@ class LayerAdapter:
 
     def input_rows(self, inputs: torch.Tensor) -> torch.Tensor:
         raise NotImplementedError
+
+    def recorded_rows(self, inputs: torch.Tensor):
+        """The rows a recorded call keeps until the refresh: ``input_rows`` or a compact stand-in (``rows.py``)."""
+        return self.input_rows(inputs)
 
     def output_rows(self, grads: torch.Tensor) -> torch.Tensor:
         """``grads`` is ``[K, *output.shape]``; returns ``[K, N, T, d_out]``."""
@@ -125,6 +131,12 @@ class _ConvolutionLayer(LayerAdapter):
 
     def input_rows(self, inputs):
         return self._append_ones(self._patch_rows(inputs))
+
+    def recorded_rows(self, inputs):
+        # The input, not its prod(kernel) times larger patches: blocks unfold a chunk at a time.
+        if inputs.dim() == self.spatial_dims + 1:  # unbatched
+            inputs = inputs.unsqueeze(0)
+        return HeldRows(self.input_rows, inputs)
 
     def output_rows(self, grads):
         if grads.dim() == self.spatial_dims + 2:  # unbatched output [K, C, *spatial]
@@ -291,6 +303,18 @@ class BatchNormLayer(_NormLayer):
     def input_rows(self, inputs):
         normalized = F.batch_norm(inputs, None, None, training=True, eps=self.module.eps)
         return normalized.reshape(inputs.shape[0], inputs.shape[1], -1).transpose(1, 2)
+
+    def recorded_rows(self, inputs):
+        # The input and its per-channel batch moments, not a second input-sized x_hat: rows are
+        # normalized a chunk of examples at a time.
+        dims = [0] + list(range(2, inputs.dim()))
+        shape = (1, -1) + (1,) * (inputs.dim() - 2)
+        variance, mean = torch.var_mean(inputs, dim=dims, correction=0)
+        mean, scale = mean.reshape(shape), torch.rsqrt(variance + self.module.eps).reshape(shape)
+
+        def normalized_rows(part):
+            return ((part - mean) * scale).reshape(part.shape[0], part.shape[1], -1).transpose(1, 2)
+        return HeldRows(normalized_rows, inputs)
 
     def output_rows(self, grads):
         k, n, c = grads.shape[:3]

@@ -34,6 +34,7 @@ from ..linalg import to_cpu64
 from ..spectra import diagonal_summary
 from .base import LayerCurvature
 from .diagonal import DiagonalBlock
+from .rows import example_chunks
 
 
 def per_example_channel_gradients(normalized: torch.Tensor, grad_rows: torch.Tensor, with_bias: bool) -> torch.Tensor:
@@ -49,9 +50,11 @@ def _channel_moments(block, num_forwards, reduce) -> dict:
     dtype = block.layer.weight.dtype
     total = None
     for normalized, grad_rows, scale in block.calls_joined_per_forward():
-        pairs = per_example_channel_gradients(normalized.to(dtype), grad_rows.to(dtype), block.layer.has_bias)
-        term = reduce(pairs) * scale
-        total = term if total is None else total + term
+        for start, stop, rows in example_chunks(normalized):  # reduce sums over examples
+            pairs = per_example_channel_gradients(rows.to(dtype), grad_rows[:, start:stop].to(dtype),
+                                                  block.layer.has_bias)
+            term = reduce(pairs) * scale
+            total = term if total is None else total + term
     return total / num_forwards
 
 
