@@ -84,9 +84,11 @@ def main() -> None:
     model, x, y = problem()
     rows = [("exact damped natural gradient (full GGN, LM damping)",
              exact_natural_gradient(copy.deepcopy(model), x, y, args.target, args.steps))]
-    for rule in ("fixed", "quadratic"):
-        rows.append((f"FisherDescent step_rule={rule!r}, fisher='exact', LM damping",
-                     fisher_descent(copy.deepcopy(model), x, y, args.target, args.steps, step_rule=rule)))
+    for rule, options in (("fixed", {}), ("quadratic", {}), ("quadratic", {"max_step_kl": None})):
+        label = "".join(f", {k}={v}" for k, v in options.items())
+        rows.append((f"FisherDescent step_rule={rule!r}, fisher='exact', LM damping{label}",
+                     fisher_descent(copy.deepcopy(model), x, y, args.target, args.steps, step_rule=rule,
+                                    **options)))
     reference = rows[0][1]
     for name, steps in rows:
         ratio = "" if steps is None or not reference else f"  ({steps / reference:.2f}x the exact steps)"
