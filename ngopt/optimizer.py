@@ -623,10 +623,12 @@ class FisherDescent(torch.optim.Optimizer):
     def no_capture(self):
         """Within this block, forward passes record nothing (e.g. evaluation or probing in train mode)."""
         armed, self._hooks.armed = self._hooks.armed, False
+        recording, self._recorder.armed = self._recorder.armed, False  # nor is the batch replaced
         try:
             yield
         finally:
             self._hooks.armed = armed
+            self._recorder.armed = recording
 
     @property
     def steps_taken(self) -> int:

@@ -110,12 +110,12 @@ class BatchRecorder:
         return None
 
     def _post_hook(self, model, args, output):
-        if model is self.model and self._forward is not None and self._output is None:
+        if model is self.model and self.armed and self._forward is not None and self._output is None:
             self._output = output
         return None
 
     def _criterion_hook(self, criterion, inputs, loss):
-        if criterion is not self.loss_fn or self._output is None or len(inputs) < 2 \
+        if criterion is not self.loss_fn or not self.armed or self._output is None or len(inputs) < 2 \
                 or not isinstance(inputs[0], torch.Tensor) or not torch.is_grad_enabled() \
                 or _inside_function_transform():
             return None

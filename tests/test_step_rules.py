@@ -268,3 +268,26 @@ def test_an_unreplayable_loss_warns_once_and_still_steps():
             opt.step()
     assert sum("recorded batch" in str(w.message) for w in caught) == 1
     assert float(loss_fn(model(x), y)) < start
+
+
+def test_forwards_inside_no_capture_change_neither_statistics_nor_the_recorded_batch():
+    # API behaviour 6: a train-mode forward inside opt.no_capture() (an evaluation pass, say) records
+    # nothing, so the step, its statistics and the damping rule's ratio are those of the training batch.
+    model, loss_fn, x, y = lm_problem(9)
+    twin, twin_loss = copy.deepcopy(model), nn.CrossEntropyLoss()
+    settings = dict(damping_rule="lm", damping_interval=1, stats_interval=1, inverse_interval=1, seed=4)
+    opt = ngopt.FisherDescent(model, loss_fn, **settings)
+    twin_opt = ngopt.FisherDescent(twin, twin_loss, **settings)
+    other_x, other_y = torch.randn(32, 5, dtype=DTYPE), torch.randint(0, 3, (32,))
+    for _ in range(3):
+        opt.zero_grad()
+        loss_fn(model(x), y).backward()
+        with opt.no_capture():
+            loss_fn(model(other_x), other_y)  # train mode, gradients enabled, criterion called
+        opt.step()
+        twin_opt.zero_grad()
+        twin_loss(twin(x), y).backward()
+        twin_opt.step()
+        assert opt.diagnostics()["update"]["reduction_ratio"] == twin_opt.diagnostics()["update"]["reduction_ratio"]
+    for p, q in zip(model.parameters(), twin.parameters()):
+        assert torch.equal(p, q)  # one process, the same operations in the same order
