@@ -120,7 +120,7 @@ class FisherDescent(torch.optim.Optimizer):
                         rule_interval=rule_interval, rule_batch_fraction=rule_batch_fraction,
                         stats_fraction=stats_fraction)
         self.likelihood = _closed_form_likelihood(loss_fn)
-        if step_rule == "quadratic" and self.likelihood is None:
+        if STEP_RULES[step_rule].needs_batch and self.likelihood is None:
             raise ValueError(f"step_rule='quadratic' needs a criterion with a closed-form output Hessian "
                              f"(nn.MSELoss, nn.CrossEntropyLoss, nn.BCEWithLogitsLoss), got "
                              f"{type(loss_fn).__name__}; pass loss_fn, or use step_rule='fixed'")
@@ -333,7 +333,7 @@ class FisherDescent(torch.optim.Optimizer):
             return "nonfinite_update"
         tick = time.perf_counter()
         evaluator = self._evaluator(batch, step_index, closure)
-        inputs.evaluator = evaluator if self.step_rule == "quadratic" else None
+        inputs.evaluator = evaluator if self.rules.step.needs_batch else None
         result = self.rules.step.updates(inputs)
         self._times["rules"] += time.perf_counter() - tick
         if not _all_finite(list(result.updates.values())) or not _finite_numbers(result.diagnostics):
@@ -492,7 +492,7 @@ class FisherDescent(torch.optim.Optimizer):
     def _apply_block_updates(self, updates) -> None:
         """``w += u`` for every block; the quadratic rule keeps ``u`` as the next step's momentum direction."""
         self._applied = updates
-        keep = self.step_rule == "quadratic"
+        keep = self.rules.step.keeps_previous_update
         for block, update in updates.items():
             weight_part, bias_part = block.layer.split_matrix(update)
             for param, part in ((block.layer.weight, weight_part), (block.layer.bias, bias_part)):
@@ -558,17 +558,17 @@ class FisherDescent(torch.optim.Optimizer):
     # ------------------------------------------------------------------ evaluations on the batch
     def _evaluator(self, batch, step_index: int, closure):
         """A :class:`BatchEvaluator` on this step's recorded batch when a rule needs one, else None."""
-        wanted = (self.step_rule == "quadratic" and self.rules.step.wants_batch(step_index)) \
-            or self.rules.damping.wants_ratio(step_index)
+        steered = self.rules.step.needs_batch
+        wanted = self.rules.step.wants_batch(step_index) or self.rules.damping.wants_ratio(step_index)
         if not wanted:
             return None
-        if closure is not None and self.step_rule != "quadratic":
+        if closure is not None and not steered:
             return None  # the damping rule measures the closure's loss itself
         if batch is None or not batch.replayable:
-            if closure is None or self.step_rule == "quadratic":
+            if closure is None or steered:
                 self._warn_not_replayable(batch, closure)
             return None
-        fraction = self.rule_batch_fraction if self.step_rule == "quadratic" else 1.0
+        fraction = self.rule_batch_fraction if steered else 1.0
         return BatchEvaluator(self.model, self.loss_fn, self.likelihood, batch, fraction)
 
     def _warn_not_replayable(self, batch, closure) -> None:
@@ -577,10 +577,10 @@ class FisherDescent(torch.optim.Optimizer):
         self._warned_replay = True
         what = ("no training forward was recorded on this step" if batch is None else
                 "the criterion's input is not the model's output (or an element or reshape of it)")
-        rule = f"step_rule={self.step_rule!r}" if self.step_rule == "quadratic" else \
-            f"damping_rule={self.damping_rule!r}"
-        fallback = "the step falls back to the blocks' own model with the KL bound" \
-            if self.step_rule == "quadratic" else "lambda stays as it is"
+        steered = self.rules.step.needs_batch
+        rule = f"step_rule={self.step_rule!r}" if steered else f"damping_rule={self.damping_rule!r}"
+        fallback = "the step falls back to the blocks' own model with the KL bound" if steered \
+            else "lambda stays as it is"
         warnings.warn(f"{rule} evaluates the loss on the recorded batch, but {what}, so {fallback}. Apply "
                       "loss_fn to the model's output (or a dict/tuple entry or view of it), or pass "
                       "step(closure) for the damping rule.", stacklevel=5)
@@ -588,7 +588,7 @@ class FisherDescent(torch.optim.Optimizer):
     def _adapt_damping(self, result, evaluator, batch, closure, loss) -> None:
         """Levenberg-Marquardt: the loss change on the same rows against the quadratic model's prediction."""
         # Before any re-evaluation: a closure's backward overwrites the gradients the model uses.
-        predicted = result.predicted_change if self.step_rule == "quadratic" else self._model_change()
+        predicted = result.predicted_change if result.predicted_change is not None else self._model_change()
         before = after = None
         if closure is not None and loss is not None:  # the closure defines the loss: it is honoured
             before = float(loss)

@@ -30,7 +30,7 @@ class StepResult:
     updates: Dict[object, torch.Tensor]              # block -> change added to its weights (matrix layout)
     diagnostics: dict = field(default_factory=dict)
     loss_before: Optional[float] = None              # on the evaluator's rows, when the rule measured it
-    predicted_change: Optional[float] = None         # M(delta) for the update returned
+    predicted_change: Optional[float] = None         # M(delta) for the update returned; None: the blocks' model
 
 
 def group_of(inputs: StepInputs) -> Dict[object, dict]:

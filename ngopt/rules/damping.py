@@ -61,10 +61,4 @@ class LevenbergMarquardt(FixedDamping):
         return min(max(damping, low), high)
 
 
-def levenberg_marquardt_damping(damping: float, rho: Optional[float], interval: int,
-                                damping_range: Tuple[float, float]) -> float:
-    """One Levenberg-Marquardt update of ``damping`` (see :class:`LevenbergMarquardt`)."""
-    return LevenbergMarquardt(interval, damping_range).adapt(damping, rho)
-
-
 DAMPING_RULES = {"fixed": FixedDamping, "lm": LevenbergMarquardt}

@@ -11,7 +11,8 @@ from .trust import kl_trust_scale
 
 class FixedStep:
     name = "fixed"
-    needs_batch = False
+    needs_batch = False            # evaluates nothing on the recorded batch
+    keeps_previous_update = False  # heavy-ball momentum lives in its own buffer
 
     def __init__(self, interval: int = 1, batch_fraction: float = 1.0):
         pass
@@ -39,7 +40,8 @@ class FixedStep:
         diagnostics = norms(inputs, scale_of)
         diagnostics.update(trust_scale=min(scales.values()) if scales else 1.0, trust_scale_by_group=scales,
                            kl_estimate=kl, predicted_change=predicted)
-        return StepResult(updates, diagnostics, predicted_change=predicted)
+        # No predicted_change: the damping rule measures the update actually applied, momentum included.
+        return StepResult(updates, diagnostics)
 
     def state_dict(self) -> dict:
         return {}

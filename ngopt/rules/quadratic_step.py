@@ -63,7 +63,8 @@ def quadratic_value(gram: List[List[float]], linear: List[float], coefficients: 
 
 class QuadraticStep:
     name = "quadratic"
-    needs_batch = True
+    needs_batch = True             # its 2x2 system is built on the recorded batch
+    keeps_previous_update = True   # delta_0, the second direction of the span
 
     def __init__(self, interval: int = 1, batch_fraction: float = 0.25):
         self.interval = interval
