@@ -25,10 +25,13 @@ supported layer contributes nothing.
 
 The extra pass asks ``torch.autograd.grad`` for the gradients of the layer
 outputs only, so it neither accumulates into ``.grad`` nor changes what the
-user's backward computes.  Each layer hands the rest of the network a copy of
-its output, which keeps the tensor we differentiate with respect to safe from
-in-place operations downstream (``ReLU(inplace=True)``).  The hooks run eagerly
-under ``torch.compile`` (they are excluded from tracing).
+user's backward computes.  It differentiates with respect to the layer's own
+output even when an operation downstream modifies that tensor in place
+(``ReLU(inplace=True)``): it holds the output's edge in the autograd graph
+(``torch.autograd.graph.get_gradient_edge``), not the tensor, so no copy of the
+activations is made.  (On a torch without gradient edges each layer hands the
+network a copy of its output instead.)  The hooks run eagerly under
+``torch.compile`` (they are excluded from tracing).
 """
 from __future__ import annotations
 
@@ -63,11 +66,25 @@ def _inside_function_transform() -> bool:
     return bool(active()) if active is not None else False
 
 
+_gradient_edge = getattr(torch.autograd.graph, "get_gradient_edge", None)
+
+
+def output_target(output: torch.Tensor):
+    """``(what to differentiate with respect to, what the network goes on with)`` for a layer output.
+
+    The gradient edge of ``output`` names the layer's own result even after an in-place
+    operation changes the tensor; without edges, a copy keeps the output itself untouched.
+    """
+    if _gradient_edge is not None:
+        return _gradient_edge(output), output
+    return output, output.clone()
+
+
 @dataclass
 class LayerCall:
     block: LayerCurvature
     input_rows: torch.Tensor  # or a compact stand-in (blocks/rows.py)
-    output: Optional[torch.Tensor]
+    output: Optional[object]  # the output's gradient edge (or the output itself, see output_target)
     # (grad rows, scale, index of the criterion call they come from); one entry per Fisher pass
     grads: List[Tuple[torch.Tensor, float, int]] = field(default_factory=list)
     # Output gradients -> rows, when the call covers part of its layer (default: block.layer.output_rows).
@@ -165,10 +182,9 @@ def batched_output_grads(output: torch.Tensor, targets: List[torch.Tensor],
             grads = [None if parts[0] is None else torch.stack(parts)
                      for parts in zip(*per_vector)]
         pieces.append(list(grads))
-    merged = []
-    for per_target in zip(*pieces):
-        merged.append(None if per_target[0] is None else torch.cat(per_target))
-    return merged
+    if len(pieces) == 1:  # one chunk: no copy (a layer's output gradients are as large as its activations)
+        return pieces[0]
+    return [None if per_target[0] is None else torch.cat(per_target) for per_target in zip(*pieces)]
 
 
 class CaptureHooks:
@@ -244,13 +260,14 @@ class CaptureHooks:
         """Record one call of ``block``'s layer; returns the copy of ``output`` the network goes on with."""
         record = self._current
         started = time.perf_counter()
-        call = LayerCall(block, block.layer.recorded_rows(layer_input.detach()), output, output_rows=output_rows)
+        target, handed_on = output_target(output)
+        call = LayerCall(block, block.layer.recorded_rows(layer_input.detach()), target, output_rows=output_rows)
         record.calls.append(call)
         if self.source is None:
+            # A tensor hook gets the gradient of the value it was registered on, in-place changes or not.
             record.handles.append(output.register_hook(lambda grad, call=call: self._empirical_grad(call, grad)))
-        copy = output.clone()
         self.seconds["capture"] += time.perf_counter() - started
-        return copy
+        return handed_on
 
     def _model_post_hook(self, model, inputs, output):
         if model is not self._model:

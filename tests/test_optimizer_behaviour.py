@@ -27,6 +27,7 @@ import torch
 from torch import nn
 
 import ngopt
+import ngopt.capture as capture_module
 
 DTYPE = torch.float64
 FISHERS = ("sampled", "exact", "empirical")
@@ -471,9 +472,12 @@ def _inplace_pair(kind):
     return (lambda inplace: small_cnn(inplace=inplace)), image_batch(10)[0]
 
 
+@pytest.mark.parametrize("edges", [True, False], ids=["gradient_edges", "copies"])
 @pytest.mark.parametrize("fisher", FISHERS)
 @pytest.mark.parametrize("kind", ["linear", "conv"])
-def test_inplace_relu_after_a_layer_changes_neither_capture_nor_gradients(kind, fisher):
+def test_inplace_relu_after_a_layer_changes_neither_capture_nor_gradients(kind, fisher, edges, monkeypatch):
+    if not edges:  # a torch without autograd gradient edges: the capture hands the network a copy instead
+        monkeypatch.setattr(capture_module, "_gradient_edge", None)
     build, x = _inplace_pair(kind)
     y = torch.randint(0, 3, (x.shape[0],))
     loss_fn = nn.CrossEntropyLoss()
@@ -495,6 +499,23 @@ def test_inplace_relu_after_a_layer_changes_neither_capture_nor_gradients(kind, 
         assert state["factor_out"].abs().max() > 0
         for key in ("factor_in", "factor_out"):
             torch.testing.assert_close(state[key], reference_state[key], rtol=1e-12, atol=1e-15)
+
+
+@pytest.mark.parametrize("fisher", FISHERS)
+def test_a_recorded_layer_hands_the_network_its_own_output_not_a_copy(fisher):
+    # A copy per recorded layer would double the activation memory of a refresh step.
+    model = nn.Sequential(nn.Linear(5, 6), nn.ReLU(inplace=True), nn.Linear(6, 3)).to(DTYPE)
+    produced, received = [], []
+    model[0].register_forward_hook(lambda module, inputs, output: produced.append(output.data_ptr()))
+    loss_fn = nn.CrossEntropyLoss()
+    opt = quiet_optimizer(model, loss_fn, fisher=fisher)
+    model[1].register_forward_pre_hook(lambda module, inputs: received.append(inputs[0].data_ptr()))
+    x, y = torch.randn(10, 5, dtype=DTYPE), torch.randint(0, 3, (10,))
+    assert opt.statistics_due()
+    loss_fn(model(x), y).backward()
+    assert produced == received and len(produced) == 1
+    opt.step()
+    assert opt.state[model[0].weight]["factor_out"].abs().max() > 0
 
 
 # ---------------------------------------------------------------------------- non-finite steps
