@@ -26,6 +26,23 @@ def heavy_ball(state: dict, direction: torch.Tensor, momentum: float) -> torch.T
     return buf
 
 
+def heavy_ball_all(states: List[dict], directions: List[torch.Tensor], scale: float,
+                   momentum: float) -> List[torch.Tensor]:
+    """:func:`heavy_ball` of ``scale * direction`` for many tensors at once, with fused foreach calls."""
+    if not momentum:
+        return torch._foreach_mul(directions, scale) if scale != 1.0 else list(directions)
+    fresh = [i for i, state in enumerate(states) if state.get("momentum_buffer") is None]
+    for i in fresh:
+        states[i]["momentum_buffer"] = directions[i].mul(scale)
+    fresh_set = set(fresh)
+    old = [i for i in range(len(states)) if i not in fresh_set]
+    if old:
+        buffers = [states[i]["momentum_buffer"] for i in old]
+        torch._foreach_mul_(buffers, momentum)
+        torch._foreach_add_(buffers, [directions[i] for i in old], alpha=scale)
+    return [state["momentum_buffer"] for state in states]
+
+
 def sgd_directions(params: List[torch.Tensor], grads: List[torch.Tensor], states: List[dict],
                    *, momentum: float, weight_decay: float) -> List[torch.Tensor]:
     """Heavy-ball SGD: ``buf = momentum * buf + (grad + weight_decay * p)``."""

@@ -493,13 +493,17 @@ class FisherDescent(torch.optim.Optimizer):
         """``w += u`` for every block; the quadratic rule keeps ``u`` as the next step's momentum direction."""
         self._applied = updates
         keep = self.rules.step.keeps_previous_update
+        params, parts = [], []
         for block, update in updates.items():
             weight_part, bias_part = block.layer.split_matrix(update)
             for param, part in ((block.layer.weight, weight_part), (block.layer.bias, bias_part)):
                 if part is not None and param.grad is not None:
-                    param.add_(part)
+                    params.append(param)
+                    parts.append(part)
             if keep:
                 block.state["previous_update"] = update
+        if params:
+            torch._foreach_add_(params, parts)
 
     def _apply_fallback(self) -> None:
         for group in self.param_groups:

@@ -291,3 +291,26 @@ def test_forwards_inside_no_capture_change_neither_statistics_nor_the_recorded_b
         assert opt.diagnostics()["update"]["reduction_ratio"] == twin_opt.diagnostics()["update"]["reduction_ratio"]
     for p, q in zip(model.parameters(), twin.parameters()):
         assert torch.equal(p, q)  # one process, the same operations in the same order
+
+
+@pytest.mark.parametrize("momentum", [0.0, 0.9])
+def test_fused_heavy_ball_keeps_the_buffers_torch_sgd_keeps(momentum):
+    # Reference: torch.optim.SGD's momentum recursion (dampening 0), buf = momentum * buf + d with
+    # buf = d on the first step, fed the scaled directions; one tensor joins late (a fresh buffer).
+    from ngopt.fallback import heavy_ball_all
+    generator = torch.Generator().manual_seed(0)
+    shapes = [(4, 3), (2,), (3, 5, 2)]
+    params = [torch.zeros(s, dtype=DTYPE, requires_grad=True) for s in shapes]
+    reference = torch.optim.SGD(params, lr=1.0, momentum=momentum)
+    states = [{} for _ in shapes]
+    for step in range(4):
+        scale = 0.5 + 0.25 * step
+        present = range(len(shapes)) if step else range(len(shapes) - 1)
+        directions = {i: torch.randn(shapes[i], generator=generator, dtype=DTYPE) for i in present}
+        for i, p in enumerate(params):
+            p.grad = directions[i] * scale if i in directions else None
+        reference.step()
+        taken = heavy_ball_all([states[i] for i in directions], list(directions.values()), scale, momentum)
+        for i, direction in zip(directions, taken):
+            expected = reference.state[params[i]].get("momentum_buffer", params[i].grad)
+            torch.testing.assert_close(direction, expected, rtol=1e-14, atol=1e-15)

@@ -4,7 +4,9 @@
 """
 from __future__ import annotations
 
-from ..fallback import heavy_ball
+import torch
+
+from ..fallback import heavy_ball_all
 from .base import StepInputs, StepResult, norms
 from .trust import kl_trust_scale
 
@@ -32,11 +34,11 @@ class FixedStep:
             kl += 0.5 * step * step * dot
             predicted += -step * dot + 0.5 * step * step * dot  # the blocks' model, momentum left out
             for block in blocks:
-                _, proposal = inputs.directions[block]
                 scale_of[block] = nu
-                direction = heavy_ball(block.state, proposal.mul(nu) if nu != 1.0 else proposal,
-                                       group["momentum"])
-                updates[block] = direction.mul(-group["lr"])
+            proposals = [inputs.directions[block][1] for block in blocks]
+            # One fused call per operation over the group's blocks (small layers are per-call overhead).
+            directions = heavy_ball_all([block.state for block in blocks], proposals, nu, group["momentum"])
+            updates.update(zip(blocks, torch._foreach_mul(directions, -group["lr"])))
         diagnostics = norms(inputs, scale_of)
         diagnostics.update(trust_scale=min(scales.values()) if scales else 1.0, trust_scale_by_group=scales,
                            kl_estimate=kl, predicted_change=predicted)
