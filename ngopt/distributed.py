@@ -89,6 +89,7 @@ import torch.distributed as dist
 from torch import nn
 
 from .blocks.base import LayerCurvature
+from .inversion_schedule import longest_first, square_cost
 from .optimizer import FisherDescent
 
 _HEADER_LENGTH_BYTES = 8
@@ -467,30 +468,14 @@ def _has_own_inverse(block: LayerCurvature) -> bool:
 
 def inversion_cost(block: LayerCurvature, statistics: dict) -> float:
     """``sum d^3`` over the block's square statistics (``d_in^3 + d_out^3`` for Kronecker factors)."""
-    return _cost_from_shapes([tuple(statistics[key].shape) for key in block.statistic_keys])
-
-
-def _cost_from_shapes(shapes) -> float:
-    # a square matrix costs d^3 to invert or decompose; anything else (vectors, 2x2 stacks) its size
-    return sum(float(shape[0]) ** 3 if len(shape) == 2 and shape[0] == shape[1] else float(_packed_size(shape, False))
-               for shape in shapes)
+    return square_cost([tuple(statistics[key].shape) for key in block.statistic_keys])
 
 
 def assign_owners(costs: Sequence[float], world_size: int) -> List[int]:
-    """Greedy longest-processing-time rule: largest job first, to the least-loaded rank (lowest on ties).
-
-    Its largest load is at most ``(4/3 - 1/(3R))`` times the best possible (Graham 1969).
-    Deterministic, so that every rank computes the same assignment without talking.
-    """
+    """The rank that inverts each job: the longest-first rule over the ranks (same on every rank)."""
     if world_size < 1:
         raise ValueError(f"world_size must be >= 1, got {world_size}")
-    loads = [0.0] * world_size
-    owners = [0] * len(costs)
-    for index in sorted(range(len(costs)), key=lambda i: (-costs[i], i)):
-        rank = min(range(world_size), key=lambda r: (loads[r], r))
-        owners[index] = rank
-        loads[rank] += costs[index]
-    return owners
+    return longest_first(costs, world_size)
 
 
 # ---------------------------------------------------------------------------------------- inverse payloads
@@ -696,7 +681,7 @@ def communication_volume(opt, world_size: int, shard_inversions: bool = True) ->
     # for a diagonal factor (embeddings), 2x2 stacks for norm layers
     shapes = {b: [shape for _, shape in _statistic_shapes(b, {})] for b in shared}
     payload = {b: element[b] * sum(_packed_size(shape, False) for shape in shapes[b]) for b in shared}
-    costs = [_cost_from_shapes(shapes[b]) for b in shared]
+    costs = [square_cost(shapes[b]) for b in shared]
     total_cost = sum(costs)
     ring = 2.0 * (world_size - 1) / world_size
     volume = {"world_size": world_size, "statistics_buffer_bytes": stats,

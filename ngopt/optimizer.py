@@ -40,6 +40,7 @@ from .blocks.base import LayerCurvature
 from .blocks.factory import adapters_for, make_block
 from .blocks.subsample import ExampleSubsample
 from .capture import CaptureHooks, FisherSource
+from .inversion_schedule import INVERSION_SCHEDULES
 from .likelihoods import likelihood_for
 from .quadratic_model import BatchEvaluator
 from .recording import BatchRecorder
@@ -78,10 +79,13 @@ class FisherDescent(torch.optim.Optimizer):
         structure: ``'kfac'``, ``'ekfac'`` or ``'diag'``.
         stats_interval: steps between curvature-statistics refreshes.
         inverse_interval: steps between inversions of the factors.
+        inverse_schedule: ``'together'`` (every block on the same step) or ``'staggered'``
+            (each block on its own step of the interval, the cost spread evenly; see
+            ``inversion_schedule.py``).
         stats_memory: weight of the old statistics in the running average.
         max_step_kl: bound on the step's KL divergence under the quadratic model (None: off).
         damping_rule: ``'fixed'``, or ``'lm'``: Levenberg-Marquardt adaptation of ``damping``
-            from the reduction ratio; needs ``step(closure)``.
+            from the reduction ratio, measured on the recorded batch (or through ``step(closure)``).
         fallback: ``'sgd'`` or ``'adam'`` for parameters outside any block (per group).
         fallback_lr_scale: the fallback rule's step is ``lr * fallback_lr_scale``
             (default 1 for ``'sgd'``, 1e-2 for ``'adam'``; per group).
@@ -107,7 +111,7 @@ class FisherDescent(torch.optim.Optimizer):
                  rule_interval: int = 1, rule_batch_fraction: float = 0.25, fallback: str = "sgd",
                  fallback_lr_scale: Optional[float] = None, fisher_samples: int = 1, damping_range=(1e-6, 1e2),
                  param_groups=None, seed: Optional[int] = None, weight_sharing: str = "expand",
-                 stats_fraction: float = 1.0):
+                 stats_fraction: float = 1.0, inverse_schedule: str = "together"):
         check_arguments(step_rule=step_rule)
         lr = RULE_DEFAULTS[step_rule]["lr"] if lr is None else lr
         momentum = RULE_DEFAULTS[step_rule]["momentum"] if momentum is None else momentum
@@ -118,7 +122,7 @@ class FisherDescent(torch.optim.Optimizer):
                         fisher_samples=fisher_samples, damping_range=damping_range, damping_interval=damping_interval,
                         seed=seed, param_groups=param_groups, weight_sharing=weight_sharing,
                         rule_interval=rule_interval, rule_batch_fraction=rule_batch_fraction,
-                        stats_fraction=stats_fraction)
+                        stats_fraction=stats_fraction, inverse_schedule=inverse_schedule)
         self.likelihood = _closed_form_likelihood(loss_fn)
         if STEP_RULES[step_rule].needs_batch and self.likelihood is None:
             raise ValueError(f"step_rule='quadratic' needs a criterion with a closed-form output Hessian "
@@ -161,6 +165,8 @@ class FisherDescent(torch.optim.Optimizer):
         self.rule_interval = rule_interval
         self.rule_batch_fraction = rule_batch_fraction
         self.stats_fraction = stats_fraction
+        self.inverse_schedule = inverse_schedule
+        self._inversions = INVERSION_SCHEDULES[inverse_schedule]()
         self.loss_fn = loss_fn
         self.rules = SimpleNamespace(step=STEP_RULES[step_rule](rule_interval, rule_batch_fraction),
                                      damping=DAMPING_RULES[damping_rule](damping_interval, damping_range))
@@ -252,6 +258,7 @@ class FisherDescent(torch.optim.Optimizer):
     def __repr__(self) -> str:
         lines = [f"FisherDescent(fisher={self.fisher!r}, structure={self.structure!r}, "
                  f"stats_interval={self.stats_interval}, inverse_interval={self.inverse_interval}, "
+                 f"inverse_schedule={self.inverse_schedule!r}, "
                  f"stats_memory={self.stats_memory}, step_rule={self.step_rule!r}, "
                  f"damping_rule={self.damping_rule!r})"]
         for i, group in enumerate(self.param_groups):
@@ -421,9 +428,10 @@ class FisherDescent(torch.optim.Optimizer):
 
     def _new_inverses(self, statistics, step_index: int):
         """``{block: (tensors, info)}`` for the blocks due an inversion, or None if non-finite."""
-        due = step_index % self.inverse_interval == 0
+        blocks = list(self.blocks.values())
         jobs = []
-        for block in self.blocks.values():
+        for block in blocks:
+            due = self._inversions.due(block, step_index, self.inverse_interval, blocks)
             fresh = block in statistics
             if (due and (fresh or block.has_statistics)) or (fresh and not block.has_inverse):
                 damping = self.param_groups[self._block_group[block]]["damping"]

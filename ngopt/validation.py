@@ -8,7 +8,8 @@ from torch import nn
 
 CHOICES = {"fisher": ("sampled", "exact", "empirical"), "structure": ("kfac", "ekfac", "diag"),
            "fallback": ("sgd", "adam"), "weight_sharing": ("expand", "reduce"),
-           "damping_rule": ("fixed", "lm"), "step_rule": ("fixed", "quadratic")}
+           "damping_rule": ("fixed", "lm"), "step_rule": ("fixed", "quadratic"),
+           "inverse_schedule": ("together", "staggered")}
 PLANNED: dict = {}  # {argument: {value: message}} for values announced but not built yet
 
 
@@ -60,6 +61,7 @@ CHECKS = {
     "weight_sharing": lambda v: _choice("weight_sharing", v),
     "damping_rule": lambda v: _choice("damping_rule", v),
     "step_rule": lambda v: _choice("step_rule", v),
+    "inverse_schedule": lambda v: _choice("inverse_schedule", v),
     "rule_interval": lambda v: _integer("rule_interval", v, low=1),
     "rule_batch_fraction": lambda v: _real("rule_batch_fraction", v, low=0.0, high=1.0, low_open=True),
     "stats_fraction": lambda v: _real("stats_fraction", v, low=0.0, high=1.0, low_open=True),
