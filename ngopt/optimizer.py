@@ -100,7 +100,8 @@ class FisherDescent(torch.optim.Optimizer):
             positions (sequences, convolutions): ``'expand'`` (positions as
             examples) or ``'reduce'`` (summed per example first).
         stats_fraction: share of each recorded batch's examples the statistics are formed from
-            (drawn uniformly, weighted to stay unbiased; 1.0 uses them all).
+            (drawn uniformly, weighted to stay unbiased; 1.0 uses them all); None (default):
+            0.25 for convolutions, whose input factors dominate a refresh, 1.0 for every other layer.
     """
 
     def __init__(self, model: nn.Module, loss_fn=None, *, lr: Optional[float] = None,
@@ -111,7 +112,7 @@ class FisherDescent(torch.optim.Optimizer):
                  rule_interval: int = 1, rule_batch_fraction: float = 0.25, fallback: str = "sgd",
                  fallback_lr_scale: Optional[float] = None, fisher_samples: int = 1, damping_range=(1e-6, 1e2),
                  param_groups=None, seed: Optional[int] = None, weight_sharing: str = "expand",
-                 stats_fraction: float = 1.0, inverse_schedule: str = "together"):
+                 stats_fraction: Optional[float] = None, inverse_schedule: str = "together"):
         check_arguments(step_rule=step_rule)
         lr = RULE_DEFAULTS[step_rule]["lr"] if lr is None else lr
         momentum = RULE_DEFAULTS[step_rule]["momentum"] if momentum is None else momentum
@@ -216,11 +217,15 @@ class FisherDescent(torch.optim.Optimizer):
         for layer in _without_tied_parameters(layers):
             blocks[layer.name] = make_block(layer, self.structure, self.state[layer.weight],
                                             self.weight_sharing)
-        if self.stats_fraction < 1.0:
-            # One generator for all blocks, apart from the sampled targets' (seed + 1: a different stream).
-            subsample = ExampleSubsample(self.stats_fraction, self._seed + 1)
-            for block in blocks.values():
-                block.subsample = subsample
+        # One generator for all blocks, apart from the sampled targets' (seed + 1: a different stream).
+        self._subsample_generator = torch.Generator().manual_seed(self._seed + 1)
+        subsamples = {}
+        for block in blocks.values():
+            fraction = self.stats_fraction if self.stats_fraction is not None else block.layer.default_stats_fraction
+            if fraction < 1.0:
+                if fraction not in subsamples:
+                    subsamples[fraction] = ExampleSubsample(fraction, generator=self._subsample_generator)
+                block.subsample = subsamples[fraction]
         self._block_group = {b: group_of[b.layer.weight] for b in blocks.values()}
         self._block_params = {p for b in blocks.values() for p in b.layer.params()}
         return blocks
@@ -666,13 +671,12 @@ class FisherDescent(torch.optim.Optimizer):
             "generator_device": None if self._generator is None else str(self._generator.device),
             "step_rule": self.rules.step.state_dict(), "damping_rule": self.rules.damping.state_dict(),
         }
-        subsample = self._subsample()
-        if subsample is not None:
-            state["natural_gradient"]["subsample_generator_state"] = subsample.generator.get_state()
+        if self._subsampled():
+            state["natural_gradient"]["subsample_generator_state"] = self._subsample_generator.get_state()
         return state
 
-    def _subsample(self):
-        return next(iter(self.blocks.values())).subsample if self.blocks else None
+    def _subsampled(self) -> bool:
+        return any(block.subsample is not None for block in self.blocks.values())
 
     def load_state_dict(self, state_dict: dict) -> None:
         state_dict = dict(state_dict)
@@ -690,9 +694,8 @@ class FisherDescent(torch.optim.Optimizer):
                 self._generator.set_state(extra["generator_state"].to(torch.uint8).cpu())
             self.rules.step.load_state_dict(extra.get("step_rule", {}))
             self.rules.damping.load_state_dict(extra.get("damping_rule", {}))
-            subsample = self._subsample()
-            if subsample is not None and extra.get("subsample_generator_state") is not None:
-                subsample.generator.set_state(extra["subsample_generator_state"].to(torch.uint8).cpu())
+            if self._subsampled() and extra.get("subsample_generator_state") is not None:
+                self._subsample_generator.set_state(extra["subsample_generator_state"].to(torch.uint8).cpu())
         self._hooks.armed = self._statistics_due(self._steps)
         self._recorder.armed = self._batch_due(self._steps)
 

@@ -64,7 +64,7 @@ CHECKS = {
     "inverse_schedule": lambda v: _choice("inverse_schedule", v),
     "rule_interval": lambda v: _integer("rule_interval", v, low=1),
     "rule_batch_fraction": lambda v: _real("rule_batch_fraction", v, low=0.0, high=1.0, low_open=True),
-    "stats_fraction": lambda v: _real("stats_fraction", v, low=0.0, high=1.0, low_open=True),
+    "stats_fraction": lambda v: _real("stats_fraction", v, low=0.0, high=1.0, low_open=True, optional=True),
 }
 
 

@@ -6,9 +6,11 @@ layer and preconditioning ~4 d^3 per step, so the flops grow by 1 + 2d / (3B)
 once statistics and inversions are amortized; EKFAC rotates into and out of the
 eigenbasis, ~8 d^3 per step: 1 + 4d / (3B). It is an estimate, not a bound:
 step times are not proportional to flops, and measured ratios fall below it at
-small batch.
+small batch.  "slowest ms" is ngopt's longest single step (an inversion step
+under inverse_schedule "together"; "staggered" spreads the inversions).
 
     python scripts/step_overhead.py --width 256 --batches 256 1024 [--structure ekfac]
+    python scripts/step_overhead.py --width 1024 --batches 256 --inverse-schedule staggered
     python scripts/step_overhead.py --widths 64 128 128 10 --batches 256      # the digits MLP
 """
 from __future__ import annotations
@@ -78,6 +80,8 @@ def main(argv=None):
     parser.add_argument("--threads", type=int, default=2)
     parser.add_argument("--rounds", type=int, default=3, help="alternate SGD/ngopt runs this many times")
     parser.add_argument("--structure", choices=["kfac", "ekfac", "diag"], default="kfac")
+    parser.add_argument("--inverse-schedule", choices=["together", "staggered"], default="together",
+                        help="FisherDescent's inverse_schedule: all blocks inverted on one step, or each on its own")
     args = parser.parse_args(argv)
     interval = inverse_interval(args.structure)
     if args.steps < 1 or args.steps % interval:
@@ -89,12 +93,13 @@ def main(argv=None):
         return torch.optim.SGD(model.parameters(), lr=0.01, momentum=0.9)
 
     def natural(model, loss_fn):
-        return ngopt.FisherDescent(model, loss_fn, lr=0.01, structure=args.structure)
+        return ngopt.FisherDescent(model, loss_fn, lr=0.01, structure=args.structure,
+                                   inverse_schedule=args.inverse_schedule)
 
     print(f"widths {'-'.join(map(str, widths))}, load average {os.getloadavg()[0]:.2f}, threads {args.threads}, {args.steps} timed steps x {args.rounds} rounds, "
-          f"curvature {args.structure}")
+          f"curvature {args.structure}, inverse_schedule {args.inverse_schedule}")
     print(f"{'batch':>6} {'sgd ms':>8} {'ngopt ms':>9} {'ratio(mean)':>11} {'ratio(median)':>13} "
-          f"{'flop est.':>9}  ngopt split (% of its step)")
+          f"{'flop est.':>9} {'slowest ms':>10}  ngopt split (% of its step)")
     for batch in args.batches:
         sgd_times, ng_times, optimizer = [], [], None
         for _ in range(args.rounds):  # interleave so that machine noise hits both alike
@@ -109,7 +114,7 @@ def main(argv=None):
         mean_ratio = statistics.mean(ng_times) / statistics.mean(sgd_times)
         median_ratio = statistics.median(ng_times) / statistics.median(sgd_times)
         print(f"{batch:>6} {1e3 * statistics.mean(sgd_times):>8.2f} {1e3 * statistics.mean(ng_times):>9.2f} "
-              f"{mean_ratio:>11.2f} {median_ratio:>13.2f} {flop_estimate:>9.2f}  "
+              f"{mean_ratio:>11.2f} {median_ratio:>13.2f} {flop_estimate:>9.2f} {1e3 * max(ng_times):>10.2f}  "
               + ", ".join(f"{k} {v:.0f}%" for k, v in share.items()))
 
 

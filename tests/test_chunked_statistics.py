@@ -107,7 +107,7 @@ def test_optimizer_factor_equals_the_unfold_reference_of_the_recorded_batch(monk
     inputs = torch.randn(6, 3, 8, 8, dtype=torch.float64)
     model(inputs)  # materialize the lazy layer before the optimizer sees its parameters
     loss_fn = nn.CrossEntropyLoss()
-    opt = ngopt.FisherDescent(model, loss_fn, lr=0.0)
+    opt = ngopt.FisherDescent(model, loss_fn, lr=0.0, stats_fraction=1.0)
     seen = {}
     hooks = [m.register_forward_hook(lambda m, args, out: seen.__setitem__(m, args[0].detach().clone()))
              for m in (model[0], model[2])]

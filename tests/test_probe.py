@@ -20,7 +20,7 @@ def with_ones(x):
 def exact_step_optimizer(model, loss_fn, **options):
     """An optimizer whose blocks hold the exact-expectation K-FAC of the last batch, weights unmoved."""
     settings = dict(lr=1e-12, momentum=0.0, fisher="exact", stats_memory=0.0, stats_interval=1, inverse_interval=1,
-                    max_step_kl=None, damping=1e-3, step_rule="fixed", damping_rule="fixed")
+                    max_step_kl=None, damping=1e-3, step_rule="fixed", damping_rule="fixed", stats_fraction=1.0)
     settings.update(options)
     return ngopt.FisherDescent(model, loss_fn, **settings)
 

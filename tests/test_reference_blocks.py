@@ -44,7 +44,8 @@ def recorded_optimizer(model, loss_fn, inputs, targets, *, fisher="exact", struc
         opt = ngopt.FisherDescent(model, loss_fn, lr=lr, momentum=0.0, weight_decay=0.0, damping=damping,
                                   fisher=fisher, structure=structure, stats_interval=1, inverse_interval=1,
                                   stats_memory=stats_memory, max_step_kl=None, fisher_samples=samples, seed=seed,
-                                  weight_sharing=weight_sharing, step_rule="fixed", damping_rule="fixed")
+                                  weight_sharing=weight_sharing, step_rule="fixed", damping_rule="fixed",
+                                  stats_fraction=1.0)
     opt.zero_grad()
     loss_fn(model(inputs), targets).backward()
     opt.step()

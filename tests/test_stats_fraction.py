@@ -105,7 +105,25 @@ def test_stats_fraction_is_checked_and_trains_and_resumes():
     losses = run(opt, 6)
     assert losses[-1] < losses[0]  # training works on half the examples' statistics
     saved = opt.state_dict()
-    kept = opt._subsample().kept(16)
+    kept = _subsample_of(opt).kept(16)
     restored = ngopt.FisherDescent(model, loss_fn, stats_fraction=0.5, stats_interval=1, seed=3)
     restored.load_state_dict(saved)
-    assert torch.equal(restored._subsample().kept(16), kept)  # the draws resume where they were
+    assert torch.equal(_subsample_of(restored).kept(16), kept)  # the draws resume where they were
+
+
+def _subsample_of(opt):
+    return next(block.subsample for block in opt.blocks.values() if block.subsample is not None)
+
+
+def test_by_default_convolutions_use_a_quarter_of_the_examples_and_other_layers_all():
+    model = nn.Sequential(nn.Conv2d(1, 2, 3), nn.Tanh(), nn.Flatten(), nn.Linear(2 * 4 * 4, 3))
+    loss_fn = nn.CrossEntropyLoss()
+    default = ngopt.FisherDescent(model, loss_fn)
+    fractions = {name: None if b.subsample is None else b.subsample.fraction for name, b in default.blocks.items()}
+    assert fractions == {"0": 0.25, "3": None}
+    default.remove_hooks()
+    everything = ngopt.FisherDescent(model, loss_fn, stats_fraction=1.0)
+    assert all(block.subsample is None for block in everything.blocks.values())
+    everything.remove_hooks()
+    half = ngopt.FisherDescent(model, loss_fn, stats_fraction=0.5)
+    assert all(block.subsample.fraction == 0.5 for block in half.blocks.values())

@@ -14,7 +14,7 @@ examples, so that per-example sums over their positions stay whole.
 """
 from __future__ import annotations
 
-from typing import Dict, Tuple
+from typing import Dict, Optional, Tuple
 
 import torch
 
@@ -24,9 +24,10 @@ from .rows import HeldRows
 class ExampleSubsample:
     """Draws the kept examples of each recorded forward from a private CPU generator."""
 
-    def __init__(self, fraction: float, seed: int):
+    def __init__(self, fraction: float, seed: int = 0, generator: Optional[torch.Generator] = None):
         self.fraction = fraction
-        self.generator = torch.Generator().manual_seed(seed)
+        # Blocks with different fractions may share one generator (one state to save and restore).
+        self.generator = generator if generator is not None else torch.Generator().manual_seed(seed)
 
     def kept(self, examples: int) -> torch.Tensor:
         count = max(1, round(self.fraction * examples))
