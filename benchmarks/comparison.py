@@ -91,6 +91,7 @@ def describe_ratio(entry: Optional[dict]) -> str:
 # The knob a user has over each part of the step that ngopt times itself.
 USER_KNOBS = {
     "statistics": "stats_interval",
+    "statistics_in_backward": "stats_interval, stats_fraction",
     "inversion": "inverse_interval",
     "extra_backward": "fisher (the sampled and exact Fishers take an extra backward pass)",
 }

@@ -46,8 +46,8 @@ from torch import nn
 
 from .blocks.base import LayerCurvature
 from .likelihoods import OutputLikelihood, empirical_reduction_scale
+from .output_gradients import batched_output_grads, stream_output_grads
 
-_COLUMNS_PER_PASS = 32
 # model -> weak reference to the capture hooks on it: keeps nothing alive, travels with no copy of a model
 _HOOKED_MODELS: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
 # Above this many output-Fisher columns per example, fisher="exact" costs more than it is usually worth.
@@ -67,6 +67,11 @@ def _inside_function_transform() -> bool:
 
 
 _gradient_edge = getattr(torch.autograd.graph, "get_gradient_edge", None)
+
+
+def _streamable(targets) -> bool:
+    """Whether the layer outputs are gradient edges (not tensors), which a streamed pass needs."""
+    return _gradient_edge is not None and all(not isinstance(t, torch.Tensor) for t in targets)
 
 
 def output_target(output: torch.Tensor):
@@ -111,6 +116,8 @@ class ForwardRecord:
     # Tensor hooks that refer back to tensors of this record: a cycle through autograd's C++ side
     # that Python's garbage collector cannot see, so they are removed by hand once the record is used.
     handles: list = field(default_factory=list)
+    # Blocks that were handed this record's captures during the backward already (see _extra_passes).
+    handed: set = field(default_factory=set)
 
     def drop_tensors(self) -> None:
         """Forget the layer outputs: breaks the cycles, and is safe inside a running hook."""
@@ -161,32 +168,6 @@ class FisherSource:
         return columns, 1.0 / c
 
 
-def batched_output_grads(output: torch.Tensor, targets: List[torch.Tensor],
-                         vectors: torch.Tensor) -> List[Optional[torch.Tensor]]:
-    """Backpropagate each of ``vectors`` from ``output`` to ``targets``; results ``[K, *target.shape]``."""
-    pieces: List[List[Optional[torch.Tensor]]] = []
-    for start in range(0, vectors.shape[0], _COLUMNS_PER_PASS):
-        chunk = vectors[start:start + _COLUMNS_PER_PASS]
-        if chunk.shape[0] == 1:  # one draw (the default): a plain pass is cheaper than a batched one
-            grads = torch.autograd.grad(output, targets, grad_outputs=chunk[0], retain_graph=True,
-                                        allow_unused=True)
-            pieces.append([None if g is None else g.unsqueeze(0) for g in grads])
-            continue
-        try:
-            grads = torch.autograd.grad(output, targets, grad_outputs=chunk, retain_graph=True,
-                                        allow_unused=True, is_grads_batched=True)
-        except RuntimeError:
-            # Some operations have no batching rule: fall back to one pass per vector.
-            per_vector = [torch.autograd.grad(output, targets, grad_outputs=v, retain_graph=True,
-                                              allow_unused=True) for v in chunk]
-            grads = [None if parts[0] is None else torch.stack(parts)
-                     for parts in zip(*per_vector)]
-        pieces.append(list(grads))
-    if len(pieces) == 1:  # one chunk: no copy (a layer's output gradients are as large as its activations)
-        return pieces[0]
-    return [None if per_target[0] is None else torch.cat(per_target) for per_target in zip(*pieces)]
-
-
 class CaptureHooks:
     """Installs the hooks on ``model`` (and ``loss_fn``) and collects finished records for the optimizer."""
 
@@ -206,7 +187,8 @@ class CaptureHooks:
         self.source = source          # None means the empirical Fisher
         self.loss_fn = loss_fn
         self.armed = True
-        self.seconds = {"capture": 0.0, "extra_backward": 0.0}  # time spent inside the user's passes
+        # Time spent inside the user's passes; statistics_in_backward: captures folded during the pass.
+        self.seconds = {"capture": 0.0, "extra_backward": 0.0, "statistics_in_backward": 0.0}
         self.records: List[ForwardRecord] = []
         self.forwards_without_criterion = 0
         self._current: Optional[ForwardRecord] = None
@@ -329,19 +311,51 @@ class CaptureHooks:
         return None
 
     def _extra_passes(self, record: ForwardRecord) -> None:
-        """One extra backward pass per criterion call, from its input to the layer outputs."""
+        """One extra backward pass per criterion call, from its input to the layer outputs.
+
+        When every criterion call's weight is known already (one criterion: always), each layer's
+        output gradients go to its block during the pass, and blocks whose statistics are sums
+        fold them at once: the pass never holds every layer's gradients together (they are as
+        large as the activations).  Otherwise they wait in the record for :meth:`hand_over`.
+        """
         started = time.perf_counter()
         outputs = [call.output for call in record.calls]
+        forward = next((i for i, r in enumerate(self.records) if r is record), None)  # by identity
+        early = forward is not None and all(c.weight is not None for c in record.criteria)
+        calls_of, folding = {}, [0.0]
+        for call in record.calls:
+            calls_of[call.block] = calls_of.get(call.block, 0) + 1
         for index, criterion in enumerate(record.criteria):
             z = criterion.input
             if z is None:
                 continue
             vectors, scale = self.source.output_vectors(z.detach(), record.examples)
-            grads = batched_output_grads(z, outputs, vectors)
-            for call, g in zip(record.calls, grads):
-                if g is not None:
-                    call.grads.append((call.rows_of(g.detach()), scale, index))
-        self.seconds["extra_backward"] += time.perf_counter() - started
+
+            def take(i, grads, index=index, scale=scale, weight=criterion.weight):
+                call = record.calls[i]
+                rows = call.rows_of(grads.detach())
+                if not early:
+                    call.grads.append((rows, scale, index))
+                elif weight > 0:  # a loss the user ascends (or ignores) adds nothing, as in hand_over
+                    tick = time.perf_counter()
+                    call.block.add_capture(call.input_rows, rows, scale * weight, (forward, index))
+                    record.handed.add(call.block)
+                    if calls_of[call.block] == 1:  # per-forward sums need all calls of the layer first
+                        call.block.fold_pending()
+                    folding[0] += time.perf_counter() - tick
+
+            if vectors.shape[0] == 1 and _streamable(outputs):
+                stream_output_grads(z, outputs, vectors[0], lambda i, g: take(i, g.unsqueeze(0)))
+            else:
+                for i, g in enumerate(batched_output_grads(z, outputs, vectors)):
+                    if g is not None:
+                        take(i, g)
+        tick = time.perf_counter()
+        for block in record.handed:
+            block.fold_pending()
+        folding[0] += time.perf_counter() - tick
+        self.seconds["statistics_in_backward"] += folding[0]
+        self.seconds["extra_backward"] += time.perf_counter() - started - folding[0]
         record.drop_tensors()
 
     def _output_grad(self, record: ForwardRecord, output: torch.Tensor):
@@ -359,7 +373,7 @@ class CaptureHooks:
         """Give every finished layer call to its block; returns forwards seen per block."""
         forwards: Dict[LayerCurvature, int] = {}
         for index, record in enumerate(self.records):
-            seen = set()
+            seen = set(record.handed)
             for call in record.calls:
                 for rows, scale, criterion_index in call.grads:
                     weight = 1.0 if self.source is None else record.criteria[criterion_index].weight

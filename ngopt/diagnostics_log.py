@@ -84,6 +84,8 @@ key                                meaning                                      
 ``time.capture``                   capture hooks inside the user's forward/backward, cumulative       s
 ``time.extra_backward``            extra backward passes for the sampled/exact Fisher (inside the     s
                                    user's ``backward()``), cumulative
+``time.statistics_in_backward``    statistics formed inside those passes, one layer at a time as its  s
+                                   gradients arrive (not in ``time.statistics``), cumulative
 ``layers.<name>.block``            layer kind of the curvature block (``linear``, ``conv1d``,         --
                                    ``conv2d``, ``embedding``, ``layer_norm``, ``batch_norm``)
 ``layers.<name>.structure``        curvature kind (``kfac``, ``ekfac``, ``diag``; ``channel_pairs``   --

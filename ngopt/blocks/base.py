@@ -53,6 +53,8 @@ class LayerCurvature:
         # stats_fraction < 1: an ExampleSubsample (blocks/subsample.py) and the examples kept per forward
         self.subsample = None
         self._kept: dict = {}
+        # Partial sums of captures already folded (fold_pending), for blocks whose statistics are sums.
+        self._folded = None
 
     # -- capture -------------------------------------------------------------------------
     def add_capture(self, input_rows: torch.Tensor, grad_rows: torch.Tensor, scale: float,
@@ -64,6 +66,15 @@ class LayerCurvature:
     def clear_pending(self) -> None:
         self.pending.clear()
         self._kept.clear()
+        self._folded = None
+
+    def fold_pending(self) -> None:
+        """Reduce the pending captures to partial sums now and drop their rows (a no-op by default).
+
+        Blocks whose batch statistics are sums over the captures override it, so that the
+        capture can free each layer's output gradients as soon as they are formed.  Folding
+        must not change the statistics beyond rounding.
+        """
 
     def calls_joined_per_forward(self) -> List[Tuple[torch.Tensor, torch.Tensor, float]]:
         """Pending calls of one forward (shared weights) joined along positions.

@@ -39,9 +39,7 @@ def _describe(block) -> str:
 class GroupedKroneckerBlock(KroneckerBlock):
     describe = _describe
 
-    def batch_statistics(self, num_forwards):
-        if not self.pending:
-            return None
+    def factor_sums(self):
         d_in, groups = self.layer.in_dim, _groups(self)
         per_group = self.layer.out_dim // groups
         ref = self.layer.weight
@@ -52,7 +50,7 @@ class GroupedKroneckerBlock(KroneckerBlock):
             rows += add_input_moment(factor_in, input_rows)
             g = grad_rows.reshape(-1, groups, per_group).to(ref.dtype)
             blocks_out.add_(torch.einsum("rjo,rjp->jop", g, g), alpha=scale)
-        return {"factor_in": factor_in / rows, "factor_out": torch.block_diag(*blocks_out) / num_forwards}
+        return factor_in, rows, torch.block_diag(*blocks_out)
 
 
 def _per_example_square_sum(input_rows, grad_rows):

@@ -54,9 +54,8 @@ class KroneckerBlock(LayerCurvature):
         return [(mean_over_positions(a), g.sum(dim=2, keepdim=True), scale)
                 for a, g, scale in self.calls_joined_per_forward()]
 
-    def batch_statistics(self, num_forwards):
-        if not self.pending:
-            return None
+    def factor_sums(self):
+        """``(sum of a a^T, row count, sum of scale * g g^T)`` over the pending captures."""
         d_in, d_out = self.layer.in_dim, self.layer.out_dim
         ref = self.layer.weight
         factor_in = torch.zeros(d_in, d_in, dtype=ref.dtype, device=ref.device)
@@ -66,6 +65,27 @@ class KroneckerBlock(LayerCurvature):
             rows += add_input_moment(factor_in, input_rows)
             g = grad_rows.reshape(-1, d_out).to(ref.dtype)
             factor_out.addmm_(g.T, g, alpha=scale)
+        return factor_in, rows, factor_out
+
+    def fold_pending(self):
+        # Only "expand" sums capture by capture ("reduce" joins a forward's calls first), and
+        # blocks with projected statistics need the rows again after the inversion.
+        if not self.pending or self.weight_sharing != "expand" or self.projected_keys:
+            return
+        sums = self.factor_sums()
+        self._folded = sums if self._folded is None else \
+            (self._folded[0] + sums[0], self._folded[1] + sums[1], self._folded[2] + sums[2])
+        self.pending.clear()
+
+    def batch_statistics(self, num_forwards):
+        parts = [self._folded] if self._folded is not None else []
+        if self.pending:
+            parts.append(self.factor_sums())
+        if not parts:
+            return None
+        factor_in, rows, factor_out = parts[0]
+        for more in parts[1:]:
+            factor_in, rows, factor_out = factor_in + more[0], rows + more[1], factor_out + more[2]
         return {"factor_in": factor_in / rows, "factor_out": factor_out / num_forwards}
 
     def prepare_inverse(self, statistics, damping, want_spectrum):

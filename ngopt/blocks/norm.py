@@ -45,7 +45,7 @@ def per_example_channel_gradients(normalized: torch.Tensor, grad_rows: torch.Ten
     return torch.stack([u, grad_rows.sum(dim=2)], dim=-1)
 
 
-def _channel_moments(block, num_forwards, reduce) -> dict:
+def _channel_sums(block, reduce):
     """``(1/c) sum_n reduce(w_n)`` over the pending captures, ``w_n`` the per-example channel gradients."""
     dtype = block.layer.weight.dtype
     total = None
@@ -55,23 +55,44 @@ def _channel_moments(block, num_forwards, reduce) -> dict:
                                                   block.layer.has_bias)
             term = reduce(pairs) * scale
             total = term if total is None else total + term
-    return total / num_forwards
+    return total
 
 
-class NormPairBlock(LayerCurvature):
+def _channel_moments(block, num_forwards, reduce):
+    """The folded and pending sums over ``num_forwards``; None without any capture."""
+    total = block._folded
+    if block.pending:
+        more = _channel_sums(block, reduce)
+        total = more if total is None else total + more
+    return None if total is None else total / num_forwards
+
+
+class _FoldsChannelSums:
+    """Norm blocks: statistics are sums over examples, so captures fold as soon as they come."""
+
+    def fold_pending(self):
+        if self.pending:
+            more = _channel_sums(self, self.reduce)
+            self._folded = more if self._folded is None else self._folded + more
+            self.pending.clear()
+
+
+class NormPairBlock(_FoldsChannelSums, LayerCurvature):
     structure = "channel_pairs"
     statistic_keys = ("fisher_pairs",)
     inverse_keys = ("pair_basis", "pair_eigenvalues")
+
+    @staticmethod
+    def reduce(w):
+        return torch.einsum("knci,kncj->cij", w, w)
 
     def statistic_shapes(self):
         k = self.layer.in_dim
         return {"fisher_pairs": (self.layer.out_dim, k, k)}
 
     def batch_statistics(self, num_forwards):
-        if not self.pending:
-            return None
-        moments = _channel_moments(self, num_forwards, lambda w: torch.einsum("knci,kncj->cij", w, w))
-        return {"fisher_pairs": moments}
+        moments = _channel_moments(self, num_forwards, self.reduce)
+        return None if moments is None else {"fisher_pairs": moments}
 
     def prepare_inverse(self, statistics, damping, want_spectrum):
         pairs = to_cpu64(statistics["fisher_pairs"])
@@ -113,10 +134,13 @@ class NormPairBlock(LayerCurvature):
         return f"{self.layer.kind} {self.structure} [{self.layer.out_dim} channels x {self.layer.in_dim}]"
 
 
-class NormDiagonalBlock(DiagonalBlock):
+class NormDiagonalBlock(_FoldsChannelSums, DiagonalBlock):
     """The diagonal of the same per-channel blocks, ``[C, 1 or 2]``; the rest as for ``DiagonalBlock``."""
 
+    @staticmethod
+    def reduce(w):
+        return w.square().sum(dim=(0, 1))
+
     def batch_statistics(self, num_forwards):
-        if not self.pending:
-            return None
-        return {"fisher_diagonal": _channel_moments(self, num_forwards, lambda w: w.square().sum(dim=(0, 1)))}
+        moments = _channel_moments(self, num_forwards, self.reduce)
+        return None if moments is None else {"fisher_diagonal": moments}
