@@ -11,7 +11,7 @@ the default 20 timed steps hold the amortized share of refreshes (every
 ``stats_interval`` = 10 steps) and inversions (every ``inverse_interval`` = 20).
 
     python scripts/conv_memory.py [--batch 128] [--steps 20] [--rounds 2] [--optimizers sgd kfac ekfac]
-        [--option stats_fraction=0.25]
+        [--option stats_fraction=1.0]     # every example in the statistics (the default for convolutions: 0.25)
 """
 from __future__ import annotations
 

@@ -99,7 +99,7 @@ def main(argv=None):
     print(f"widths {'-'.join(map(str, widths))}, load average {os.getloadavg()[0]:.2f}, threads {args.threads}, {args.steps} timed steps x {args.rounds} rounds, "
           f"curvature {args.structure}, inverse_schedule {args.inverse_schedule}")
     print(f"{'batch':>6} {'sgd ms':>8} {'ngopt ms':>9} {'ratio(mean)':>11} {'ratio(median)':>13} "
-          f"{'flop est.':>9} {'slowest ms':>10}  ngopt split (% of its step)")
+          f"{'flop est.':>9} {'slowest ms':>10}  ngopt split (% of its whole step, forward and backward included)")
     for batch in args.batches:
         sgd_times, ng_times, optimizer = [], [], None
         for _ in range(args.rounds):  # interleave so that machine noise hits both alike
@@ -108,7 +108,9 @@ def main(argv=None):
             ng_times += times
         # The optimizer's own clocks cover every step of its last run, warm-up included.
         split = optimizer.diagnostics()["time"]
-        share = {k: 100 * split[k] / wall for k in ("statistics", "inversion", "precondition")}
+        parts = ("precondition", "rules", "inversion", "statistics", "statistics_in_backward", "extra_backward",
+                 "capture")
+        share = {k: 100 * split[k] / wall for k in parts}
         gemms = {"kfac": 2, "ekfac": 4, "diag": 0}[args.structure]  # d x d products per layer and step
         flop_estimate = flop_count_estimate(widths, batch, gemms)
         mean_ratio = statistics.mean(ng_times) / statistics.mean(sgd_times)
