@@ -11,6 +11,8 @@ do not vary across draws (A's bias-bias entry is 1) must match to float rounding
 """
 from __future__ import annotations
 
+import warnings
+
 import pytest
 import torch
 from torch import nn
@@ -127,3 +129,21 @@ def test_by_default_convolutions_use_a_quarter_of_the_examples_and_other_layers_
     everything.remove_hooks()
     half = ngopt.FisherDescent(model, loss_fn, stats_fraction=0.5)
     assert all(block.subsample.fraction == 0.5 for block in half.blocks.values())
+
+
+def test_a_subsample_of_very_few_examples_warns_once():
+    # Three kept examples of twelve: a warning naming the option; 16 of 64: none.
+    model = nn.Sequential(nn.Conv2d(1, 2, 3), nn.Flatten(), nn.Linear(2 * 4 * 4, 3))
+    loss_fn = nn.CrossEntropyLoss()
+    for batch, warns in ((64, False), (12, True)):
+        opt = ngopt.FisherDescent(model, loss_fn)  # convolutions: a quarter of the examples by default
+        x, y = torch.randn(batch, 1, 6, 6), torch.randint(0, 3, (batch,))
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            for _ in range(2):
+                opt.zero_grad()
+                loss_fn(model(x), y).backward()
+                opt.step()
+        mine = [w for w in caught if "stats_fraction" in str(w.message)]
+        assert len(mine) == (1 if warns else 0), [str(w.message) for w in caught]
+        opt.remove_hooks()

@@ -16,9 +16,14 @@ from __future__ import annotations
 
 from typing import Dict, Optional, Tuple
 
+import warnings
+
 import torch
 
 from .rows import HeldRows
+
+
+FEW_EXAMPLES = 4  # fewer kept examples than this per refresh: warn once
 
 
 class ExampleSubsample:
@@ -28,9 +33,15 @@ class ExampleSubsample:
         self.fraction = fraction
         # Blocks with different fractions may share one generator (one state to save and restore).
         self.generator = generator if generator is not None else torch.Generator().manual_seed(seed)
+        self._warned = False
 
     def kept(self, examples: int) -> torch.Tensor:
         count = max(1, round(self.fraction * examples))
+        if count < min(FEW_EXAMPLES, examples) and not self._warned:
+            self._warned = True
+            warnings.warn(f"stats_fraction={self.fraction:g} keeps {count} of the batch's {examples} examples for "
+                          "the curvature statistics: factors from so few examples are noisy. Pass "
+                          "stats_fraction=1.0 (or a larger batch)", stacklevel=2)
         return torch.randperm(examples, generator=self.generator)[:count].sort().values
 
     def take(self, subsets: Dict[Tuple, torch.Tensor], forward, input_rows, grad_rows, scale: float):
