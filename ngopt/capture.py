@@ -322,9 +322,10 @@ class CaptureHooks:
         outputs = [call.output for call in record.calls]
         forward = next((i for i, r in enumerate(self.records) if r is record), None)  # by identity
         early = forward is not None and all(c.weight is not None for c in record.criteria)
-        calls_of, folding = {}, [0.0]
+        calls_of: Dict[LayerCurvature, int] = {}
         for call in record.calls:
             calls_of[call.block] = calls_of.get(call.block, 0) + 1
+        folding = 0.0
         for index, criterion in enumerate(record.criteria):
             z = criterion.input
             if z is None:
@@ -332,17 +333,14 @@ class CaptureHooks:
             vectors, scale = self.source.output_vectors(z.detach(), record.examples)
 
             def take(i, grads, index=index, scale=scale, weight=criterion.weight):
+                nonlocal folding
                 call = record.calls[i]
                 rows = call.rows_of(grads.detach())
                 if not early:
                     call.grads.append((rows, scale, index))
                 elif weight > 0:  # a loss the user ascends (or ignores) adds nothing, as in hand_over
-                    tick = time.perf_counter()
-                    call.block.add_capture(call.input_rows, rows, scale * weight, (forward, index))
-                    record.handed.add(call.block)
-                    if calls_of[call.block] == 1:  # per-forward sums need all calls of the layer first
-                        call.block.fold_pending()
-                    folding[0] += time.perf_counter() - tick
+                    folding += self._hand_during_pass(record, call, rows, scale * weight, (forward, index),
+                                                      fold=calls_of[call.block] == 1)
 
             if vectors.shape[0] == 1 and _streamable(outputs):
                 stream_output_grads(z, outputs, vectors[0], lambda i, g: take(i, g.unsqueeze(0)))
@@ -351,12 +349,22 @@ class CaptureHooks:
                     if g is not None:
                         take(i, g)
         tick = time.perf_counter()
-        for block in record.handed:
+        for block in record.handed:  # layers with several calls: their per-forward sums are whole now
             block.fold_pending()
-        folding[0] += time.perf_counter() - tick
-        self.seconds["statistics_in_backward"] += folding[0]
-        self.seconds["extra_backward"] += time.perf_counter() - started - folding[0]
+        folding += time.perf_counter() - tick
+        self.seconds["statistics_in_backward"] += folding
+        self.seconds["extra_backward"] += time.perf_counter() - started - folding
         record.drop_tensors()
+
+    @staticmethod
+    def _hand_during_pass(record: ForwardRecord, call: LayerCall, rows, scale: float, key, fold: bool) -> float:
+        """Give one call's rows to its block now (and fold them when ``fold``); returns the seconds spent."""
+        tick = time.perf_counter()
+        call.block.add_capture(call.input_rows, rows, scale, key)
+        record.handed.add(call.block)
+        if fold:
+            call.block.fold_pending()
+        return time.perf_counter() - tick
 
     def _output_grad(self, record: ForwardRecord, output: torch.Tensor):
         """The backward reached the model output and no criterion call was seen: take the output as its input."""
