@@ -110,17 +110,23 @@ class KroneckerBlock(LayerCurvature):
         tensors = self.state if tensors is None else tensors
         return tensors["inverse_out"] @ grad_matrix @ tensors["inverse_in"]
 
+    def _shifts(self, damping):
+        factor_in, factor_out = self.state["factor_in"], self.state["factor_out"]
+        traces = torch.stack([factor_in.trace(), factor_out.trace()]).tolist()  # one host sync
+        return factored_damping(traces[0], factor_in.shape[0], traces[1], factor_out.shape[0], damping)
+
     def _damped_factors(self, damping):
         factor_in, factor_out = self.state["factor_in"], self.state["factor_out"]
-        shift_in, shift_out = factored_damping(float(factor_in.trace()), factor_in.shape[0],
-                                               float(factor_out.trace()), factor_out.shape[0], damping)
+        shift_in, shift_out = self._shifts(damping)
         eye_in = torch.eye(factor_in.shape[0], dtype=factor_in.dtype, device=factor_in.device)
         eye_out = torch.eye(factor_out.shape[0], dtype=factor_out.dtype, device=factor_out.device)
         return factor_in + shift_in * eye_in, factor_out + shift_out * eye_out
 
     def damped_product(self, matrix, damping):
-        damped_in, damped_out = self._damped_factors(damping)
-        return damped_out @ matrix @ damped_in
+        # (G + s_out I) V (A + s_in I) = W A + s_in W with W = G V + s_out V: no damped copies of the factors.
+        shift_in, shift_out = self._shifts(damping)
+        left = torch.addmm(matrix, self.state["factor_out"], matrix, beta=shift_out)
+        return torch.addmm(left, left, self.state["factor_in"], beta=shift_in)
 
     def summary(self, damping, with_spectra):
         return kronecker_summary(self, damping, with_spectra)
