@@ -98,17 +98,43 @@ def resnet_like():
     return Net().to(DTYPE)
 
 
+def small_transformer():
+    torch.manual_seed(0)
+
+    class Net(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.embed = nn.Embedding(7, 8)
+            self.layer = nn.TransformerEncoderLayer(8, 2, dim_feedforward=12, dropout=0.0, batch_first=True)
+            self.head = nn.Linear(8, 4)
+
+        def forward(self, tokens):
+            return self.head(self.layer(self.embed(tokens)).mean(dim=1))
+
+    return Net().to(DTYPE)
+
+
+def problem(kind, generator):
+    if kind == "resnet":
+        return resnet_like(), torch.randn(6, 1, 5, 5, generator=generator, dtype=DTYPE)
+    return small_transformer(), torch.randint(0, 7, (6, 5), generator=generator)
+
+
+@pytest.mark.parametrize("kind", ["resnet", "transformer"])
 @pytest.mark.parametrize("weight_sharing", ["expand", "reduce"])
 @pytest.mark.parametrize("structure", ["kfac", "ekfac", "diag"])
-def test_streamed_refresh_gives_the_statistics_of_a_collected_one(structure, weight_sharing, monkeypatch):
-    generator = torch.Generator().manual_seed(2)
-    x = torch.randn(6, 1, 5, 5, generator=generator, dtype=DTYPE)
-    y = torch.randint(0, 4, (6,), generator=generator)
-    states = []
+def test_streamed_refresh_gives_the_statistics_of_a_collected_one(structure, weight_sharing, kind, monkeypatch):
+    states, streams = [], []
+    original = capture_module.stream_output_grads
+    monkeypatch.setattr(capture_module, "stream_output_grads",
+                        lambda *args: (streams.append(1), original(*args))[1])
     for streamed in (True, False):
         if not streamed:
+            assert len(streams) == 3  # one streamed pass per refresh
             monkeypatch.setattr(capture_module, "_streamable", lambda targets: False)
-        model = resnet_like()
+        generator = torch.Generator().manual_seed(2)
+        model, x = problem(kind, generator)
+        y = torch.randint(0, 4, (6,), generator=generator)
         loss_fn = nn.CrossEntropyLoss()
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -123,3 +149,4 @@ def test_streamed_refresh_gives_the_statistics_of_a_collected_one(structure, wei
     for name, tensors in states[0].items():
         for key, value in tensors.items():
             torch.testing.assert_close(value, states[1][name][key], rtol=1e-10, atol=1e-13, msg=f"{name} {key}")
+    assert len(streams) == 3
