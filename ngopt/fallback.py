@@ -14,21 +14,11 @@ ADAM_BETAS = (0.9, 0.999)
 ADAM_EPS = 1e-8
 
 
-def heavy_ball(state: dict, direction: torch.Tensor, momentum: float) -> torch.Tensor:
-    """``buf = momentum * buf + direction`` kept in ``state["momentum_buffer"]``; returns the direction to take."""
-    if not momentum:
-        return direction
-    buf = state.get("momentum_buffer")
-    if buf is None:
-        buf = state["momentum_buffer"] = direction.clone()
-    else:
-        buf.mul_(momentum).add_(direction)
-    return buf
-
-
-def heavy_ball_all(states: List[dict], directions: List[torch.Tensor], scale: float,
-                   momentum: float) -> List[torch.Tensor]:
-    """:func:`heavy_ball` of ``scale * direction`` for many tensors at once, with fused foreach calls."""
+def heavy_ball(states: List[dict], directions: List[torch.Tensor], momentum: float,
+               scale: float = 1.0) -> List[torch.Tensor]:
+    """``buf = momentum * buf + scale * direction`` per tensor, kept in ``state["momentum_buffer"]``
+    (the first step sets ``buf = scale * direction``); returns the directions to take.  Fused
+    foreach calls: on small layers the per-call overhead is most of the cost."""
     if not momentum:
         return torch._foreach_mul(directions, scale) if scale != 1.0 else list(directions)
     fresh = [i for i, state in enumerate(states) if state.get("momentum_buffer") is None]
@@ -46,11 +36,9 @@ def heavy_ball_all(states: List[dict], directions: List[torch.Tensor], scale: fl
 def sgd_directions(params: List[torch.Tensor], grads: List[torch.Tensor], states: List[dict],
                    *, momentum: float, weight_decay: float) -> List[torch.Tensor]:
     """Heavy-ball SGD: ``buf = momentum * buf + (grad + weight_decay * p)``."""
-    directions = []
-    for param, grad, state in zip(params, grads, states):
-        direction = grad.add(param, alpha=weight_decay) if weight_decay else grad.clone()
-        directions.append(heavy_ball(state, direction, momentum))
-    return directions
+    directions = [grad.add(param, alpha=weight_decay) if weight_decay else grad.clone()
+                  for param, grad in zip(params, grads)]
+    return heavy_ball(states, directions, momentum)
 
 
 def adam_directions(params: List[torch.Tensor], grads: List[torch.Tensor], states: List[dict],

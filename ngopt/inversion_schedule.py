@@ -58,15 +58,14 @@ class StaggeredSchedule:
 
     def __init__(self):
         self._phases: Dict[object, int] = {}
-        self._for = None  # (interval, blocks) the phases were computed for
+        self._interval = None  # the interval the phases were computed for
 
     def phases(self, interval: int, blocks: Sequence) -> Dict[object, int]:
         """Each block's phase in ``[0, interval)``, balancing the inversion cost per step."""
-        key = (interval, tuple(id(b) for b in blocks))
-        if self._for != key:
+        if self._interval != interval or len(self._phases) != len(blocks):
             costs = [square_cost(b.statistic_shapes().values()) for b in blocks]
             self._phases = dict(zip(blocks, longest_first(costs, interval)))
-            self._for = key
+            self._interval = interval
         return self._phases
 
     def due(self, block, step_index: int, interval: int, blocks: Sequence) -> bool:

@@ -297,7 +297,7 @@ def test_forwards_inside_no_capture_change_neither_statistics_nor_the_recorded_b
 def test_fused_heavy_ball_keeps_the_buffers_torch_sgd_keeps(momentum):
     # Reference: torch.optim.SGD's momentum recursion (dampening 0), buf = momentum * buf + d with
     # buf = d on the first step, fed the scaled directions; one tensor joins late (a fresh buffer).
-    from ngopt.fallback import heavy_ball_all
+    from ngopt.fallback import heavy_ball
     generator = torch.Generator().manual_seed(0)
     shapes = [(4, 3), (2,), (3, 5, 2)]
     params = [torch.zeros(s, dtype=DTYPE, requires_grad=True) for s in shapes]
@@ -310,7 +310,7 @@ def test_fused_heavy_ball_keeps_the_buffers_torch_sgd_keeps(momentum):
         for i, p in enumerate(params):
             p.grad = directions[i] * scale if i in directions else None
         reference.step()
-        taken = heavy_ball_all([states[i] for i in directions], list(directions.values()), scale, momentum)
+        taken = heavy_ball([states[i] for i in directions], list(directions.values()), momentum, scale=scale)
         for i, direction in zip(directions, taken):
             buffer = reference.state[params[i]].get("momentum_buffer")  # None without momentum (older torch)
             expected = buffer if buffer is not None else params[i].grad

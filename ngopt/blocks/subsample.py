@@ -14,9 +14,8 @@ examples, so that per-example sums over their positions stay whole.
 """
 from __future__ import annotations
 
-from typing import Dict, Optional, Tuple
-
 import warnings
+from typing import Dict, Optional, Tuple
 
 import torch
 

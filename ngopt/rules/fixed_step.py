@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import torch
 
-from ..fallback import heavy_ball_all
+from ..fallback import heavy_ball
 from .base import StepInputs, StepResult, norms
 from .trust import kl_trust_scale
 
@@ -37,7 +37,7 @@ class FixedStep:
                 scale_of[block] = nu
             proposals = [inputs.directions[block][1] for block in blocks]
             # One fused call per operation over the group's blocks (small layers are per-call overhead).
-            directions = heavy_ball_all([block.state for block in blocks], proposals, nu, group["momentum"])
+            directions = heavy_ball([block.state for block in blocks], proposals, group["momentum"], scale=nu)
             updates.update(zip(blocks, torch._foreach_mul(directions, -group["lr"])))
         diagnostics = norms(inputs, scale_of)
         diagnostics.update(trust_scale=min(scales.values()) if scales else 1.0, trust_scale_by_group=scales,
