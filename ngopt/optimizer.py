@@ -2,8 +2,9 @@
 
 The optimizer only schedules and composes: capture hooks (``capture.py``)
 record layer inputs and output gradients, curvature blocks (``blocks/``) turn
-them into statistics, inverses and preconditioned directions, and the step rule
-(``step_control.py``, ``fallback.py``) scales and applies the update.
+them into statistics, inverses and preconditioned directions, the step and damping
+rules (``rules/``) scale the update and adapt lambda, and ``fallback.py`` moves the
+parameters outside every block.
 
 One ``step()``:
 
@@ -11,7 +12,7 @@ One ``step()``:
    its statistics are blended into the running averages (the first refresh
    sets them outright);
 2. every ``inverse_interval`` steps the damped factors are inverted on the CPU in
-   float64;
+   float64 (all blocks on one step, or each on its own: ``inversion_schedule.py``);
 3. each block's gradient (plus ``weight_decay * w``) is preconditioned,
    ``delta = C^-1 grad``; the KL trust bound scales all blocks of a group by
    ``nu``; heavy-ball momentum ``buf = momentum * buf + nu * delta``;
