@@ -74,9 +74,10 @@ def stream_output_grads(output: torch.Tensor, edges: Sequence, vector: torch.Ten
     root = output.grad_fn
     below = _targets_below(root, {id(node) for node in nodes}) if root is not None else {}
     lowest = [i for i, node in enumerate(nodes) if not below.get(id(node))]
+    requested = set(lowest)
     handles = []
     for i, edge in enumerate(edges):
-        if i not in lowest:
+        if i not in requested:
             def pre_hook(grad_outputs, i=i, slot=edge.output_nr):
                 if grad_outputs[slot] is not None:
                     consume(i, grad_outputs[slot])
