@@ -168,6 +168,19 @@ class FisherSource:
         return columns, 1.0 / c
 
 
+def _give(call: LayerCall, rows, scale: float, weight: Optional[float], key, receivers: set) -> bool:
+    """Hand one call's output-gradient rows to its block, weighted by ``dL/dl`` of their criterion call.
+
+    Rows the backward never reached, and losses the user ascends (weight <= 0), add nothing.  ``key``
+    is (forward, criterion call): "reduce" joins calls of one pass only.  Returns whether it gave.
+    """
+    if rows is None or weight is None or weight <= 0:
+        return False
+    call.block.add_capture(call.input_rows, rows, scale * weight, key)
+    receivers.add(call.block)
+    return True
+
+
 class CaptureHooks:
     """Installs the hooks on ``model`` (and ``loss_fn``) and collects finished records for the optimizer."""
 
@@ -239,7 +252,7 @@ class CaptureHooks:
 
     def record_call(self, block: LayerCurvature, layer_input: torch.Tensor, output: torch.Tensor,
                     output_rows=None) -> torch.Tensor:
-        """Record one call of ``block``'s layer; returns the copy of ``output`` the network goes on with."""
+        """Record one call of ``block``'s layer; returns what the network goes on with (``output``, or a copy)."""
         record = self._current
         started = time.perf_counter()
         target, handed_on = output_target(output)
@@ -338,9 +351,11 @@ class CaptureHooks:
                 rows = call.rows_of(grads.detach())
                 if not early:
                     call.grads.append((rows, scale, index))
-                elif weight > 0:  # a loss the user ascends (or ignores) adds nothing, as in hand_over
-                    folding += self._hand_during_pass(record, call, rows, scale * weight, (forward, index),
-                                                      fold=calls_of[call.block] == 1)
+                    return
+                tick = time.perf_counter()
+                if _give(call, rows, scale, weight, (forward, index), record.handed) and calls_of[call.block] == 1:
+                    call.block.fold_pending()  # per-forward sums need all calls of the layer first
+                folding += time.perf_counter() - tick
 
             if vectors.shape[0] == 1 and _streamable(outputs):
                 stream_output_grads(z, outputs, vectors[0], lambda i, g: take(i, g.unsqueeze(0)))
@@ -355,16 +370,6 @@ class CaptureHooks:
         self.seconds["statistics_in_backward"] += folding
         self.seconds["extra_backward"] += time.perf_counter() - started - folding
         record.drop_tensors()
-
-    @staticmethod
-    def _hand_during_pass(record: ForwardRecord, call: LayerCall, rows, scale: float, key, fold: bool) -> float:
-        """Give one call's rows to its block now (and fold them when ``fold``); returns the seconds spent."""
-        tick = time.perf_counter()
-        call.block.add_capture(call.input_rows, rows, scale, key)
-        record.handed.add(call.block)
-        if fold:
-            call.block.fold_pending()
-        return time.perf_counter() - tick
 
     def _output_grad(self, record: ForwardRecord, output: torch.Tensor):
         """The backward reached the model output and no criterion call was seen: take the output as its input."""
@@ -385,11 +390,7 @@ class CaptureHooks:
             for call in record.calls:
                 for rows, scale, criterion_index in call.grads:
                     weight = 1.0 if self.source is None else record.criteria[criterion_index].weight
-                    if rows is None or weight is None or weight <= 0:
-                        continue  # not reached by the backward (or a loss the user ascends)
-                    # Forwards and criterion calls kept apart: "reduce" joins calls of one pass only.
-                    call.block.add_capture(call.input_rows, rows, scale * weight, (index, criterion_index))
-                    seen.add(call.block)
+                    _give(call, rows, scale, weight, (index, criterion_index), seen)
             for block in seen:
                 forwards[block] = forwards.get(block, 0) + 1
             record.release()
