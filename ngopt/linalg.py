@@ -48,15 +48,16 @@ def damped_inverse(matrix: torch.Tensor, shift: float, want_spectrum: bool = Fal
     (Cholesky fails) or the spectrum is wanted, an eigendecomposition is used
     instead; negative eigenvalues from round-off are clipped to zero before the
     shift, which is the nearest positive semi-definite matrix in Frobenius norm
-    (Higham 1988).
+    (Higham 1988).  Both read only the lower triangle (LAPACK's convention), so a
+    statistic that is symmetric up to rounding needs no symmetrizing copy.
     """
-    sym = 0.5 * (matrix + matrix.T)
-    eye = torch.eye(sym.shape[0], dtype=sym.dtype, device=sym.device)
     if not want_spectrum:
-        chol, info = torch.linalg.cholesky_ex(sym + shift * eye)
+        damped = matrix.clone()
+        damped.diagonal().add_(shift)  # in place on the copy: no identity matrix is built
+        chol, info = torch.linalg.cholesky_ex(damped)
         if int(info) == 0:
             return DampedInverse(torch.cholesky_inverse(chol), None, False)
-    eigenvalues, vectors = torch.linalg.eigh(sym)
+    eigenvalues, vectors = torch.linalg.eigh(matrix)
     clipped = eigenvalues.clamp(min=0.0) + shift
     inverse = (vectors / clipped) @ vectors.T
     return DampedInverse(inverse, eigenvalues if want_spectrum else None, not want_spectrum)
