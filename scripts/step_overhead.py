@@ -1,13 +1,24 @@
 """Per-step wall time of FisherDescent (default refresh intervals) over torch.optim.SGD's.
 
 An MLP of width d (3 hidden layers of d units, 10 classes) on random data, batch B.
-Flop-count estimate of the ratio: forward+backward cost ~6 B d^2 flops per d x d
-layer and preconditioning ~4 d^3 per step, so the flops grow by 1 + 2d / (3B)
-once statistics and inversions are amortized; EKFAC rotates into and out of the
-eigenbasis, ~8 d^3 per step: 1 + 4d / (3B). It is an estimate, not a bound:
-step times are not proportional to flops, and measured ratios fall below it at
-small batch.  "slowest ms" is ngopt's longest single step (an inversion step
-under inverse_schedule "together"; "staggered" spreads the inversions).
+Two flop-count estimates of the ratio, both estimates and not bounds (step times
+are not proportional to flops, and measured ratios fall below them at small batch):
+
+- "precond. est.": forward+backward cost ~6 B d^2 flops per d x d layer and
+  preconditioning ~4 d^3 per step, so the flops grow by 1 + 2d / (3B); EKFAC
+  rotates into and out of the eigenbasis, ~8 d^3 per step: 1 + 4d / (3B).
+- "schedule est.": all the work the default schedule does, amortized: the
+  preconditioning, the Levenberg-Marquardt check every damping_interval steps
+  (one forward, 2 B d^2, and the model change, the preconditioning's products
+  again), the refresh every stats_interval steps (the extra backward, 2 B d^2,
+  and the factor statistics, 4 B d^2) and the float64 inversions every
+  inverse_interval steps (Cholesky n^3/3 and inverse 2n^3/3 per n x n factor;
+  EKFAC's eigendecompositions ~9 n^3, Golub & Van Loan, Matrix Computations, 4th
+  ed., sec. 8.3, from memory; EKFAC's refresh also projects the rows into the
+  eigenbasis).
+
+"slowest ms" is ngopt's longest single step (an inversion step under
+inverse_schedule "together"; "staggered" spreads the inversions).
 
     python scripts/step_overhead.py --width 256 --batches 256 1024 [--structure ekfac]
     python scripts/step_overhead.py --width 1024 --batches 256 --inverse-schedule staggered
@@ -44,6 +55,25 @@ def flop_count_estimate(widths, batch: int, gemms: int) -> float:
     return 1 + extra / sum(6 * batch * i * o for i, o in pairs)
 
 
+def schedule_flop_estimate(widths, batch: int, structure: str, intervals: dict) -> float:
+    """1 + every amortized part of the default schedule's flops / forward-backward flops (module docstring)."""
+    gemms = {"kfac": 2, "ekfac": 4, "diag": 0}[structure]
+    inversion_per_cube = {"kfac": 1, "ekfac": 9, "diag": 0}[structure]  # flops / n^3 per n x n factor
+    pairs = list(zip(widths[:-1], widths[1:]))
+    extra = 0.0
+    for index, (i, o) in enumerate(pairs):
+        products = gemms / 2 * 2 * i * o * (i + o)
+        check = 2 * batch * i * o + products
+        backward = 2 * batch * i * o if index else 0.0  # the lowest layer's input needs no gradient
+        moments = 2 * batch * (i * i + o * o) if gemms else 2 * batch * i * o  # diag: squared per-example grads
+        if structure == "ekfac":  # rows projected into the eigenbasis, then squared per-example products
+            moments += 2 * batch * (i * i + o * o) + 2 * batch * i * o
+        inversion = inversion_per_cube * (i ** 3 + o ** 3)
+        extra += (products + check / intervals["damping_interval"] + (backward + moments) / intervals["stats_interval"]
+                  + inversion / intervals["inverse_interval"])
+    return 1 + extra / sum(6 * batch * i * o for i, o in pairs)
+
+
 def time_steps(make_optimizer, widths, batch: int, steps: int, warmup: int, seed: int = 0):
     torch.manual_seed(seed)
     model = make_mlp(widths)
@@ -61,10 +91,11 @@ def time_steps(make_optimizer, widths, batch: int, steps: int, warmup: int, seed
     return times[warmup:], sum(times), optimizer
 
 
-def inverse_interval(structure: str) -> int:
-    """FisherDescent's default inverse_interval, read from the library (it may change)."""
-    return ngopt.FisherDescent(make_mlp(layer_widths(2, depth=1, classes=2)), nn.CrossEntropyLoss(),
-                               structure=structure).inverse_interval
+def default_intervals(structure: str) -> dict:
+    """FisherDescent's default intervals, read from the library (they may change)."""
+    opt = ngopt.FisherDescent(make_mlp(layer_widths(2, depth=1, classes=2)), nn.CrossEntropyLoss(),
+                              structure=structure)
+    return {name: getattr(opt, name) for name in ("stats_interval", "inverse_interval", "damping_interval")}
 
 
 def main(argv=None):
@@ -83,7 +114,8 @@ def main(argv=None):
     parser.add_argument("--inverse-schedule", choices=["together", "staggered"], default="together",
                         help="FisherDescent's inverse_schedule: all blocks inverted on one step, or each on its own")
     args = parser.parse_args(argv)
-    interval = inverse_interval(args.structure)
+    intervals = default_intervals(args.structure)
+    interval = intervals["inverse_interval"]
     if args.steps < 1 or args.steps % interval:
         parser.error(f"--steps must be a positive multiple of inverse_interval ({interval}), got {args.steps}")
     torch.set_num_threads(args.threads)
@@ -99,7 +131,7 @@ def main(argv=None):
     print(f"widths {'-'.join(map(str, widths))}, load average {os.getloadavg()[0]:.2f}, threads {args.threads}, {args.steps} timed steps x {args.rounds} rounds, "
           f"curvature {args.structure}, inverse_schedule {args.inverse_schedule}")
     print(f"{'batch':>6} {'sgd ms':>8} {'ngopt ms':>9} {'ratio(mean)':>11} {'ratio(median)':>13} "
-          f"{'flop est.':>9} {'slowest ms':>10}  ngopt split (% of its whole step, forward and backward included)")
+          f"{'precond. est.':>13} {'schedule est.':>13} {'slowest ms':>10}  ngopt split (% of its whole step, forward and backward included)")
     for batch in args.batches:
         sgd_times, ng_times, optimizer = [], [], None
         for _ in range(args.rounds):  # interleave so that machine noise hits both alike
@@ -113,10 +145,11 @@ def main(argv=None):
         share = {k: 100 * split[k] / wall for k in parts}
         gemms = {"kfac": 2, "ekfac": 4, "diag": 0}[args.structure]  # d x d products per layer and step
         flop_estimate = flop_count_estimate(widths, batch, gemms)
+        schedule_estimate = schedule_flop_estimate(widths, batch, args.structure, intervals)
         mean_ratio = statistics.mean(ng_times) / statistics.mean(sgd_times)
         median_ratio = statistics.median(ng_times) / statistics.median(sgd_times)
         print(f"{batch:>6} {1e3 * statistics.mean(sgd_times):>8.2f} {1e3 * statistics.mean(ng_times):>9.2f} "
-              f"{mean_ratio:>11.2f} {median_ratio:>13.2f} {flop_estimate:>9.2f} {1e3 * max(ng_times):>10.2f}  "
+              f"{mean_ratio:>11.2f} {median_ratio:>13.2f} {flop_estimate:>13.2f} {schedule_estimate:>13.2f} {1e3 * max(ng_times):>10.2f}  "
               + ", ".join(f"{k} {v:.0f}%" for k, v in share.items()))
 
 

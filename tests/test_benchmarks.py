@@ -525,3 +525,23 @@ def test_near_the_target_means_the_last_quarter_of_the_way_on_a_log_scale():
     assert near_threshold(math.log(10), 0.01) == pytest.approx(0.01 * (100 * math.log(10)) ** 0.25, rel=1e-12)
     assert near_threshold(0.5, 1.0) == math.inf  # already below the target: evaluate densely
     assert near_threshold(1.0, 0.0) == near_threshold(1.0, -math.inf) == math.inf  # no log scale
+
+
+def test_step_overhead_schedule_estimate_counts_every_amortized_part(capsys):
+    if not NGOPT_AVAILABLE:
+        pytest.skip("ngopt.FisherDescent does not import")
+    script = runpy.run_path(str(REPOSITORY / "scripts" / "step_overhead.py"), run_name="step_overhead")
+    estimate = script["schedule_flop_estimate"]
+    intervals = {"stats_interval": 10, "inverse_interval": 20, "damping_interval": 5}
+    # One d x d layer at batch B = d, counted by hand in units of d^3 (common practice: a d x d by d x B
+    # product is 2 B d^2 flops): forward+backward 6; preconditioning 4 per step; the check, a forward (2)
+    # and the model change (4), every 5 steps; the factor statistics (2 + 2, no extra backward below the
+    # lowest layer) every 10; Cholesky and inverse of both factors (1 + 1) every 20.
+    expected = 1 + (4 + 6 / 5 + 4 / 10 + 2 / 20) / 6
+    assert estimate([64, 64], 64, "kfac", intervals) == pytest.approx(expected, rel=1e-12)
+    assert estimate([64, 64], 64, "kfac", intervals) > script["flop_count_estimate"]([64, 64], 64, 2)
+    longer = dict(intervals, damping_interval=10)
+    assert estimate([64, 64, 64], 64, "kfac", longer) < estimate([64, 64, 64], 64, "kfac", intervals)
+    script["main"](["--width", "8", "--batches", "8", "--steps", "20", "--warmup", "1", "--rounds", "1"])
+    out = capsys.readouterr().out
+    assert "precond. est." in out and "schedule est." in out
