@@ -2,11 +2,13 @@
 
 Plain functions over lists of tensors, in the manner of ``torch.optim``'s
 functional cores, so they can be read and tested alone.  Both return the update
-direction ``d``; the caller applies ``p -= lr * d``.
+direction ``d`` and the new state entries without writing anything; the caller
+applies ``p -= lr * d`` and keeps the states once every update of the step is
+known to be finite.
 """
 from __future__ import annotations
 
-from typing import List
+from typing import List, Optional, Tuple
 
 import torch
 
@@ -14,48 +16,58 @@ ADAM_BETAS = (0.9, 0.999)
 ADAM_EPS = 1e-8
 
 
-def heavy_ball(states: List[dict], directions: List[torch.Tensor], momentum: float,
+def heavy_ball(buffers: List[Optional[torch.Tensor]], directions: List[torch.Tensor], momentum: float,
                scale: float = 1.0) -> List[torch.Tensor]:
-    """``buf = momentum * buf + scale * direction`` per tensor, kept in ``state["momentum_buffer"]``
-    (the first step sets ``buf = scale * direction``); returns the directions to take.  Fused
-    foreach calls: on small layers the per-call overhead is most of the cost."""
+    """New momentum buffers ``momentum * buf + scale * direction`` (``scale * direction`` where ``buf`` is
+    None, the first step); without momentum, the scaled directions themselves.  Out of place: the caller
+    keeps them only once the whole step is known to be finite.  Fused foreach calls: on small layers the
+    per-call overhead is most of the cost."""
     if not momentum:
         return torch._foreach_mul(directions, scale) if scale != 1.0 else list(directions)
-    fresh = [i for i, state in enumerate(states) if state.get("momentum_buffer") is None]
-    for i in fresh:
-        states[i]["momentum_buffer"] = directions[i].mul(scale)
-    fresh_set = set(fresh)
-    old = [i for i in range(len(states)) if i not in fresh_set]
+    new: List[Optional[torch.Tensor]] = [None] * len(directions)
+    fresh = [i for i, buffer in enumerate(buffers) if buffer is None]
+    old = [i for i, buffer in enumerate(buffers) if buffer is not None]
+    if fresh:
+        for i, buffer in zip(fresh, torch._foreach_mul([directions[i] for i in fresh], scale)):
+            new[i] = buffer
     if old:
-        buffers = [states[i]["momentum_buffer"] for i in old]
-        torch._foreach_mul_(buffers, momentum)
-        torch._foreach_add_(buffers, [directions[i] for i in old], alpha=scale)
-    return [state["momentum_buffer"] for state in states]
+        decayed = torch._foreach_mul([buffers[i] for i in old], momentum)
+        torch._foreach_add_(decayed, [directions[i] for i in old], alpha=scale)
+        for i, buffer in zip(old, decayed):
+            new[i] = buffer
+    return new
 
 
 def sgd_directions(params: List[torch.Tensor], grads: List[torch.Tensor], states: List[dict],
-                   *, momentum: float, weight_decay: float) -> List[torch.Tensor]:
-    """Heavy-ball SGD: ``buf = momentum * buf + (grad + weight_decay * p)``."""
-    directions = [grad.add(param, alpha=weight_decay) if weight_decay else grad.clone()
+                   *, momentum: float, weight_decay: float) -> Tuple[List[torch.Tensor], List[dict]]:
+    """Heavy-ball SGD: ``buf = momentum * buf + (grad + weight_decay * p)``.
+
+    Returns the directions and each parameter's new state entries; ``states`` is only read.
+    """
+    directions = [grad.add(param, alpha=weight_decay) if weight_decay else grad
                   for param, grad in zip(params, grads)]
-    return heavy_ball(states, directions, momentum)
+    directions = heavy_ball([state.get("momentum_buffer") for state in states], directions, momentum)
+    new_states = [{"momentum_buffer": d} for d in directions] if momentum else [{} for _ in directions]
+    return directions, new_states
 
 
 def adam_directions(params: List[torch.Tensor], grads: List[torch.Tensor], states: List[dict],
-                    *, weight_decay: float) -> List[torch.Tensor]:
-    """Adam (Kingma & Ba 2015) with bias correction; weight decay as an L2 term."""
+                    *, weight_decay: float) -> Tuple[List[torch.Tensor], List[dict]]:
+    """Adam (Kingma & Ba 2015) with bias correction; weight decay as an L2 term.
+
+    Returns the directions and each parameter's new state entries; ``states`` is only read.
+    """
     beta1, beta2 = ADAM_BETAS
-    directions = []
+    directions, new_states = [], []
     for param, grad, state in zip(params, grads, states):
         grad = grad.add(param, alpha=weight_decay) if weight_decay else grad
-        if "exp_avg" not in state:
-            state["adam_step"] = torch.zeros((), dtype=torch.float64)
-            state["exp_avg"] = torch.zeros_like(param)
-            state["exp_avg_sq"] = torch.zeros_like(param)
-        state["adam_step"] += 1
-        step = float(state["adam_step"])
-        state["exp_avg"].mul_(beta1).add_(grad, alpha=1 - beta1)
-        state["exp_avg_sq"].mul_(beta2).addcmul_(grad, grad, value=1 - beta2)
-        denom = (state["exp_avg_sq"] / (1 - beta2 ** step)).sqrt_().add_(ADAM_EPS)
-        directions.append(state["exp_avg"] / (1 - beta1 ** step) / denom)
-    return directions
+        steps = state["adam_step"] + 1 if "adam_step" in state else torch.ones((), dtype=torch.float64)
+        exp_avg = state["exp_avg"].mul(beta1) if "exp_avg" in state else torch.zeros_like(param)
+        exp_avg.add_(grad, alpha=1 - beta1)
+        exp_avg_sq = state["exp_avg_sq"].mul(beta2) if "exp_avg_sq" in state else torch.zeros_like(param)
+        exp_avg_sq.addcmul_(grad, grad, value=1 - beta2)
+        step = float(steps)
+        denom = (exp_avg_sq / (1 - beta2 ** step)).sqrt_().add_(ADAM_EPS)
+        directions.append(exp_avg / (1 - beta1 ** step) / denom)
+        new_states.append({"adam_step": steps, "exp_avg": exp_avg, "exp_avg_sq": exp_avg_sq})
+    return directions, new_states

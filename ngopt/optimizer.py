@@ -349,7 +349,12 @@ class FisherDescent(torch.optim.Optimizer):
         inputs.evaluator = evaluator if self.rules.step.needs_batch else None
         result = self.rules.step.updates(inputs)
         self._times["rules"] += time.perf_counter() - tick
-        if not _all_finite(list(result.updates.values())) or not _finite_numbers(result.diagnostics):
+        tick = time.perf_counter()
+        fallback = self._fallback_updates()
+        self._times["fallback"] += time.perf_counter() - tick
+        # One check of everything the step would write; nothing is written before it passes.
+        written = list(result.updates.values()) + [t for part in fallback for t in part.tensors()]
+        if not _all_finite(written) or not _finite_numbers(result.diagnostics):
             return "nonfinite_update"
 
         for block, tensors in statistics.items():
@@ -357,9 +362,12 @@ class FisherDescent(torch.optim.Optimizer):
         for block, (tensors, info) in inverses.items():
             block.commit(tensors)
             block.info = dict(info, inversion_step=step_index)
+        for block, entries in result.states.items():
+            block.state.update(entries)
         self._apply_block_updates(result.updates)
         tick = time.perf_counter()
-        self._apply_fallback()
+        for part in fallback:
+            part.apply(self.state)
         self._times["fallback"] += time.perf_counter() - tick
         self._record_update(result)
         if self.rules.damping.wants_ratio(step_index):
@@ -519,7 +527,9 @@ class FisherDescent(torch.optim.Optimizer):
         if params:
             torch._foreach_add_(params, parts)
 
-    def _apply_fallback(self) -> None:
+    def _fallback_updates(self) -> List["_FallbackUpdate"]:
+        """Per param group, the fallback rule's changes to the parameters outside every block, unwritten."""
+        parts = []
         for group in self.param_groups:
             params = [p for p in group["params"] if p.grad is not None and p not in self._block_params]
             if not params:
@@ -527,13 +537,15 @@ class FisherDescent(torch.optim.Optimizer):
             grads = [p.grad for p in params]
             states = [self.state[p] for p in params]
             if group["fallback"] == "adam":
-                directions = fallback_rules.adam_directions(params, grads, states,
-                                                            weight_decay=group["weight_decay"])
+                directions, new_states = fallback_rules.adam_directions(params, grads, states,
+                                                                        weight_decay=group["weight_decay"])
             else:
-                directions = fallback_rules.sgd_directions(params, grads, states, momentum=group["momentum"],
-                                                           weight_decay=group["weight_decay"])
+                directions, new_states = fallback_rules.sgd_directions(params, grads, states,
+                                                                       momentum=group["momentum"],
+                                                                       weight_decay=group["weight_decay"])
             step = group["lr"] * group["fallback_lr_scale"]
-            torch._foreach_add_(params, directions, alpha=-step)
+            parts.append(_FallbackUpdate(params, torch._foreach_mul(directions, -step), new_states))
+        return parts
 
     def _refuse_blocks_without_statistics(self, blocks: List[LayerCurvature], recorded: bool) -> None:
         """A nonzero gradient on a block that a due refresh left without statistics is an error.
@@ -727,6 +739,22 @@ class FisherDescent(torch.optim.Optimizer):
         """
         if self._hooks.source is not None:
             self._hooks.source.generator_for = self._generator_for if generator_for is None else generator_for
+
+
+class _FallbackUpdate(SimpleNamespace):
+    """One group's fallback changes: ``params += changes``, then the new state entries."""
+
+    def __init__(self, params, changes, new_states):
+        super().__init__(params=params, changes=changes, new_states=new_states)
+
+    def tensors(self) -> List[torch.Tensor]:
+        """Everything this part would write (the states too: Adam's moments can overflow alone)."""
+        return list(self.changes) + [t for entries in self.new_states for t in entries.values()]
+
+    def apply(self, state) -> None:
+        torch._foreach_add_(self.params, self.changes)
+        for param, entries in zip(self.params, self.new_states):
+            state[param].update(entries)
 
 
 def _closed_form_likelihood(loss_fn):

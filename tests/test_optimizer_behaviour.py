@@ -644,3 +644,34 @@ def test_refreshes_leave_no_tensors_behind():
         settled = live_tensors()
         run(40)
         assert live_tensors() <= settled, fisher
+
+
+@pytest.mark.parametrize("fallback, overflowing", [("sgd", "blocks"), ("adam", "blocks"), ("sgd", "fallback")])
+def test_an_update_that_overflows_skips_the_step_and_writes_no_state(fallback, overflowing):
+    # Finite gradients, statistics and directions, but a step so large that lr * buffer overflows
+    # float64 (max ~1.8e308): the step is skipped, and neither the momentum buffers nor the fallback's
+    # state (Adam's moments and step count included) nor any weight has moved.
+    model = small_cnn()
+    loss_fn = nn.CrossEntropyLoss()
+    opt = quiet_optimizer(model, loss_fn, fisher="exact", momentum=0.5, max_step_kl=None, fallback=fallback,
+                          stats_interval=1, inverse_interval=1, stats_fraction=1.0)
+    x, y = image_batch()
+    for _ in range(2):
+        opt.zero_grad()
+        loss_fn(model(x), y).backward()
+        opt.step()
+    before = snapshot(model, opt)
+    assert any(key[1] == "momentum_buffer" for key in before[1])
+    opt.zero_grad()
+    loss_fn(model(x), y).backward()
+    if overflowing == "blocks":
+        for block in opt.blocks.values():
+            block.layer.weight.grad.mul_(1e150)  # directions ~1e150: finite, and so are their dots
+        opt.param_groups[0]["lr"] = 1e300
+    else:
+        model[5].weight.grad.mul_(1e150)  # PReLU, the fallback rule's parameter
+        opt.param_groups[0]["fallback_lr_scale"] = 1e200
+    with pytest.warns(UserWarning, match="skipped"):
+        opt.step()
+    assert opt.diagnostics()["skip_reasons"]["nonfinite_update"] == 1
+    assert_same_snapshot(snapshot(model, opt), before)

@@ -310,7 +310,13 @@ def test_fused_heavy_ball_keeps_the_buffers_torch_sgd_keeps(momentum):
         for i, p in enumerate(params):
             p.grad = directions[i] * scale if i in directions else None
         reference.step()
-        taken = heavy_ball([states[i] for i in directions], list(directions.values()), momentum, scale=scale)
+        kept = {i: states[i]["momentum_buffer"].clone() for i in directions if "momentum_buffer" in states[i]}
+        taken = heavy_ball([states[i].get("momentum_buffer") for i in directions], list(directions.values()),
+                           momentum, scale=scale)
+        assert all(torch.equal(states[i]["momentum_buffer"], old) for i, old in kept.items())  # only read
+        if momentum:  # out of place: the caller keeps the new buffers
+            for i, buffer in zip(directions, taken):
+                states[i]["momentum_buffer"] = buffer
         for i, direction in zip(directions, taken):
             buffer = reference.state[params[i]].get("momentum_buffer")  # None without momentum (older torch)
             expected = buffer if buffer is not None else params[i].grad

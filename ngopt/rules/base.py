@@ -31,6 +31,7 @@ class StepResult:
     diagnostics: dict = field(default_factory=dict)
     loss_before: Optional[float] = None              # on the evaluator's rows, when the rule measured it
     predicted_change: Optional[float] = None         # M(delta) for the update returned; None: the blocks' model
+    states: Dict[object, dict] = field(default_factory=dict)  # block -> state entries to keep if the step is written
 
 
 def group_of(inputs: StepInputs) -> Dict[object, dict]:

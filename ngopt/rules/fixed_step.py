@@ -23,7 +23,7 @@ class FixedStep:
         return False
 
     def updates(self, inputs: StepInputs) -> StepResult:
-        updates, scales, scale_of = {}, {}, {}
+        updates, scales, scale_of, states = {}, {}, {}, {}
         kl = predicted = 0.0
         for index, blocks in inputs.blocks_by_group.items():
             group = inputs.groups[index]
@@ -37,13 +37,18 @@ class FixedStep:
                 scale_of[block] = nu
             proposals = [inputs.directions[block][1] for block in blocks]
             # One fused call per operation over the group's blocks (small layers are per-call overhead).
-            directions = heavy_ball([block.state for block in blocks], proposals, group["momentum"], scale=nu)
+            buffers = [block.state.get("momentum_buffer") for block in blocks]
+            directions = heavy_ball(buffers, proposals, group["momentum"], scale=nu)
             updates.update(zip(blocks, torch._foreach_mul(directions, -group["lr"])))
+            if group["momentum"]:
+                # Kept only if the step is written; a non-finite buffer makes its update non-finite
+                # (lr is finite), so the optimizer's check of the updates covers the buffers too.
+                states.update((block, {"momentum_buffer": d}) for block, d in zip(blocks, directions))
         diagnostics = norms(inputs, scale_of)
         diagnostics.update(trust_scale=min(scales.values()) if scales else 1.0, trust_scale_by_group=scales,
                            kl_estimate=kl, predicted_change=predicted)
         # No predicted_change: the damping rule measures the update actually applied, momentum included.
-        return StepResult(updates, diagnostics)
+        return StepResult(updates, diagnostics, states=states)
 
     def state_dict(self) -> dict:
         return {}
