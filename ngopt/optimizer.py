@@ -639,14 +639,14 @@ class FisherDescent(torch.optim.Optimizer):
 
     def _model_change(self) -> Optional[float]:
         """``M(delta) = grad^T delta + delta^T C delta / 2`` for the update just applied (blocks only)."""
-        total = 0.0
+        terms = []
         for block, delta in self._applied.items():
             layer = block.layer
             group = self.param_groups[self._block_group[block]]
             grad = layer.gradient_matrix(layer.weight.grad, layer.bias.grad if layer.has_bias else None)
             curved = block.damped_product(delta, group["damping"])
-            total += float((grad * delta).sum() + 0.5 * (delta * curved).sum())
-        return total
+            terms.append((grad * delta).sum(dtype=torch.float64) + 0.5 * (delta * curved).sum(dtype=torch.float64))
+        return float(torch.stack(terms).sum()) if terms else 0.0  # one host sync for all blocks
 
     # ------------------------------------------------------------------ hooks, diagnostics, state
     @contextlib.contextmanager

@@ -79,8 +79,10 @@ class BatchEvaluator:
         # A sum-reduced loss over a subsample is a fraction of the whole; a mean is not.
         self.loss_scale = examples / keep if self.subsampled and getattr(loss_fn, "reduction", "mean") == "sum" \
             else 1.0
-        self.names = {p: n for n, p in model.named_parameters()}
         self.forwards = 0
+        # Fused attention kernels lack forward-mode rules: once a product pass has used the composite
+        # form, later loss values use it too, so that values compared with each other share kernels.
+        self._composite = False
 
     def _targets_divide(self, examples: int, keep: int) -> bool:
         for criterion in self.batch.criteria:
@@ -99,7 +101,8 @@ class BatchEvaluator:
         buffers = {n: b.clone() for n, b in self.model.named_buffers()}
         buffers.update(_running_statistics(self.model))
         self.forwards += 1
-        with torch.random.fork_rng(devices=[]), _composite_attention():
+        kernels = _composite_attention() if self._composite else contextlib.nullcontext()
+        with torch.random.fork_rng(devices=[]), kernels:
             torch.set_rng_state(self.batch.rng_state)
             if overrides or buffers:
                 output = functional_call(self.model, {**overrides, **buffers}, self.args, self.kwargs)
@@ -122,9 +125,11 @@ class BatchEvaluator:
         """
         tangents = []
         loss = None
+        self._composite = True
+        names = {p: n for n, p in self.model.named_parameters()}
         with torch.no_grad(), forward_ad.dual_level():
             for direction in directions:
-                duals = {self.names[p]: forward_ad.make_dual(p.detach(), v.to(p.dtype))
+                duals = {names[p]: forward_ad.make_dual(p.detach(), v.to(p.dtype))
                          for p, v in direction.items()}
                 inputs = self._criterion_inputs(duals)
                 unpacked = [forward_ad.unpack_dual(z) for z in inputs]
