@@ -48,16 +48,17 @@ def damped_inverse(matrix: torch.Tensor, shift: float, want_spectrum: bool = Fal
     (Cholesky fails) or the spectrum is wanted, an eigendecomposition is used
     instead; negative eigenvalues from round-off are clipped to zero before the
     shift, which is the nearest positive semi-definite matrix in Frobenius norm
-    (Higham 1988).  Both read only the lower triangle (LAPACK's convention), so a
-    statistic that is symmetric up to rounding needs no symmetrizing copy.
+    (Higham 1988).  A statistic that is symmetric only up to rounding is replaced
+    by its symmetric part first (both factorizations would read one triangle only).
     """
+    sym = torch.add(matrix, matrix.T).mul_(0.5)
     if not want_spectrum:
-        damped = matrix.clone()
-        damped.diagonal().add_(shift)  # in place on the copy: no identity matrix is built
+        damped = sym.clone()
+        damped.diagonal().add_(shift)  # in place: no identity matrix is built
         chol, info = torch.linalg.cholesky_ex(damped)
         if int(info) == 0:
             return DampedInverse(torch.cholesky_inverse(chol), None, False)
-    eigenvalues, vectors = torch.linalg.eigh(matrix)
+    eigenvalues, vectors = torch.linalg.eigh(sym)
     clipped = eigenvalues.clamp(min=0.0) + shift
     inverse = (vectors / clipped) @ vectors.T
     return DampedInverse(inverse, eigenvalues if want_spectrum else None, not want_spectrum)

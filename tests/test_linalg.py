@@ -24,15 +24,16 @@ def test_damped_inverse_is_the_inverse_of_the_shifted_matrix(n, shift):
     assert not result.used_fallback and result.eigenvalues is None
 
 
-def test_damped_inverse_reads_only_the_lower_triangle():
-    # LAPACK's potrf/syevd convention (uplo='L', torch's default): the upper triangle is never read,
-    # so a statistic that is symmetric up to rounding needs no symmetrizing copy.
+def test_damped_inverse_uses_the_symmetric_part_of_its_input():
+    # Statistics formed by a matrix product are symmetric only up to rounding: an antisymmetric
+    # part K (K^T = -K) is dropped, whichever triangle the factorization would have read.
     matrix = _spd(12, seed=3)
-    lower_only = np.tril(matrix) + np.triu(np.full_like(matrix, 1e6), 1)
+    antisymmetric = np.triu(np.random.default_rng(4).standard_normal((12, 12)), 1)
+    antisymmetric = 1e-3 * (antisymmetric - antisymmetric.T)
     for want_spectrum in (False, True):
-        full = damped_inverse(torch.from_numpy(matrix), 0.05, want_spectrum)
-        lower = damped_inverse(torch.from_numpy(lower_only), 0.05, want_spectrum)
-        np.testing.assert_allclose(lower.inverse.numpy(), full.inverse.numpy(), rtol=1e-10, atol=1e-13)
+        clean = damped_inverse(torch.from_numpy(matrix), 0.05, want_spectrum)
+        noisy = damped_inverse(torch.from_numpy(matrix + antisymmetric), 0.05, want_spectrum)
+        np.testing.assert_allclose(noisy.inverse.numpy(), clean.inverse.numpy(), rtol=1e-10, atol=1e-13)
 
 
 def test_damped_inverse_clips_round_off_negative_eigenvalues_when_cholesky_fails():
