@@ -56,7 +56,7 @@ def exact_natural_gradient(model, x, y, target, steps, damping=1e-2):
                 p.add_(delta[offset:offset + p.numel()].reshape(p.shape))
                 offset += p.numel()
             after = float(loss_fn(model(x), y))
-        damping = rule.adapt(damping, (after - float(loss)) / predicted if predicted < 0 else None)
+        damping = rule.adapt(damping, (after - float(loss.detach())) / predicted if predicted < 0 else None)
     return None
 
 
