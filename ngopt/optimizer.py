@@ -30,6 +30,7 @@ import math
 import time
 import warnings
 from collections import ChainMap
+from dataclasses import dataclass
 from types import SimpleNamespace
 from typing import Callable, Dict, List, Optional
 
@@ -741,11 +742,13 @@ class FisherDescent(torch.optim.Optimizer):
             self._hooks.source.generator_for = self._generator_for if generator_for is None else generator_for
 
 
-class _FallbackUpdate(SimpleNamespace):
+@dataclass
+class _FallbackUpdate:
     """One group's fallback changes: ``params += changes``, then the new state entries."""
 
-    def __init__(self, params, changes, new_states):
-        super().__init__(params=params, changes=changes, new_states=new_states)
+    params: List[torch.Tensor]
+    changes: List[torch.Tensor]
+    new_states: List[dict]
 
     def tensors(self) -> List[torch.Tensor]:
         """Everything this part would write (the states too: Adam's moments can overflow alone)."""

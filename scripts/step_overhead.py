@@ -48,21 +48,29 @@ def make_mlp(widths) -> nn.Module:
     return nn.Sequential(*layers, nn.Linear(widths[-2], widths[-1]))
 
 
+PRODUCTS_PER_STEP = {"kfac": 2, "ekfac": 4, "diag": 0}  # d x d products per layer and step
+
+
+def preconditioning_flops(d_in: int, d_out: int, gemms: int) -> float:
+    """``gemms`` products per step, half on each side of a d_out x d_in matrix: gemms/2 * 2 d_in d_out (d_in + d_out)."""
+    return gemms / 2 * 2 * d_in * d_out * (d_in + d_out)
+
+
 def flop_count_estimate(widths, batch: int, gemms: int) -> float:
-    """1 + preconditioning flops / forward-backward flops: sum gemms/2 * 2 d_in d_out (d_in + d_out) over 6 B d_in d_out."""
+    """1 + preconditioning flops / forward-backward flops (6 B d_in d_out per layer)."""
     pairs = list(zip(widths[:-1], widths[1:]))
-    extra = sum(gemms / 2 * 2 * i * o * (i + o) for i, o in pairs)
+    extra = sum(preconditioning_flops(i, o, gemms) for i, o in pairs)
     return 1 + extra / sum(6 * batch * i * o for i, o in pairs)
 
 
 def schedule_flop_estimate(widths, batch: int, structure: str, intervals: dict) -> float:
     """1 + every amortized part of the default schedule's flops / forward-backward flops (module docstring)."""
-    gemms = {"kfac": 2, "ekfac": 4, "diag": 0}[structure]
+    gemms = PRODUCTS_PER_STEP[structure]
     inversion_per_cube = {"kfac": 1, "ekfac": 9, "diag": 0}[structure]  # flops / n^3 per n x n factor
     pairs = list(zip(widths[:-1], widths[1:]))
     extra = 0.0
     for index, (i, o) in enumerate(pairs):
-        products = gemms / 2 * 2 * i * o * (i + o)
+        products = preconditioning_flops(i, o, gemms)
         check = 2 * batch * i * o + products
         backward = 2 * batch * i * o if index else 0.0  # the lowest layer's input needs no gradient
         moments = 2 * batch * (i * i + o * o) if gemms else 2 * batch * i * o  # diag: squared per-example grads
@@ -143,8 +151,7 @@ def main(argv=None):
         parts = ("precondition", "rules", "inversion", "statistics", "statistics_in_backward", "extra_backward",
                  "capture")
         share = {k: 100 * split[k] / wall for k in parts}
-        gemms = {"kfac": 2, "ekfac": 4, "diag": 0}[args.structure]  # d x d products per layer and step
-        flop_estimate = flop_count_estimate(widths, batch, gemms)
+        flop_estimate = flop_count_estimate(widths, batch, PRODUCTS_PER_STEP[args.structure])
         schedule_estimate = schedule_flop_estimate(widths, batch, args.structure, intervals)
         mean_ratio = statistics.mean(ng_times) / statistics.mean(sgd_times)
         median_ratio = statistics.median(ng_times) / statistics.median(sgd_times)
