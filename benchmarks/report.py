@@ -76,12 +76,12 @@ def coverage_line(entry: dict) -> Optional[str]:
     for name, summary in entry["summary"].items():
         coverage = summary.get("parameter_coverage")
         if coverage and coverage["fallback_parameters"]:
-            tensors = ", ".join(coverage["fallback_tensors"][:6])
+            reasons = coverage.get("fallback_reasons") or {}
+            tensors = ", ".join(f"{t} ({reasons[t]})" if t in reasons else t for t in coverage["fallback_tensors"][:6])
             more = len(coverage["fallback_tensors"]) - 6
             return (f"{100 * coverage['fallback_share']:.1f}% of the parameters "
-                    f"({coverage['fallback_parameters']} of {coverage['parameters']}) are in layers ngopt "
-                    f"has no curvature block for and took its fallback rule ({name}): {tensors}"
-                    + (f" and {more} more" if more > 0 else ""))
+                    f"({coverage['fallback_parameters']} of {coverage['parameters']}) have no curvature block "
+                    f"and took the fallback rule ({name}): {tensors}" + (f" and {more} more" if more > 0 else ""))
     return None
 
 

@@ -252,10 +252,10 @@ def train_run(
     loss_fn = task.make_loss()
     optimizer = spec.build(model, loss_fn, lr)
     lr = float(optimizer.param_groups[0]["lr"]) if lr is None else lr
-    coverage = parameter_coverage(optimizer, model)
     detach = attach(optimizer) if attach is not None else None
     try:
         trace = timed_training(task, model, loss_fn, optimizer, data, seed, steps, schedule, on_step)
+        coverage = parameter_coverage(optimizer, model)  # blocks are assigned by the training forwards
     finally:
         if detach is not None:
             detach()

@@ -167,6 +167,7 @@ class CurvatureCommunicator:
             self._hooks.append(opt.register_step_post_hook(lambda o, args, kwargs: self._agree_on_damping(o)))
         if resync_every is not None and self.world_size > 1:
             self._hooks.append(opt.register_step_post_hook(lambda o, args, kwargs: self._resync(o)))
+        self._blocks_checked = bool(opt.blocks)
         self.totals = {"statistics_exchanges": 0, "statistics_bytes": 0, "statistics_seconds": 0.0,
                        "inverse_exchanges": 0, "inverse_bytes": 0, "inverse_seconds": 0.0,
                        "inversions_here": 0}
@@ -178,7 +179,14 @@ class CurvatureCommunicator:
 
         ``projected``: the second-phase statistics (EKFAC's scales) of the blocks that have them.
         """
-        if self.world_size == 1 or not opt.statistics_due():
+        if self.world_size == 1:
+            return batches
+        if not self._blocks_checked and opt.blocks:
+            # Blocks are built at the first recorded forward, after share_curvature: check them once,
+            # on the first step that has them (the same step on every rank).
+            self._blocks_checked = True
+            self.check_same_setup(opt)
+        if not opt.statistics_due():
             return batches
         blocks = list(opt.blocks.values())
         if projected:

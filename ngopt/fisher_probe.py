@@ -86,8 +86,8 @@ import torch
 from torch import nn
 from torch.func import functional_call, hessian, jacrev, vmap
 
-from .blocks.layers import adapter_for
-from .likelihoods import likelihood_for
+from .likelihoods import criterion_arguments, likelihood_for, likelihood_from_arguments
+from .uses.recorder import record_uses
 
 __all__ = ["probe_fisher_quality", "exact_layer_fisher", "fresh_blocks", "far_from_fisher",
            "relative_frobenius_error", "direction_angle_deg"]
@@ -172,17 +172,17 @@ def _sample_targets(loss_fn, outputs: torch.Tensor, generator: torch.Generator) 
 # per-layer Jacobians and Fisher matrices
 # --------------------------------------------------------------------------
 
-def _adapter(module: nn.Module):
-    """The layer adapter the optimizer would use for ``module`` (None for unsupported layers)."""
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        try:
-            layer = adapter_for(module, type(module).__name__)
-        except ValueError:  # layers the optimizer refuses (sparse embeddings): generic ordering
-            return None
-    if layer is not None and layer.has_bias and not layer.bias.requires_grad:
-        layer.bias = None  # as the optimizer does: a frozen bias is not part of the block
-    return layer
+def _layer_of(model: nn.Module, module: nn.Module, inputs: torch.Tensor):
+    """The layer adapter the optimizer would build for ``module``'s weight, from one forward on ``inputs``."""
+    weight = getattr(module, "weight", None)
+    if not isinstance(weight, nn.Parameter):
+        return None
+    trainable = [p for p in module.parameters(recurse=False) if p.requires_grad]
+    _, calls, _ = record_uses(model, (inputs,), {}, trainable, examples=int(inputs.shape[0]))
+    for use, _ in calls:
+        if use.weight is weight:
+            return use.make_layer(type(module).__name__)
+    return None
 
 
 def _layer_parameters(module: nn.Module, layer=None) -> dict:
@@ -194,7 +194,7 @@ def _layer_parameters(module: nn.Module, layer=None) -> dict:
     return names
 
 
-def _block_order(jacobian: dict, module: nn.Module, layer=None) -> torch.Tensor:
+def _block_order(jacobian: dict, weight_shape, layer=None) -> torch.Tensor:
     """[N, D, *param] Jacobians -> [N, D, P] in the blocks' ordering.
 
     The blocks flatten their layer adapter's gradient matrix column-major
@@ -205,7 +205,7 @@ def _block_order(jacobian: dict, module: nn.Module, layer=None) -> torch.Tensor:
     weight = jacobian["weight"]
     n, d = weight.shape[:2]
     if layer is None:
-        matrix = weight.reshape(n, d, module.weight.shape[0], -1)
+        matrix = weight.reshape(n, d, weight_shape[0], -1)
         if "bias" in jacobian:
             matrix = torch.cat([matrix, jacobian["bias"].unsqueeze(-1)], dim=-1)
         return matrix.transpose(-1, -2).reshape(n, d, -1)
@@ -218,14 +218,17 @@ def _block_order(jacobian: dict, module: nn.Module, layer=None) -> torch.Tensor:
     return matrices.transpose(-1, -2).reshape(n, d, -1)
 
 
-def layer_jacobian(model: nn.Module, module: nn.Module, inputs: torch.Tensor, layer=None) -> tuple:
+def layer_jacobian(model: nn.Module, module: Optional[nn.Module], inputs: torch.Tensor, layer=None) -> tuple:
     """(outputs [N, D], Jacobian [N, D, P]) of the model outputs in one layer's parameters.
 
-    ``layer``: the block's layer adapter (default: the one the optimizer would build).
+    ``layer``: the block's layer adapter (default: the one the optimizer would build for ``module``).
     """
-    layer = _adapter(module) if layer is None else layer
-    prefix = next(name for name, m in model.named_modules() if m is module)
-    own = {(f"{prefix}.{k}" if prefix else k): v.detach() for k, v in _layer_parameters(module, layer).items()}
+    if layer is None:
+        layer = _layer_of(model, module, inputs)
+    members = _layer_parameters(module, layer)
+    names = {p: n for n, p in model.named_parameters()}
+    own = {names[p]: p.detach() for p in members.values()}
+    roles = {names[p]: role for role, p in members.items()}
 
     def forward(layer_params):
         return functional_call(model, layer_params, (inputs,), strict=False)
@@ -234,9 +237,9 @@ def layer_jacobian(model: nn.Module, module: nn.Module, inputs: torch.Tensor, la
     if outputs.dim() != 2:
         raise ValueError(f"the probe needs model outputs shaped [batch, features]; got {tuple(outputs.shape)}")
     jac = jacrev(forward)(own)
-    jac = {key.rsplit(".", 1)[-1]: value for key, value in jac.items()}
+    jac = {roles[key]: value for key, value in jac.items()}
     # the other layers' parameters still require grad; nothing here is meant to be differentiated
-    return outputs, _block_order(jac, module, layer).detach().to(torch.float64)
+    return outputs, _block_order(jac, members["weight"].shape, layer).detach().to(torch.float64)
 
 
 def output_hessians(loss_fn, outputs: torch.Tensor, targets: torch.Tensor) -> torch.Tensor:
@@ -297,53 +300,39 @@ def _outer_fisher(loss_fn, outputs, jac, grads) -> torch.Tensor:
 # the same structure, from the probe batch alone
 # --------------------------------------------------------------------------
 
-def _record_layer_calls(model: nn.Module, blocks: dict, inputs: torch.Tensor):
-    """One forward: the model output and, per block, its calls as (input rows, layer output)."""
-    calls = {name: [] for name in blocks}
-    handles = []
-
-    def recorder(name, layer):
-        def hook(module, args, output):
-            calls[name].append((layer.input_rows(args[0].detach()), output))
-            return output.clone()  # downstream in-place ops must not touch the tensor we differentiate
-        return hook
-
-    for name, block in blocks.items():
-        handles.append(block.layer.module.register_forward_hook(recorder(name, block.layer)))
-    try:
-        with torch.enable_grad():
-            output = model(inputs)
-    finally:
-        for handle in handles:
-            handle.remove()
-    return output, calls
-
-
-def fresh_blocks(blocks: dict, model: nn.Module, loss_fn, inputs: torch.Tensor, damping: dict) -> dict:
-    """``{name: block}``: new blocks of the same classes holding the probe batch's statistics only.
+def fresh_blocks(blocks: dict, model: nn.Module, loss_fn, inputs: torch.Tensor, damping: dict,
+                 use_keys=None) -> dict:
+    """``{name: block}``: new blocks of the same kinds holding the probe batch's statistics only.
 
     The output gradients are the columns of the output Fisher's square root
     (``fisher='exact'``), so each block holds the exact expectation over the
     model's predictive distribution, with no running average and no Monte Carlo
     noise; ``damping`` {name: lambda} is needed only for blocks whose statistics
-    live in an eigenbasis (EKFAC).  The caller puts the model in ``eval()`` mode.
+    live in an eigenbasis (EKFAC); ``use_keys(block)`` the uses a tied block was built for
+    (``FisherDescent.use_keys_of``).  The caller puts the model in ``eval()`` mode.
     """
-    likelihood = likelihood_for(loss_fn)
-    output, calls = _record_layer_calls(model, blocks, inputs)
+    function, args, kwargs = criterion_arguments(loss_fn, None, None)
+    likelihood, _, _ = likelihood_from_arguments(function, args, kwargs)
+    by_weight = {block.layer.weight: name for name, block in blocks.items()}
+    params = [p for block in blocks.values() for p in block.layer.params()]
+    output, calls, _ = record_uses(model, (inputs,), {}, params, examples=int(inputs.shape[0]))
+    calls = [(use, edge) for use, edge in calls if use.weight in by_weight]
     columns = likelihood.exact_output_grad_columns(output.detach())
-    scale = 1.0 / likelihood.reduction_scale(output)
-    order = [(name, index) for name in blocks for index in range(len(calls[name]))]
-    layer_outputs = [calls[name][index][1] for name, index in order]
-    per_column = [torch.autograd.grad(output, layer_outputs, grad_outputs=column, retain_graph=True,
+    # Unit-scale columns: G = c sum g g^T with the reduction's c (likelihoods.LossCall.fisher_vectors).
+    scale = _reduction_scale(loss_fn, output)
+    per_column = [torch.autograd.grad(output, [edge for _, edge in calls], grad_outputs=column, retain_graph=True,
                                       allow_unused=True) for column in columns]
-    fresh = {name: type(block)(block.layer, {}, weight_sharing=block.weight_sharing)
-             for name, block in blocks.items()}
-    for position, (name, index) in enumerate(order):
+    fresh = {name: block.fresh_copy() for name, block in blocks.items()}
+    keys = use_keys or (lambda block: [])
+    for position, (use, _) in enumerate(calls):
+        name = by_weight[use.weight]
         grads = [column_grads[position] for column_grads in per_column]
         if any(g is None for g in grads):
             continue  # this call does not reach the output
-        rows = blocks[name].layer.output_rows(torch.stack(grads).detach())
-        fresh[name].add_capture(calls[name][index][0], rows, scale, 0)
+        known = keys(blocks[name])
+        term = known.index(use.key) if use.key in known else 0
+        rows = use.output_rows(torch.stack(grads).detach())
+        fresh[name].add_capture(use.input_rows, rows, scale * use.weight_scale, 0, term=term)
     built = {}
     for name, block in fresh.items():
         statistics = block.batch_statistics(1)
@@ -376,9 +365,8 @@ def _dense(block, damping: float = 0.0) -> torch.Tensor:
 
 
 def _probe_layer(opt, block, fresh, model, loss_fn, inputs, targets, generator, samples):
-    module = block.layer.module
     damping = _group_damping(opt, block.layer.weight)
-    outputs, jac = layer_jacobian(model, module, inputs, block.layer)
+    outputs, jac = layer_jacobian(model, None, inputs, block.layer)
     exact = _exact_from(loss_fn, outputs, targets, jac)
     grad = torch.einsum("ndp,nd->p", jac, output_gradients(loss_fn, outputs, targets))
     approx = _dense(block)
@@ -461,6 +449,9 @@ def probe_fisher_quality(opt, model: nn.Module, loss_fn, inputs: torch.Tensor, t
     blocks = getattr(opt, "blocks", None)
     if not isinstance(blocks, dict):
         raise TypeError(f"opt must be an ngopt.FisherDescent (with .blocks); got {type(opt).__name__}")
+    if not blocks and hasattr(opt, "assign_curvature"):
+        opt.assign_curvature(inputs)  # blocks come from how the model applies its parameters
+        blocks = opt.blocks
     if layers is not None:
         unknown = [name for name in layers if name not in blocks]
         if unknown:
@@ -482,7 +473,8 @@ def probe_fisher_quality(opt, model: nn.Module, loss_fn, inputs: torch.Tensor, t
     joined = {"exact": [], "block": [], "step": [], "empirical": [], "sampled": []}
     with evaluation_mode(model):
         damping = {name: _group_damping(opt, block.layer.weight) for name, block in chosen.items()}
-        current = fresh_blocks(chosen, model, loss_fn, inputs, damping) if chosen else {}
+        current = fresh_blocks(chosen, model, loss_fn, inputs, damping, getattr(opt, "use_keys_of", None)) \
+            if chosen else {}
         for name, block in chosen.items():
             entry, directions = _probe_layer(opt, block, current.get(name), model, loss_fn, inputs, targets,
                                              generator, samples)

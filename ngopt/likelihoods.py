@@ -1,78 +1,133 @@
-"""What the optimizer needs to know about each training criterion.
+"""What the optimizer needs to know about each loss call.
 
-A criterion ``L = c * sum_n l_n`` is a sum of per-term negative log-likelihoods
-``l_n`` scaled by the reduction coefficient ``c`` (``1/#terms`` for ``mean``,
-``1`` for ``sum``).  The Fisher of ``L`` is ``c * sum_n J_n^T H_n J_n`` where
-``H_n = E_{y~p(y|f_n)}[grad_f l_n grad_f l_n^T]`` is the output Fisher, which for
-these criteria equals the Hessian of ``l_n`` in the network output ``f``
-(Martens & Grosse 2015, sec. 9; the generalized Gauss-Newton matrix):
+A supported loss call, by a criterion object or by the functional form, in the
+user's code or inside the model, is a weighted sum of per-term negative
+log-likelihoods of the model output ``z`` it receives:
 
-=====================  ===========================  ====================================
-criterion              model p(y | f)               output Fisher H
-=====================  ===========================  ====================================
-``MSELoss``            N(f, I/2): l = ||y - f||^2   2 I
-``CrossEntropyLoss``   Categorical(softmax(f))      diag(p) - p p^T
-``BCEWithLogitsLoss``  Bernoulli(sigmoid(f))        diag(s (1 - s)),  s = sigmoid(f)
-=====================  ===========================  ====================================
+    L = sum_n w_n l_n(z_n, y_n),     w_n = dL/dl_n,
 
-Every method returns vectors shaped like the output and already multiplied by
-``c``: that is the scale a backward pass through the user's loss would give, so
-the curvature blocks can treat sampled, exact and empirical gradients alike and
-undo the scale once, with :meth:`reduction_scale`.
+where the weights come from the user's backward pass (``1/#terms`` for
+``reduction="mean"``, ``1`` for ``"sum"``, anything for ``"none"``; zero for
+terms the loss ignores; times any scaling the user's code applies afterwards).
+The Fisher of ``L`` is then ``sum_n w_n J_n^T H_n J_n`` where
+``H_n = E_{y~p(y|z_n)}[grad l grad l^T]`` is the output Fisher of one term, which
+for these likelihoods equals the Hessian of ``l_n`` in ``z_n`` (Martens & Grosse
+2015, sec. 9; the generalized Gauss-Newton matrix):
+
+=========================================  ===========================  ==============================
+loss                                       model p(y | z)               output Fisher H per term
+=========================================  ===========================  ==============================
+``mse_loss`` / ``nn.MSELoss``              N(z, I/2): l = (y - z)^2     2
+``cross_entropy`` / ``nn.CrossEntropyLoss``  Categorical(softmax(z))     diag(p) - p p^T
+``binary_cross_entropy_with_logits``       Bernoulli(sigmoid(z))        s (1 - s),  s = sigmoid(z)
+=========================================  ===========================  ==============================
+
+Label smoothing keeps ``H`` (the smoothed loss is linear in the log-softmax with
+weights summing to one); element weights of ``mse_loss`` and
+``binary_cross_entropy_with_logits`` become term weights.  Class weights and
+``pos_weight`` depend on the label, so the loss is no longer one likelihood:
+those calls are not supported for ``fisher="sampled"``/``"exact"``.
+
+Every vector method returns *unit-scale* quantities (no reduction factor): the
+term weights are applied once, by :class:`LossCall`, so that sampled, exact and
+empirical statistics share one convention and a low-precision backward never
+sees vectors of size ``1/#terms``.
 """
 from __future__ import annotations
 
+import inspect
 import math
+from dataclasses import dataclass, field
+from typing import Callable, Dict, Optional, Tuple
 
 import torch
 from torch import nn
+import torch.nn.functional as F
 
-SUPPORTED_REDUCTIONS = ("mean", "sum")
+SUPPORTED_REDUCTIONS = ("mean", "sum", "none")
+
+
+class UnsupportedLoss(ValueError):
+    """A loss call whose curvature has no closed form here (the message says why)."""
 
 
 class OutputLikelihood:
-    """Closed-form facts about one criterion: reduction scale, samples, exact Fisher."""
+    """Closed-form facts about one kind of loss with one call's options."""
 
-    name = "criterion"
+    name = "loss"
+    function: Callable = None
 
-    def __init__(self, loss_fn: nn.Module):
-        reduction = getattr(loss_fn, "reduction", None)
+    def __init__(self, reduction: str = "mean", element_weight: Optional[torch.Tensor] = None):
         if reduction not in SUPPORTED_REDUCTIONS:
-            raise ValueError(
-                f"loss_fn: reduction={reduction!r} is not supported for fisher='sampled'/'exact'; "
-                f"use one of {SUPPORTED_REDUCTIONS}")
+            raise UnsupportedLoss(f"reduction={reduction!r} is not supported; use one of {SUPPORTED_REDUCTIONS}")
         self.reduction = reduction
+        self.element_weight = element_weight
 
-    def num_terms(self, output: torch.Tensor) -> int:
-        """Number of terms the ``mean`` reduction divides by."""
-        return output.numel()
-
+    # -- terms ------------------------------------------------------------------------------
     def check_input(self, output: torch.Tensor) -> None:
-        """Raise a clear error if the criterion's input cannot carry this likelihood."""
+        """Raise a clear error if the loss's input cannot carry this likelihood."""
+
+    def term_shape(self, output: torch.Tensor) -> torch.Size:
+        """The shape of the per-term losses (every element, for elementwise likelihoods)."""
+        return output.shape
+
+    def spread(self, values: torch.Tensor, output: torch.Tensor) -> torch.Tensor:
+        """Per-term values broadcast against ``output``."""
+        return values
+
+    def valid_terms(self, output: torch.Tensor, target) -> Optional[torch.Tensor]:
+        """Boolean mask of the terms the loss counts; None when it counts every term."""
+        return None
+
+    def term_weights(self, output: torch.Tensor, target, loss_grad: torch.Tensor) -> torch.Tensor:
+        """``w_n = dL/dl_n`` per term from ``loss_grad = dL/d(loss value)``, the user's backward."""
+        shape = self.term_shape(output)
+        valid = self.valid_terms(output, target)
+        if self.reduction == "none":
+            weights = loss_grad.detach().to(output.dtype).expand(shape)
+        else:
+            count = math.prod(shape) if valid is None else int(valid.sum())
+            scale = 1.0 / max(count, 1) if self.reduction == "mean" else 1.0
+            weights = loss_grad.detach().to(output.dtype).reshape(()).mul(scale).expand(shape)
+        if self.element_weight is not None:
+            weights = weights * self.element_weight.to(output.dtype).expand(shape)
+        if valid is not None:
+            weights = weights * valid.to(output.dtype)
+        return weights
+
+    # -- the per-term likelihood ----------------------------------------------------------------
+    def term_losses(self, output: torch.Tensor, target) -> torch.Tensor:
+        """``l_n`` per term, without reduction or element weights (zero where the loss ignores the term)."""
+        raise NotImplementedError
+
+    def sampled_output_grads(self, output: torch.Tensor, generator: torch.Generator,
+                             num_samples: int) -> torch.Tensor:
+        """``grad_z l(z, y)`` per term for ``y`` drawn from the model; ``[num_samples, *output.shape]``."""
+        raise NotImplementedError
+
+    def exact_output_grad_columns(self, output: torch.Tensor) -> torch.Tensor:
+        """Columns ``S_k`` with ``sum_k S_k S_k^T = H`` for every term; ``[K, *output.shape]``.
+
+        Each column touches one output position of every term, so a backward pass per
+        column never mixes two positions of the same term.
+        """
+        raise NotImplementedError
+
+    def hessian_product(self, output: torch.Tensor, vector: torch.Tensor) -> torch.Tensor:
+        """``H_n u_n`` per term for a direction ``u`` shaped like the output."""
+        raise NotImplementedError
 
     def describe_columns(self, output: torch.Tensor) -> str:
         """What the exact Fisher's columns per example are, in words."""
         return f"one per output element, {output[0].numel() if output.dim() else 1} per example"
 
-    def hessian_product(self, output: torch.Tensor, vector: torch.Tensor) -> torch.Tensor:
-        """``c * H u`` for a direction ``u`` shaped like the output: the output Hessian of ``L``."""
-        raise NotImplementedError
-
-    def reduction_scale(self, output: torch.Tensor) -> float:
-        """The coefficient ``c`` in ``L = c * sum_n l_n``."""
-        return 1.0 / self.num_terms(output) if self.reduction == "mean" else 1.0
-
-    def sampled_output_grads(self, output: torch.Tensor, generator: torch.Generator,
-                             num_samples: int) -> torch.Tensor:
-        """``c * grad_f l(f, y)`` for ``y`` drawn from the model; shape ``[num_samples, *output.shape]``."""
-        raise NotImplementedError
-
+    # -- exact columns that keep examples apart -----------------------------------------------
     def exact_columns(self, output: torch.Tensor, examples: int) -> torch.Tensor:
         """Exact-Fisher columns that never join two terms of one network example.
 
         A column may touch one term of every example: their cross terms vanish,
         because an example's terms depend on that example alone.  When the
-        criterion's rows are example-major positions (``logits.view(-1, V)`` of
+        loss's rows are example-major positions (``logits.view(-1, V)`` of
         ``[examples, T, V]``, or a shifted ``logits[:, :-1]`` flattened the same
         way), the rows of one example are split over separate columns.
         """
@@ -89,91 +144,92 @@ class OutputLikelihood:
     def ungroup_columns(self, columns: torch.Tensor, shape) -> torch.Tensor:
         return columns.reshape((columns.shape[0],) + tuple(shape))
 
-    def exact_output_grad_columns(self, output: torch.Tensor) -> torch.Tensor:
-        """Columns ``c * S_k`` with ``sum_k S_k S_k^T = H`` for every term; shape ``[K, *output.shape]``.
-
-        Each column touches one output position of every example, so a backward
-        pass per column never mixes two terms of the same example.
-        """
-        raise NotImplementedError
-
 
 class SquaredError(OutputLikelihood):
-    """``nn.MSELoss``: ``l = (y - f)^2`` per element is the NLL of N(f, 1/2), up to a constant."""
+    """``mse_loss``: ``l = (y - z)^2`` per element is the NLL of N(z, 1/2), up to a constant."""
 
     name = "squared error"
+    function = F.mse_loss
+
+    def term_losses(self, output, target):
+        return (output - target).square()
 
     def sampled_output_grads(self, output, generator, num_samples):
         noise = torch.randn((num_samples,) + output.shape, generator=generator,
                             device=output.device, dtype=output.dtype)
-        # y = f + noise / sqrt(2)  =>  grad_f (y - f)^2 = -sqrt(2) * noise; the sign is irrelevant.
-        return noise * (math.sqrt(2.0) * self.reduction_scale(output))
+        # y = z + noise / sqrt(2)  =>  grad_z (y - z)^2 = -sqrt(2) * noise; the sign is irrelevant.
+        return noise * math.sqrt(2.0)
 
     def exact_output_grad_columns(self, output):
-        value = math.sqrt(2.0) * self.reduction_scale(output)
-        return _one_hot_columns(output, torch.full_like(output, value))
+        return _one_hot_columns(output, torch.full_like(output, math.sqrt(2.0)))
 
     def hessian_product(self, output, vector):
-        return vector * (2.0 * self.reduction_scale(output))
+        return vector * 2.0
 
 
 class BinaryCrossEntropy(OutputLikelihood):
-    """``nn.BCEWithLogitsLoss`` without ``weight``/``pos_weight``."""
+    """``binary_cross_entropy_with_logits`` without ``pos_weight``."""
 
     name = "binary cross-entropy"
+    function = F.binary_cross_entropy_with_logits
 
-    def __init__(self, loss_fn):
-        super().__init__(loss_fn)
-        if getattr(loss_fn, "weight", None) is not None or getattr(loss_fn, "pos_weight", None) is not None:
-            raise ValueError("loss_fn: BCEWithLogitsLoss with weight/pos_weight is not supported for "
-                             "fisher='sampled'/'exact'; use fisher='empirical' or drop the weights")
+    def term_losses(self, output, target):
+        return F.binary_cross_entropy_with_logits(output, target.to(output.dtype), reduction="none")
 
     def sampled_output_grads(self, output, generator, num_samples):
         prob = torch.sigmoid(output.detach())
         uniform = torch.rand((num_samples,) + output.shape, generator=generator,
                              device=output.device, dtype=output.dtype)
         draws = (uniform < prob).to(output.dtype)
-        return (prob - draws) * self.reduction_scale(output)
+        return prob - draws
 
     def exact_output_grad_columns(self, output):
         prob = torch.sigmoid(output.detach())
-        return _one_hot_columns(output, torch.sqrt(prob * (1 - prob)) * self.reduction_scale(output))
+        return _one_hot_columns(output, torch.sqrt(prob * (1 - prob)))
 
     def hessian_product(self, output, vector):
         prob = torch.sigmoid(output.detach())
-        return vector * (prob * (1 - prob)) * self.reduction_scale(output)
+        return vector * (prob * (1 - prob))
 
 
 class CrossEntropy(OutputLikelihood):
-    """``nn.CrossEntropyLoss`` over class dimension 1, no class weights, no label smoothing.
+    """``cross_entropy`` over class dimension 1 (class-index or class-probability targets).
 
-    Positions with the criterion's ``ignore_index`` still count in the curvature:
-    targets are drawn from the model, so every position is asked about.
+    Terms whose target is ``ignore_index`` carry no curvature and, under
+    ``reduction="mean"``, do not count in the mean (as in torch).
     """
 
     name = "cross-entropy"
+    function = F.cross_entropy
 
-    def __init__(self, loss_fn):
-        super().__init__(loss_fn)
-        if getattr(loss_fn, "weight", None) is not None:
-            raise ValueError("loss_fn: CrossEntropyLoss with class weights is not supported for "
-                             "fisher='sampled'/'exact'; use fisher='empirical'")
-        if getattr(loss_fn, "label_smoothing", 0.0):
-            raise ValueError("loss_fn: CrossEntropyLoss with label_smoothing is not supported for "
-                             "fisher='sampled'/'exact'; use fisher='empirical'")
-
-    def num_terms(self, output):
-        self._check_shape(output)
-        return output.numel() // output.shape[1]
+    def __init__(self, reduction="mean", ignore_index: int = -100, label_smoothing: float = 0.0):
+        super().__init__(reduction)
+        self.ignore_index = ignore_index
+        self.label_smoothing = float(label_smoothing)
 
     @staticmethod
     def _check_shape(output):
         if output.dim() < 2:
-            raise ValueError("CrossEntropyLoss curvature needs logits shaped [batch, classes, ...]; "
+            raise ValueError("cross-entropy curvature needs logits shaped [batch, classes, ...]; "
                              f"got shape {tuple(output.shape)}")
 
     def check_input(self, output):
         self._check_shape(output)
+
+    def term_shape(self, output):
+        return output.shape[:1] + output.shape[2:]
+
+    def spread(self, values, output):
+        return values.unsqueeze(1)
+
+    def valid_terms(self, output, target):
+        if isinstance(target, torch.Tensor) and not target.is_floating_point():
+            return target != self.ignore_index
+        return None
+
+    def term_losses(self, output, target):
+        return F.cross_entropy(output, target, ignore_index=self.ignore_index, reduction="none",
+                               label_smoothing=self.label_smoothing)
 
     def group_positions(self, output, examples):
         # [examples * P, C, *rest] -> [examples, C, P, *rest]: classes stay on dimension 1
@@ -190,7 +246,7 @@ class CrossEntropy(OutputLikelihood):
         # (diag(p) - p p^T) u along the class dimension
         prob = torch.softmax(output.detach(), dim=1)
         weighted = prob * vector
-        return (weighted - prob * weighted.sum(dim=1, keepdim=True)) * self.reduction_scale(output)
+        return weighted - prob * weighted.sum(dim=1, keepdim=True)
 
     def sampled_output_grads(self, output, generator, num_samples):
         prob = torch.softmax(output.detach(), dim=1)
@@ -201,22 +257,20 @@ class CrossEntropy(OutputLikelihood):
             return torch.full((num_samples,) + output.shape, float("nan"), dtype=output.dtype,
                               device=output.device)
         draws = torch.multinomial(flat, num_samples, replacement=True, generator=generator)  # [terms, S]
-        onehot = torch.nn.functional.one_hot(draws.T, classes).to(prob.dtype)              # [S, terms, C]
+        onehot = F.one_hot(draws.T, classes).to(prob.dtype)                                  # [S, terms, C]
         onehot = onehot.reshape((num_samples,) + prob.movedim(1, -1).shape).movedim(-1, 2)
-        return (prob.unsqueeze(0) - onehot) * self.reduction_scale(output)
+        return prob.unsqueeze(0) - onehot
 
     def exact_output_grad_columns(self, output):
         # H = diag(p) - p p^T = S S^T with columns S_k = sqrt(p_k) (e_k - p), one per class k
         # (and, for outputs with positions, one per class and position).
         prob = torch.softmax(output.detach(), dim=1)
-        scale = self.reduction_scale(output)
         classes = prob.shape[1]
         eye = torch.eye(classes, dtype=prob.dtype, device=prob.device)
         columns = []
         for k in range(classes):
             e_k = eye[k].reshape((1, classes) + (1,) * (prob.dim() - 2))
-            column = torch.sqrt(prob[:, k:k + 1]) * (e_k - prob) * scale
-            columns.append(column)
+            columns.append(torch.sqrt(prob[:, k:k + 1]) * (e_k - prob))
         stacked = torch.stack(columns)  # [C, *output.shape]
         if prob.dim() == 2:
             return stacked
@@ -225,6 +279,8 @@ class CrossEntropy(OutputLikelihood):
 
 def _one_hot_columns(output: torch.Tensor, values: torch.Tensor) -> torch.Tensor:
     """One column per element position of an example: column j is ``values`` at j, zero elsewhere."""
+    if output.dim() == 0:
+        return values.reshape(1)
     per_example = output[0].numel()
     eye = torch.eye(per_example, dtype=output.dtype, device=output.device)
     flat = values.reshape(output.shape[0], per_example)
@@ -242,36 +298,135 @@ def _split_positions(columns: torch.Tensor) -> torch.Tensor:
     return split.reshape((classes * positions,) + columns.shape[1:])
 
 
-LIKELIHOODS = {
-    nn.MSELoss: SquaredError,
-    nn.CrossEntropyLoss: CrossEntropy,
-    nn.BCEWithLogitsLoss: BinaryCrossEntropy,
-}
+# ----------------------------------------------------------------------------------------- loss calls
+@dataclass
+class LossCall:
+    """One call of a supported loss: its likelihood, input ``z``, target and (later) term weights.
+
+    ``weights`` (``dL/dl_n`` per term) are set when the user's backward reaches the
+    call's value; until then the call's curvature is unknown.
+    """
+
+    likelihood: OutputLikelihood
+    input: Optional[torch.Tensor]
+    target: object
+    value: float
+    weights: Optional[torch.Tensor] = None
+    # Where the call sits, for replaying it: ("forward", k) for the k-th call inside the model's
+    # forward, ("after", tape) for a call in the user's code after the forward.
+    origin: Tuple = ()
+    extra: Dict = field(default_factory=dict)
+
+    def set_weights(self, loss_grad: Optional[torch.Tensor], value: Optional[torch.Tensor] = None) -> None:
+        """Weights from ``dL/d(value)``; with the value, also the call's share ``sum_n w_n l_n`` of ``L``."""
+        if loss_grad is None or self.input is None:
+            self.weights = None
+            return
+        self.weights = self.likelihood.term_weights(self.input, self.target, loss_grad)
+        if value is not None:
+            self.extra["weighted_value"] = float((loss_grad.double() * value.detach().double()).sum())
+
+    def rescale(self, factor: float) -> None:
+        """Multiply the weights by ``factor`` (a loss scale the gradients were divided by)."""
+        if self.weights is not None:
+            self.weights = self.weights * factor
+        if "weighted_value" in self.extra:
+            self.extra["weighted_value"] *= factor
+
+    def weighted_loss(self, term_losses: torch.Tensor) -> float:
+        """``sum_n w_n l_n`` for per-term losses at any weights (the user's loss, to first order in l)."""
+        return float((self.weights.double() * term_losses.double()).sum())
+
+    def fisher_vectors(self, mode: str, generator, num_samples: int, examples: int):
+        """``(V, s)``: output-gradient vectors ``[K, *z.shape]`` and ``s`` with ``G = s sum g g^T``.
+
+        The term weights enter as ``sqrt(w_n / w_max)`` on the vectors and ``w_max`` in ``s``,
+        so the vectors stay of unit size.  Terms the user ascends (``w_n < 0``) add nothing.
+        """
+        z = self.input.detach()
+        weights = self.weights.clamp(min=0.0)
+        top = float(weights.max()) if weights.numel() else 0.0
+        if not top > 0.0 or not math.isfinite(top):
+            return None, 0.0
+        root = self.likelihood.spread(torch.sqrt(weights / top), z)
+        if mode == "sampled":
+            vectors = self.likelihood.sampled_output_grads(z, generator, num_samples)
+            return vectors * root, top / num_samples
+        return self.likelihood.exact_columns(z, examples) * root, top
+
+    def empirical_scale(self) -> float:
+        """``1 / mean w_n`` over the counted terms: the empirical Fisher of uniform weights is exact."""
+        weights = self.weights
+        counted = weights[weights != 0]
+        mean = float(counted.mean()) if counted.numel() else 0.0
+        return 1.0 / mean if mean > 0 else 0.0
+
+    def release(self) -> None:
+        self.input = None
+
+
+# ----------------------------------------------------------------------------------------- recognition
+def _legacy_reduction(size_average, reduce, reduction: str) -> str:
+    if size_average is None and reduce is None:
+        return reduction
+    from torch.nn import _reduction
+    return _reduction.legacy_get_string(size_average, reduce, emit_warning=False)
+
+
+def _bound(function, args, kwargs) -> dict:
+    arguments = inspect.signature(function).bind(*args, **kwargs)
+    arguments.apply_defaults()
+    return dict(arguments.arguments)
+
+
+def likelihood_from_arguments(function, args, kwargs) -> Tuple[OutputLikelihood, torch.Tensor, object]:
+    """``(likelihood, z, target)`` of a functional loss call; raises :class:`UnsupportedLoss` with the reason."""
+    a = _bound(function, args, kwargs)
+    reduction = _legacy_reduction(a.get("size_average"), a.get("reduce"), a["reduction"])
+    if function is F.cross_entropy:
+        if a["weight"] is not None:
+            raise UnsupportedLoss("cross-entropy with class weights is not one likelihood (the weight depends "
+                                  "on the label)")
+        return CrossEntropy(reduction, a["ignore_index"], a["label_smoothing"]), a["input"], a["target"]
+    if function is F.mse_loss:
+        return SquaredError(reduction, a.get("weight")), a["input"], a["target"]
+    if function is F.binary_cross_entropy_with_logits:
+        if a["pos_weight"] is not None:
+            raise UnsupportedLoss("binary cross-entropy with pos_weight is not one likelihood (the weight "
+                                  "depends on the label)")
+        return BinaryCrossEntropy(reduction, a["weight"]), a["input"], a["target"]
+    raise UnsupportedLoss(f"{getattr(function, '__name__', function)} has no closed-form curvature here")
+
+
+LOSS_FUNCTIONS = (F.cross_entropy, F.mse_loss, F.binary_cross_entropy_with_logits)
+# Criterion objects and the functional form each of their forwards calls.
+CRITERIA = {nn.MSELoss: F.mse_loss, nn.CrossEntropyLoss: F.cross_entropy,
+            nn.BCEWithLogitsLoss: F.binary_cross_entropy_with_logits}
+
+
+def criterion_arguments(loss_fn: nn.Module, output, target) -> Tuple[Callable, tuple, dict]:
+    """The functional call a supported criterion object makes for ``loss_fn(output, target)``."""
+    function = CRITERIA[type(loss_fn)]
+    kwargs = {"reduction": loss_fn.reduction}
+    if function is F.cross_entropy:
+        kwargs.update(weight=loss_fn.weight, ignore_index=loss_fn.ignore_index,
+                      label_smoothing=loss_fn.label_smoothing)
+    elif function is F.binary_cross_entropy_with_logits:
+        kwargs.update(weight=loss_fn.weight, pos_weight=loss_fn.pos_weight)
+    elif "weight" in inspect.signature(F.mse_loss).parameters and getattr(loss_fn, "weight", None) is not None:
+        kwargs["weight"] = loss_fn.weight
+    return function, (output, target), kwargs
 
 
 def likelihood_for(loss_fn) -> OutputLikelihood:
-    """The closed-form likelihood of a supported criterion, or a clear error."""
-    for cls, likelihood in LIKELIHOODS.items():
-        if type(loss_fn) is cls:
-            return likelihood(loss_fn)
-    names = ", ".join(f"nn.{cls.__name__}" for cls in LIKELIHOODS)
-    raise ValueError(f"loss_fn: fisher='sampled'/'exact' support {names}; got {type(loss_fn).__name__}. "
-                     "Use fisher='empirical' for other criteria.")
-
-
-def empirical_reduction_scale(loss_fn, output, batch_size: int) -> float:
-    """``c`` for the empirical Fisher, so that it estimates the Fisher of ``L = c sum_n l_n``.
-
-    For a supported criterion this is the criterion's own ``c`` (``1/#terms`` for
-    ``mean``), which makes the empirical Fisher agree with the Fisher at the true
-    parameters (Casella & Berger: E[score score^T] = I).  For any other criterion the
-    loss is taken to be a mean over the leading (batch) dimension, or a sum when the
-    criterion says ``reduction='sum'``.
-    """
-    if isinstance(output, torch.Tensor):
-        try:
-            return likelihood_for(loss_fn).reduction_scale(output)
-        except ValueError:
-            pass
-    reduction = getattr(loss_fn, "reduction", "mean") if loss_fn is not None else "mean"
-    return 1.0 if reduction == "sum" else 1.0 / batch_size
+    """The closed-form likelihood of a supported criterion object, or a clear ``ValueError``."""
+    if type(loss_fn) not in CRITERIA:
+        names = ", ".join(f"nn.{cls.__name__}" for cls in CRITERIA)
+        raise ValueError(f"loss_fn: fisher='sampled'/'exact' support {names} (and their functional forms); got "
+                         f"{type(loss_fn).__name__}. Use fisher='empirical' for other criteria.")
+    function, _, kwargs = criterion_arguments(loss_fn, None, None)
+    try:
+        likelihood, _, _ = likelihood_from_arguments(function, (None, None), kwargs)
+    except UnsupportedLoss as error:
+        raise ValueError(f"loss_fn: {error}; use fisher='empirical'") from None
+    return likelihood

@@ -38,27 +38,25 @@ import torch
 from torch import nn
 
 from . import fallback as fallback_rules
+from .assignment import CurvatureAssignment, ParameterCurvature
 from .blocks.base import LayerCurvature
-from .blocks.factory import adapters_for, make_block
-from .blocks.subsample import ExampleSubsample
 from .capture import CaptureHooks, FisherSource
 from .inversion_schedule import INVERSION_SCHEDULES
-from .likelihoods import likelihood_for
-from .quadratic_model import BatchEvaluator
-from .recording import BatchRecorder
+from .likelihoods import CRITERIA, likelihood_for
+from .quadratic_model import BatchEvaluator, replayable
 from .rules import DAMPING_RULES, STEP_RULES
 from .rules.base import StepInputs
 from .rules.damping import reduction_ratio
 from .spectra import block_summary
 from .validation import check_arguments
 
-SKIP_REASONS = ("nonfinite_loss", "nonfinite_gradient", "nonfinite_statistics", "nonfinite_update")
+SKIP_REASONS = ("nonfinite_loss", "nonfinite_gradient", "nonfinite_statistics", "nonfinite_update",
+                "loss_scale_overflow")
 TIME_KEYS = ("statistics", "inversion", "precondition", "rules", "fallback", "step_total")
 DEFAULT_FALLBACK_LR_SCALE = {"sgd": 1.0, "adam": 1e-2}
 # Defaults that depend on the step rule: under "quadratic" lr multiplies the step the model chooses
 # and momentum caps mu; under "fixed" they are the step size and heavy-ball coefficient themselves.
 RULE_DEFAULTS = {"quadratic": {"lr": 1.0, "momentum": 0.9}, "fixed": {"lr": 0.3, "momentum": 0.5}}
-FALLBACK_WARNING_SHARE = 0.1  # warn at construction when more of the trainable parameters have no block
 
 
 class FisherDescent(torch.optim.Optimizer):
@@ -67,12 +65,15 @@ class FisherDescent(torch.optim.Optimizer):
     See the README for every option; the short version:
 
     Args:
-        model: the ``nn.Module`` being trained. Its ``nn.Linear``, ``nn.Conv1d``/``nn.Conv2d``
-            (grouped too), ``nn.Embedding``, ``nn.MultiheadAttention`` (so torch's transformer
-            layers), ``nn.LayerNorm``, ``nn.BatchNorm*``, ``nn.GroupNorm``, ``nn.InstanceNorm*``
-            (affine) and ``nn.RMSNorm`` layers get curvature blocks; other parameters use ``fallback``.
-        loss_fn: the training criterion object with its own reduction (needed for
-            ``fisher='sampled'`` and ``'exact'``).
+        model: the ``nn.Module`` being trained.  Every trainable parameter gets the curvature block
+            of the operation that applies it in the training forward (a linear map in either weight
+            orientation, a convolution, an embedding lookup, a normalization, an elementwise scale or
+            shift; ``uses/``), whatever module makes the call; blocks are built at the first recorded
+            training forward.  Other parameters use ``fallback`` (``curvature_assignment()`` says which).
+        loss_fn: optional: the training criterion object.  Loss calls are found wherever they are
+            made (this object, ``F.cross_entropy``/``F.mse_loss``/``F.binary_cross_entropy_with_logits``
+            in the user's code or inside the model); without any, the curvature is taken at the
+            model's output as if ``loss_fn`` were applied to it.
         lr: step size on the preconditioned direction (per group).
         momentum: heavy-ball momentum on the preconditioned update (per group).
         weight_decay: L2 term added to the gradient before preconditioning (per group).
@@ -106,6 +107,10 @@ class FisherDescent(torch.optim.Optimizer):
             0.25 for convolutions, whose input factors dominate a refresh, 1.0 for every other layer.
     """
 
+    # GradScaler hands this optimizer the loss scale and its overflow check (torch.optim's convention),
+    # because the curvature statistics of a scaled backward carry the scale too.
+    _step_supports_amp_scaling = True
+
     def __init__(self, model: nn.Module, loss_fn=None, *, lr: Optional[float] = None,
                  momentum: Optional[float] = None, weight_decay: float = 0.0, damping: float = 1e-2,
                  fisher: str = "sampled", structure: str = "kfac", stats_interval: int = 10,
@@ -126,38 +131,33 @@ class FisherDescent(torch.optim.Optimizer):
                         seed=seed, param_groups=param_groups, weight_sharing=weight_sharing,
                         rule_interval=rule_interval, rule_batch_fraction=rule_batch_fraction,
                         stats_fraction=stats_fraction, inverse_schedule=inverse_schedule)
-        self.likelihood = _closed_form_likelihood(loss_fn)
-        if STEP_RULES[step_rule].needs_batch and self.likelihood is None:
-            raise ValueError(f"step_rule='quadratic' needs a criterion with a closed-form output Hessian "
-                             f"(nn.MSELoss, nn.CrossEntropyLoss, nn.BCEWithLogitsLoss), got "
-                             f"{type(loss_fn).__name__}; pass loss_fn, or use step_rule='fixed'")
-        source = None
-        if fisher != "empirical":
-            if loss_fn is None:
-                raise ValueError(f"loss_fn: fisher={fisher!r} needs the training criterion "
-                                 "(e.g. nn.CrossEntropyLoss()); pass loss_fn or use fisher='empirical'")
-            source = FisherSource(fisher, likelihood_for(loss_fn), fisher_samples, self._generator_for)
-        else:
+        if loss_fn is not None and isinstance(loss_fn, nn.Module) and (fisher != "empirical"
+                                                                       or STEP_RULES[step_rule].needs_batch):
+            likelihood_for(loss_fn)  # a clear ValueError for a criterion without a closed form
+        if fisher == "empirical":
             warnings.warn("fisher='empirical' uses the loss gradients themselves: it is not the curvature in "
                           "general and can point steps the wrong way near and far from a minimum "
                           "(Kunstner et al. 2019). Prefer fisher='sampled'.", stacklevel=2)
         if damping < 1e-6:
             warnings.warn(f"damping={damping:g} is very small: near-singular factors then make huge steps; "
                           "values around 1e-3..1e-1 are the usual range", stacklevel=2)
+        _refuse_sparse_embeddings(model)
 
+        self._defaults_checked = False
         defaults = dict(lr=lr, momentum=momentum, weight_decay=weight_decay, damping=damping,
                         max_step_kl=max_step_kl, fallback=fallback, fallback_lr_scale=fallback_lr_scale)
-        groups = param_groups if param_groups is not None else [{"params": list(model.parameters())}]
-        super().__init__(groups, defaults)
-        for group in self.param_groups:
-            check_arguments(**{key: group[key] for key in defaults})
-            if group["fallback_lr_scale"] is None:
-                group["fallback_lr_scale"] = DEFAULT_FALLBACK_LR_SCALE[group["fallback"]]
-
         self.model = _unwrapped(model)
-        self.fisher = fisher
+        self._seed = int(torch.initial_seed() if seed is None else seed)
         self.structure = structure
         self.weight_sharing = weight_sharing
+        self.stats_fraction = stats_fraction
+        self._capture = None
+        self._assignment = CurvatureAssignment(self.model, self, structure, weight_sharing, stats_fraction,
+                                               self._seed)
+        groups = param_groups if param_groups is not None else [{"params": list(model.parameters())}]
+        super().__init__(groups, defaults)  # every group goes through add_param_group
+
+        self.fisher = fisher
         self.stats_interval = stats_interval
         self.inverse_interval = inverse_interval
         self.stats_memory = stats_memory
@@ -167,7 +167,6 @@ class FisherDescent(torch.optim.Optimizer):
         self.step_rule = step_rule
         self.rule_interval = rule_interval
         self.rule_batch_fraction = rule_batch_fraction
-        self.stats_fraction = stats_fraction
         self.inverse_schedule = inverse_schedule
         self._inversions = INVERSION_SCHEDULES[inverse_schedule]()
         self.loss_fn = loss_fn
@@ -176,85 +175,87 @@ class FisherDescent(torch.optim.Optimizer):
         self.track_spectra = False
         # Set by ngopt.distributed to share statistics and inversions across ranks; None = one process.
         self.communicator = None
-        self._seed = int(torch.initial_seed() if seed is None else seed)
         self._generator: Optional[torch.Generator] = None
         self._steps = 0
         self._skipped = {reason: 0 for reason in SKIP_REASONS}
         self._times = {key: 0.0 for key in TIME_KEYS}
         self._last_update: dict = {}
-        self._warned_criterion = False
-        self._warned_replay = False
+        self._warned = set()
         self._applied: dict = {}
+        self._warned_fallback_share = False
 
-        self.blocks: Dict[str, LayerCurvature] = self._build_blocks()
-        self._warn_fallback_share()
-        self._hooks = CaptureHooks(self.model, list(self.blocks.values()), source, loss_fn)
-        self._hooks.armed = True
-        self._recorder = BatchRecorder(self.model, loss_fn)
-        self._recorder.armed = self._batch_due(0)
+        source = None if fisher == "empirical" else FisherSource(fisher, fisher_samples, self._generator_for)
+        self._capture = CaptureHooks(self.model, self._trainable(), source, loss_fn, on_forward=self._on_forward)
+        self._plan_capture()
         if isinstance(model, nn.parallel.DistributedDataParallel) and self.attach_data_parallel is not None:
             # Share statistics and inversions over DDP's own group, so that the user's loop needs
             # nothing beyond the DDP wrapping; ngopt.distributed.share_curvature(opt, ...) replaces it.
             self.attach_data_parallel(self, model.process_group)
 
-    # ------------------------------------------------------------------ construction
-    def _build_blocks(self) -> Dict[str, LayerCurvature]:
-        group_of = {p: i for i, g in enumerate(self.param_groups) for p in g["params"]}
-        layers = []
-        for name, module in self.model.named_modules():
-            if isinstance(module, nn.EmbeddingBag) and module.sparse and module.weight in group_of \
-                    and module.weight.requires_grad:
-                # The finiteness checks and the fallback rules work on dense gradients only.
-                raise ValueError(f"{name}: nn.EmbeddingBag(sparse=True) is not supported (sparse gradients); "
-                                 "use sparse=False or freeze it")
-            for layer in adapters_for(module, name or type(module).__name__):
-                if not layer.weight.requires_grad or layer.weight not in group_of:
-                    continue
-                if layer.has_bias and not layer.bias.requires_grad:
-                    layer.bias = None  # a frozen bias is left alone; the block covers the weight only
-                if layer.has_bias and group_of.get(layer.bias) != group_of[layer.weight]:
-                    raise ValueError(f"param_groups: {layer.name}: its weight and bias must be in the same group")
-                layers.append(layer)
-        blocks: Dict[str, LayerCurvature] = {}
-        for layer in _without_tied_parameters(layers):
-            blocks[layer.name] = make_block(layer, self.structure, self.state[layer.weight],
-                                            self.weight_sharing)
-        # One generator for all blocks, apart from the sampled targets' (seed + 1: a different stream).
-        self._subsample_generator = torch.Generator().manual_seed(self._seed + 1)
-        subsamples = {}
-        for block in blocks.values():
-            fraction = self.stats_fraction if self.stats_fraction is not None else block.layer.default_stats_fraction
-            if fraction < 1.0:
-                if fraction not in subsamples:
-                    subsamples[fraction] = ExampleSubsample(fraction, generator=self._subsample_generator)
-                block.subsample = subsamples[fraction]
-        self._block_group = {b: group_of[b.layer.weight] for b in blocks.values()}
-        self._block_params = {p for b in blocks.values() for p in b.layer.params()}
-        return blocks
+    # ------------------------------------------------------------------ parameters and their blocks
+    def add_param_group(self, param_group: dict) -> None:
+        """Add a group as ``torch.optim.Optimizer`` does; it trains as if given at construction."""
+        super().add_param_group(param_group)
+        group = self.param_groups[-1]
+        check_arguments(**{key: group[key] for key in self.defaults})
+        if group["fallback_lr_scale"] is None:
+            group["fallback_lr_scale"] = DEFAULT_FALLBACK_LR_SCALE[group["fallback"]]
+        self._group_of = {p: i for i, g in enumerate(self.param_groups) for p in g["params"]}
+        if self._capture is not None:
+            self._capture.track(p for p in group["params"] if p.requires_grad)
 
-    def _fallback_parameters_by_kind(self) -> Dict[str, int]:
-        """Trainable parameters outside every block, counted by the class of the module that holds them."""
-        holder = {}
-        for module in self.model.modules():
-            for param in module.parameters(recurse=False):
-                holder.setdefault(param, type(module).__name__)
-        counts: Dict[str, int] = {}
-        for group in self.param_groups:
-            for param in group["params"]:
-                if param.requires_grad and param not in self._block_params:
-                    kind = holder.get(param, "outside the model")
-                    counts[kind] = counts.get(kind, 0) + param.numel()
-        return dict(sorted(counts.items(), key=lambda item: -item[1]))
+    def group_index(self, param: torch.Tensor) -> int:
+        """The index of the param group holding ``param``."""
+        return self._group_of[param]
 
-    def _warn_fallback_share(self) -> None:
-        counts = self._fallback_parameters_by_kind()
-        outside = sum(counts.values())
-        total = sum(p.numel() for g in self.param_groups for p in g["params"] if p.requires_grad)
-        if total and outside > FALLBACK_WARNING_SHARE * total:
-            kinds = ", ".join(f"{kind} {count}" for kind, count in counts.items())
-            warnings.warn(f"{outside / total:.0%} of the trainable parameters ({outside} of {total}) have no "
-                          f"curvature block and take the fallback rule: {kinds}. print(opt) lists the blocks; "
-                          "the README's layer table lists the layer kinds with a block", stacklevel=3)
+    def _trainable(self) -> List[nn.Parameter]:
+        return [p for g in self.param_groups for p in g["params"] if p.requires_grad]
+
+    @property
+    def blocks(self) -> Dict[str, LayerCurvature]:
+        """The curvature blocks by name (empty until the first recorded training forward)."""
+        return self._assignment.blocks
+
+    def _block_group(self, block: LayerCurvature) -> dict:
+        return self.param_groups[self._group_of[block.layer.weight]]
+
+    def _on_forward(self, record) -> None:
+        """A recorded forward ended: give its calls their blocks (building those of parameters seen first)."""
+        before = len(self.blocks)
+        self._assignment.assign(record)
+        if len(self.blocks) != before or not self._warned_fallback_share:
+            if self._assignment.seen_forward and not self._warned_fallback_share:
+                self._warned_fallback_share = True
+                self._assignment.warn_fallback_share(self._trainable())
+
+    def assign_curvature(self, *args, **kwargs) -> Dict[str, ParameterCurvature]:
+        """Assign the curvature blocks now, from one forward of the model on ``args``/``kwargs``.
+
+        The first recorded training forward does this by itself; call it to see (or print) what each
+        parameter gets before training.  The forward runs in ``eval()`` mode under the current RNG
+        state, restored afterwards, so running statistics, dropout draws and the curvature
+        statistics are untouched.  Returns :meth:`curvature_assignment`.
+        """
+        modes = {m: m.training for m in self.model.modules()}
+        self.model.eval()
+        try:
+            with torch.random.fork_rng(devices=[]), torch.enable_grad():
+                self._capture.record_uses_of(self.model, args, kwargs)
+        finally:
+            for module, mode in modes.items():
+                module.train(mode)
+        return self.curvature_assignment()
+
+    def use_keys_of(self, block: LayerCurvature) -> list:
+        """The uses a block was built for, in the order of its terms (one entry unless tied)."""
+        return list(self._assignment.use_keys.get(block, []))
+
+    def curvature_assignment(self) -> Dict[str, ParameterCurvature]:
+        """Every trainable parameter by name: its block (name, use kind, structure), or the fallback rule and why.
+
+        Blocks are assigned at the first recorded training forward; before it, every entry says so.
+        """
+        return self._assignment.parameters(self._trainable())
 
     def _generator_for(self, device: torch.device) -> torch.Generator:
         if self._generator is None or self._generator.device != device:
@@ -272,37 +273,126 @@ class FisherDescent(torch.optim.Optimizer):
             settings = ", ".join(f"{k}={group[k]}" for k in ("lr", "momentum", "weight_decay", "damping",
                                                                "max_step_kl", "fallback"))
             lines.append(f"  group {i}: {settings}")
+        assignment = self.curvature_assignment()
+        if not self._assignment.seen_forward:
+            lines.append("  curvature blocks: assigned at the first training forward (how each parameter is used)")
         for name, block in self.blocks.items():
-            lines.append(f"  {name}: {block.describe()}")
-        others = [p for g in self.param_groups for p in g["params"] if p not in self._block_params]
-        if others:
-            count = sum(p.numel() for p in others)
-            kinds = ", ".join(f"{kind} {n}" for kind, n in self._fallback_parameters_by_kind().items())
-            lines.append(f"  fallback rule: {len(others)} tensors, {count} parameters"
-                         + (f" ({kinds})" if kinds else ""))
+            members = ", ".join(n for n, a in assignment.items() if a.block == name)
+            lines.append(f"  {name}: {block.describe()}  <- {members}")
+        fallback = [(name, a) for name, a in assignment.items() if a.fallback]
+        if fallback and self._assignment.seen_forward:
+            count = sum(self._numel[name] for name, _ in fallback)
+            lines.append(f"  fallback rule ({self.param_groups[0]['fallback']}): {len(fallback)} tensors, "
+                         f"{count} parameters")
+            for name, a in fallback:
+                lines.append(f"    {name} ({self._numel[name]}): {a.reason}")
         return "\n".join(lines)
+
+    @property
+    def _numel(self) -> Dict[str, int]:
+        return {self._assignment.names.get(p, "(outside the model)"): p.numel() for p in self._trainable()}
 
     # ------------------------------------------------------------------ the step
     @torch.no_grad()
     def step(self, closure: Optional[Callable[[], torch.Tensor]] = None):
-        """One natural-gradient step; returns ``closure()``'s loss when a closure is given."""
+        """One natural-gradient step; returns ``closure()``'s loss when a closure is given.
+
+        Driven by ``torch.amp.GradScaler.step``, it reads the scaler's ``found_inf`` and
+        ``grad_scale``: an overflow step is no step at all (nothing changes, the step count
+        included, as for torch's own optimizers), and the statistics are divided by the loss scale.
+        """
         loss = None
         if closure is not None:
             with torch.enable_grad():
                 loss = closure()
         started = time.perf_counter()
+        scale = self._loss_scale()
+        if scale is None:  # the scaler found Inf/NaN gradients: it skips this step and lowers its scale
+            self._capture.discard()
+            self._skipped["loss_scale_overflow"] += 1
+            return loss
+        if not self._assignment.seen_forward and any(p.grad is not None for p in self._trainable()):
+            self._capture.discard()
+            raise RuntimeError("step() before any recorded training forward: ngopt assigns curvature blocks by how "
+                               "the model uses its parameters, seen in a training forward (model.train(), "
+                               "gradients enabled, outside opt.no_capture()); this step's forward ran in eval() "
+                               "mode, under torch.no_grad(), inside opt.no_capture() or after remove_hooks()")
         step_index = self._steps
-        batch = self._recorder.take()
-        reason = self._attempt(loss, step_index, batch, closure)
+        batch = self._capture.latest_batch()
+        if batch is not None and scale != 1.0:
+            for call in batch.losses:
+                call.rescale(1.0 / scale)
+        self._check_found_losses()
+        reason = self._attempt(loss, step_index, batch, closure, scale)
         if loss is not None and self._last_update:
             self._last_update["loss"] = float(loss)
         if reason is not None:
             self._skip(reason)
         self._steps += 1
-        self._hooks.armed = self._statistics_due(self._steps)
-        self._recorder.armed = self._batch_due(self._steps)
+        self._plan_capture()
         self._times["step_total"] += time.perf_counter() - started
         return loss
+
+    def _loss_scale(self) -> Optional[float]:
+        """The factor the loss was scaled by (1 without a scaler); None when the scaler found an overflow."""
+        found_inf = getattr(self, "found_inf", None)
+        if found_inf is None:
+            return 1.0
+        if float(found_inf) > 0:
+            return None
+        grad_scale = getattr(self, "grad_scale", None)
+        if grad_scale is not None:
+            # The gradients are still scaled: unscale them as GradScaler.unscale_ would (float64 reciprocal).
+            scale = float(grad_scale)
+            grads = [p.grad for p in self._trainable() if p.grad is not None]
+            if grads:
+                torch._foreach_mul_(grads, float(1.0 / torch.tensor(scale, dtype=torch.float64)))
+            return scale
+        seen = self._capture.loss_scale_seen()
+        if seen is None:
+            if self._statistics_due(self._steps) or self._batch_due(self._steps):
+                self._warn_once("scale", "the loss scaler's gradients were unscaled before step() "
+                                "(scaler.unscale_(opt)), and the loss scale was not seen on the backward "
+                                "(scaler.scale(loss).backward()): the curvature statistics keep that scale. "
+                                "Call scaler.scale(loss).backward() right after the forward, without a "
+                                "torch function mode around it.")
+            return 1.0
+        return seen
+
+    def _check_found_losses(self) -> None:
+        """A refresh with the sampled or exact Fisher needs a loss call (or a criterion to assume)."""
+        if self.fisher == "empirical":
+            return
+        for record in self._capture.records:
+            if not record.statistics or record.losses:
+                continue
+            if record.unsupported_losses:
+                self._capture.discard()
+                raise RuntimeError(f"fisher={self.fisher!r}: the training loss has no closed-form curvature: "
+                                   f"{record.unsupported_losses[0]}. Use fisher='empirical'.")
+            if record.calls and self.loss_fn is None:
+                self._capture.discard()
+                raise RuntimeError(f"fisher={self.fisher!r} found no loss call after the recorded forward "
+                                   "(F.cross_entropy, F.mse_loss, F.binary_cross_entropy_with_logits or their "
+                                   "criterion objects, in your code or inside the model); pass loss_fn=... to "
+                                   "say which likelihood the model's output has, or use fisher='empirical'")
+        if self._capture.forwards_without_loss:
+            self._capture.forwards_without_loss = 0
+            self._warn_once("output", f"fisher={self.fisher!r}: no loss call was seen after a recorded training "
+                            f"forward, so the curvature was taken at the model's output as if "
+                            f"{type(self.loss_fn).__name__} were applied to it directly. That is wrong if your "
+                            "code reshapes, slices or scales the output first, or computes the loss with a "
+                            "function ngopt does not know.")
+
+    def _warn_once(self, key: str, message: str) -> None:
+        if key not in self._warned:
+            self._warned.add(key)
+            warnings.warn(message, stacklevel=4)
+
+    def _plan_capture(self) -> None:
+        """What the forwards before the next step record: statistics, uses, the batch."""
+        self._capture.plan(statistics=self._statistics_due(self._steps),
+                           uses=not self._assignment.seen_forward, batch=self._batch_due(self._steps))
 
     def _statistics_due(self, step_index: int) -> bool:
         return step_index % self.stats_interval == 0 or not all(b.has_statistics for b in self.blocks.values())
@@ -311,19 +401,19 @@ class FisherDescent(torch.optim.Optimizer):
         """Whether a rule will evaluate the loss on the batch of step ``step_index``."""
         return self.rules.step.wants_batch(step_index) or self.rules.damping.wants_ratio(step_index)
 
-    def _attempt(self, loss, step_index: int, batch, closure) -> Optional[str]:
+    def _attempt(self, loss, step_index: int, batch, closure, loss_scale: float = 1.0) -> Optional[str]:
         """Compute the whole step, then write it; return a skip reason instead of writing."""
         if loss is not None and not self._finite_everywhere(loss):
-            self._hooks.discard()
+            self._capture.discard()
             return "nonfinite_loss"
         grads = [p.grad for g in self.param_groups for p in g["params"] if p.grad is not None]
         if not _all_finite(grads):
-            self._hooks.discard()
+            self._capture.discard()
             return "nonfinite_gradient"
 
         try:
             tick = time.perf_counter()
-            statistics, forwards = self._new_statistics()
+            statistics, forwards = self._new_statistics(loss_scale)
             self._times["statistics"] += time.perf_counter() - tick
             if statistics is None:
                 return "nonfinite_statistics"
@@ -333,7 +423,7 @@ class FisherDescent(torch.optim.Optimizer):
             if inverses is None:
                 return "nonfinite_statistics"
             tick = time.perf_counter()
-            if not self._add_projected_statistics(statistics, inverses, forwards):
+            if not self._add_projected_statistics(statistics, inverses, forwards, loss_scale):
                 return "nonfinite_statistics"
             self._times["statistics"] += time.perf_counter() - tick
         finally:
@@ -384,20 +474,18 @@ class FisherDescent(torch.optim.Optimizer):
             finite = self.communicator.average_scalars(float(finite))[0] == 1.0
         return finite
 
-    def _new_statistics(self):
+    def _new_statistics(self, loss_scale: float = 1.0):
         """``({block: blended statistics}, {block: forwards seen})``; statistics None if non-finite.
 
         The captures stay pending: blocks with projected statistics need them once more.
         """
-        forwards = self._hooks.hand_over()
-        if self._hooks.forwards_without_criterion:
-            self._warn_criterion_not_called()
+        forwards = self._capture.hand_over()
         batches = {}
         for block in self.blocks.values():
             if block in forwards:
                 batch = block.batch_statistics(forwards[block])
                 if batch is not None:
-                    batches[block] = batch
+                    batches[block] = block.unscaled(batch, loss_scale)
         if self.communicator is not None:
             batches = self.communicator.average_statistics(self, batches)
         statistics = {block: block.blend(batch, self.stats_memory) for block, batch in batches.items()}
@@ -406,7 +494,7 @@ class FisherDescent(torch.optim.Optimizer):
             return None, forwards
         return statistics, forwards
 
-    def _add_projected_statistics(self, statistics, inverses, forwards) -> bool:
+    def _add_projected_statistics(self, statistics, inverses, forwards, loss_scale: float = 1.0) -> bool:
         """Second phase for blocks whose statistics live in a basis the inversion makes (EKFAC).
 
         Adds them to ``statistics``; False if any is non-finite.
@@ -420,7 +508,7 @@ class FisherDescent(torch.optim.Optimizer):
             if block in statistics and block in forwards:
                 batch = block.projected_batch_statistics(views[block], forwards[block])
                 if batch is not None:
-                    batches[block] = batch
+                    batches[block] = block.unscaled(batch, loss_scale)
         if self.communicator is not None:
             batches = self.communicator.average_statistics(self, batches, projected=True)
         new = {}
@@ -449,7 +537,7 @@ class FisherDescent(torch.optim.Optimizer):
             due = self._inversions.due(block, step_index, self.inverse_interval, blocks)
             fresh = block in statistics
             if (due and (fresh or block.has_statistics)) or (fresh and not block.has_inverse):
-                damping = self.param_groups[self._block_group[block]]["damping"]
+                damping = self._block_group(block)["damping"]
                 jobs.append((block, statistics[block] if fresh else block.state, damping))
         if self.communicator is not None:
             inverses = self.communicator.invert(self, jobs)
@@ -470,7 +558,7 @@ class FisherDescent(torch.optim.Optimizer):
             layer = block.layer
             if layer.weight.grad is None:
                 continue
-            group = self.param_groups[self._block_group[block]]
+            group = self._block_group(block)
             weight_grad = layer.weight.grad
             bias_grad = layer.bias.grad if layer.has_bias else None
             if group["weight_decay"]:
@@ -485,7 +573,7 @@ class FisherDescent(torch.optim.Optimizer):
                 missing.append(block)
                 proposal = grad_matrix
             directions[block] = (grad_matrix, proposal)
-            per_group.setdefault(self._block_group[block], []).append(block)
+            per_group.setdefault(self._group_of[layer.weight], []).append(block)
         dots = {}
         if directions:
             # One reduction for all the scalars the step needs: <p, g>, |p|^2, |g|^2 per block.
@@ -532,7 +620,8 @@ class FisherDescent(torch.optim.Optimizer):
         """Per param group, the fallback rule's changes to the parameters outside every block, unwritten."""
         parts = []
         for group in self.param_groups:
-            params = [p for p in group["params"] if p.grad is not None and p not in self._block_params]
+            covered = self._assignment.block_of
+            params = [p for p in group["params"] if p.grad is not None and p not in covered]
             if not params:
                 continue
             grads = [p.grad for p in params]
@@ -557,27 +646,14 @@ class FisherDescent(torch.optim.Optimizer):
             return
         names = ", ".join(f"{b.layer.name} ({b.layer.kind})" for b in blocks)
         if recorded:
-            why = ("the capture hooks recorded this step's forward but not these layers: their parameters are "
-                   "used outside the layer's own forward (e.g. a functional call such as F.linear(x, "
-                   "layer.weight)), or their output does not reach the model output the loss is applied to")
+            why = ("the recorded forward did not apply these parameters, or their outputs do not reach "
+                   "the loss (their gradient then comes from elsewhere, e.g. a penalty in your loss)")
         else:
-            why = ("no layer call of this step's forward/backward was recorded: the model ran in eval() mode, "
-                   "under torch.no_grad() or opt.no_capture(), after remove_hooks(), or its layers' parameters "
-                   "are used outside the layers' own forward")
+            why = ("no forward of this step was recorded: the model ran in eval() mode, under "
+                   "torch.no_grad() or opt.no_capture(), or after remove_hooks()")
         raise RuntimeError(f"{names}: a gradient but no curvature statistics after a refresh was due; {why}. "
                            "Train such parameters with another optimizer (leave them out of this one's "
-                           "param_groups), or call the layer as a module in a recorded training forward.")
-
-    def _warn_criterion_not_called(self) -> None:
-        if self._warned_criterion:
-            return
-        self._warned_criterion = True
-        warnings.warn(f"fisher={self.fisher!r}: the criterion object passed as loss_fn "
-                      f"({type(self._hooks.loss_fn).__name__}) was not called after a recorded training "
-                      "forward, so the curvature was taken at the model's output as if the criterion were "
-                      "applied to it directly. That is wrong if your code reshapes, slices or scales the "
-                      "output first: compute the loss with that very object (loss_fn(z, target)), not with "
-                      "a functional form such as F.cross_entropy or a second instance.", stacklevel=5)
+                           "param_groups), or apply them in the recorded training forward.")
 
     def _skip(self, reason: str) -> None:
         self._skipped[reason] += 1
@@ -595,26 +671,23 @@ class FisherDescent(torch.optim.Optimizer):
             return None
         if closure is not None and not steered:
             return None  # the damping rule measures the closure's loss itself
-        if batch is None or not batch.replayable:
+        problem = replayable(batch)
+        if problem:
             if closure is None or steered:
-                self._warn_not_replayable(batch, closure)
+                self._warn_not_replayable(problem)
             return None
         fraction = self.rule_batch_fraction if steered else 1.0
-        return BatchEvaluator(self.model, self.loss_fn, self.likelihood, batch, fraction)
+        return BatchEvaluator(self.model, batch, fraction)
 
-    def _warn_not_replayable(self, batch, closure) -> None:
-        if self._warned_replay:
-            return
-        self._warned_replay = True
-        what = ("no training forward was recorded on this step" if batch is None else
-                "the criterion's input is not the model's output (or an element or reshape of it)")
+    def _warn_not_replayable(self, problem: str) -> None:
         steered = self.rules.step.needs_batch
         rule = f"step_rule={self.step_rule!r}" if steered else f"damping_rule={self.damping_rule!r}"
         fallback = "the step falls back to the blocks' own model with the KL bound" if steered \
             else "lambda stays as it is"
-        warnings.warn(f"{rule} evaluates the loss on the recorded batch, but {what}, so {fallback}. Apply "
-                      "loss_fn to the model's output (or a dict/tuple entry or view of it), or pass "
-                      "step(closure) for the damping rule.", stacklevel=5)
+        self._warn_once("replay", f"{rule} evaluates the loss on the recorded batch, but {problem}, so {fallback}. "
+                        "Compute the loss with F.cross_entropy/F.mse_loss/F.binary_cross_entropy_with_logits (or "
+                        "their criterion objects) from the model's output, or pass step(closure) for the "
+                        "damping rule.")
 
     def _adapt_damping(self, result, evaluator, batch, closure, loss) -> None:
         """Levenberg-Marquardt: the loss change on the same rows against the quadratic model's prediction."""
@@ -626,7 +699,7 @@ class FisherDescent(torch.optim.Optimizer):
             with self.no_capture(), torch.enable_grad():
                 after = float(closure().detach())
         elif evaluator is not None:
-            before = result.loss_before if result.loss_before is not None else batch.loss_value
+            before = result.loss_before if result.loss_before is not None else evaluator.recorded_loss()
             after = evaluator.loss()
         if before is None:
             return
@@ -643,7 +716,7 @@ class FisherDescent(torch.optim.Optimizer):
         terms = []
         for block, delta in self._applied.items():
             layer = block.layer
-            group = self.param_groups[self._block_group[block]]
+            group = self._block_group(block)
             grad = layer.gradient_matrix(layer.weight.grad, layer.bias.grad if layer.has_bias else None)
             curved = block.damped_product(delta, group["damping"])
             terms.append((grad * delta).sum(dtype=torch.float64) + 0.5 * (delta * curved).sum(dtype=torch.float64))
@@ -653,13 +726,11 @@ class FisherDescent(torch.optim.Optimizer):
     @contextlib.contextmanager
     def no_capture(self):
         """Within this block, forward passes record nothing (e.g. evaluation or probing in train mode)."""
-        armed, self._hooks.armed = self._hooks.armed, False
-        recording, self._recorder.armed = self._recorder.armed, False  # nor is the batch replaced
+        armed, self._capture.armed = self._capture.armed, False  # nor is the recorded batch replaced
         try:
             yield
         finally:
-            self._hooks.armed = armed
-            self._recorder.armed = recording
+            self._capture.armed = armed
 
     @property
     def steps_taken(self) -> int:
@@ -668,14 +739,14 @@ class FisherDescent(torch.optim.Optimizer):
 
     def diagnostics(self) -> dict:
         """A plain-dict snapshot of the latest curvature diagnostics (keys documented in the README)."""
-        layers = {name: block_summary(block, self.param_groups[self._block_group[block]]["damping"],
+        layers = {name: block_summary(block, self._block_group(block)["damping"],
                                       with_spectra=self.track_spectra)
                   for name, block in self.blocks.items()}
         update = {k: v for k, v in self._last_update.items() if k != "trust_scale_by_group"}
         update.setdefault("reduction_ratio", None)
         return {"step": self._steps, "skipped_steps": sum(self._skipped.values()),
                 "skip_reasons": dict(self._skipped), "layers": layers, "update": update,
-                "time": dict(self._times, **self._hooks.seconds)}
+                "time": dict(self._times, **self._capture.seconds)}
 
     def state_dict(self) -> dict:
         state = super().state_dict()
@@ -685,19 +756,15 @@ class FisherDescent(torch.optim.Optimizer):
             "generator_device": None if self._generator is None else str(self._generator.device),
             "step_rule": self.rules.step.state_dict(), "damping_rule": self.rules.damping.state_dict(),
         }
-        if self._subsampled():
-            state["natural_gradient"]["subsample_generator_state"] = self._subsample_generator.get_state()
+        state["natural_gradient"]["subsample_generator_state"] = self._assignment.subsample_generator.get_state()
         return state
-
-    def _subsampled(self) -> bool:
-        return any(block.subsample is not None for block in self.blocks.values())
 
     def load_state_dict(self, state_dict: dict) -> None:
         state_dict = dict(state_dict)
         extra = state_dict.pop("natural_gradient", None)
         super().load_state_dict(state_dict)
         for block in self.blocks.values():
-            block.state = self.state[block.layer.weight]
+            block.rebind(self.state[block.layer.weight])
         if extra is not None:
             self._steps = int(extra["steps"])
             self._skipped.update(extra["skipped"])
@@ -708,15 +775,14 @@ class FisherDescent(torch.optim.Optimizer):
                 self._generator.set_state(extra["generator_state"].to(torch.uint8).cpu())
             self.rules.step.load_state_dict(extra.get("step_rule", {}))
             self.rules.damping.load_state_dict(extra.get("damping_rule", {}))
-            if self._subsampled() and extra.get("subsample_generator_state") is not None:
-                self._subsample_generator.set_state(extra["subsample_generator_state"].to(torch.uint8).cpu())
-        self._hooks.armed = self._statistics_due(self._steps)
-        self._recorder.armed = self._batch_due(self._steps)
+            if extra.get("subsample_generator_state") is not None:
+                self._assignment.subsample_generator.set_state(
+                    extra["subsample_generator_state"].to(torch.uint8).cpu())
+        self._plan_capture()
 
     def remove_hooks(self) -> None:
         """Detach the capture and recording hooks from the model (the optimizer then only preconditions)."""
-        self._hooks.remove()
-        self._recorder.remove()
+        self._capture.remove()
 
     # ------------------------------------------------------------------ what a communicator needs
     #: ``attach_data_parallel(opt, process_group)`` runs at construction for a DistributedDataParallel
@@ -738,8 +804,8 @@ class FisherDescent(torch.optim.Optimizer):
 
         Nothing is drawn with ``fisher='empirical'``, so there it has no effect.
         """
-        if self._hooks.source is not None:
-            self._hooks.source.generator_for = self._generator_for if generator_for is None else generator_for
+        if self._capture.source is not None:
+            self._capture.source.generator_for = self._generator_for if generator_for is None else generator_for
 
 
 @dataclass
@@ -760,41 +826,21 @@ class _FallbackUpdate:
             state[param].update(entries)
 
 
-def _closed_form_likelihood(loss_fn):
-    """The criterion's closed-form likelihood, or None for criteria without one."""
-    try:
-        return likelihood_for(loss_fn) if loss_fn is not None else None
-    except ValueError:
-        return None
-
-
 def _finite_numbers(values: dict) -> bool:
     return all(math.isfinite(v) for v in values.values() if isinstance(v, float))
+
 
 def _all_finite(tensors: List[torch.Tensor]) -> bool:
     """Whether every entry of every tensor is finite: one fused reduction and one host sync."""
     return not tensors or bool(torch.isfinite(torch.stack(torch._foreach_norm(tensors))).all())
 
 
-def _without_tied_parameters(layers):
-    """Layers whose parameters no other layer uses; tied ones go to the fallback rule, with a warning.
-
-    A tied weight (e.g. an embedding reused as the output layer) gets gradients
-    from two layer kinds at once, which neither block's curvature describes.
-    """
-    users: Dict[nn.Parameter, List[str]] = {}
-    for layer in layers:
-        for param in layer.params():
-            users.setdefault(param, []).append(layer.name)
-    kept = []
-    for layer in layers:
-        shared = sorted({name for p in layer.params() for name in users[p] if name != layer.name})
-        if shared:
-            warnings.warn(f"{layer.name}: its parameters are shared with {', '.join(shared)}; tied parameters "
-                          "get no curvature block and use the fallback rule", stacklevel=4)
-            continue
-        kept.append(layer)
-    return kept
+def _refuse_sparse_embeddings(model: nn.Module) -> None:
+    """Sparse gradients are refused at the door: the finiteness checks and fallback rules need dense ones."""
+    for name, module in model.named_modules():
+        if isinstance(module, (nn.Embedding, nn.EmbeddingBag)) and module.sparse and module.weight.requires_grad:
+            raise ValueError(f"{name}: {type(module).__name__}(sparse=True) is not supported (sparse gradients); "
+                             "use sparse=False, or freeze it (weight.requires_grad_(False))")
 
 
 def _unwrapped(model: nn.Module) -> nn.Module:

@@ -45,4 +45,5 @@ def test_torch_layers_model_computes_the_built_in_transformer_and_every_paramete
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # no fallback-share warning
         opt = ngopt.FisherDescent(model, TASKS["corpus_torch_transformer"].make_loss())
+        opt.assign_curvature(tokens)
     assert {p for block in opt.blocks.values() for p in block.layer.params()} == set(model.parameters())

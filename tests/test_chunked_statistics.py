@@ -17,7 +17,7 @@ from torch import nn
 import ngopt
 from ngopt.blocks import rows as rows_module
 from ngopt.blocks.factory import make_block
-from ngopt.blocks.layers import adapter_for
+from use_support import adapter_for
 from ngopt.blocks.rows import HeldRows, example_chunks
 
 RTOL = 1e-12
@@ -39,7 +39,7 @@ def relative(a, b):
 def conv_and_rows(generator, groups=1, **settings):
     conv = nn.Conv2d(4, 6, groups=groups, **settings).double()
     inputs = torch.randn(7, 4, 9, 8, dtype=torch.float64, generator=generator)
-    layer = adapter_for(conv, "conv")
+    layer = adapter_for(conv, "conv", inputs)
     output_shape = conv(inputs).shape
     grads = layer.output_rows(torch.randn((2,) + tuple(output_shape), dtype=torch.float64, generator=generator))
     return conv, layer, inputs, grads
@@ -123,8 +123,8 @@ def test_optimizer_factor_equals_the_unfold_reference_of_the_recorded_batch(monk
 
 def test_an_input_changed_in_place_after_recording_is_an_error():
     conv = nn.Conv2d(2, 3, 3)
-    layer = adapter_for(conv, "conv")
     inputs = torch.randn(2, 2, 5, 5)
+    layer = adapter_for(conv, "conv", inputs)
     held = layer.recorded_rows(inputs)
     inputs.mul_(2.0)
     with pytest.raises(RuntimeError, match="modified in place"):
@@ -137,7 +137,7 @@ def test_chunked_batch_norm_pairs_equal_the_whole_batch_ones(monkeypatch, struct
     generator = torch.Generator().manual_seed(2)
     norm = nn.BatchNorm2d(3).double()
     inputs = 2.0 * torch.randn(6, 3, 5, 4, dtype=torch.float64, generator=generator) + 1.0
-    layer = adapter_for(norm, "norm")
+    layer = adapter_for(norm, "norm", inputs)
     grads = layer.output_rows(torch.randn((2,) + tuple(inputs.shape), dtype=torch.float64, generator=generator))
     x_hat = F.batch_norm(inputs, None, None, training=True, eps=norm.eps)  # the whole batch's x_hat
     whole = x_hat.reshape(6, 3, -1).transpose(1, 2)

@@ -25,7 +25,10 @@ def quiet_optimizer(model, loss_fn, **kwargs):
     kwargs = {"step_rule": "fixed", "damping_rule": "fixed", **kwargs}  # the rules these tests were written for
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return ngopt.FisherDescent(model, loss_fn, **kwargs)
+        opt = ngopt.FisherDescent(model, loss_fn, **kwargs)
+    first = model[0]  # the blocks, from one forward on an example batch
+    opt.assign_curvature(torch.zeros(1, first.in_features, dtype=first.weight.dtype))
+    return opt
 
 
 def mlp(dtype=torch.float64, seed=0):

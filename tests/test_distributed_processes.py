@@ -220,13 +220,17 @@ def _resync_run(rank, world):
 
 
 def _mismatched_setup(rank):
-    """Rank 1 builds a wider layer: share_curvature must refuse on both ranks."""
+    """Rank 1 builds a wider layer: the first step with blocks (assigned by the first forward) must refuse on
+    both ranks, before any statistics travel."""
     import ngopt.distributed as nd
     torch.manual_seed(0)
     model = nn.Sequential(nn.Linear(8, 12 + rank), nn.Tanh(), nn.Linear(12 + rank, 5))
-    opt = make_optimizer(model, nn.CrossEntropyLoss())
+    loss_fn = nn.CrossEntropyLoss()
+    opt = make_optimizer(model, loss_fn)
+    nd.share_curvature(opt)
+    loss_fn(model(torch.randn(4, 8)), torch.tensor([0, 1, 2, 3])).backward()
     try:
-        nd.share_curvature(opt)
+        opt.step()
     except ValueError as exc:
         return str(exc)
     return None

@@ -29,7 +29,9 @@ def make(schedule, interval, seed=0, **kwargs):
                    inverse_schedule=schedule, seed=1, **kwargs)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return model, ngopt.FisherDescent(model, nn.CrossEntropyLoss(), **options)
+        opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss(), **options)
+    opt.assign_curvature(torch.zeros(1, 6, dtype=DTYPE))  # blocks now, before the first training step
+    return model, opt
 
 
 def batches(steps, seed=3):

@@ -19,7 +19,7 @@ import ngopt
 
 
 class FunctionalHead(nn.Module):
-    """Uses ``head.weight`` through ``F.linear``: the module hook of ``head`` never sees it."""
+    """Applies ``head.weight`` through ``F.linear``: the ``head`` module's own forward never runs."""
 
     def __init__(self):
         super().__init__()
@@ -30,37 +30,70 @@ class FunctionalHead(nn.Module):
         return nn.functional.linear(torch.tanh(self.body(x)), self.head.weight, self.head.bias)
 
 
+class ModuleHead(FunctionalHead):
+    def forward(self, x):
+        return self.head(torch.tanh(self.body(x)))
+
+
 def batch(n=8, seed=90):
     generator = torch.Generator().manual_seed(seed)
     return torch.randn(n, 4, generator=generator), torch.randint(0, 3, (n,), generator=generator)
 
 
-def test_a_layer_used_outside_its_forward_is_an_error_naming_it_and_nothing_moves():
-    loss_fn = nn.CrossEntropyLoss()  # ngopt hooks this very object
-    torch.manual_seed(91)
-    model = FunctionalHead()
-    opt = ngopt.FisherDescent(model, loss_fn)
-    before = copy.deepcopy(model.state_dict())
+def train(model, opt, loss_fn, steps=4):
     x, y = batch()
-    loss_fn(model(x), y).backward()
-    with pytest.raises(RuntimeError, match=r"head \(linear\).*outside the layer's own forward"):
+    for _ in range(steps):
+        opt.zero_grad()
+        loss_fn(model(x), y).backward()
         opt.step()
-    for name, value in model.state_dict().items():
-        assert torch.equal(value, before[name]), name
-    assert opt.steps_taken == 0 and not opt.blocks["body"].has_statistics
+
+
+def test_a_layer_applied_through_the_functional_api_gets_the_block_its_module_gets():
+    # A block follows the operation, not the module: F.linear(x, head.weight, head.bias) is the same
+    # linear map as head(x), so the same block and, step for step, the same trajectory.
+    torch.manual_seed(91)
+    functional = FunctionalHead()
+    module = ModuleHead()
+    module.load_state_dict(functional.state_dict())
+    runs = []
+    for model in (functional, module):
+        loss_fn = nn.CrossEntropyLoss()
+        opt = ngopt.FisherDescent(model, loss_fn, seed=0)
+        train(model, opt, loss_fn)
+        runs.append(opt)
+    assert [(n, b.describe()) for n, b in runs[0].blocks.items()] == \
+        [(n, b.describe()) for n, b in runs[1].blocks.items()] == \
+        [("body", "linear kfac [6 x 5]"), ("head", "linear kfac [3 x 7]")]
+    for p, q in zip(functional.parameters(), module.parameters()):
+        assert torch.equal(p, q)  # one process, the same operations in the same order
 
 
 def test_an_unrecorded_first_step_is_an_error_and_an_unused_layer_is_not():
-    loss_fn = nn.CrossEntropyLoss()  # ngopt hooks this very object
+    loss_fn = nn.CrossEntropyLoss()
     torch.manual_seed(92)
     model = nn.Sequential(nn.Linear(4, 6), nn.Tanh(), nn.Linear(6, 3))
     opt = ngopt.FisherDescent(model, loss_fn)
+    before = copy.deepcopy(model.state_dict())
     x, y = batch()
     model.eval()
     loss_fn(model(x), y).backward()
-    with pytest.raises(RuntimeError, match=r"0 \(linear\), 2 \(linear\).*no layer call.*recorded.*eval\(\)"):
+    with pytest.raises(RuntimeError, match=r"step\(\) before any recorded training forward.*eval\(\)"):
         opt.step()
-    # A layer left out of this forward has a zero gradient (zero_grad(set_to_none=False)): no error.
+    for name, value in model.state_dict().items():
+        assert torch.equal(value, before[name]), name
+    # Blocks assigned from an example batch, then a refresh whose forward was not recorded: the
+    # blocks with a gradient and no statistics are named, and nothing moves.
+    opt.assign_curvature(x)
+    opt.zero_grad()
+    loss_fn(model(x), y).backward()
+    with pytest.raises(RuntimeError, match=r"0 \(linear\), 2 \(linear\): a gradient but no curvature statistics"):
+        opt.step()
+    for name, value in model.state_dict().items():
+        assert torch.equal(value, before[name]), name
+    assert opt.steps_taken == 0
+
+    # A layer left out of the forward has no use: the fallback rule, and with a zero gradient
+    # (zero_grad(set_to_none=False)) nothing to warn about.
     class WithSpare(nn.Module):
         def __init__(self):
             super().__init__()
@@ -78,16 +111,24 @@ def test_an_unrecorded_first_step_is_an_error_and_an_unused_layer_is_not():
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         opt.step()
-    assert opt.blocks["used.0"].has_statistics and not opt.blocks["spare"].has_statistics
+    assert opt.blocks["used.0"].has_statistics and "spare" not in opt.blocks
+    assignment = opt.curvature_assignment()
+    assert assignment["spare.weight"].fallback
+    assert assignment["spare.weight"].reason == "not applied in any recorded training forward"
+    assert assignment["used.0.weight"] == assignment["used.0.bias"]
+    assert (assignment["used.0.weight"].block, assignment["used.0.weight"].kind) == ("used.0", "linear")
 
 
-def test_more_than_a_tenth_on_the_fallback_rule_is_a_warning_naming_the_kinds():
-    loss_fn = nn.CrossEntropyLoss()  # ngopt hooks this very object
+def test_more_than_a_tenth_on_the_fallback_rule_is_a_warning_naming_the_largest():
+    loss_fn = nn.CrossEntropyLoss()
     model = nn.Sequential(nn.Linear(4, 6), nn.PReLU(6), nn.Linear(6, 6), nn.Linear(6, 3))
+    x = torch.randn(5, 4)
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # 6 of 99 parameters (6%): no warning
         opt = ngopt.FisherDescent(model, loss_fn)
-    assert "fallback rule: 1 tensors, 6 parameters (PReLU 6)" in repr(opt)
+        opt.assign_curvature(x)
+    assert "fallback rule (sgd): 1 tensors, 6 parameters" in repr(opt)
+    assert "1.weight (6): applied by prelu, which has no curvature block" in repr(opt)
 
     class Pairwise(nn.Module):
         def __init__(self):
@@ -98,9 +139,12 @@ def test_more_than_a_tenth_on_the_fallback_rule_is_a_warning_naming_the_kinds():
         def forward(self, x):
             return self.out(self.pair(x, x))
 
-    with pytest.warns(UserWarning, match=r"83% of the trainable parameters \(85 of 103\).*Bilinear 85"):
-        opt = ngopt.FisherDescent(Pairwise(), nn.CrossEntropyLoss())
-    assert "(Bilinear 85)" in repr(opt)
+    opt = ngopt.FisherDescent(Pairwise(), nn.CrossEntropyLoss())
+    # the count by hand: Bilinear(4, 4, 5) 80 + 5, Linear(5, 3) 18
+    with pytest.warns(UserWarning, match=r"83% of the trainable parameters \(85 of 103\).*the largest: "
+                                         r"pair.weight \(80: applied by bilinear"):
+        opt.assign_curvature(x)
+    assert "pair.bias (5): applied by bilinear, which has no curvature block" in repr(opt)
 
 
 def test_a_cnn_with_group_norm_and_a_depthwise_convolution_has_no_fallback_parameters():

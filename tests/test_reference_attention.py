@@ -111,7 +111,7 @@ def test_capture_leaves_outputs_and_gradients_bit_identical(setting):
     assert torch.equal(captured[0], reference[0])
     for name, grad in reference[1].items():
         assert torch.equal(captured[1][name], grad), name
-    assert len(opt._hooks.records) == 1 and len(opt._hooks.records[0].calls) >= 2
+    assert len(opt._capture.records) == 1 and len(opt._capture.records[0].calls) >= 2
     opt.step()
     assert all(block.has_statistics for block in opt.blocks.values())
     expected = {"attention.in_proj", "attention.out_proj"} if "kdim" not in setting else \

@@ -8,9 +8,10 @@ The problem: one linear layer, squared error.  The loss is exactly quadratic,
 L(theta + delta) - L(theta) = g^T delta + delta^T H delta / 2, and with
 ``fisher='exact'`` the block's Fisher is the Hessian of the criterion (K-FAC is
 exact for one linear layer with squared error: A (x) G with G = 2/d_out I).  The
-objective the closure returns is ``s`` times the criterion, computed with the
-functional form so that the curvature does not see the factor (the criterion
-object would: ngopt takes each call's weight in the loss), so H = s F: with
+objective the closure returns is ``s`` times the squared error, written out by hand
+(``((f - y) ** 2).mean()``, no loss function ngopt knows) so that the curvature does
+not see the factor: ngopt then takes the curvature at the model output with the
+criterion's own scale (and says so), so H = s F: with
 ``s = 1`` the quadratic model is right (rho close to 1), with ``s = 4`` it
 underestimates the curvature fourfold (rho small).  The reference rho is
 computed here with numpy from the data alone.
@@ -24,8 +25,8 @@ from torch import nn
 
 import ngopt
 
-# The functional form is used on purpose here (see above): its warning is expected.
-pytestmark = pytest.mark.filterwarnings("ignore:fisher='exact'.*was not called")
+# The loss written out by hand is used on purpose here (see above): its warning is expected.
+pytestmark = pytest.mark.filterwarnings("ignore:fisher='exact': no loss call")
 
 N, D_IN, D_OUT = 40, 4, 3
 
@@ -74,11 +75,11 @@ def test_damping_follows_the_closed_form_reduction_ratio(objective_scale, lr, di
                               damping_rule="lm", damping_interval=1, step_rule="fixed")
 
     def closure():
-        # The functional form hides the factor from the curvature (it is taken at the model output
-        # with the criterion's own scale, and ngopt warns): the model then underestimates a loss
-        # scaled by 4 fourfold, which is the wrong model this check needs.
+        # The loss written out by hand hides the factor from the curvature (it is taken at the model
+        # output with the criterion's own scale, and ngopt warns): the model then underestimates a
+        # loss scaled by 4 fourfold, which is the wrong model this check needs.
         opt.zero_grad()
-        loss = objective_scale * nn.functional.mse_loss(model(x), y)
+        loss = objective_scale * ((model(x) - y) ** 2).mean()
         loss.backward()
         return loss
 
@@ -112,7 +113,7 @@ def test_damping_keeps_rising_while_the_model_is_wrong_and_stays_in_range():
 
     def closure():
         opt.zero_grad()
-        loss = 4.0 * nn.functional.mse_loss(model(x), y)  # curvature underestimated fourfold, as above
+        loss = 4.0 * ((model(x) - y) ** 2).mean()  # curvature underestimated fourfold, as above
         loss.backward()
         return loss
 

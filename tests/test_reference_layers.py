@@ -384,14 +384,17 @@ def test_sparse_embedding_is_refused_with_a_clear_error_and_a_frozen_one_is_fine
         ngopt.FisherDescent(model, nn.CrossEntropyLoss())
     model[0].weight.requires_grad_(False)
     opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss())
+    opt.assign_curvature(torch.randint(0, 10, (2, 3)))
     assert list(opt.blocks) == ["2"]
 
 
 def test_embedding_with_frequency_scaled_gradients_uses_the_fallback_rule():
+    # Gradients rescaled by counts within the batch are no lookup's curvature: the fallback rule, said why.
     model = nn.Sequential(nn.Embedding(10, 4, scale_grad_by_freq=True), nn.Flatten(), nn.Linear(12, 3))
-    with pytest.warns(UserWarning, match="scale_grad_by_freq"):
-        opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss())
-    assert list(opt.blocks) == ["2"]
+    opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss())
+    with pytest.warns(UserWarning, match=r"0.weight \(40: applied by embedding with scale_grad_by_freq=True"):
+        assignment = opt.assign_curvature(torch.randint(0, 10, (2, 3)))
+    assert list(opt.blocks) == ["2"] and assignment["0.weight"].fallback
 
 
 # ----------------------------------------------------------------------------- grouped convolutions

@@ -19,7 +19,7 @@ from torch import nn
 
 import ngopt
 from ngopt.blocks.factory import make_block
-from ngopt.blocks.layers import adapter_for
+from use_support import adapter_for
 from ngopt.blocks.subsample import ExampleSubsample
 
 DRAWS = 1500
@@ -47,7 +47,7 @@ def test_subsampled_statistics_match_the_full_ones_in_expectation(structure, cal
     generator = torch.Generator().manual_seed(0)
     conv = nn.Conv2d(2, 3, 3, padding=1).double()
     inputs = torch.randn(8, 2, 4, 4, dtype=torch.float64, generator=generator) + 0.5
-    layer = adapter_for(conv, "conv")
+    layer = adapter_for(conv, "conv", inputs)
     grads = layer.output_rows(torch.randn((1,) + tuple(conv(inputs).shape), dtype=torch.float64,
                                           generator=generator))
     full, view = _statistics(structure, layer, layer.recorded_rows(inputs), grads, calls)
@@ -72,7 +72,7 @@ def test_a_biased_subsample_fails_the_same_check():
     conv = nn.Conv2d(2, 3, 3, padding=1).double()
     inputs = torch.randn(8, 2, 4, 4, dtype=torch.float64, generator=generator) + 0.5
     inputs[:2] *= 3.0  # the examples a biased rule keeps are larger
-    layer = adapter_for(conv, "conv")
+    layer = adapter_for(conv, "conv", inputs)
     grads = layer.output_rows(torch.randn((1,) + tuple(conv(inputs).shape), dtype=torch.float64,
                                           generator=generator))
     full, _ = _statistics("kfac", layer, layer.recorded_rows(inputs), grads, 1)
@@ -108,8 +108,10 @@ def test_stats_fraction_is_checked_and_trains_and_resumes():
     assert losses[-1] < losses[0]  # training works on half the examples' statistics
     saved = opt.state_dict()
     kept = _subsample_of(opt).kept(16)
+    opt.remove_hooks()
     restored = ngopt.FisherDescent(model, loss_fn, stats_fraction=0.5, stats_interval=1, seed=3)
     restored.load_state_dict(saved)
+    model(inputs)  # blocks are built at the first recorded training forward
     assert torch.equal(_subsample_of(restored).kept(16), kept)  # the draws resume where they were
 
 
@@ -120,14 +122,18 @@ def _subsample_of(opt):
 def test_by_default_convolutions_use_a_quarter_of_the_examples_and_other_layers_all():
     model = nn.Sequential(nn.Conv2d(1, 2, 3), nn.Tanh(), nn.Flatten(), nn.Linear(2 * 4 * 4, 3))
     loss_fn = nn.CrossEntropyLoss()
+    images = torch.randn(4, 1, 6, 6)
     default = ngopt.FisherDescent(model, loss_fn)
+    model(images)  # blocks are built at the first recorded training forward
     fractions = {name: None if b.subsample is None else b.subsample.fraction for name, b in default.blocks.items()}
     assert fractions == {"0": 0.25, "3": None}
     default.remove_hooks()
     everything = ngopt.FisherDescent(model, loss_fn, stats_fraction=1.0)
+    model(images)
     assert all(block.subsample is None for block in everything.blocks.values())
     everything.remove_hooks()
     half = ngopt.FisherDescent(model, loss_fn, stats_fraction=0.5)
+    model(images)
     assert all(block.subsample.fraction == 0.5 for block in half.blocks.values())
 
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import copy
 import math
+import warnings
 
 import numpy as np
 import pytest
@@ -18,8 +19,9 @@ from torch import nn
 from torch.func import functional_call, jacrev
 
 import ngopt
+from ngopt.capture import ForwardRecord
+from ngopt.likelihoods import CrossEntropy, LossCall
 from ngopt.quadratic_model import BatchEvaluator
-from ngopt.recording import RecordedBatch, CriterionInput
 
 DTYPE = torch.float64
 
@@ -120,9 +122,11 @@ def test_jacobian_vector_products_equal_the_explicit_gauss_newton_form():
     model = nn.Sequential(nn.Linear(4, 5), nn.Tanh(), nn.Linear(5, 3)).to(DTYPE)
     x, y = torch.randn(10, 4, dtype=DTYPE), torch.randint(0, 3, (10,))
     loss_fn = nn.CrossEntropyLoss()
-    batch = RecordedBatch((x,), {}, torch.get_rng_state(), 10, [CriterionInput((), (10, 3), y, 0.0)], True)
-    from ngopt.likelihoods import likelihood_for
-    evaluator = BatchEvaluator(model, loss_fn, likelihood_for(loss_fn), batch, 1.0)
+    # The loss at the model's output, as the optimizer records it: mean reduction, w_n = 1/10 per term.
+    call = LossCall(CrossEntropy(), model(x), y, 0.0, origin=("output",))
+    call.set_weights(torch.ones((), dtype=DTYPE))
+    batch = ForwardRecord(examples=10, losses=[call], inputs={"args": (x,), "kwargs": {}, "rng_state": torch.get_rng_state()})
+    evaluator = BatchEvaluator(model, batch, 1.0)
     params = dict(model.named_parameters())
     u = {p: torch.randn_like(p) for p in params.values()}
     v = {p: torch.randn_like(p) for p in params.values()}
@@ -169,10 +173,7 @@ def test_reduction_ratio_from_the_recording_equals_the_closures():
         recorded.zero_grad()
         loss_fn(model(x), y).backward()
         recorded.step()
-        # The closure path: its criterion input is the model output too, so the recording is
-        # preferred; hide it to force the closure.
-        closured._recorder.armed = False
-        closured.step(closure)
+        closured.step(closure)  # a closure defines the loss: the damping rule measures it
         a, b = recorded.diagnostics()["update"], closured.diagnostics()["update"]
         assert a["reduction_ratio"] is not None
         assert a["reduction_ratio"] == pytest.approx(b["reduction_ratio"], rel=1e-9)
@@ -255,19 +256,43 @@ def test_non_finite_rule_scalars_skip_the_step(monkeypatch):
     assert not any("previous_update" in s for s in opt.state.values())
 
 
+class PassThrough(torch.overrides.TorchFunctionMode):
+    """A user's own torch function mode around the training step (ngopt then cannot watch the loss)."""
+
+    def __torch_function__(self, func, types, args=(), kwargs=None):
+        return func(*args, **(kwargs or {}))
+
+
 def test_an_unreplayable_loss_warns_once_and_still_steps():
-    # A loss on a slice of the output cannot be replayed from the model alone: one warning,
-    # and the step falls back to the blocks' own model.
+    # Under another torch function mode ngopt sees the loss only through the criterion object's hook,
+    # so it cannot tell how the loss's input came from the model output: one warning, and the step
+    # falls back to the blocks' own model.
     model, loss_fn, x, y = lm_problem(8)
     opt = ngopt.FisherDescent(model, loss_fn, step_rule="quadratic")
     start = float(loss_fn(model(x), y))
     with pytest.warns(UserWarning, match="recorded batch") as caught:
         for _ in range(5):
             opt.zero_grad()
-            loss_fn(model(x)[:, :3] * 1.0, y).backward()
+            with PassThrough():
+                loss_fn(model(x)[:, :3] * 1.0, y).backward()
             opt.step()
     assert sum("recorded batch" in str(w.message) for w in caught) == 1
     assert float(loss_fn(model(x), y)) < start
+
+
+def test_a_loss_on_a_slice_of_the_output_is_replayed():
+    # The operations between the model output and the loss (a slice, a scaling) are replayed: the
+    # quadratic rule solves its system on every step, and the damping rule measures rho.
+    model, loss_fn, x, y = lm_problem(8)
+    opt = ngopt.FisherDescent(model, loss_fn, step_rule="quadratic", damping_interval=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", UserWarning)  # none of ngopt's
+        for _ in range(3):
+            opt.zero_grad()
+            loss_fn(model(x)[:, :3] * 1.0, y).backward()
+            opt.step()
+            update = opt.diagnostics()["update"]
+            assert update["rule_solved"] and update["reduction_ratio"] is not None
 
 
 def test_forwards_inside_no_capture_change_neither_statistics_nor_the_recorded_batch():

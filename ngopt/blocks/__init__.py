@@ -1,16 +1,16 @@
-"""Curvature blocks: one per supported layer, composed of a layer adapter and a curvature kind."""
+"""Curvature blocks: one per parameter (with its bias), composed of a layer adapter and a curvature kind."""
 from .base import LayerCurvature
 from .diagonal import DiagonalBlock
 from .eigenbasis import EigenbasisBlock
 from .embedding import EmbeddingDiagonalBlock, EmbeddingEigenbasisBlock, EmbeddingKroneckerBlock
-from .factory import STRUCTURES, LAYER_BLOCKS, block_class, make_block
+from .factory import LAYER_BLOCKS, STRUCTURES, block_class, block_for_uses, make_block
 from .kronecker import KroneckerBlock
-from .layers import (BatchNormLayer, Conv1dLayer, Conv2dLayer, EmbeddingLayer, LayerAdapter, LayerNormLayer,
-                     LinearLayer, adapter_for)
+from .layers import ChannelLayer, ConvolutionLayer, EmbeddingLayer, LayerAdapter, LinearLayer
 from .norm import NormDiagonalBlock, NormPairBlock
+from .tied import TiedDiagonalBlock, TiedKroneckerBlock
 
 __all__ = ["LayerCurvature", "DiagonalBlock", "EigenbasisBlock", "KroneckerBlock", "EmbeddingKroneckerBlock",
            "EmbeddingEigenbasisBlock", "EmbeddingDiagonalBlock", "NormPairBlock", "NormDiagonalBlock",
-           "Conv1dLayer", "Conv2dLayer", "EmbeddingLayer", "LayerNormLayer", "BatchNormLayer",
-           "LayerAdapter", "LinearLayer", "adapter_for", "STRUCTURES", "LAYER_BLOCKS", "block_class",
+           "TiedKroneckerBlock", "TiedDiagonalBlock", "ChannelLayer", "ConvolutionLayer", "EmbeddingLayer",
+           "LayerAdapter", "LinearLayer", "STRUCTURES", "LAYER_BLOCKS", "block_class", "block_for_uses",
            "make_block"]

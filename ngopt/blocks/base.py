@@ -19,6 +19,7 @@ carries them.
 """
 from __future__ import annotations
 
+from collections.abc import MutableMapping
 from typing import Dict, List, Optional, Tuple
 
 import torch
@@ -27,6 +28,32 @@ from .layers import LayerAdapter
 from .rows import join_positions
 
 Tensors = Dict[str, torch.Tensor]
+
+
+class PrefixedState(MutableMapping):
+    """The entries of ``state`` whose keys start with ``prefix``, under their short keys.
+
+    A block made of several blocks (``blocks/tied.py``) keeps all their tensors in its
+    parameter's one optimizer state, so that ``state_dict()`` carries them.
+    """
+
+    def __init__(self, state: dict, prefix: str):
+        self.state, self.prefix = state, prefix
+
+    def __getitem__(self, key):
+        return self.state[self.prefix + key]
+
+    def __setitem__(self, key, value):
+        self.state[self.prefix + key] = value
+
+    def __delitem__(self, key):
+        del self.state[self.prefix + key]
+
+    def __iter__(self):
+        return (key[len(self.prefix):] for key in list(self.state) if key.startswith(self.prefix))
+
+    def __len__(self):
+        return sum(1 for _ in self)
 
 
 WEIGHT_SHARING = ("expand", "reduce")
@@ -40,6 +67,8 @@ class LayerCurvature:
     symmetric_statistic_keys: Tuple[str, ...] = ()
     # Statistics measured in a basis the inversion produces (EKFAC's scales): a second phase.
     projected_keys: Tuple[str, ...] = ()
+    # Statistics proportional to the loss's weights (built from output gradients): a loss scale divides them.
+    loss_weighted_keys: Tuple[str, ...] = ()
 
     def __init__(self, layer: LayerAdapter, state: dict, weight_sharing: str = "expand"):
         if weight_sharing not in WEIGHT_SHARING:
@@ -58,7 +87,8 @@ class LayerCurvature:
 
     # -- capture -------------------------------------------------------------------------
     def add_capture(self, input_rows: torch.Tensor, grad_rows: torch.Tensor, scale: float,
-                    forward: int = 0) -> None:
+                    forward: int = 0, term: int = 0) -> None:
+        """Queue one call's rows; ``term`` says which use of the parameter made it (tied blocks)."""
         if self.subsample is not None:
             input_rows, grad_rows, scale = self.subsample.take(self._kept, forward, input_rows, grad_rows, scale)
         self.pending.append((input_rows, grad_rows, scale, forward))
@@ -131,6 +161,20 @@ class LayerCurvature:
 
     def commit(self, tensors: Tensors) -> None:
         self.state.update(tensors)
+
+    def fresh_copy(self) -> "LayerCurvature":
+        """A block of the same kind for the same layer, with no statistics (e.g. for one probe batch)."""
+        return type(self)(self.layer, {}, weight_sharing=self.weight_sharing)
+
+    def rebind(self, state: dict) -> None:
+        """Use ``state`` as the block's persistent tensors (after ``load_state_dict``)."""
+        self.state = state
+
+    def unscaled(self, batch: Tensors, loss_scale: float) -> Tensors:
+        """``batch`` with the loss-weighted statistics divided by ``loss_scale`` (a loss scaler's factor)."""
+        if loss_scale == 1.0:
+            return batch
+        return {key: value / loss_scale if key in self.loss_weighted_keys else value for key, value in batch.items()}
 
     # -- the step -----------------------------------------------------------------------
     def precondition(self, grad_matrix: torch.Tensor, damping: float, tensors=None) -> torch.Tensor:

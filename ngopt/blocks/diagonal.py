@@ -38,6 +38,7 @@ class DiagonalBlock(LayerCurvature):
     structure = "diag"
     statistic_keys = ("fisher_diagonal",)
     inverse_keys = ("fisher_diagonal",)
+    loss_weighted_keys = ("fisher_diagonal",)
     square_sum = staticmethod(per_example_square_sum)  # of the layer kind's rows
 
     def batch_statistics(self, num_forwards):

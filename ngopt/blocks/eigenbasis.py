@@ -34,6 +34,7 @@ class EigenbasisBlock(KroneckerBlock):
     structure = "ekfac"
     inverse_keys = ("basis_in", "basis_out", "scales")
     projected_keys = ("scales",)
+    loss_weighted_keys = ("factor_out", "scales")
 
     def statistic_shapes(self):
         shapes = super().statistic_shapes()

@@ -69,6 +69,7 @@ class EmbeddingKroneckerBlock(LayerCurvature):
     statistic_keys = ("factor_in", "factor_out")
     symmetric_statistic_keys = ("factor_out",)
     inverse_keys = ("inverse_in", "inverse_out")
+    loss_weighted_keys = ("factor_out",)
 
     def statistic_shapes(self):
         return {"factor_in": (self.layer.in_dim,), "factor_out": (self.layer.out_dim, self.layer.out_dim)}
@@ -172,6 +173,7 @@ class EmbeddingEigenbasisBlock(EmbeddingKroneckerBlock):
     structure = "ekfac"
     inverse_keys = ("basis_out", "scales")
     projected_keys = ("scales",)
+    loss_weighted_keys = ("factor_out", "scales")
     # The same running-average rule as for dense layers: K-FAC's outer(eigen_out, eigen_in) on a new basis.
     blend_projected = EigenbasisBlock.blend_projected
 

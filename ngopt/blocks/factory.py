@@ -1,9 +1,7 @@
-"""Which curvature block a layer gets: its layer kind and the chosen structure decide."""
+"""Which curvature block a parameter gets: the kind of its use(s) and the chosen structure decide."""
 from __future__ import annotations
 
-from typing import Dict, List, Type
-
-from torch import nn
+from typing import Dict, List, Optional, Tuple, Type
 
 from .base import LayerCurvature
 from .diagonal import DiagonalBlock
@@ -11,17 +9,19 @@ from .eigenbasis import EigenbasisBlock
 from .embedding import EmbeddingDiagonalBlock, EmbeddingEigenbasisBlock, EmbeddingKroneckerBlock
 from .grouped import GroupedDiagonalBlock, GroupedEigenbasisBlock, GroupedKroneckerBlock
 from .kronecker import KroneckerBlock
-from .attention import attention_adapters
-from .layers import LayerAdapter, _plain, adapter_for
+from .layers import LayerAdapter
 from .norm import NormDiagonalBlock, NormPairBlock
+from .tied import TiedDiagonalBlock, TiedKroneckerBlock, layout_relation
 
-# Blocks built from the generic rows a = inputs, g = output gradients (Linear, Conv1d, Conv2d).
+# Blocks built from the generic rows a = inputs, g = output gradients (linear maps, convolutions).
 STRUCTURES: Dict[str, Type[LayerCurvature]] = {
     "kfac": KroneckerBlock, "ekfac": EigenbasisBlock, "diag": DiagonalBlock,
 }
 # Layer kinds whose curvature has a structure of its own: {layer kind: {structure: block class}}.
 # Norm layers: "kfac" and "ekfac" both give the exact per-channel 2x2 blocks (blocks/norm.py).
 _NORM_BLOCKS = {"kfac": NormPairBlock, "ekfac": NormPairBlock, "diag": NormDiagonalBlock}
+# An elementwise scale or shift by a parameter: the exact diagonal whatever the structure.
+_DIAGONAL_BLOCKS = {"kfac": NormDiagonalBlock, "ekfac": NormDiagonalBlock, "diag": NormDiagonalBlock}
 # Grouped convolutions: a block-diagonal output factor, one input factor shared by the groups (blocks/grouped.py).
 _GROUPED_BLOCKS = {"kfac": GroupedKroneckerBlock, "ekfac": GroupedEigenbasisBlock, "diag": GroupedDiagonalBlock}
 LAYER_BLOCKS: Dict[str, Dict[str, Type[LayerCurvature]]] = {
@@ -34,15 +34,12 @@ LAYER_BLOCKS: Dict[str, Dict[str, Type[LayerCurvature]]] = {
     "group_norm": _NORM_BLOCKS,
     "instance_norm": _NORM_BLOCKS,
     "rms_norm": _NORM_BLOCKS,
+    "scale": _DIAGONAL_BLOCKS,
+    "shift": _DIAGONAL_BLOCKS,
 }
-
-
-def adapters_for(module: nn.Module, name: str) -> List[LayerAdapter]:
-    """The adapters of every layer ``module`` applies itself (several for attention), ``[]`` if none."""
-    if _plain(module, nn.MultiheadAttention):
-        return attention_adapters(module, name)
-    layer = adapter_for(module, name)
-    return [] if layer is None else [layer]
+# Uses whose curvature is a product of an input and an output factor: the ones a tied block can pair.
+KRONECKER_KINDS = ("linear", "conv1d", "conv2d", "embedding", "attention_in", "attention_q", "attention_k",
+                   "attention_v", "attention_out")
 
 
 def block_class(layer: LayerAdapter, structure: str) -> Type[LayerCurvature]:
@@ -59,3 +56,27 @@ def make_block(layer: LayerAdapter, structure: str, state: dict, weight_sharing:
     if layer.kind in _CONSTANT_INPUT_KINDS:
         weight_sharing = "reduce"
     return block_class(layer, structure)(layer, state, weight_sharing=weight_sharing)
+
+
+def block_for_uses(layers: List[LayerAdapter], structure: str, state: dict,
+                   weight_sharing: str = "expand") -> Tuple[Optional[LayerCurvature], str]:
+    """``(block, why)`` for a parameter applied by ``layers`` (one per distinct use); block None: no block.
+
+    One use: that use's block.  Two uses of the Kronecker kinds without biases whose gradient
+    matrices lay the parameter out the same way or transposed (a tied embedding and output
+    layer): a tied block (``blocks/tied.py``).  Anything else has no block.
+    """
+    if len(layers) == 1:
+        return make_block(layers[0], structure, state, weight_sharing), ""
+    kinds = ", ".join(layer.kind for layer in layers)
+    if len(layers) > 2:
+        return None, f"applied in {len(layers)} different ways ({kinds}); a block covers at most two"
+    if any(layer.kind not in KRONECKER_KINDS or layer.has_bias for layer in layers):
+        return None, (f"applied in two ways ({kinds}); a block pairs two linear maps, convolutions or embedding "
+                      "lookups without biases")
+    relations = ["same", layout_relation(layers[0], layers[1])]
+    if relations[1] == "other":
+        return None, f"applied in two ways ({kinds}) that lay the parameter out differently"
+    terms = [make_block(layer, "diag" if structure == "diag" else "kfac", {}, weight_sharing) for layer in layers]
+    tied = TiedDiagonalBlock if structure == "diag" else TiedKroneckerBlock
+    return tied(terms, relations, state, weight_sharing), ""

@@ -28,7 +28,7 @@ from .rows import example_chunks
 
 
 def _groups(block) -> int:
-    return block.layer.module.groups
+    return block.layer.groups
 
 
 def _describe(block) -> str:

@@ -37,6 +37,7 @@ class KroneckerBlock(LayerCurvature):
     statistic_keys = ("factor_in", "factor_out")
     symmetric_statistic_keys = ("factor_in", "factor_out")
     inverse_keys = ("inverse_in", "inverse_out")
+    loss_weighted_keys = ("factor_out",)
 
     def statistic_shapes(self):
         d_in, d_out = self.layer.in_dim, self.layer.out_dim

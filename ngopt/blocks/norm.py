@@ -81,6 +81,7 @@ class NormPairBlock(_FoldsChannelSums, LayerCurvature):
     structure = "channel_pairs"
     statistic_keys = ("fisher_pairs",)
     inverse_keys = ("pair_basis", "pair_eigenvalues")
+    loss_weighted_keys = ("fisher_pairs",)
 
     @staticmethod
     def reduce(w):

@@ -1,15 +1,12 @@
-"""``nn.MultiheadAttention``: its projections as linear layers applied at many positions.
+"""``F.multi_head_attention_forward`` (``nn.MultiheadAttention``): its projections as linear maps.
 
-The module applies its parameters through ``F.multi_head_attention_forward``,
-where no module hook sees them: the packed ``in_proj_weight`` (or the separate
-``q/k/v_proj_weight`` when ``kdim``/``vdim`` differ from ``embed_dim``) and
-``out_proj``, whose own ``forward`` never runs.  On a forward pass that is due a
-refresh (training mode, capture recording), a torch function mode active for
-the duration of the module's forward replaces that one call by
-:func:`attention_forward`, the same arithmetic in the same order with the
-projections as explicit tensors the capture hooks: outputs and gradients are
-bit for bit those of torch's function.  Other forwards, and ``eval()`` with
-its fast path, are left alone.
+torch's attention function applies its parameters inside one call: the packed
+``in_proj_weight`` (or the separate ``q/k/v_proj_weight`` when ``kdim``/``vdim``
+differ from ``embed_dim``) and ``out_proj``, whose own ``forward`` never runs.  On a
+recorded forward the use recorder replaces that call by :func:`attention_forward`,
+the same arithmetic in the same order with the projections as explicit
+``F.linear`` calls it can record: outputs and gradients are bit for bit those of
+torch's function.  Other forwards, and ``eval()`` with its fast path, are left alone.
 
 Curvature (Eschenhagen et al., NeurIPS 2023, "expand" / "reduce"): every
 projection is a linear layer shared over positions, rows ``a`` its inputs at
@@ -28,142 +25,101 @@ each position and ``g`` its output gradients there.
   they share, a ``[3E, 1]`` layer on a constant input.
 * ``attention_out``: ``out_proj`` on the attention context at every query
   position.
+
+Inside the function tensors are sequence-first, ``[L, N, d]``.  ``bias_k`` and
+``bias_v`` (``add_bias_kv``) are concatenated to the keys and values, a use with no
+block: they take the fallback rule.
 """
 from __future__ import annotations
 
 import inspect
 import math
-from typing import Callable, Dict, List, Optional
+from typing import Callable
 
 import torch
-from torch import nn
 import torch.nn.functional as F
-from torch.overrides import TorchFunctionMode
 
-from .layers import LayerAdapter
+from ..blocks.layers import LayerAdapter
+from .base import UseCall, padded_rows
+from .layout import as_grad_rows, as_rows
+from .linear import linear_use
+from .views import ParamView
 
 _SIGNATURE = inspect.signature(F.multi_head_attention_forward)
 
 
-class AttentionProjectionLayer(LayerAdapter):
-    """One projection of an ``nn.MultiheadAttention`` (``owner``), as torch's function applies it.
-
-    Inside ``F.multi_head_attention_forward`` tensors are sequence-first,
-    ``[L, N, d]``: rows become ``[N, L, d (+1)]`` and output gradients
-    ``[K, L, N, e]`` become ``[K, N, L, e]``.
-    """
-
-    def __init__(self, owner: nn.MultiheadAttention, name: str, kind: str, weight, bias, module=None):
-        self.owner = owner
-        self.module = owner if module is None else module
-        self.name = name
-        self.kind = kind
-        self.weight = weight
-        self.bias = bias
-
-    def input_rows(self, inputs):
-        return self._append_ones(inputs.transpose(0, 1))
-
-    def output_rows(self, grads):
-        return grads.transpose(1, 2)
-
-    @staticmethod
-    def install_capture(owner, blocks, capture) -> list:
-        return install_attention_capture(owner, blocks, capture)
-
-
-class AttentionBiasLayer(AttentionProjectionLayer):
+class ConstantInputLayer(LayerAdapter):
     """The packed ``in_proj_bias`` of separate q/k/v weights: a ``[3E, 1]`` layer whose input is 1."""
 
-    def input_rows(self, inputs):
-        return torch.ones(inputs.shape[1], inputs.shape[0], 1, dtype=inputs.dtype, device=inputs.device)
+    kind = "attention_in_bias"
 
 
-def attention_adapters(module: nn.MultiheadAttention, name: str) -> List[LayerAdapter]:
-    """Adapters for every projection of ``module`` (``bias_k``/``bias_v`` take the fallback rule)."""
-    adapters: List[LayerAdapter] = []
-    if module._qkv_same_embed_dim:
-        adapters.append(AttentionProjectionLayer(module, f"{name}.in_proj", "attention_in", module.in_proj_weight,
-                                                 module.in_proj_bias))
-    else:
-        for letter in "qkv":
-            adapters.append(AttentionProjectionLayer(module, f"{name}.{letter}_proj", f"attention_{letter}",
-                                                     getattr(module, f"{letter}_proj_weight"), None))
-        if module.in_proj_bias is not None:
-            adapters.append(AttentionBiasLayer(module, f"{name}.in_proj_bias", "attention_in_bias",
-                                               module.in_proj_bias, None))
-    out = module.out_proj
-    adapters.append(AttentionProjectionLayer(module, f"{name}.out_proj", "attention_out", out.weight, out.bias,
-                                             module=out))
-    return adapters
+def _whole(recorder, tensor):
+    view = recorder.resolve(tensor) if tensor is not None else None
+    return view if view is not None and view.whole and view.scale == 1.0 else None
 
 
-# ----------------------------------------------------------------------------- capture
-class _Recorder(TorchFunctionMode):
-    """Active during one recorded forward of ``owner``: its attention call goes through the capture."""
+def handle_attention(recorder, func, args, kwargs):
+    bound = _SIGNATURE.bind(*args, **kwargs)
+    bound.apply_defaults()
+    a = bound.arguments
+    if a["static_k"] is not None or a["static_v"] is not None:
+        return NotImplemented
+    separate = a["use_separate_proj_weight"]
+    weights = [a[f"{letter}_proj_weight"] for letter in "qkv"] if separate else [a["in_proj_weight"]]
+    if any(w is not None and recorder.resolve(w) is not None and _whole(recorder, w) is None for w in weights):
+        return NotImplemented
+    examples = recorder.examples
+    in_bias = _whole(recorder, a["in_proj_bias"])
 
-    def __init__(self, owner, blocks, capture):
-        super().__init__()
-        self.owner = owner
-        self.blocks: Dict[str, object] = {block.layer.kind: block for block in blocks}
-        self.capture = capture
-
-    def __torch_function__(self, func, types, args=(), kwargs=None):
-        kwargs = kwargs or {}
-        if func is F.multi_head_attention_forward:
-            bound = _SIGNATURE.bind(*args, **kwargs)
-            bound.apply_defaults()
-            arguments = bound.arguments
-            if arguments["out_proj_weight"] is self.owner.out_proj.weight and arguments["static_k"] is None \
-                    and arguments["static_v"] is None:
-                return attention_forward(arguments, self.project_in, self.project_out)
-        return func(*args, **kwargs)
-
-    def _record(self, kind, inputs, output, offset=0):
-        """``output`` through the capture of the block of ``kind``; ``offset``: its first row in that block."""
-        block = self.blocks.get(kind)
-        if block is None or not output.requires_grad:
-            return output
-        width, full = output.shape[-1], block.layer.out_dim
-        if width == full:
-            return self.capture.record_call(block, inputs, output)
-        # The call covers rows [offset, offset + width) of the block: the others get zero gradients.
-        pad = (offset, full - offset - width)
-        return self.capture.record_call(block, inputs, output,
-                                        output_rows=lambda grads: F.pad(block.layer.output_rows(grads), pad))
-
-    def project_in(self, inputs, weight, bias, offset):
+    def project_in(inputs, weight, bias, offset):
         """One in-projection call; ``offset``: its first row in the packed ``[3E, ...]`` layout."""
         output = F.linear(inputs, weight, bias)
-        if self.owner._qkv_same_embed_dim:
-            return self._record("attention_in", inputs, output, offset)
-        letter = "qkv"[offset // output.shape[-1]]  # separate weights: one call per projection
-        output = self._record(f"attention_{letter}", inputs, output)
-        return self._record("attention_in_bias", inputs, output, offset)
-
-    def project_out(self, context, weight, bias, tgt_len, bsz):
-        output = F.linear(context, weight, bias)
-        if "attention_out" not in self.blocks or not output.requires_grad:
+        width = output.shape[-1]
+        if not separate:
+            view = _whole(recorder, a["in_proj_weight"])
+            if view is None:
+                return output
+            view = ParamView(view.param, rows=(offset, offset + width))
+            bias_view = None if in_bias is None else ParamView(in_bias.param, rows=(offset, offset + width))
+            with recorder.tracking({bias: bias_view} if bias_view is not None else {}):
+                return linear_use(recorder, inputs, view, bias if bias_view is not None else None, output,
+                                  matrix_is_weight=True, kind="attention_in", layout="second")
+        letter = "qkv"[offset // width]
+        view = _whole(recorder, weight)
+        if view is not None:
+            output = linear_use(recorder, inputs, view, None, output, matrix_is_weight=True,
+                                kind=f"attention_{letter}", layout="second")
+        if in_bias is None:
             return output
-        recorded = self._record("attention_out", context.view(tgt_len, bsz, -1), output.view(tgt_len, bsz, -1))
+        return _record_packed_bias(recorder, in_bias.param, inputs, output, offset, examples)
+
+    def project_out(context, weight, bias, tgt_len, bsz):
+        output = F.linear(context, weight, bias)
+        view = _whole(recorder, weight)
+        if view is None:
+            return output
+        recorded = linear_use(recorder, context.view(tgt_len, bsz, -1), view, bias,
+                              output.view(tgt_len, bsz, -1), matrix_is_weight=True, kind="attention_out",
+                              layout="second")
         return recorded.view(tgt_len * bsz, -1)
 
+    return attention_forward(a, project_in, project_out)
 
-def install_attention_capture(owner: nn.MultiheadAttention, blocks, capture) -> list:
-    """Hooks on ``owner`` that route its recorded forwards through :func:`attention_forward`."""
-    active: List[_Recorder] = []
 
-    def enter(module, args):
-        if module.training and capture.recording and torch.is_grad_enabled():
-            recorder = _Recorder(module, blocks, capture)
-            recorder.__enter__()
-            active.append(recorder)
+def _record_packed_bias(recorder, param, inputs, output, offset, examples):
+    """The shared bias of separate q/k/v weights: a ``[3E, 1]`` layer on a constant input of 1."""
+    width, full = output.shape[-1], param.shape[0]
+    ones = torch.ones(inputs.shape[:-1] + (1,), dtype=inputs.dtype, device=inputs.device)
+    rows = as_rows(ones, 1, "second", examples)
+    use = UseCall(key=("attention_in_bias", param, None), weight=param, bias=None,
+                  make_layer=lambda name: ConstantInputLayer(name, param),
+                  input_rows=rows, output_rows=padded_rows(lambda g: as_grad_rows(g, width, "second", examples),
+                                                           offset, width, full))
+    return recorder.record(use, output)
 
-    def leave(module, args, output):
-        if active:
-            active.pop().__exit__(None, None, None)
 
-    return [owner.register_forward_pre_hook(enter), owner.register_forward_hook(leave, always_call=True)]
+HANDLERS = {F.multi_head_attention_forward: handle_attention}
 
 
 # ----------------------------------------------------------------------------- the arithmetic

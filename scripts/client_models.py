@@ -1,0 +1,233 @@
+"""Models as users bring them: ngopt beside AdamW on models built from transformers' and timm's configs.
+
+Needs ``transformers`` and ``timm`` (no downloads: every model is built from a config with random
+weights).  timm's torchvision pulls its own torch build, so install them into a separate environment
+that still sees this checkout::
+
+    python -m venv --system-site-packages /tmp/clients
+    /tmp/clients/bin/pip install transformers timm
+    PYTHONPATH=. /tmp/clients/bin/python scripts/client_models.py
+
+For every model the script makes its own learnable data (token sequences from a fixed random Markov
+chain, padded with the ignored label -100; images whose class sets a pattern under noise), trains a
+copy with ``ngopt.FisherDescent`` at its defaults and a copy with ``torch.optim.AdamW(lr=1e-3)`` on the
+same batches, in turns, and prints per model: the share of trainable parameters on the fallback rule
+(from ``FisherDescent.curvature_assignment()``), the median step time of each and their ratio, and
+the losses at the start and after the last step.  Language models train through ``labels=`` (the loss
+computed inside the model), as their own training loops do.
+"""
+from __future__ import annotations
+
+import argparse
+import copy
+import json
+import statistics
+import sys
+import time
+import warnings
+from dataclasses import dataclass
+from typing import Callable, List
+
+import torch
+from torch import nn
+
+import ngopt
+
+
+# ----------------------------------------------------------------------------------------- data
+def markov_tokens(vocab: int, batch: int, length: int, generator: torch.Generator, pad_fraction: float = 0.25):
+    """Sequences from a fixed random Markov chain (each token has 4 likely successors), the last
+    ``pad_fraction`` of some sequences labelled -100 (padding)."""
+    transitions = torch.Generator().manual_seed(1234)
+    successors = torch.randint(0, vocab, (vocab, 4), generator=transitions)
+    tokens = torch.empty(batch, length, dtype=torch.long)
+    tokens[:, 0] = torch.randint(0, vocab, (batch,), generator=generator)
+    for t in range(1, length):
+        choice = torch.randint(0, 4, (batch,), generator=generator)
+        tokens[:, t] = successors[tokens[:, t - 1], choice]
+    labels = tokens.clone()
+    padded = torch.rand(batch, generator=generator) < 0.5
+    cut = int(length * (1 - pad_fraction))
+    labels[padded, cut:] = -100
+    return tokens, labels
+
+
+def pattern_images(classes: int, batch: int, size: int, generator: torch.Generator):
+    """Images whose class picks one of ``classes`` fixed random patterns, under noise of equal size."""
+    patterns = torch.randn(classes, 3, size, size, generator=torch.Generator().manual_seed(4321))
+    labels = torch.randint(0, classes, (batch,), generator=generator)
+    return patterns[labels] + torch.randn(batch, 3, size, size, generator=generator), labels
+
+
+# ----------------------------------------------------------------------------------------- models
+@dataclass
+class Client:
+    name: str
+    build: Callable[[], nn.Module]
+    batch: Callable[[torch.Generator], tuple]          # -> model inputs (kwargs) and the loss's labels
+    loss: Callable[[nn.Module, dict], torch.Tensor]
+
+
+def _lm_batch(vocab, batch=8, length=32):
+    def make(generator):
+        tokens, labels = markov_tokens(vocab, batch, length, generator)
+        return {"input_ids": tokens, "labels": labels}
+    return make
+
+
+def _lm_loss(model, inputs):
+    return model(**inputs).loss
+
+
+def _image_batch(classes=10, batch=16, size=32):
+    def make(generator):
+        images, labels = pattern_images(classes, batch, size, generator)
+        return {"images": images, "labels": labels}
+    return make
+
+
+def _image_loss(model, inputs):
+    return nn.functional.cross_entropy(model(inputs["images"]), inputs["labels"])
+
+
+def clients(vocab: int = 256) -> List[Client]:
+    import timm
+    from transformers import (BertConfig, BertForSequenceClassification, GPT2Config, GPT2LMHeadModel, LlamaConfig,
+                              LlamaForCausalLM)
+
+    def llama():
+        return LlamaForCausalLM(LlamaConfig(vocab_size=vocab, hidden_size=64, intermediate_size=128,
+                                            num_hidden_layers=2, num_attention_heads=4, num_key_value_heads=2,
+                                            max_position_embeddings=64))
+
+    def gpt2():
+        return GPT2LMHeadModel(GPT2Config(vocab_size=vocab, n_positions=64, n_embd=64, n_layer=2, n_head=4,
+                                          bos_token_id=0, eos_token_id=0))
+
+    def bert():
+        return BertForSequenceClassification(BertConfig(vocab_size=vocab, hidden_size=64, num_hidden_layers=2,
+                                                        num_attention_heads=4, intermediate_size=128,
+                                                        max_position_embeddings=64, num_labels=3))
+
+    def bert_batch(generator):
+        tokens, _ = markov_tokens(vocab, 8, 32, generator, pad_fraction=0.0)
+        return {"input_ids": tokens, "labels": tokens[:, 0] % 3}
+
+    def image_model(name, **options):
+        return lambda: timm.create_model(name, pretrained=False, num_classes=10, **options)
+
+    return [
+        Client("llama (causal LM, labels=)", llama, _lm_batch(vocab), _lm_loss),
+        Client("gpt2 (causal LM, tied head)", gpt2, _lm_batch(vocab), _lm_loss),
+        Client("bert (classifier, labels=)", bert, bert_batch, _lm_loss),
+        Client("timm resnet18", image_model("resnet18"), _image_batch(), _image_loss),
+        Client("timm vit_tiny", image_model("vit_tiny_patch16_224", img_size=32, patch_size=4), _image_batch(),
+               _image_loss),
+        Client("timm convnext_atto", image_model("convnext_atto"), _image_batch(), _image_loss),
+        Client("timm efficientnet_b0", image_model("efficientnet_b0"), _image_batch(), _image_loss),
+        Client("timm mobilenetv3_small", image_model("mobilenetv3_small_100"), _image_batch(), _image_loss),
+    ]
+
+
+# ----------------------------------------------------------------------------------------- the run
+def fallback_share(opt: ngopt.FisherDescent, model: nn.Module) -> tuple:
+    numel = {name: p.numel() for name, p in model.named_parameters() if p.requires_grad}
+    assignment = opt.curvature_assignment()
+    fallback = {name: entry.reason for name, entry in assignment.items() if entry.fallback}
+    count = sum(numel.get(name, 0) for name in fallback)
+    return count / sum(numel.values()), fallback
+
+
+def train_side_by_side(client: Client, steps: int, seed: int) -> dict:
+    torch.manual_seed(seed)
+    base = client.build()
+    base.train()
+    models = {"ngopt": base, "adamw": copy.deepcopy(base)}
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        optimizers = {"ngopt": ngopt.FisherDescent(models["ngopt"]),
+                      "adamw": torch.optim.AdamW(models["adamw"].parameters(), lr=1e-3)}
+    generator = torch.Generator().manual_seed(seed + 1)
+    batches = [client.batch(generator) for _ in range(steps)]
+    held_out = client.batch(torch.Generator().manual_seed(seed + 2))
+    losses = {name: [] for name in models}
+    seconds = {name: [] for name in models}
+    for step, inputs in enumerate(batches):
+        for name in models:  # in turns: the machine's speed drifts alike for both
+            model, opt = models[name], optimizers[name]
+            started = time.perf_counter()
+            with warnings.catch_warnings(record=True) as more:
+                warnings.simplefilter("always")
+                opt.zero_grad()
+                loss = client.loss(model, inputs)
+                loss.backward()
+                opt.step()
+            seconds[name].append(time.perf_counter() - started)
+            losses[name].append(float(loss.detach()))
+            caught.extend(more)
+    evaluated = {}
+    for name, model in models.items():
+        with torch.no_grad():
+            evaluated[name] = float(client.loss(model, held_out))
+    share, reasons = fallback_share(optimizers["ngopt"], models["ngopt"])
+    step = {name: statistics.median(values[1:]) for name, values in seconds.items()}
+    return {"model": client.name, "parameters": sum(p.numel() for p in base.parameters()),
+            "fallback_share": share, "fallback": reasons,
+            "first_loss": losses["ngopt"][0], "ngopt_loss": losses["ngopt"][-1], "adamw_loss": losses["adamw"][-1],
+            "ngopt_held_out": evaluated["ngopt"], "adamw_held_out": evaluated["adamw"],
+            "ngopt_step_ms": 1e3 * step["ngopt"], "adamw_step_ms": 1e3 * step["adamw"],
+            "step_ratio": step["ngopt"] / step["adamw"], "skipped": optimizers["ngopt"].diagnostics()["skipped_steps"],
+            "warnings": sorted({str(w.message)[:160] for w in caught})}
+
+
+def table(rows: List[dict]) -> str:
+    header = ("| model | parameters | on fallback | loss at start | ngopt after | AdamW after | held-out ngopt / AdamW "
+              "| step ms ngopt / AdamW (ratio) |")
+    lines = [header, "|" + "---|" * 8]
+    for r in rows:
+        lines.append(f"| {r['model']} | {r['parameters']:,} | {100 * r['fallback_share']:.2f}% | {r['first_loss']:.3f} | "
+                     f"{r['ngopt_loss']:.3f} | {r['adamw_loss']:.3f} | {r['ngopt_held_out']:.3f} / "
+                     f"{r['adamw_held_out']:.3f} | {r['ngopt_step_ms']:.0f} / {r['adamw_step_ms']:.0f} "
+                     f"({r['step_ratio']:.2f}) |")
+    return "\n".join(lines)
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--steps", type=int, default=30, help="training steps per model (default 30)")
+    parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument("--only", nargs="*", default=None, help="substrings of the model names to run")
+    parser.add_argument("--threads", type=int, default=None, help="torch threads (default: torch's)")
+    parser.add_argument("--json", default=None, help="also write the rows to this file")
+    args = parser.parse_args(argv)
+    if args.threads:
+        torch.set_num_threads(args.threads)
+    try:
+        chosen = clients()
+    except ImportError as error:
+        print(f"needs transformers and timm ({error}); see this script's docstring", file=sys.stderr)
+        return 2
+    if args.only:
+        chosen = [c for c in chosen if any(s in c.name for s in args.only)]
+    rows = []
+    for client in chosen:
+        row = train_side_by_side(client, args.steps, args.seed)
+        rows.append(row)
+        print(f"{row['model']}: fallback {100 * row['fallback_share']:.2f}%, losses {row['first_loss']:.3f} -> "
+              f"ngopt {row['ngopt_loss']:.3f} / AdamW {row['adamw_loss']:.3f}, step ratio {row['step_ratio']:.2f}",
+              flush=True)
+        for name, why in row["fallback"].items():
+            print(f"    fallback: {name}: {why}")
+        for message in row["warnings"]:
+            print(f"    warning: {message}")
+    print()
+    print(f"torch {torch.__version__}, {args.steps} steps, seed {args.seed}, {torch.get_num_threads()} threads")
+    print(table(rows))
+    if args.json:
+        with open(args.json, "w") as handle:
+            json.dump(rows, handle, indent=1)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
