@@ -103,7 +103,9 @@ class ForwardRecord:
     inputs: Optional[dict] = None
     watch: Optional[LossWatch] = None
     output_fallback: bool = False    # the loss was taken at the model output (no loss call was found)
-    root_scale: Optional[float] = None  # the constant the loss was multiplied by before backward()
+    # The constant the loss was multiplied by before backward() (a loss scaler's factor): the term
+    # weights are kept per unit of it, so that huge scales never reach the statistics' sums.
+    root_scale: Optional[float] = None
     unrecognized: Dict = field(default_factory=dict)   # parameter -> functions with no block
     # Tensor hooks that refer back to tensors of this record: a cycle through autograd's C++ side
     # that Python's garbage collector cannot see, so they are removed by hand once the record is used.
@@ -205,7 +207,9 @@ class CaptureHooks:
         self.views.update({id(p): ParamView(p) for p in params})
 
     def loss_scale_seen(self) -> Optional[float]:
-        """The constant the last recorded loss was multiplied by before ``backward()`` (a loss scaler's)."""
+        """The constant the last recorded loss was multiplied by before ``backward()`` (a loss scaler's).
+
+        The statistics of this step's records are kept per unit of it (1 when none was seen)."""
         for record in reversed(self.records):
             if record.root_scale is not None:
                 return record.root_scale
@@ -359,6 +363,8 @@ class CaptureHooks:
 
     def _loss_grad(self, record: ForwardRecord, call: LossCall, grad: torch.Tensor):
         """The user's backward reached a loss call's value: its weights are known, nothing below it has run."""
+        if record.root_scale is not None:
+            grad = grad / record.root_scale  # per unit of the loss scale (the step settles the scale)
         call.set_weights(grad, call.extra.get("value"))
         if record.statistics and self.source is not None and call.input is not None and not call.extra.get("done"):
             call.extra["done"] = True
@@ -448,8 +454,10 @@ class CaptureHooks:
             seen = set(record.handed)
             if record.statistics and self.source is None:
                 scale = self._empirical_scale(record)
+                unit = record.root_scale or 1.0  # the user's gradients carry the loss scale
                 for call in record.calls:
-                    _give(call, call.empirical_rows, scale, (index, 0), seen)
+                    rows = call.empirical_rows
+                    _give(call, rows if rows is None or unit == 1.0 else rows / unit, scale, (index, 0), seen)
             if record.statistics:
                 for block in seen:
                     forwards[block] = forwards.get(block, 0) + 1

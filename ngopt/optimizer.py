@@ -309,6 +309,7 @@ class FisherDescent(torch.optim.Optimizer):
         scale = self._loss_scale()
         if scale is None:  # the scaler found Inf/NaN gradients: it skips this step and lowers its scale
             self._capture.discard()
+            self._restore_generators()  # draws made in the overflowed backward are taken back
             self._skipped["loss_scale_overflow"] += 1
             return loss
         if not self._assignment.seen_forward and any(p.grad is not None for p in self._trainable()):
@@ -318,12 +319,15 @@ class FisherDescent(torch.optim.Optimizer):
                                "gradients enabled, outside opt.no_capture()); this step's forward ran in eval() "
                                "mode, under torch.no_grad(), inside opt.no_capture() or after remove_hooks()")
         step_index = self._steps
+        # The statistics were kept per unit of the multiplier seen on the backward's root; the loss's
+        # true scale is ``scale`` (1 without a scaler, where a seen multiplier is part of the loss).
+        relative = scale / (self._capture.loss_scale_seen() or 1.0)
         batch = self._capture.latest_batch()
-        if batch is not None and scale != 1.0:
+        if batch is not None and relative != 1.0:
             for call in batch.losses:
-                call.rescale(1.0 / scale)
+                call.rescale(1.0 / relative)
         self._check_found_losses()
-        reason = self._attempt(loss, step_index, batch, closure, scale)
+        reason = self._attempt(loss, step_index, batch, closure, relative)
         if loss is not None and self._last_update:
             self._last_update["loss"] = float(loss)
         if reason is not None:
@@ -393,6 +397,17 @@ class FisherDescent(torch.optim.Optimizer):
         """What the forwards before the next step record: statistics, uses, the batch."""
         self._capture.plan(statistics=self._statistics_due(self._steps),
                            uses=not self._assignment.seen_forward, batch=self._batch_due(self._steps))
+        sampling = None if self._generator is None else self._generator.get_state()
+        self._generator_states = (sampling, self._assignment.subsample_generator.get_state())
+
+    def _restore_generators(self) -> None:
+        """The private generators as they were after the last step (a step the scaler skips draws nothing)."""
+        sampling, subsample = self._generator_states
+        if sampling is None:
+            self._generator = None  # made on the first draw, from the seed
+        elif self._generator is not None:
+            self._generator.set_state(sampling)
+        self._assignment.subsample_generator.set_state(subsample)
 
     def _statistics_due(self, step_index: int) -> bool:
         return step_index % self.stats_interval == 0 or not all(b.has_statistics for b in self.blocks.values())
