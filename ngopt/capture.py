@@ -187,6 +187,7 @@ class CaptureHooks:
         self.forwards_without_loss = 0
         self._current: Optional[ForwardRecord] = None
         self._recorder: Optional[UseRecorder] = None
+        self.last_call: Optional[LayerCall] = None
         self._opened_by_hook = False
         self._watch: Optional[LossWatch] = None
         self._model = model
@@ -307,11 +308,20 @@ class CaptureHooks:
         target, handed_on = output_target(output)
         call = LayerCall(use, use.input_rows, target)
         record.calls.append(call)
+        self.last_call = call
         if self.source is None and record.statistics:
             # A tensor hook gets the gradient of the value it was registered on, in-place changes or not.
             record.handles.append(output.register_hook(lambda grad, call=call: self._empirical_grad(call, grad)))
         self.seconds["capture"] += time.perf_counter() - started
         return handed_on
+
+    def spread_call(self, call: LayerCall, expanded: torch.Tensor, examples: int) -> None:
+        """A call's one shared row was expanded over the examples: its rows and output are the expanded ones."""
+        call.input_rows = call.input_rows.expand((examples,) + tuple(call.input_rows.shape[1:]))
+        call.output, _ = output_target(expanded)
+        if self.source is None and self._current is not None and self._current.statistics:
+            self._current.handles.append(expanded.register_hook(
+                lambda grad, call=call: self._empirical_grad(call, grad)))
 
     # -- loss calls -------------------------------------------------------------------------
     def _open_record(self, inside_forward: bool, watch=None) -> Optional[ForwardRecord]:

@@ -271,3 +271,46 @@ def test_a_use_without_a_block_takes_the_fallback_rule_and_says_why():
     assert [name for name, a in assignment.items() if not a.fallback] == ["mix.weight", "mix.bias", "head.weight",
                                                                          "head.bias"]
     assert "token (5): applied by cat, which has no curvature block" in repr(opt)
+
+
+def test_a_position_table_looked_up_once_for_the_batch_gets_each_examples_gradient():
+    # position_ids of shape [1, T] (one lookup for the whole batch, broadcast when added to the token
+    # embeddings): each example's gradient must count apart, or the exact diagonal would square the
+    # batch's sum.  Against torch.func's exact Fisher of the loss, and a twin that looks up [N, T] ids.
+    class Embedded(nn.Module):
+        def __init__(self, per_example):
+            super().__init__()
+            self.tokens = nn.Embedding(6, 4).to(DTYPE)
+            self.positions = nn.Embedding(5, 4).to(DTYPE)
+            self.head = nn.Linear(4, 3).to(DTYPE)
+            self.per_example = per_example
+
+        def forward(self, ids):
+            where = torch.arange(ids.shape[1]).unsqueeze(0)
+            if self.per_example:
+                where = where.expand(ids.shape[0], -1)
+            return self.head(torch.tanh(self.tokens(ids) + self.positions(where)).mean(dim=1))
+
+    torch.manual_seed(8)
+    model, twin = Embedded(False), Embedded(True)
+    twin.load_state_dict(model.state_dict())
+    generator = torch.Generator().manual_seed(9)
+    ids = torch.randint(0, 6, (7, 5), generator=generator)
+    y = torch.randint(0, 3, (7,), generator=generator)
+    opts = [ngopt.FisherDescent(m, **exact_settings(structure="diag", lr=0.0)) for m in (model, twin)]
+    for m, opt in zip((model, twin), opts):
+        train(m, opt, ids, y, steps=1)
+    z, jac = loss_input_jacobian(model, ["positions.weight"], model_loss_input(model, (ids,)))
+    fisher = cross_entropy_fisher(z, flat_jacobian(jac, z, ["positions.weight"]), torch.full((7,), 1 / 7, dtype=DTYPE))
+    expected = torch.diagonal(fisher).reshape(5, 4).T  # the block's layout: W^T [d, V]
+    for opt in opts:
+        torch.testing.assert_close(opt.blocks["positions"].state["fisher_diagonal"], expected, rtol=1e-9, atol=1e-15)
+    # K-FAC sees the same rows as the twin's, so the same factors.
+    for opt in opts:
+        opt.remove_hooks()  # one optimizer's hooks per model
+    kfac = [ngopt.FisherDescent(m, **exact_settings(lr=0.0)) for m in (model, twin)]
+    for m, opt in zip((model, twin), kfac):
+        train(m, opt, ids, y, steps=1)
+    for key in ("factor_in", "factor_out"):
+        torch.testing.assert_close(kfac[0].blocks["positions"].state[key], kfac[1].blocks["positions"].state[key],
+                                   rtol=1e-12, atol=1e-15)

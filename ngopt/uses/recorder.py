@@ -103,6 +103,9 @@ class UseRecorder(TorchFunctionMode):
         # parameter -> why its calls have no block ("prelu, which has no curvature block", ...)
         self.unrecognized: Dict[torch.nn.Parameter, set] = {}
         self._refusal: Optional[str] = None
+        # Outputs of one row shared by the whole batch (a position table looked up with [1, T] indices):
+        # id -> (output, its recorded call), until an operation broadcasts them over the examples.
+        self.shared_rows: Dict[int, tuple] = {}
 
     # -- what handlers use ------------------------------------------------------------------
     def resolve(self, tensor) -> Optional[ParamView]:
@@ -121,7 +124,33 @@ class UseRecorder(TorchFunctionMode):
         """Hand one use to the capture; returns what the network goes on with."""
         if not isinstance(output, torch.Tensor) or not output.requires_grad:
             return output
-        return self.capture.record_use(use, output)
+        handed_on = self.capture.record_use(use, output)
+        rows = use.input_rows
+        if self.examples > 1 and output.dim() > 1 and output.shape[0] == 1 and isinstance(rows, torch.Tensor) \
+                and rows.dim() > 0 and rows.shape[0] == 1:
+            self.shared_rows[id(handed_on)] = (handed_on, self.capture.last_call)
+        return handed_on
+
+    def _spread_shared_rows(self, args):
+        """Broadcast over the examples made explicit: one row shared by the batch, expanded to each example.
+
+        ``x + table`` with ``table [1, T, d]`` gives every example the same rows, and the gradient
+        autograd forms for the table is already summed over the examples; expanding the table to
+        ``[N, T, d]`` first computes the same values and lets the capture see each example's gradient.
+        """
+        sized = any(isinstance(a, torch.Tensor) and a.dim() and a.shape[0] == self.examples for a in args)
+        if not sized:
+            return args
+        spread = list(args)
+        for index, value in enumerate(args):
+            entry = self.shared_rows.get(id(value)) if isinstance(value, torch.Tensor) else None
+            if entry is None or entry[0] is not value:
+                continue
+            expanded = value.expand((self.examples,) + tuple(value.shape[1:]))
+            self.capture.spread_call(entry[1], expanded, self.examples)
+            del self.shared_rows[id(value)]
+            spread[index] = expanded
+        return tuple(spread)
 
     @contextlib.contextmanager
     def tracking(self, extra: Dict[torch.Tensor, ParamView]):
@@ -138,6 +167,8 @@ class UseRecorder(TorchFunctionMode):
     @run_eagerly
     def __torch_function__(self, func, types, args=(), kwargs=None):
         kwargs = kwargs or {}
+        if self.shared_rows:
+            args = self._spread_shared_rows(args)
         if self.uses and torch.is_grad_enabled():
             views = [v for v in map(self.resolve, _tensors(args, kwargs)) if v is not None]
             if views:
@@ -190,11 +221,18 @@ class _Collector:
 
     def __init__(self):
         self.calls = []
+        self.last_call = None
 
     def record_use(self, use, output):
         target, handed_on = output_target(output)
         self.calls.append((use, target))
+        self.last_call = len(self.calls) - 1
         return handed_on
+
+    def spread_call(self, index, expanded, examples):
+        use, _ = self.calls[index]
+        use.input_rows = use.input_rows.expand((examples,) + tuple(use.input_rows.shape[1:]))
+        self.calls[index] = (use, output_target(expanded)[0])
 
     def loss_call(self, func, args, kwargs, inside_forward=True, watch=None):
         return func(*args, **kwargs)
