@@ -25,8 +25,9 @@ import torch
 from torch import nn
 
 from .blocks.base import LayerCurvature
-from .blocks.factory import block_for_uses
+from .blocks.factory import block_for_uses, make_block
 from .blocks.subsample import ExampleSubsample
+from .budget import Plan, Schedule, choose
 
 FALLBACK_WARNING_SHARE = 0.1  # warn when more of the trainable parameters than this take the fallback rule
 
@@ -45,6 +46,15 @@ class ParameterCurvature:
         return self.block is None
 
 
+def _rows(calls) -> int:
+    """Rows per forward of one use: examples times positions, over its calls."""
+    total = 0
+    for call in calls:
+        shape = call.use.input_rows.shape
+        total += int(shape[0]) * (int(shape[1]) if len(shape) >= 2 else 1)
+    return total
+
+
 def block_name(parameter_name: str, model_name: str = "model") -> str:
     """``a.b.weight`` -> ``a.b``; ``a.in_proj_weight`` -> ``a.in_proj``; the model's own ``weight``: its class name."""
     if parameter_name == "weight":
@@ -60,10 +70,13 @@ class CurvatureAssignment:
     """The blocks of one optimizer, built as uses are seen; see the module docstring."""
 
     def __init__(self, model: nn.Module, optimizer, structure: str, weight_sharing: str,
-                 stats_fraction: Optional[float], seed: int):
+                 stats_fraction: Optional[float], seed: int, cost_budget: Optional[float] = None,
+                 max_factor_size: Optional[int] = None, pinned_structures: Optional[dict] = None):
         self.optimizer = optimizer
         self.structure, self.weight_sharing = structure, weight_sharing
         self.stats_fraction = stats_fraction
+        self.cost_budget, self.max_factor_size = cost_budget, max_factor_size
+        self.pinned = dict(pinned_structures or {})
         self.model_name = type(model).__name__
         self.names: Dict[nn.Parameter, str] = {}
         for name, param in model.named_parameters():
@@ -99,6 +112,8 @@ class CurvatureAssignment:
             block = self.block_of.get(param)
             if block is None and param not in self.decided:
                 block = self._decide(param, uses[param], record, claimed_biases)
+            elif block is not None and record.statistics:
+                block = self._revisit(block, uses[param])
             for key, calls in uses[param].items():
                 self._attach(block, param, key, calls)
         self.blocks = dict(sorted(self.blocks.items(), key=lambda item: self.order.get(item[1].layer.weight, 0)))
@@ -113,7 +128,9 @@ class CurvatureAssignment:
                 return self._fall_back(param, f"its bias {self.names.get(bias, '?')} has other uses")
         name = block_name(self.names.get(param, f"parameter{len(self.decided)}"), self.model_name)
         layers = [calls[0].use.make_layer(name) for calls in by_key.values()]
-        block, why = block_for_uses(layers, self.structure, self.optimizer.state[param], self.weight_sharing)
+        rows = {layer.kind: _rows(calls) for layer, calls in zip(layers, by_key.values())}
+        block, why = block_for_uses(layers, self.structure_of(name), self.optimizer.state[param],
+                                    self.weight_sharing, plan=lambda layer: self.plan(layer, rows[layer.kind]))
         if block is None:
             return self._fall_back(param, why)
         group = self.optimizer.group_index(param)
@@ -128,6 +145,45 @@ class CurvatureAssignment:
             self.decided[member] = ParameterCurvature(name, block.layer.kind, block.structure,
                                                       "applied by " + " and ".join(l.kind for l in layers))
         return block
+
+    def structure_of(self, name: str) -> str:
+        """The structure a block gets: pinned by name, or the optimizer's."""
+        return self.pinned.get(name, self.structure)
+
+    def plan(self, layer, rows: int) -> Plan:
+        """Structure and factor forms within the cost budget (``budget.py``); pinned layers keep theirs."""
+        pinned = layer.name in self.pinned
+        fraction = self.stats_fraction if self.stats_fraction is not None else layer.default_stats_fraction
+        schedule = Schedule(self.optimizer.stats_interval, self.optimizer.inverse_interval, fraction)
+        return choose(layer.kind, layer.in_dim, layer.out_dim, rows, self.structure_of(layer.name),
+                      None if pinned else self.cost_budget, self.max_factor_size, schedule)
+
+    def _revisit(self, block: LayerCurvature, by_key) -> LayerCurvature:
+        """A refresh whose batch differs from the one a layer's form was chosen for (by more than 2x in
+        rows) chooses again; a new form starts from this refresh's statistics."""
+        plan = block.plan
+        if plan is None or len(by_key) != 1:
+            return block
+        rows = _rows(next(iter(by_key.values())))
+        if plan.rows and 0.5 <= rows / plan.rows <= 2.0:
+            return block
+        new_plan = self.plan(block.layer, rows)
+        if (new_plan.structure, new_plan.blocks) == (plan.structure, plan.blocks):
+            block.plan = new_plan
+            return block
+        state = self.optimizer.state[block.layer.weight]
+        for key in list(block.statistic_keys) + list(block.inverse_keys) + list(block.projected_keys):
+            state.pop(key, None)
+        fresh = make_block(block.layer, new_plan.structure, state, self.weight_sharing, new_plan.blocks)
+        fresh.plan, fresh.subsample = new_plan, block.subsample
+        name = block.layer.name
+        self.blocks[name] = fresh
+        self.use_keys[fresh] = self.use_keys.pop(block)
+        for member in block.layer.params():
+            self.block_of[member] = fresh
+            previous = self.decided[member]
+            self.decided[member] = ParameterCurvature(name, fresh.layer.kind, fresh.structure, previous.reason)
+        return fresh
 
     def _fall_back(self, param, reason: str) -> None:
         self.decided[param] = ParameterCurvature(None, None, None, reason)

@@ -119,7 +119,9 @@ class FisherDescent(torch.optim.Optimizer):
                  rule_interval: int = 1, rule_batch_fraction: float = 0.25, fallback: str = "sgd",
                  fallback_lr_scale: Optional[float] = None, fisher_samples: int = 1, damping_range=(1e-6, 1e2),
                  param_groups=None, seed: Optional[int] = None, weight_sharing: str = "expand",
-                 stats_fraction: Optional[float] = None, inverse_schedule: str = "together"):
+                 stats_fraction: Optional[float] = None, inverse_schedule: str = "together",
+                 cost_budget: Optional[float] = 1.0, max_factor_size: Optional[int] = 4096,
+                 pinned_structures: Optional[dict] = None):
         check_arguments(step_rule=step_rule)
         lr = RULE_DEFAULTS[step_rule]["lr"] if lr is None else lr
         momentum = RULE_DEFAULTS[step_rule]["momentum"] if momentum is None else momentum
@@ -130,7 +132,9 @@ class FisherDescent(torch.optim.Optimizer):
                         fisher_samples=fisher_samples, damping_range=damping_range, damping_interval=damping_interval,
                         seed=seed, param_groups=param_groups, weight_sharing=weight_sharing,
                         rule_interval=rule_interval, rule_batch_fraction=rule_batch_fraction,
-                        stats_fraction=stats_fraction, inverse_schedule=inverse_schedule)
+                        stats_fraction=stats_fraction, inverse_schedule=inverse_schedule,
+                        cost_budget=cost_budget, max_factor_size=max_factor_size,
+                        pinned_structures=pinned_structures)
         if loss_fn is not None and isinstance(loss_fn, nn.Module) and (fisher != "empirical"
                                                                        or STEP_RULES[step_rule].needs_batch):
             likelihood_for(loss_fn)  # a clear ValueError for a criterion without a closed form
@@ -152,14 +156,15 @@ class FisherDescent(torch.optim.Optimizer):
         self.weight_sharing = weight_sharing
         self.stats_fraction = stats_fraction
         self._capture = None
+        self.stats_interval = stats_interval
+        self.inverse_interval = inverse_interval
+        self.cost_budget, self.max_factor_size = cost_budget, max_factor_size
         self._assignment = CurvatureAssignment(self.model, self, structure, weight_sharing, stats_fraction,
-                                               self._seed)
+                                               self._seed, cost_budget, max_factor_size, pinned_structures)
         groups = param_groups if param_groups is not None else [{"params": list(model.parameters())}]
         super().__init__(groups, defaults)  # every group goes through add_param_group
 
         self.fisher = fisher
-        self.stats_interval = stats_interval
-        self.inverse_interval = inverse_interval
         self.stats_memory = stats_memory
         self.damping_rule = damping_rule
         self.damping_range = tuple(float(x) for x in damping_range)
@@ -278,7 +283,8 @@ class FisherDescent(torch.optim.Optimizer):
             lines.append("  curvature blocks: assigned at the first training forward (how each parameter is used)")
         for name, block in self.blocks.items():
             members = ", ".join(n for n, a in assignment.items() if a.block == name)
-            lines.append(f"  {name}: {block.describe()}  <- {members}")
+            why = f"; {block.plan.why}" if block.plan is not None and block.plan.why else ""
+            lines.append(f"  {name}: {block.describe()}  <- {members}{why}")
         fallback = [(name, a) for name, a in assignment.items() if a.fallback]
         if fallback and self._assignment.seen_forward:
             count = sum(self._numel[name] for name, _ in fallback)

@@ -23,8 +23,8 @@ def factor_spectra(block) -> tuple:
     # with spectra tracking on (or for EKFAC, always), the inversion has already put them there.
     info = block.info
     if info.get("in_eigenvalues") is None:
-        info["in_eigenvalues"] = torch.linalg.eigvalsh(to_cpu64(block.state["factor_in"]))
-        info["out_eigenvalues"] = torch.linalg.eigvalsh(to_cpu64(block.state["factor_out"]))
+        info["in_eigenvalues"] = block.form_in.eigenvalues(to_cpu64(block.state["factor_in"]))
+        info["out_eigenvalues"] = block.form_out.eigenvalues(to_cpu64(block.state["factor_out"]))
     return info["in_eigenvalues"], info["out_eigenvalues"]
 
 

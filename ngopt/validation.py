@@ -65,6 +65,8 @@ CHECKS = {
     "rule_interval": lambda v: _integer("rule_interval", v, low=1),
     "rule_batch_fraction": lambda v: _real("rule_batch_fraction", v, low=0.0, high=1.0, low_open=True),
     "stats_fraction": lambda v: _real("stats_fraction", v, low=0.0, high=1.0, low_open=True, optional=True),
+    "cost_budget": lambda v: _real("cost_budget", v, low=0.0, low_open=True, optional=True),
+    "max_factor_size": lambda v: None if v is None else _integer("max_factor_size", v, low=1),
 }
 
 
@@ -111,10 +113,23 @@ def _check_param_groups(value):
             raise TypeError(f"param_groups[{index}] must be a dict with a 'params' entry, got {group!r:.60}")
 
 
+def _check_pinned_structures(value):
+    if value is None:
+        return
+    if not isinstance(value, dict):
+        raise TypeError(f"pinned_structures must be a dict {{block name: structure}}, got {type(value).__name__}")
+    for name, structure in value.items():
+        if not isinstance(name, str):
+            raise TypeError(f"pinned_structures: keys must be block names (str), got {name!r}")
+        if structure not in CHOICES["structure"]:
+            raise ValueError(f"pinned_structures[{name!r}] must be one of {CHOICES['structure']}, got {structure!r}")
+
+
 def check_arguments(**arguments) -> None:
     """Validate every given argument; raise ``TypeError``/``ValueError`` naming the first bad one."""
     special = {"model": _check_model, "loss_fn": _check_loss_fn, "damping_range": _check_damping_range,
-               "seed": _check_seed, "param_groups": _check_param_groups}
+               "seed": _check_seed, "param_groups": _check_param_groups,
+               "pinned_structures": _check_pinned_structures}
     for name, value in arguments.items():
         check = special.get(name) or CHECKS[name]
         check(value)

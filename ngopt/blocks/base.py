@@ -84,6 +84,7 @@ class LayerCurvature:
         self._kept: dict = {}
         # Partial sums of captures already folded (fold_pending), for blocks whose statistics are sums.
         self._folded = None
+        self.plan = None  # budget.Plan: the form chosen for this layer's cost, when one was
 
     # -- capture -------------------------------------------------------------------------
     def add_capture(self, input_rows: torch.Tensor, grad_rows: torch.Tensor, scale: float,

@@ -1,7 +1,7 @@
 """Which curvature block a parameter gets: the kind of its use(s) and the chosen structure decide."""
 from __future__ import annotations
 
-from typing import Dict, List, Optional, Tuple, Type
+from typing import Callable, Dict, List, Optional, Tuple, Type
 
 from .base import LayerCurvature
 from .diagonal import DiagonalBlock
@@ -52,22 +52,36 @@ def block_class(layer: LayerAdapter, structure: str) -> Type[LayerCurvature]:
 _CONSTANT_INPUT_KINDS = ("attention_in_bias",)
 
 
-def make_block(layer: LayerAdapter, structure: str, state: dict, weight_sharing: str = "expand") -> LayerCurvature:
+def make_block(layer: LayerAdapter, structure: str, state: dict, weight_sharing: str = "expand",
+               factor_blocks=(None, None)) -> LayerCurvature:
     if layer.kind in _CONSTANT_INPUT_KINDS:
         weight_sharing = "reduce"
-    return block_class(layer, structure)(layer, state, weight_sharing=weight_sharing)
+    cls = block_class(layer, structure)
+    if factor_blocks != (None, None):
+        # Block-diagonal factors (ngopt/factors.py) are kept by the K-FAC block only: an eigenbasis
+        # is kept for whole factors.
+        cls = block_class(layer, "kfac")
+        return cls(layer, state, weight_sharing=weight_sharing, factor_blocks=factor_blocks)
+    return cls(layer, state, weight_sharing=weight_sharing)
 
 
-def block_for_uses(layers: List[LayerAdapter], structure: str, state: dict,
-                   weight_sharing: str = "expand") -> Tuple[Optional[LayerCurvature], str]:
+def block_for_uses(layers: List[LayerAdapter], structure: str, state: dict, weight_sharing: str = "expand",
+                   plan: Callable = None) -> Tuple[Optional[LayerCurvature], str]:
     """``(block, why)`` for a parameter applied by ``layers`` (one per distinct use); block None: no block.
 
-    One use: that use's block.  Two uses of the Kronecker kinds without biases whose gradient
-    matrices lay the parameter out the same way or transposed (a tied embedding and output
-    layer): a tied block (``blocks/tied.py``).  Anything else has no block.
+    One use: that use's block, in the form ``plan(layer) -> budget.Plan`` gives it (structure and
+    factor blocks within the cost budget).  Two uses of the Kronecker kinds without biases whose
+    gradient matrices lay the parameter out the same way or transposed (a tied embedding and
+    output layer): a tied block (``blocks/tied.py``), its diagonal form when a factor is larger than
+    the plan allows whole.  Anything else has no block.
     """
     if len(layers) == 1:
-        return make_block(layers[0], structure, state, weight_sharing), ""
+        chosen = plan(layers[0]) if plan is not None else None
+        if chosen is None:
+            return make_block(layers[0], structure, state, weight_sharing), ""
+        block = make_block(layers[0], chosen.structure, state, weight_sharing, chosen.blocks)
+        block.plan = chosen
+        return block, ""
     kinds = ", ".join(layer.kind for layer in layers)
     if len(layers) > 2:
         return None, f"applied in {len(layers)} different ways ({kinds}); a block covers at most two"
@@ -77,6 +91,9 @@ def block_for_uses(layers: List[LayerAdapter], structure: str, state: dict,
     relations = ["same", layout_relation(layers[0], layers[1])]
     if relations[1] == "other":
         return None, f"applied in two ways ({kinds}) that lay the parameter out differently"
-    terms = [make_block(layer, "diag" if structure == "diag" else "kfac", {}, weight_sharing) for layer in layers]
-    tied = TiedDiagonalBlock if structure == "diag" else TiedKroneckerBlock
+    whole = plan is None or all(plan(layer).blocks == (None, None) and plan(layer).structure != "diag"
+                                for layer in layers)
+    diagonal = structure == "diag" or not whole
+    terms = [make_block(layer, "diag" if diagonal else "kfac", {}, weight_sharing) for layer in layers]
+    tied = TiedDiagonalBlock if diagonal else TiedKroneckerBlock
     return tied(terms, relations, state, weight_sharing), ""

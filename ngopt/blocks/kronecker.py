@@ -15,19 +15,21 @@ from __future__ import annotations
 
 import torch
 
-from ..linalg import damped_inverse, factored_damping, to_cpu64
+from ..factors import Whole, factor_form
+from ..linalg import factored_damping, to_cpu64
 from ..spectra import kronecker_summary
 from .base import LayerCurvature, Tensors
 from .rows import example_chunks, mean_over_positions
 
 
-def add_input_moment(factor_in: torch.Tensor, input_rows) -> int:
+def add_input_moment(factor_in: torch.Tensor, input_rows, form=None) -> int:
     """``factor_in += sum over rows of a a^T``, a bounded chunk of examples at a time; returns the row count."""
-    d_in, count = factor_in.shape[0], 0
+    form = form or Whole(factor_in.shape[0])
+    count = 0
     for _, _, chunk in example_chunks(input_rows):
         # Rows may come in a lower precision (autocast); statistics accumulate in the factor's dtype.
-        a = chunk.reshape(-1, d_in).to(factor_in.dtype)
-        factor_in.addmm_(a.T, a)
+        a = chunk.reshape(-1, form.dim).to(factor_in.dtype)
+        form.add_moment(factor_in, a)
         count += a.shape[0]
     return count
 
@@ -35,13 +37,24 @@ def add_input_moment(factor_in: torch.Tensor, input_rows) -> int:
 class KroneckerBlock(LayerCurvature):
     structure = "kfac"
     statistic_keys = ("factor_in", "factor_out")
-    symmetric_statistic_keys = ("factor_in", "factor_out")
     inverse_keys = ("inverse_in", "inverse_out")
     loss_weighted_keys = ("factor_out",)
 
+    def __init__(self, layer, state, weight_sharing="expand", factor_blocks=(None, None)):
+        super().__init__(layer, state, weight_sharing)
+        # Block sizes of the two factors (None: whole); see ngopt/factors.py.
+        self.factor_blocks = tuple(factor_blocks)
+        self.form_in = factor_form(layer.in_dim, factor_blocks[0])
+        self.form_out = factor_form(layer.out_dim, factor_blocks[1])
+        self.symmetric_statistic_keys = tuple(key for key, form in (("factor_in", self.form_in),
+                                                                    ("factor_out", self.form_out))
+                                              if form.symmetric_matrix)
+
+    def fresh_copy(self):
+        return type(self)(self.layer, {}, weight_sharing=self.weight_sharing, factor_blocks=self.factor_blocks)
+
     def statistic_shapes(self):
-        d_in, d_out = self.layer.in_dim, self.layer.out_dim
-        return {"factor_in": (d_in, d_in), "factor_out": (d_out, d_out)}
+        return {"factor_in": self.form_in.shape, "factor_out": self.form_out.shape}
 
     def factor_rows(self):
         """``(a, g, scale)`` per capture, positions kept ("expand") or summed per example ("reduce").
@@ -57,15 +70,12 @@ class KroneckerBlock(LayerCurvature):
 
     def factor_sums(self):
         """``(sum of a a^T, row count, sum of scale * g g^T)`` over the pending captures."""
-        d_in, d_out = self.layer.in_dim, self.layer.out_dim
         ref = self.layer.weight
-        factor_in = torch.zeros(d_in, d_in, dtype=ref.dtype, device=ref.device)
-        factor_out = torch.zeros(d_out, d_out, dtype=ref.dtype, device=ref.device)
+        factor_in, factor_out = self.form_in.zeros(ref), self.form_out.zeros(ref)
         rows = 0
         for input_rows, grad_rows, scale in self.factor_rows():
-            rows += add_input_moment(factor_in, input_rows)
-            g = grad_rows.reshape(-1, d_out).to(ref.dtype)
-            factor_out.addmm_(g.T, g, alpha=scale)
+            rows += add_input_moment(factor_in, input_rows, self.form_in)
+            self.form_out.add_moment(factor_out, grad_rows.reshape(-1, self.form_out.dim).to(ref.dtype), alpha=scale)
         return factor_in, rows, factor_out
 
     def fold_pending(self):
@@ -92,48 +102,53 @@ class KroneckerBlock(LayerCurvature):
     def prepare_inverse(self, statistics, damping, want_spectrum):
         factor_in = to_cpu64(statistics["factor_in"])
         factor_out = to_cpu64(statistics["factor_out"])
-        trace_in, trace_out = float(factor_in.trace()), float(factor_out.trace())
-        shift_in, shift_out = factored_damping(trace_in, factor_in.shape[0], trace_out,
-                                               factor_out.shape[0], damping)
-        inv_in = damped_inverse(factor_in, shift_in, want_spectrum)
-        inv_out = damped_inverse(factor_out, shift_out, want_spectrum)
+        trace_in, trace_out = float(self.form_in.trace(factor_in)), float(self.form_out.trace(factor_out))
+        shift_in, shift_out = factored_damping(trace_in, self.form_in.dim, trace_out, self.form_out.dim, damping)
+        inv_in, eig_in, fallback_in = self.form_in.inverse(factor_in, shift_in, want_spectrum)
+        inv_out, eig_out, fallback_out = self.form_out.inverse(factor_out, shift_out, want_spectrum)
         ref = self.layer.weight
         info = {
             "in_trace": trace_in, "out_trace": trace_out,
             "in_damping": shift_in, "out_damping": shift_out,
-            "in_eigenvalues": inv_in.eigenvalues, "out_eigenvalues": inv_out.eigenvalues,
-            "used_eig_fallback": inv_in.used_fallback or inv_out.used_fallback,
+            "in_eigenvalues": eig_in, "out_eigenvalues": eig_out,
+            "used_eig_fallback": fallback_in or fallback_out,
         }
-        return {"inverse_in": inv_in.inverse.to(device=ref.device, dtype=ref.dtype),
-                "inverse_out": inv_out.inverse.to(device=ref.device, dtype=ref.dtype)}, info
+        return {"inverse_in": inv_in.to(device=ref.device, dtype=ref.dtype),
+                "inverse_out": inv_out.to(device=ref.device, dtype=ref.dtype)}, info
 
     def precondition(self, grad_matrix, damping, tensors=None):
         tensors = self.state if tensors is None else tensors
-        return tensors["inverse_out"] @ grad_matrix @ tensors["inverse_in"]
+        left = self.form_out.left(tensors["inverse_out"], grad_matrix)
+        return self.form_in.right(left, tensors["inverse_in"])
 
     def _shifts(self, damping):
         factor_in, factor_out = self.state["factor_in"], self.state["factor_out"]
-        traces = torch.stack([factor_in.trace(), factor_out.trace()]).tolist()  # one host sync
-        return factored_damping(traces[0], factor_in.shape[0], traces[1], factor_out.shape[0], damping)
-
-    def _damped_factors(self, damping):
-        factor_in, factor_out = self.state["factor_in"], self.state["factor_out"]
-        shift_in, shift_out = self._shifts(damping)
-        eye_in = torch.eye(factor_in.shape[0], dtype=factor_in.dtype, device=factor_in.device)
-        eye_out = torch.eye(factor_out.shape[0], dtype=factor_out.dtype, device=factor_out.device)
-        return factor_in + shift_in * eye_in, factor_out + shift_out * eye_out
+        traces = torch.stack([self.form_in.trace(factor_in), self.form_out.trace(factor_out)]).tolist()  # one sync
+        return factored_damping(traces[0], self.form_in.dim, traces[1], self.form_out.dim, damping)
 
     def damped_product(self, matrix, damping):
-        # (G + s_out I) V (A + s_in I) = W A + s_in W with W = G V + s_out V: no damped copies of the factors.
+        # (G + s_out I) V (A + s_in I), with no damped copies of the factors.
         shift_in, shift_out = self._shifts(damping)
-        left = torch.addmm(matrix, self.state["factor_out"], matrix, beta=shift_out)
-        return torch.addmm(left, left, self.state["factor_in"], beta=shift_in)
+        left = self.form_out.left_damped(self.state["factor_out"], shift_out, matrix)
+        return self.form_in.right_damped(left, self.state["factor_in"], shift_in)
 
     def summary(self, damping, with_spectra):
         return kronecker_summary(self, damping, with_spectra)
 
+    def describe(self):
+        text = super().describe()
+        forms = [f"{side} {form.describe()}" for side, form in (("input factor", self.form_in),
+                                                              ("output factor", self.form_out))
+                 if type(form) is not Whole]
+        return text + (f" ({'; '.join(forms)})" if forms else "")
+
     def dense_curvature(self, damping=0.0):
+        factor_in = self.form_in.dense(self.state["factor_in"])
+        factor_out = self.form_out.dense(self.state["factor_out"])
         if damping:
-            damped_in, damped_out = self._damped_factors(damping)
-            return torch.kron(damped_in, damped_out)
-        return torch.kron(self.state["factor_in"], self.state["factor_out"])
+            shift_in, shift_out = self._shifts(damping)
+            factor_in = factor_in + shift_in * torch.eye(factor_in.shape[0], dtype=factor_in.dtype,
+                                                         device=factor_in.device)
+            factor_out = factor_out + shift_out * torch.eye(factor_out.shape[0], dtype=factor_out.dtype,
+                                                            device=factor_out.device)
+        return torch.kron(factor_in, factor_out)

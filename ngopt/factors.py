@@ -1,0 +1,181 @@
+"""A Kronecker factor kept whole, or block-diagonal when it is too large to keep whole.
+
+A factor ``S = E[x x^T]`` of dimension ``d`` costs ``d^2`` numbers, ``d^3`` to invert and ``d^2``
+per column it preconditions.  For a vocabulary of 128k (an output layer's output factor) or a
+3x3 convolution with 512 channels (a 4,609-dimensional input factor) that is more memory or time
+than the layer itself.  :class:`BlockDiagonal` keeps only the ``b x b`` blocks on the diagonal of
+``S`` (the coordinates split into consecutive runs of ``b``; the last run padded with zeros): memory
+``d b``, inversion ``d b^2``, products ``d b`` per column, all linear in ``d``.  Dropping the
+off-diagonal blocks is the same approximation K-FAC makes between layers, applied within one
+factor; ``b = 1`` is the factor's diagonal.  :class:`Whole` is the plain ``d x d`` matrix.
+
+Both forms store a tensor (``[d, d]``, or ``[n, b, b]`` with ``n = ceil(d / b)``) and apply it to
+matrices from either side, so a block needs no other knowledge of the form.
+"""
+from __future__ import annotations
+
+import math
+from typing import Optional, Tuple
+
+import torch
+
+from .linalg import damped_inverse
+
+
+class Whole:
+    """The factor as one ``d x d`` matrix."""
+
+    def __init__(self, dim: int):
+        self.dim = dim
+        self.block = dim
+
+    name = "whole"
+    symmetric_matrix = True  # one symmetric matrix: sent as a triangle between ranks
+
+    def describe(self) -> str:
+        return f"{self.dim}"
+
+    @property
+    def shape(self) -> Tuple[int, ...]:
+        return (self.dim, self.dim)
+
+    def zeros(self, like: torch.Tensor) -> torch.Tensor:
+        return torch.zeros(self.shape, dtype=like.dtype, device=like.device)
+
+    def add_moment(self, factor: torch.Tensor, rows: torch.Tensor, alpha: float = 1.0) -> None:
+        """``factor += alpha * rows^T rows`` for rows ``[R, d]``."""
+        factor.addmm_(rows.T, rows, alpha=alpha)
+
+    def trace(self, factor: torch.Tensor) -> torch.Tensor:
+        return factor.diagonal(dim1=-2, dim2=-1).sum()
+
+    def inverse(self, factor64: torch.Tensor, shift: float, want_spectrum: bool):
+        """``(inverse of factor + shift I, ascending undamped eigenvalues or None, used the eigen fallback)``."""
+        result = damped_inverse(factor64, shift, want_spectrum)
+        return result.inverse, result.eigenvalues, result.used_fallback
+
+    def eigenvalues(self, factor64: torch.Tensor) -> torch.Tensor:
+        return torch.linalg.eigvalsh(0.5 * (factor64 + factor64.T))
+
+    def eigh(self, factor64: torch.Tensor):
+        """``(eigenvalues [d] ascending within each block, eigenvectors in this form's layout)``."""
+        return torch.linalg.eigh(0.5 * (factor64 + factor64.T))
+
+    def left(self, matrix: torch.Tensor, operand: torch.Tensor, transpose: bool = False) -> torch.Tensor:
+        """``S @ M`` (``S^T @ M`` with ``transpose``) for ``M [d, k]``."""
+        return (matrix.T if transpose else matrix) @ operand
+
+    def right(self, operand: torch.Tensor, matrix: torch.Tensor, transpose: bool = False) -> torch.Tensor:
+        """``M @ S`` (``M @ S^T``) for ``M [k, d]``."""
+        return operand @ (matrix.T if transpose else matrix)
+
+    def left_damped(self, factor: torch.Tensor, shift: float, operand: torch.Tensor) -> torch.Tensor:
+        """``(S + shift I) @ M`` without forming the damped factor."""
+        return torch.addmm(operand, factor, operand, beta=shift)
+
+    def right_damped(self, operand: torch.Tensor, factor: torch.Tensor, shift: float) -> torch.Tensor:
+        return torch.addmm(operand, operand, factor, beta=shift)
+
+    def dense(self, factor: torch.Tensor) -> torch.Tensor:
+        return factor
+
+
+class BlockDiagonal(Whole):
+    """The ``b x b`` diagonal blocks of the factor, ``[n, b, b]``; coordinates ``[i b, (i + 1) b)`` per block."""
+
+    name = "block_diagonal"
+    symmetric_matrix = False
+
+    def __init__(self, dim: int, block: int):
+        super().__init__(dim)
+        self.count = math.ceil(dim / max(1, min(block, dim)))
+        # Blocks as equal as the count allows (513 in 3 blocks of 171, not 256, 256 and 1): the
+        # padding, which costs products and memory for nothing, stays under one row per block.
+        self.block = math.ceil(dim / self.count)
+        self.padding = self.count * self.block - dim
+
+    def describe(self) -> str:
+        return f"{self.dim} in {self.count} blocks of {self.block}" if self.block > 1 else f"{self.dim} (diagonal)"
+
+    @property
+    def shape(self) -> Tuple[int, ...]:
+        return (self.count, self.block, self.block)
+
+    def _blocks(self, rows: torch.Tensor) -> torch.Tensor:
+        """``[R, d]`` -> ``[n, R, b]`` (zero-padded)."""
+        if self.padding:
+            rows = torch.nn.functional.pad(rows, (0, self.padding))
+        return rows.reshape(rows.shape[0], self.count, self.block).transpose(0, 1)
+
+    def add_moment(self, factor, rows, alpha=1.0):
+        blocks = self._blocks(rows)
+        factor.baddbmm_(blocks.transpose(1, 2), blocks, alpha=alpha)
+
+    def trace(self, factor):
+        return factor.diagonal(dim1=-2, dim2=-1).sum()
+
+    def _pad_mask(self, factor64: torch.Tensor) -> torch.Tensor:
+        """Ones on the padded coordinates' diagonal: they stay invertible and contribute nothing."""
+        mask = torch.zeros(self.count * self.block, dtype=factor64.dtype, device=factor64.device)
+        if self.padding:
+            mask[self.dim:] = 1.0
+        return torch.diag_embed(mask.reshape(self.count, self.block))
+
+    def inverse(self, factor64, shift, want_spectrum):
+        sym = 0.5 * (factor64 + factor64.transpose(1, 2))
+        padded = sym + self._pad_mask(sym)
+        damped = padded + shift * torch.eye(self.block, dtype=sym.dtype)
+        chol, info = torch.linalg.cholesky_ex(damped)
+        # S^-1 = L^-T L^-1: batched triangular solves run far faster than a batch of cholesky_inverse.
+        eye = torch.eye(self.block, dtype=sym.dtype).expand_as(damped)
+        lower_inverse = torch.linalg.solve_triangular(chol, eye, upper=False)
+        inverse = lower_inverse.transpose(1, 2) @ lower_inverse
+        failed = info.nonzero().squeeze(1)
+        if failed.numel():
+            # Numerically indefinite blocks only: their nearest positive semi-definite matrix, damped.
+            eigenvalues, vectors = torch.linalg.eigh(padded[failed])
+            clipped = eigenvalues.clamp(min=0.0) + shift
+            inverse[failed] = (vectors / clipped.unsqueeze(1)) @ vectors.transpose(1, 2)
+        return inverse, self.eigenvalues(sym) if want_spectrum else None, bool(failed.numel())
+
+    def eigenvalues(self, factor64):
+        """Ascending eigenvalues of the block-diagonal factor itself (the padding left out)."""
+        sym = 0.5 * (factor64 + factor64.transpose(1, 2))
+        last = self.block - self.padding
+        values = [torch.linalg.eigvalsh(sym[:-1]).reshape(-1)] if self.count > 1 else []
+        values.append(torch.linalg.eigvalsh(sym[-1, :last, :last]))
+        return torch.cat(values).sort().values
+
+    def eigh(self, factor64):
+        raise NotImplementedError("an eigenbasis is kept only for whole factors")
+
+    def _apply(self, blocks: torch.Tensor, operand: torch.Tensor, transpose: bool) -> torch.Tensor:
+        """``blockdiag(B) @ M`` for ``M [d, k]``."""
+        k = operand.shape[1]
+        padded = torch.nn.functional.pad(operand, (0, 0, 0, self.padding)) if self.padding else operand
+        grouped = padded.reshape(self.count, self.block, k)
+        result = torch.bmm(blocks.transpose(1, 2) if transpose else blocks, grouped).reshape(-1, k)
+        return result[:self.dim] if self.padding else result
+
+    def left(self, matrix, operand, transpose=False):
+        return self._apply(matrix, operand, transpose)
+
+    def right(self, operand, matrix, transpose=False):
+        # M @ S = (S^T @ M^T)^T
+        return self._apply(matrix, operand.T, not transpose).T
+
+    def left_damped(self, factor, shift, operand):
+        return self._apply(factor, operand, False) + shift * operand
+
+    def right_damped(self, operand, factor, shift):
+        return self.right(operand, factor) + shift * operand
+
+    def dense(self, factor):
+        return torch.block_diag(*factor)[:self.dim, :self.dim]
+
+
+def factor_form(dim: int, block: Optional[int]):
+    """:class:`Whole` when ``block`` is None or covers ``dim``, else :class:`BlockDiagonal` with that block size."""
+    if block is None or block >= dim:
+        return Whole(dim)
+    return BlockDiagonal(dim, block)
