@@ -12,6 +12,10 @@ practice):
   kept (``stats_fraction``);
 * inversions every ``inverse_interval`` steps: ``d_in b_in^2 + d_out b_out^2``.
 
+An output factor larger than ``max_factor_size`` keeps only its diagonal (``b = 1``): over a
+vocabulary its off-diagonal terms are about ``1/V`` of the diagonal; an input factor larger than it
+keeps blocks of that size.
+
 The exact diagonal (``structure="diag"``) costs ``2 R_s d_in d_out`` per refresh (per-example squares)
 and a few elementwise passes over the weight per step.
 
@@ -80,13 +84,19 @@ def choose(kind: str, d_in: int, d_out: int, rows: int, structure: str, budget: 
         allowed = max(allowed, FLOPS_FLOOR)
     b_in, b_out = d_in, d_out
     if max_factor_size is not None:
-        b_in, b_out = min(b_in, max_factor_size), min(b_out, max_factor_size)
+        # An output factor larger than the limit keeps its diagonal: over a vocabulary (an output layer's
+        # softmax) its off-diagonal terms p_i p_j are about 1/V of the diagonal's p_i, and blocks of
+        # arbitrary index ranges buy little for their cost.  An input factor keeps blocks of the limit.
+        b_in = min(b_in, max_factor_size)
+        b_out = 1 if b_out > max_factor_size else b_out
     while allowed is not None and kronecker_flops(d_in, d_out, rows, b_in, b_out, schedule) > allowed \
             and max(b_in, b_out) >= 2 * SMALLEST_BLOCK:
         if b_in >= b_out:
             b_in = max(SMALLEST_BLOCK, b_in // 2)
         else:
             b_out = max(SMALLEST_BLOCK, b_out // 2)
+    if b_in == 1 and b_out == 1:
+        return Plan("diag", rows=rows, why="both factors would be diagonal: the exact diagonal instead")
     if (b_in, b_out) == (d_in, d_out):
         return Plan(structure, rows=rows)
     cost = kronecker_flops(d_in, d_out, rows, b_in, b_out, schedule)

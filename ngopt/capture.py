@@ -66,6 +66,12 @@ def _streamable(targets) -> bool:
     return all(not isinstance(t, torch.Tensor) for t in targets)
 
 
+def _device_rng_states(model: nn.Module) -> dict:
+    """The generators' states of the accelerators the model lives on (dropout there draws from them)."""
+    devices = {p.device.index or 0 for p in model.parameters() if p.device.type == "cuda"}
+    return {index: torch.cuda.get_rng_state(index) for index in devices}
+
+
 def batch_size(args, kwargs) -> int:
     """The leading dimension of the model's first tensor argument (0 when there is none)."""
     first = next((x for x in list(args) + list(kwargs.values()) if isinstance(x, torch.Tensor)), None)
@@ -246,7 +252,8 @@ class CaptureHooks:
             return None
         record = ForwardRecord(examples=batch_size(args, kwargs), statistics=self.want_statistics)
         if self.want_batch:
-            record.inputs = {"args": args, "kwargs": dict(kwargs), "rng_state": torch.get_rng_state()}
+            record.inputs = {"args": args, "kwargs": dict(kwargs), "rng_state": torch.get_rng_state(),
+                             "device_rng_states": _device_rng_states(model)}
         self._current = record
         self._recorder = UseRecorder(self, self.views, record.examples, uses=self.want_uses, losses=losses)
         self._recorder.__enter__()

@@ -149,9 +149,26 @@ class BlockDiagonal(Whole):
     def eigh(self, factor64):
         raise NotImplementedError("an eigenbasis is kept only for whole factors")
 
+    # Up to this many blocks, one product per block written into its slice of the result beats a
+    # batched product of reshaped copies (they cost a pass over the operand each); beyond, the batch.
+    LOOPED_BLOCKS = 64
+
+    def _ranges(self):
+        for index in range(self.count):
+            start = index * self.block
+            yield index, start, min(self.dim, start + self.block)
+
     def _apply(self, blocks: torch.Tensor, operand: torch.Tensor, transpose: bool) -> torch.Tensor:
         """``blockdiag(B) @ M`` for ``M [d, k]``."""
         k = operand.shape[1]
+        if self.block == 1:  # the diagonal
+            return blocks.reshape(-1, 1) * operand
+        if self.count <= self.LOOPED_BLOCKS:
+            result = torch.empty_like(operand)
+            for index, start, stop in self._ranges():
+                part = blocks[index, :stop - start, :stop - start]
+                torch.mm(part.T if transpose else part, operand[start:stop], out=result[start:stop])
+            return result
         padded = torch.nn.functional.pad(operand, (0, 0, 0, self.padding)) if self.padding else operand
         grouped = padded.reshape(self.count, self.block, k)
         result = torch.bmm(blocks.transpose(1, 2) if transpose else blocks, grouped).reshape(-1, k)
@@ -161,6 +178,15 @@ class BlockDiagonal(Whole):
         return self._apply(matrix, operand, transpose)
 
     def right(self, operand, matrix, transpose=False):
+        """``M @ blockdiag(B)`` for ``M [k, d]``: each block on its slice of columns."""
+        if self.block == 1:
+            return operand * matrix.reshape(1, -1)
+        if self.count <= self.LOOPED_BLOCKS:
+            result = torch.empty_like(operand)
+            for index, start, stop in self._ranges():
+                part = matrix[index, :stop - start, :stop - start]
+                torch.mm(operand[:, start:stop], part.T if transpose else part, out=result[:, start:stop])
+            return result
         # M @ S = (S^T @ M^T)^T
         return self._apply(matrix, operand.T, not transpose).T
 

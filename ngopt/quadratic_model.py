@@ -117,6 +117,7 @@ class BatchEvaluator:
         self.args = _rows(inputs["args"], examples, keep) if self.subsampled else inputs["args"]
         self.kwargs = _rows(inputs["kwargs"], examples, keep) if self.subsampled else inputs["kwargs"]
         self.rng_state = inputs["rng_state"]
+        self.device_rng_states = inputs.get("device_rng_states", {})
         self.targets = [self._first_rows(c.target, examples, keep) for c in self.calls]
         self.weights = [self._first_rows(c.weights, examples, keep) for c in self.calls]
         # Sums over a subsample are a share of the whole batch's.
@@ -145,8 +146,10 @@ class BatchEvaluator:
         self.forwards += 1
         kernels = _composite_attention() if self._composite else contextlib.nullcontext()
         collector = _LossInputs()
-        with torch.random.fork_rng(devices=[]), kernels:
+        with torch.random.fork_rng(devices=list(self.device_rng_states)), kernels:
             torch.set_rng_state(self.rng_state)
+            for index, state in self.device_rng_states.items():
+                torch.cuda.set_rng_state(state, index)
             with collector:
                 if overrides or buffers:
                     output = functional_call(self.model, {**overrides, **buffers}, self.args, self.kwargs)

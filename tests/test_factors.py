@@ -159,9 +159,11 @@ def test_the_cost_model_by_hand():
     # A small layer at a large batch keeps whole factors; the exact diagonal is never changed.
     assert choose("linear", 65, 128, 4096, "kfac", 1.0, 4096, schedule).blocks == (None, None)
     assert choose("linear", 4609, 512, 32, "diag", 1.0, 4096, schedule).structure == "diag"
-    # max_factor_size alone: an output factor of a 32k vocabulary in blocks of at most 4096.
+    # max_factor_size alone: the output factor of a 32k vocabulary keeps its diagonal, an input factor
+    # of 10000 blocks of 4096 at most.
     plan = choose("linear", 513, 32000, 10 ** 9, "kfac", None, 4096, schedule)
-    assert plan.blocks == (None, 4096) and "max_factor_size" in plan.why
+    assert plan.blocks == (None, 1) and "max_factor_size" in plan.why
+    assert choose("linear", 10000, 64, 10 ** 9, "kfac", None, 4096, schedule).blocks == (4096, None)
 
 
 def vocab_model(vocab=4096, width=16):
@@ -188,10 +190,10 @@ def test_a_large_vocabulary_trains_with_a_block_diagonal_output_factor_and_says_
     losses = train_tokens(model, opt, tokens, 8)
     assert losses[-1] < 0.8 * losses[0]
     head = opt.blocks["3"]
-    assert isinstance(head.form_out, BlockDiagonal) and head.form_out.block <= 512
+    assert isinstance(head.form_out, BlockDiagonal) and head.form_out.block == 1
     state = opt.state[model[3].weight]
-    assert state["factor_out"].numel() <= 4096 * 512  # linear in the vocabulary, never 4096 x 4096
-    assert f"output factor 4096 in {head.form_out.count} blocks of {head.form_out.block}" in repr(opt)
+    assert state["factor_out"].numel() == 4096  # its diagonal: linear in the vocabulary, never 4096 x 4096
+    assert "output factor 4096 (diagonal)" in repr(opt)
 
 
 def test_a_layer_chooses_again_when_the_batch_changes_and_a_pinned_layer_keeps_its_structure():

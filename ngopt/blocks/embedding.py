@@ -161,7 +161,8 @@ class EmbeddingKroneckerBlock(LayerCurvature):
 
     def damped_product(self, matrix, damping):
         damped_in, damped_out = self._damped_factors(damping)
-        return (damped_out @ matrix) * damped_in
+        return on_used_columns(matrix, lambda columns, used: (damped_out @ columns)
+                               * (damped_in if used is None else damped_in[used]))
 
     def dense_curvature(self, damping=0.0):
         if damping:

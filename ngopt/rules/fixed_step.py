@@ -1,6 +1,18 @@
 """``step_rule="fixed"``: the step the user sets, ``w -= lr * buf`` with ``buf = momentum * buf + nu * C^-1 g``.
 
 ``nu`` is the KL trust bound of each param group (:mod:`ngopt.rules.trust`).
+
+The change the quadratic model predicts for the applied update ``delta = -lr buf``,
+
+    M(delta) = g^T delta + 1/2 delta^T C delta = -lr g^T buf + 1/2 lr^2 buf^T C buf,
+
+is kept without any product with the curvature: with ``p = C^-1 g`` and ``C p = g``,
+
+    buf_t^T C buf_t = m^2 buf_{t-1}^T C buf_{t-1} + 2 m nu buf_{t-1}^T g_t + nu^2 p_t^T g_t,
+
+a recursion in dot products the step computes anyway (plus one, ``buf_{t-1}^T g_t``).  Each term uses
+the curvature of the step that added it (the one its proposal was computed with), so across a refresh
+or an inversion the quadratic form mixes the curvatures the buffer was built from.
 """
 from __future__ import annotations
 
@@ -9,6 +21,18 @@ import torch
 from ..fallback import heavy_ball
 from .base import StepInputs, StepResult, norms
 from .trust import kl_trust_scale
+
+
+def _buffer_gradient_dots(blocks, buffers, inputs: StepInputs) -> list:
+    """``buf_{t-1}^T g_t`` per block (0 without a buffer): one host sync for all."""
+    present = [i for i, b in enumerate(buffers) if b is not None]
+    values = [0.0] * len(blocks)
+    if present:
+        dots = torch.stack([(buffers[i] * inputs.directions[blocks[i]][0]).sum(dtype=torch.float64)
+                            for i in present]).tolist()
+        for i, value in zip(present, dots):
+            values[i] = value
+    return values
 
 
 class FixedStep:
@@ -27,28 +51,36 @@ class FixedStep:
         kl = predicted = 0.0
         for index, blocks in inputs.blocks_by_group.items():
             group = inputs.groups[index]
+            lr, momentum = group["lr"], group["momentum"]
             dot = sum(inputs.dots[b][0] for b in blocks)
-            nu = kl_trust_scale(dot, group["lr"], group["max_step_kl"])
+            nu = kl_trust_scale(dot, lr, group["max_step_kl"])
             scales[index] = nu
-            step = group["lr"] * nu
+            step = lr * nu
             kl += 0.5 * step * step * dot
-            predicted += -step * dot + 0.5 * step * step * dot  # the blocks' model, momentum left out
             for block in blocks:
                 scale_of[block] = nu
             proposals = [inputs.directions[block][1] for block in blocks]
             # One fused call per operation over the group's blocks (small layers are per-call overhead).
             buffers = [block.state.get("momentum_buffer") for block in blocks]
-            directions = heavy_ball(buffers, proposals, group["momentum"], scale=nu)
-            updates.update(zip(blocks, torch._foreach_mul(directions, -group["lr"])))
-            if group["momentum"]:
+            directions = heavy_ball(buffers, proposals, momentum, scale=nu)
+            updates.update(zip(blocks, torch._foreach_mul(directions, -lr)))
+            cross = _buffer_gradient_dots(blocks, buffers, inputs) if momentum else [0.0] * len(blocks)
+            for block, buffer_dot in zip(blocks, cross):
+                previous = float(block.state["buffer_curvature"]) if momentum and "buffer_curvature" in block.state \
+                    else 0.0
+                curvature = momentum ** 2 * previous + 2 * momentum * nu * buffer_dot + nu ** 2 * inputs.dots[block][0]
+                predicted += -lr * (momentum * buffer_dot + nu * inputs.dots[block][0]) + 0.5 * lr * lr * curvature
+                if momentum:
+                    states[block] = {"buffer_curvature": torch.tensor(curvature, dtype=torch.float64)}
+            if momentum:
                 # Kept only if the step is written; a non-finite buffer makes its update non-finite
                 # (lr is finite), so the optimizer's check of the updates covers the buffers too.
-                states.update((block, {"momentum_buffer": d}) for block, d in zip(blocks, directions))
+                for block, d in zip(blocks, directions):
+                    states[block]["momentum_buffer"] = d
         diagnostics = norms(inputs, scale_of)
         diagnostics.update(trust_scale=min(scales.values()) if scales else 1.0, trust_scale_by_group=scales,
                            kl_estimate=kl, predicted_change=predicted)
-        # No predicted_change: the damping rule measures the update actually applied, momentum included.
-        return StepResult(updates, diagnostics, states=states)
+        return StepResult(updates, diagnostics, predicted_change=predicted, states=states)
 
     def state_dict(self) -> dict:
         return {}

@@ -1,0 +1,136 @@
+"""On a CUDA device: training, a checkpoint round trip, autocast with loss scaling, the sampled Fisher's
+generator, and data parallelism with one process.  Skipped where no CUDA device is present.
+
+References: the same model trained on the CPU in float64 (the curvature of one linear layer with
+squared error is exact, Martens & Grosse 2015, so the CUDA step must land where the CPU step does, to
+float32 rounding of a few hundred terms: 1e-4 relative, common practice); bit-exact resume in one
+process (the same kernels on the same device); torch's own GradScaler contract.
+"""
+from __future__ import annotations
+
+import copy
+import os
+import tempfile
+
+import pytest
+import torch
+from torch import nn
+import torch.nn.functional as F
+
+import ngopt
+
+pytestmark = pytest.mark.skipif(not torch.cuda.is_available(), reason="no CUDA device")
+DEVICE = "cuda"
+
+
+def classifier(seed=0):
+    torch.manual_seed(seed)
+    return nn.Sequential(nn.Conv2d(1, 8, 3, padding=1), nn.BatchNorm2d(8), nn.ReLU(), nn.Flatten(),
+                         nn.Linear(8 * 6 * 6, 32), nn.LayerNorm(32), nn.Tanh(), nn.Linear(32, 4))
+
+
+def images(rows=64, seed=1, device=DEVICE):
+    generator = torch.Generator().manual_seed(seed)
+    x = torch.randn(rows, 1, 6, 6, generator=generator)
+    y = (x[:, 0, :3].mean(dim=(1, 2)) > 0).long() * 2 + (x[:, 0, 3:].mean(dim=(1, 2)) > 0).long()
+    return x.to(device), y.to(device)
+
+
+def train(model, opt, x, y, steps):
+    losses = []
+    for _ in range(steps):
+        opt.zero_grad()
+        loss = F.cross_entropy(model(x), y)
+        loss.backward()
+        opt.step()
+        losses.append(float(loss))
+    return losses
+
+
+@pytest.mark.parametrize("structure", ["kfac", "ekfac", "diag"])
+def test_a_model_on_the_device_trains_and_keeps_its_state_there(structure):
+    model = classifier().to(DEVICE)
+    x, y = images()
+    opt = ngopt.FisherDescent(model, structure=structure, stats_interval=2, inverse_interval=4, stats_fraction=1.0)
+    losses = train(model, opt, x, y, 20)
+    assert losses[-1] < 0.6 * losses[0]
+    for state in opt.state.values():
+        for value in state.values():
+            if torch.is_tensor(value) and value.dim():
+                assert value.device.type == "cuda"
+
+
+def test_one_exact_step_on_the_device_lands_where_the_cpu_step_does():
+    torch.manual_seed(2)
+    cpu = nn.Linear(5, 3).double()
+    gpu = copy.deepcopy(cpu).float().to(DEVICE)
+    generator = torch.Generator().manual_seed(3)
+    x, y = torch.randn(40, 5, generator=generator, dtype=torch.float64), torch.randn(40, 3, generator=generator,
+                                                                                   dtype=torch.float64)
+    settings = dict(fisher="exact", lr=1.0, momentum=0.0, max_step_kl=None, stats_memory=0.0, stats_interval=1,
+                    inverse_interval=1, damping=1e-6, damping_rule="fixed")
+    for model, inputs, targets in ((cpu, x, y), (gpu, x.float().to(DEVICE), y.float().to(DEVICE))):
+        opt = ngopt.FisherDescent(model, nn.MSELoss(), **settings)
+        opt.zero_grad()
+        F.mse_loss(model(inputs), targets).backward()
+        opt.step()
+    torch.testing.assert_close(gpu.weight.double().cpu(), cpu.weight, rtol=1e-4, atol=1e-5)
+
+
+def test_a_checkpoint_resumes_exactly_on_the_device():
+    x, y = images(seed=4)
+    model = classifier(5).to(DEVICE)
+    opt = ngopt.FisherDescent(model, stats_interval=2, inverse_interval=4, seed=0)
+    train(model, opt, x, y, 5)
+    saved = copy.deepcopy((model.state_dict(), opt.state_dict()))
+    train(model, opt, x, y, 5)
+    resumed = classifier(5).to(DEVICE)
+    resumed.load_state_dict(saved[0])
+    resumed_opt = ngopt.FisherDescent(resumed, stats_interval=2, inverse_interval=4, seed=0)
+    resumed_opt.load_state_dict(saved[1])
+    train(resumed, resumed_opt, x, y, 5)
+    for p, q in zip(model.parameters(), resumed.parameters()):
+        assert torch.equal(p, q)
+
+
+def test_the_sampled_fisher_draws_from_a_generator_on_the_device():
+    model = classifier(6).to(DEVICE)
+    x, y = images(seed=7)
+    opt = ngopt.FisherDescent(model, stats_interval=1)
+    train(model, opt, x, y, 2)
+    generator = opt._generator_for(torch.device(DEVICE))
+    assert generator.device.type == "cuda"
+
+
+@pytest.mark.parametrize("dtype", [torch.float16, torch.bfloat16])
+def test_autocast_with_the_loss_scaler_trains_on_the_device(dtype):
+    model = classifier(8).to(DEVICE)
+    x, y = images(seed=9)
+    opt = ngopt.FisherDescent(model, stats_interval=2, inverse_interval=4)
+    scaler = torch.amp.GradScaler("cuda")
+    start = float(F.cross_entropy(model(x), y))
+    for _ in range(30):
+        opt.zero_grad()
+        with torch.autocast("cuda", dtype=dtype):
+            loss = F.cross_entropy(model(x), y)
+        scaler.scale(loss).backward()
+        scaler.step(opt)
+        scaler.update()
+    assert float(F.cross_entropy(model(x), y)) < 0.7 * start
+
+
+def test_data_parallel_with_one_process_on_the_device():
+    import torch.distributed as dist
+    backend = "nccl" if dist.is_nccl_available() else "gloo"
+    with tempfile.TemporaryDirectory() as folder:
+        dist.init_process_group(backend, init_method=f"file://{os.path.join(folder, 'rendezvous')}", rank=0,
+                                world_size=1)
+        try:
+            model = nn.parallel.DistributedDataParallel(classifier(10).to(DEVICE))
+            x, y = images(seed=11)
+            opt = ngopt.FisherDescent(model, stats_interval=2, inverse_interval=4)
+            assert opt.communicator is not None  # attached by itself to DDP's group
+            losses = train(model, opt, x, y, 10)
+            assert losses[-1] < losses[0]
+        finally:
+            dist.destroy_process_group()
