@@ -132,7 +132,10 @@ def test_a_loss_inside_the_model_trains_like_the_same_loss_in_the_loop(rules, co
             criterion(logits[:, :-1].reshape(-1, VOCAB), labels[:, 1:].reshape(-1)).backward()
             twin_opt.step()
             ours, theirs = opt.diagnostics()["update"], twin_opt.diagnostics()["update"]
-            assert ours["reduction_ratio"] == pytest.approx(theirs["reduction_ratio"], rel=1e-8)
+            if theirs["reduction_ratio"] is None:  # the ratio is measured only on steps the damping rule is due
+                assert ours["reduction_ratio"] is None
+            else:
+                assert ours["reduction_ratio"] == pytest.approx(theirs["reduction_ratio"], rel=1e-8)
     for p, q in zip(model.parameters(), twin.parameters()):
         torch.testing.assert_close(p, q, rtol=RTOL, atol=1e-13)
 
