@@ -27,7 +27,7 @@ from torch import nn
 from .blocks.base import LayerCurvature
 from .blocks.factory import block_for_uses, make_block
 from .blocks.subsample import ExampleSubsample
-from .budget import Plan, Schedule, choose
+from .budget import BLOCKABLE_KINDS, Plan, Schedule, choose
 
 FALLBACK_WARNING_SHARE = 0.1  # warn when more of the trainable parameters than this take the fallback rule
 
@@ -91,6 +91,7 @@ class CurvatureAssignment:
         self.subsample_generator = torch.Generator().manual_seed(seed + 1)
         self._subsamples: Dict[float, ExampleSubsample] = {}
         self._warned_new_use = set()
+        self.mean_layer_flops = 0.0
 
     # -- deciding -----------------------------------------------------------------------------
     def assign(self, record) -> None:
@@ -100,6 +101,7 @@ class CurvatureAssignment:
             uses.setdefault(call.use.weight, {}).setdefault(call.use.key, []).append(call)
         if record.calls or record.unrecognized:
             self.seen_forward = True
+        self._measure_model(record)
         for param, functions in record.unrecognized.items():
             if param not in self.decided and param not in self.block_of:
                 self._fall_back(param, f"applied by {'; '.join(sorted(functions))}")
@@ -146,6 +148,17 @@ class CurvatureAssignment:
                                                       "applied by " + " and ".join(l.kind for l in layers))
         return block
 
+    def _measure_model(self, record) -> None:
+        """The mean forward and backward flops per layer of this forward (linear maps and convolutions):
+        the budget's floor, so that a layer cheap beside the model keeps its whole factors."""
+        flops, layers = 0.0, set()
+        for call in record.calls:
+            if call.use.key[0] in BLOCKABLE_KINDS:
+                flops += 6.0 * _rows([call]) * call.use.weight.numel()
+                layers.add(call.use.key)
+        if layers:
+            self.mean_layer_flops = flops / len(layers)
+
     def structure_of(self, name: str) -> str:
         """The structure a block gets: pinned by name, or the optimizer's."""
         return self.pinned.get(name, self.structure)
@@ -156,7 +169,8 @@ class CurvatureAssignment:
         fraction = self.stats_fraction if self.stats_fraction is not None else layer.default_stats_fraction
         schedule = Schedule(self.optimizer.stats_interval, self.optimizer.inverse_interval, fraction)
         return choose(layer.kind, layer.in_dim, layer.out_dim, rows, self.structure_of(layer.name),
-                      None if pinned else self.cost_budget, self.max_factor_size, schedule)
+                      None if pinned else self.cost_budget, self.max_factor_size, schedule,
+                      mean_layer_flops=self.mean_layer_flops)
 
     def _revisit(self, block: LayerCurvature, by_key) -> LayerCurvature:
         """A refresh whose batch differs from the one a layer's form was chosen for (by more than 2x in

@@ -19,9 +19,13 @@ keeps blocks of that size.
 The exact diagonal (``structure="diag"``) costs ``2 R_s d_in d_out`` per refresh (per-example squares)
 and a few elementwise passes over the weight per step.
 
-:func:`choose` keeps the richest form within ``budget`` times the layer's own forward and backward:
-whole factors if they fit (or cost under :data:`FLOPS_FLOOR` in all) and no factor exceeds
-``max_factor_size``; else block-diagonal factors,
+:func:`choose` keeps the richest form within ``budget`` times the larger of the layer's own forward and
+backward and the model's mean per layer (so a small layer beside large ones, an output layer over ten
+classes, keeps its whole factors; the whole model's curvature then costs at most ``2 budget`` times its
+forward and backward):
+whole factors if they fit (or cost under :data:`FLOPS_FLOOR` in all), no factor exceeds
+``max_factor_size`` and none keeps more numbers than the layer has parameters (above
+:data:`MEMORY_FLOOR`); else block-diagonal factors,
 halving the larger side's block until the cost fits; and the exact diagonal when the blocks would be
 smaller than :data:`SMALLEST_BLOCK` (a Kronecker product of near-diagonal factors describes less than
 the exact diagonal does, at about the same cost).
@@ -32,6 +36,8 @@ from dataclasses import dataclass
 from typing import Optional, Tuple
 
 SMALLEST_BLOCK = 16
+# Factors of up to this many numbers (4 MB in float32) are never split for memory.
+MEMORY_FLOOR = 2 ** 20
 # Below this many flops per step a layer's curvature work costs less than the fixed overhead of any
 # step (about a tenth of a millisecond on a laptop core): whole factors then, whatever the ratio.
 FLOPS_FLOOR = 2.0 ** 22
@@ -74,41 +80,58 @@ def diagonal_flops(d_in: int, d_out: int, rows: int, schedule: Schedule) -> floa
     return 2.0 * rows * schedule.stats_fraction * d_in * d_out / schedule.stats_interval + 4.0 * d_in * d_out
 
 
+def _halve_until(dim: int, block: int, fits) -> int:
+    """The largest of ``block, block / 2, ...`` (not below :data:`SMALLEST_BLOCK`) for which ``fits``."""
+    while not fits(block) and block >= 2 * SMALLEST_BLOCK:
+        block //= 2
+    return block
+
+
 def choose(kind: str, d_in: int, d_out: int, rows: int, structure: str, budget: Optional[float],
-           max_factor_size: Optional[int], schedule: Schedule) -> Plan:
-    """The plan for one layer (see the module docstring); ``budget`` None: no limit on cost."""
+           max_factor_size: Optional[int], schedule: Schedule, mean_layer_flops: float = 0.0) -> Plan:
+    """The plan for one layer (see the module docstring); ``budget`` None: no limit on cost.
+
+    ``mean_layer_flops``: the model's forward and backward per layer (linear maps and convolutions);
+    a layer may spend ``budget`` times the larger of its own and that mean.
+    """
     if structure == "diag" or kind not in BLOCKABLE_KINDS:
         return Plan(structure, rows=rows)
-    allowed = budget * forward_backward_flops(d_in, d_out, rows) if budget is not None and rows else None
-    if allowed is not None:
-        allowed = max(allowed, FLOPS_FLOOR)
+    reasons = []
     b_in, b_out = d_in, d_out
-    if max_factor_size is not None:
+    if max_factor_size is not None and max(d_in, d_out) > max_factor_size:
         # An output factor larger than the limit keeps its diagonal: over a vocabulary (an output layer's
         # softmax) its off-diagonal terms p_i p_j are about 1/V of the diagonal's p_i, and blocks of
         # arbitrary index ranges buy little for their cost.  An input factor keeps blocks of the limit.
         b_in = min(b_in, max_factor_size)
         b_out = 1 if b_out > max_factor_size else b_out
-    while allowed is not None and kronecker_flops(d_in, d_out, rows, b_in, b_out, schedule) > allowed \
-            and max(b_in, b_out) >= 2 * SMALLEST_BLOCK:
-        if b_in >= b_out:
-            b_in = max(SMALLEST_BLOCK, b_in // 2)
-        else:
-            b_out = max(SMALLEST_BLOCK, b_out // 2)
-    if b_in == 1 and b_out == 1:
-        return Plan("diag", rows=rows, why="both factors would be diagonal: the exact diagonal instead")
+        reasons.append(f"a factor is larger than max_factor_size={max_factor_size}")
+    # Memory: no factor keeps more numbers than its layer has parameters (or MEMORY_FLOOR), as Adam's
+    # two moments keep twice the parameters.
+    numbers = max(d_in * d_out, MEMORY_FLOOR)
+    capped = (_halve_until(d_in, b_in, lambda b: d_in * b <= numbers),
+              _halve_until(d_out, b_out, lambda b: d_out * b <= numbers))
+    if capped != (b_in, b_out):
+        reasons.append("a whole factor would keep more numbers than the layer has parameters")
+    b_in, b_out = capped
+    if budget is not None and rows:
+        own = forward_backward_flops(d_in, d_out, rows)
+        allowed = max(budget * max(own, mean_layer_flops), FLOPS_FLOOR)
+        whole_cost = kronecker_flops(d_in, d_out, rows, d_in, d_out, schedule)
+        while kronecker_flops(d_in, d_out, rows, b_in, b_out, schedule) > allowed \
+                and max(b_in, b_out) >= 2 * SMALLEST_BLOCK:
+            if b_in >= b_out:
+                b_in = max(SMALLEST_BLOCK, b_in // 2)
+            else:
+                b_out = max(SMALLEST_BLOCK, b_out // 2)
+        if whole_cost > allowed:
+            reasons.append(f"whole factors would cost {whole_cost / own:.1f}x the layer's forward and backward "
+                           f"at {rows} rows (budget {budget:g}x)")
+        cost = kronecker_flops(d_in, d_out, rows, b_in, b_out, schedule)
+        if cost > allowed and diagonal_flops(d_in, d_out, rows, schedule) < cost:
+            return Plan("diag", rows=rows, why="; ".join(reasons) + ": the exact diagonal")
     if (b_in, b_out) == (d_in, d_out):
         return Plan(structure, rows=rows)
-    cost = kronecker_flops(d_in, d_out, rows, b_in, b_out, schedule)
-    ratio = kronecker_flops(d_in, d_out, rows, d_in, d_out, schedule) / max(forward_backward_flops(d_in, d_out, rows), 1)
-    if allowed is not None and cost > allowed and diagonal_flops(d_in, d_out, rows, schedule) < cost:
-        return Plan("diag", rows=rows, why=f"Kronecker factors would cost {ratio:.1f}x the layer's forward and "
-                                            f"backward at {rows} rows (budget {budget:g}x): exact diagonal")
+    if b_in == 1 and b_out == 1:
+        return Plan("diag", rows=rows, why="both factors would be diagonal: the exact diagonal instead")
     blocks = (b_in if b_in < d_in else None, b_out if b_out < d_out else None)
-    reasons = []
-    if allowed is not None and ratio > budget:
-        reasons.append(f"whole factors would cost {ratio:.1f}x the layer's forward and backward at {rows} rows "
-                       f"(budget {budget:g}x)")
-    if max_factor_size is not None and max(d_in, d_out) > max_factor_size:
-        reasons.append(f"a factor is larger than max_factor_size={max_factor_size}")
     return Plan("kfac", blocks=blocks, why="; ".join(reasons), rows=rows)

@@ -159,11 +159,27 @@ def test_the_cost_model_by_hand():
     # A small layer at a large batch keeps whole factors; the exact diagonal is never changed.
     assert choose("linear", 65, 128, 4096, "kfac", 1.0, 4096, schedule).blocks == (None, None)
     assert choose("linear", 4609, 512, 32, "diag", 1.0, 4096, schedule).structure == "diag"
-    # max_factor_size alone: the output factor of a 32k vocabulary keeps its diagonal, an input factor
-    # of 10000 blocks of 4096 at most.
+    # max_factor_size: the output factor of a 32k vocabulary keeps its diagonal; memory: an input factor of
+    # 10000 keeps at most as many numbers as the layer's 640,000 parameters (or 2^20): blocks of 64.
     plan = choose("linear", 513, 32000, 10 ** 9, "kfac", None, 4096, schedule)
     assert plan.blocks == (None, 1) and "max_factor_size" in plan.why
-    assert choose("linear", 10000, 64, 10 ** 9, "kfac", None, 4096, schedule).blocks == (4096, None)
+    plan = choose("linear", 10000, 64, 10 ** 9, "kfac", None, 4096, schedule)
+    assert plan.blocks == (64, None) and "more numbers than the layer has parameters" in plan.why
+    # A ten-class output layer over 1000 inputs at 64 rows: whole factors cost 83 Mflop, ~22x its own
+    # 3.84 Mflop, but less than the model's mean layer of 1 Gflop: it keeps them.
+    head = (1000, 10, 64, "kfac", 1.0, 4096, schedule)
+    assert kronecker_flops(1000, 10, 64, 1000, 10, schedule) == pytest.approx(
+        2 * (1000 ** 2 * 10 + 1000 * 100) + 2 * 64 * (1000 ** 2 + 100) / 10 + (1000 ** 3 + 1000) / 20)
+    assert choose("linear", *head).blocks != (None, None)
+    assert choose("linear", *head, mean_layer_flops=1e9).blocks == (None, None)
+
+
+def test_the_budget_reads_the_models_mean_layer_from_the_recorded_forward():
+    model = nn.Sequential(nn.Linear(64, 512), nn.Tanh(), nn.Linear(512, 10))
+    opt = ngopt.FisherDescent(model)
+    opt.assign_curvature(torch.randn(32, 64))
+    # 6 x rows x weight entries per linear map, halved over the two layers (bias columns not counted)
+    assert opt._assignment.mean_layer_flops == pytest.approx(6 * 32 * (64 * 512 + 512 * 10) / 2)
 
 
 def vocab_model(vocab=4096, width=16):
@@ -201,7 +217,7 @@ def test_a_layer_chooses_again_when_the_batch_changes_and_a_pinned_layer_keeps_i
     model = nn.Sequential(nn.Linear(256, 256), nn.Tanh(), nn.Linear(256, 3))
     x = torch.randn(512, 256)
     y = torch.randint(0, 3, (512,))
-    opt = ngopt.FisherDescent(model, stats_interval=2, pinned_structures={"2": "kfac"})
+    opt = ngopt.FisherDescent(model, stats_interval=2, cost_budget=1.0, pinned_structures={"2": "kfac"})
     loss_fn = nn.CrossEntropyLoss()
     for rows in (512, 512, 4, 4):  # at 4 rows whole 256 x 257 factors cost ~40x the layer's forward and backward
         opt.zero_grad()
