@@ -13,7 +13,7 @@ one concept each:
 - :mod:`benchmarks.training`: one timed training run
 - :mod:`benchmarks.coverage`: the share of parameters under FisherDescent's fallback rule
 - :mod:`benchmarks.harness`: the tuning protocol and the medians over seeds
-- :mod:`benchmarks.comparison`: ratios against the baselines and where ngopt's step time goes
+- :mod:`benchmarks.comparison`: ratios against the baselines and where FisherDescent's step time goes
 - :mod:`benchmarks.verdict`: the one-screen verdict per task
 - :mod:`benchmarks.results`: results.json, the CSV of loss curves, atomic file writes
 - :mod:`benchmarks.outputs`: the files rewritten after every finished run
@@ -21,6 +21,6 @@ one concept each:
 - :mod:`benchmarks.plots`: PNG figures
 - :mod:`benchmarks.scaling`: step time against layer width and batch size
 - :mod:`benchmarks.profiling`: cProfile of one natural-gradient run
-- :mod:`benchmarks.attachments`: the ngopt diagnostics logger on benchmark runs
+- :mod:`benchmarks.attachments`: ngopt's diagnostics logger on the FisherDescent runs
 - :mod:`benchmarks.cli`: the command line
 """

@@ -20,7 +20,7 @@ from benchmarks.attachments import diagnostics_attacher, diagnostics_available
 from benchmarks.evaluation import describe_rule
 from benchmarks.harness import benchmark_task, planned_runs
 from benchmarks.machine import machine_info
-from benchmarks.optimizers import GRID_DECADES, OptimizerSpec, resolve_optimizers
+from benchmarks.optimizers import GRID_DECADES, HEADLINE, OptimizerSpec, resolve_optimizers
 from benchmarks.outputs import ProgressiveOutputs
 from benchmarks.pilot import propose_target
 from benchmarks.profiling import write_profile
@@ -31,7 +31,7 @@ from benchmarks.training import load_average
 FULL_GRID, QUICK_GRID = 5, 3
 DEFAULT_SEEDS = 3
 SCALING_STEPS = {"quick": (2, 20), "full": (5, 60)}  # (warm-up, timed) steps per point; the
-# timed steps span whole refresh periods of ngopt (statistics every 10, inversion every 20)
+# timed steps span whole refresh periods of FisherDescent (statistics every 10, inversion every 20)
 
 
 @dataclass
@@ -87,13 +87,14 @@ def build_parser() -> argparse.ArgumentParser:
                         help="run the step-time scaling study (width 64..1024, batch 64..2048) "
                              "instead of the tasks")
     parser.add_argument("--diagnostics", type=int, metavar="EVERY",
-                        help="log ngopt's curvature diagnostics every EVERY steps into OUT/diagnostics "
-                             "(needs --out; slows ngopt, so its timings are then not comparable)")
+                        help="log FisherDescent's curvature diagnostics every EVERY steps into OUT/diagnostics "
+                             "(needs --out; slows the fisher-descent rows, so their timings are then not "
+                             "comparable)")
     parser.add_argument("--profile", action="store_true",
-                        help="after the benchmark, profile one ngopt run per task at its chosen lr "
-                             "with cProfile into OUT/profile_<task>_ngopt.txt (needs --out)")
+                        help=f"after the benchmark, profile one {HEADLINE} run per task "
+                             f"with cProfile into OUT/profile_<task>_{HEADLINE}.txt (needs --out)")
     parser.add_argument("--ngopt-option", action="append", default=[], metavar="KEY=VALUE",
-                        help="pass one keyword to FisherDescent in every ngopt row and task alike, e.g. "
+                        help="pass one keyword to FisherDescent in every fisher-descent row and task alike, e.g. "
                              "--ngopt-option structure=ekfac or --ngopt-option lr=0.1 (repeatable; values "
                              "are Python literals; keys go to FisherDescent unchecked)")
     parser.add_argument("--no-progress", action="store_true",
@@ -191,24 +192,24 @@ def settings_of(config: Config, argv: list[str]) -> dict:
         "task_file": None if config.task_file is None else str(config.task_file),
     }
     for spec in config.specs:
-        if spec.name == "ngopt":
-            settings["ngopt_group_settings"] = natural_gradient_settings(spec)
-            settings["ngopt_options"] = config.ngopt_options
+        if spec.name == HEADLINE:
+            settings["fisher_descent_group_settings"] = natural_gradient_settings(spec)
+            settings["fisher_descent_options"] = config.ngopt_options
     return settings
 
 
 def check_ready(config: Config) -> None:
     """Fail before any work if a chosen optimizer or logger cannot be had."""
     names = {spec.name for spec in config.specs}
-    if config.scaling and not names & {"ngopt", "sgd"}:
-        raise ValueError("--scaling compares ngopt and sgd: --optimizers must include one of them")
-    if "ngopt" in names:
+    if config.scaling and not names & {HEADLINE, "sgd"}:
+        raise ValueError(f"--scaling compares {HEADLINE} and sgd: --optimizers must include one of them")
+    if HEADLINE in names:
         available, reason = optimizer_registry.natural_gradient_available()
         if not available:
-            raise ValueError(f"optimizer ngopt: ngopt.FisherDescent does not import ({reason}); "
+            raise ValueError(f"optimizer {HEADLINE}: ngopt.FisherDescent does not import ({reason}); "
                              "run the baselines alone with --optimizers sgd,adam")
     natural = [spec for spec in config.specs if spec.natural_gradient_options is not None]
-    if natural and not names & {"ngopt"}:
+    if natural and HEADLINE not in names:
         available, reason = optimizer_registry.natural_gradient_available()
         if not available:
             raise ValueError(f"optimizers {', '.join(spec.name for spec in natural)}: ngopt.FisherDescent "
@@ -216,7 +217,7 @@ def check_ready(config: Config) -> None:
     for spec in natural:
         try:
             natural_gradient_settings(spec)
-            spec.lr_grid(config.grid_size)  # ngopt-tuned reads its grid centre from the library
+            spec.lr_grid(config.grid_size)  # fisher-descent-tuned reads its grid centre from the library
         except (TypeError, ValueError) as error:
             raise ValueError(f"--ngopt-option: FisherDescent ({spec.name}) rejects "
                              f"{spec.natural_gradient_options}: {error}")
@@ -285,9 +286,9 @@ def run_tasks(config: Config, argv: list[str]) -> dict:
     settings["load_average_end"] = load_average()
     results_dict = outputs.finished()
     print(report.console_summary(results_dict, with_tasks=False), flush=True)
-    if config.out is not None and config.profile and "ngopt" in {spec.name for spec in config.specs}:
+    if config.out is not None and config.profile and HEADLINE in {spec.name for spec in config.specs}:
         for outcome in outputs.outcomes:
-            chosen = outcome.outcomes["ngopt"]
+            chosen = outcome.outcomes[HEADLINE]
             path = write_profile(outcome.task, chosen.spec, None if not chosen.spec.tuned else chosen.best_lr,
                                  config.seeds[0], config.steps[outcome.task.name], config.out)
             outputs.written.append(path.name)
@@ -300,7 +301,7 @@ def closing_message(config: Config, outputs: ProgressiveOutputs, interrupted: bo
         return "nothing written (no --out)" if interrupted else ""
     files = ["results.json", "curves.csv", "report.md"] + sorted(set(outputs.written))
     if config.diagnostics_every is not None:
-        files.append("diagnostics/ (one JSON-lines log per ngopt run; `python -m ngopt.report LOG --out DIR` "
+        files.append("diagnostics/ (one JSON-lines log per FisherDescent run; `python -m ngopt.report LOG --out DIR` "
                      "draws one)")
     head = (f"the finished runs ({outputs.finished_count} of {outputs.total}) are written to"
             if interrupted else "results written to")
@@ -308,7 +309,7 @@ def closing_message(config: Config, outputs: ProgressiveOutputs, interrupted: bo
 
 
 def run_scaling_study(config: Config, argv: list[str]) -> list[dict]:
-    specs = {spec.name: spec for spec in config.specs if spec.name in ("ngopt", "sgd")}
+    specs = {spec.name: spec for spec in config.specs if spec.name in (HEADLINE, "sgd")}
     warmup, steps = SCALING_STEPS["quick" if config.quick else "full"]
     steps = config.steps_override or steps
     rows = scaling.run_scaling(specs, warmup, steps, progress=config.progress)

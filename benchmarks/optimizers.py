@@ -5,17 +5,19 @@ learning-rate grid: every grid is log-spaced, spans the same number of decades
 and has the same number of points, so neither baseline gets a finer search
 than the other.
 
-FisherDescent's headline row, ``ngopt``, is not tuned: it is built as a user
-would build it, ``ngopt.FisherDescent(model, loss_fn)``, with only the options
-given by ``--ngopt-option``, and it runs once per seed. That is the comparison
-a user faces: ngopt at its defaults against baselines whose lr was searched.
-Rows on request:
+FisherDescent's headline row, ``fisher-descent``, is not tuned: it is built
+as a user would build it, ``ngopt.FisherDescent(model, loss_fn)``, with only
+the options given by ``--ngopt-option``, and it runs once per seed. That is
+the comparison a user faces: the method at its defaults against baselines
+whose lr was searched. The rows are named after the method, not the package,
+so that a results table reads as methods side by side. Rows on request:
 
-- ``ngopt-tuned``: FisherDescent with an lr grid like the baselines', centred
-  at the library's own default lr (read from the library, so a change of the
-  default moves the grid with it);
-- ``ngopt-ekfac``, ``ngopt-diag``: the untuned row with ``structure="ekfac"``
-  or ``"diag"``, so that they differ from ``ngopt`` in the curvature alone.
+- ``fisher-descent-tuned``: FisherDescent with an lr grid like the baselines',
+  centred at the library's own default lr (read from the library, so a change
+  of the default moves the grid with it);
+- ``fisher-descent-ekfac``, ``fisher-descent-diag``: the untuned row with
+  ``structure="ekfac"`` or ``"diag"``, so that they differ from
+  ``fisher-descent`` in the curvature alone.
 """
 
 from __future__ import annotations
@@ -28,6 +30,9 @@ import torch
 from torch import nn
 
 from benchmarks.selection import select_by_name
+
+HEADLINE = "fisher-descent"  # the method at its defaults, the row every comparison is about
+TUNED = f"{HEADLINE}-tuned"
 
 GRID_DECADES = 2.0  # width of every learning-rate grid, in powers of ten
 
@@ -95,7 +100,7 @@ def library_default_lr(options: dict) -> float:
     optimizer = natural_gradient_builder(options)(nn.Linear(2, 1), nn.MSELoss(), None)
     lr = float(optimizer.param_groups[0]["lr"])
     if lr <= 0:
-        raise ValueError(f"ngopt-tuned: FisherDescent's default lr is {lr}; a log-spaced grid needs lr > 0 "
+        raise ValueError(f"{TUNED}: FisherDescent's default lr is {lr}; a log-spaced grid needs lr > 0 "
                          "(pass --ngopt-option lr=VALUE to centre the grid)")
     return lr
 
@@ -118,7 +123,7 @@ def natural_gradient_row(name: str, options: dict, tuned: bool = False) -> Optim
 def with_natural_gradient_options(spec: OptimizerSpec, options: dict) -> OptimizerSpec:
     """A FisherDescent row with keyword overrides applied to every task alike.
 
-    The options that define the row (the structure of ``ngopt-diag``) win over
+    The options that define the row (the structure of ``fisher-descent-diag``) win over
     the overrides, so a row keeps being what its name says.
     """
     if not options:
@@ -131,20 +136,20 @@ def with_natural_gradient_options(spec: OptimizerSpec, options: dict) -> Optimiz
 OPTIMIZERS: dict[str, OptimizerSpec] = {
     spec.name: spec
     for spec in [
-        natural_gradient_row("ngopt", {}),
+        natural_gradient_row(HEADLINE, {}),
         OptimizerSpec("sgd", "SGD, momentum 0.9, lr tuned", 0.3, _sgd),
         OptimizerSpec("adam", "Adam, lr tuned", 1e-2, _adam),
-        natural_gradient_row("ngopt-tuned", {}, tuned=True),
-        natural_gradient_row("ngopt-ekfac", {"structure": "ekfac"}),
-        natural_gradient_row("ngopt-diag", {"structure": "diag"}),
+        natural_gradient_row(TUNED, {}, tuned=True),
+        natural_gradient_row(f"{HEADLINE}-ekfac", {"structure": "ekfac"}),
+        natural_gradient_row(f"{HEADLINE}-diag", {"structure": "diag"}),
     ]
 }
 NATURAL_GRADIENT_ROWS = tuple(name for name, spec in OPTIMIZERS.items() if spec.natural_gradient_options is not None)
 BASELINES = ("sgd", "adam")
 
 # What runs without --optimizers. The other rows are on request: each adds about as much time as a
-# baseline row (ngopt-tuned as much as both untuned rows together).
-DEFAULT_OPTIMIZERS = ("ngopt", "sgd", "adam")
+# baseline row (fisher-descent-tuned as much as both untuned rows together).
+DEFAULT_OPTIMIZERS = (HEADLINE, "sgd", "adam")
 
 
 def resolve_optimizers(names: Optional[list[str]]) -> list[OptimizerSpec]:

@@ -4,7 +4,8 @@ from __future__ import annotations
 
 from typing import Optional
 
-from benchmarks.comparison import FLOP_ESTIMATE_TEXT, NGOPT, describe_ratio, step_time_breakdown
+from benchmarks.comparison import FLOP_ESTIMATE_TEXT, describe_ratio, step_time_breakdown
+from benchmarks.optimizers import HEADLINE
 from benchmarks.report_format import contention_warning, format_number, format_table
 from benchmarks.verdict import verdict_text
 
@@ -41,15 +42,15 @@ def task_rows(entry: dict) -> list[list[str]]:
 
 
 def ratio_lines(entry: dict) -> list[str]:
-    """Time-to-target and step-time ratios of ngopt over each baseline, with the flop-count estimate."""
+    """Time-to-target and step-time ratios of fisher-descent over each baseline, with the flop-count estimate."""
     comparison = entry["comparison"]
     lines = []
     if comparison["time_to_target"]:
         lines.append("time to target, " + "; ".join(
-            f"ngopt/{name}: {describe_ratio(value)}" for name, value in comparison["time_to_target"].items()))
+            f"{HEADLINE}/{name}: {describe_ratio(value)}" for name, value in comparison["time_to_target"].items()))
         lines.append("steps to target, " + "; ".join(
-            f"ngopt/{name}: {describe_ratio(value)}" for name, value in comparison["steps_to_target"].items()))
-        step_parts = [f"ngopt/{name}: {value:.2f}" for name, value in comparison["step_time"].items()]
+            f"{HEADLINE}/{name}: {describe_ratio(value)}" for name, value in comparison["steps_to_target"].items()))
+        step_parts = [f"{HEADLINE}/{name}: {value:.2f}" for name, value in comparison["step_time"].items()]
         line = "median step time, " + "; ".join(step_parts)
         if comparison["step_time_flop_estimate"] is not None:
             line += (f"  [flop-count estimate 1 + 2d/(3B) = {comparison['step_time_flop_estimate']:.2f} "
@@ -60,15 +61,15 @@ def ratio_lines(entry: dict) -> list[str]:
 
 
 def split_line(entry: dict) -> Optional[str]:
-    """ngopt's mean time per step by part, from its own timers."""
-    summary = entry["summary"].get(NGOPT)
+    """fisher-descent's mean time per step by part, from FisherDescent's own timers."""
+    summary = entry["summary"].get(HEADLINE)
     split = summary and summary.get("time_split_per_step")
     if not split:
         return None
     total = sum(split.values())
     parts = ", ".join(f"{key} {value * 1e3:.2f} ms ({100 * value / total:.0f}%)"
                       for key, value in split.items() if total > 0)
-    return f"ngopt time per step (median over seeds): {parts}; rest = forward/backward and untimed work"
+    return f"{HEADLINE} time per step (median over seeds): {parts}; rest = forward/backward and untimed work"
 
 
 def coverage_line(entry: dict) -> Optional[str]:
@@ -149,7 +150,7 @@ def _time_and_steps(summary: Optional[dict]) -> str:
 
 
 def overview_rows(results: dict) -> list[list[str]]:
-    """One row per task: median time (steps) to target per optimizer, and ngopt's ratios."""
+    """One row per task: median time (steps) to target per optimizer, and fisher-descent's ratios."""
     rows = []
     for entry in results["tasks"]:
         summaries, comparison = entry["summary"], entry["comparison"]
@@ -160,7 +161,7 @@ def overview_rows(results: dict) -> list[list[str]]:
             step_text += f" (flop estimate {estimate:.2f})"
         rows.append([
             entry["task"], f"{entry['target_loss']:g}",
-            *[_time_and_steps(summaries.get(name)) for name in ("ngopt", "sgd", "adam")],
+            *[_time_and_steps(summaries.get(name)) for name in (HEADLINE, "sgd", "adam")],
             *[describe_ratio(comparison["time_to_target"].get(name)).split(" (")[0]
               for name in ("sgd", "adam")],
             step_text,
@@ -168,8 +169,8 @@ def overview_rows(results: dict) -> list[list[str]]:
     return rows
 
 
-OVERVIEW_HEADERS = ["task", "target", "ngopt (untuned): time (steps) to target", "sgd", "adam",
-                    "time ngopt/sgd", "time ngopt/adam", "step time ngopt/sgd"]
+OVERVIEW_HEADERS = ["task", "target", f"{HEADLINE} (untuned): time (steps) to target", "sgd", "adam",
+                    f"time {HEADLINE}/sgd", f"time {HEADLINE}/adam", f"step time {HEADLINE}/sgd"]
 
 
 def overview(results: dict, markdown: bool = False) -> str:
@@ -191,7 +192,7 @@ def console_summary(results: dict, with_tasks: bool = True) -> str:
     threads = results["settings"].get("threads")
     blocks = [task_block(entry, threads=threads) for entry in results["tasks"]] if with_tasks else []
     if results["tasks"]:
-        blocks.append("Overview (medians over seeds; ngopt at its defaults, sgd and adam at their chosen lr)\n"
+        blocks.append(f"Overview (medians over seeds; {HEADLINE} at its defaults, sgd and adam at their chosen lr)\n"
                       + overview(results))
         blocks.append(verdict_text(results))
     note = stop_note(results)
@@ -235,8 +236,8 @@ def markdown_report(results: dict, plot_files: dict[str, str]) -> str:
     if note:
         parts += [f"**{note}**", ""]
     parts += [verdict_text(results, markdown=True), "", "## Settings", "", *settings_lines(results), "",
-              "## Overview", "", "Medians over the seeds (ngopt at its defaults, the baselines at their "
-              "chosen lr); ratios below 1 favour ngopt; `<=` where the baseline never reached the target.",
+              "## Overview", "", f"Medians over the seeds ({HEADLINE} at its defaults, the baselines at their "
+              f"chosen lr); ratios below 1 favour {HEADLINE}; `<=` where the baseline never reached the target.",
               "", overview(results, markdown=True), ""]
     for entry in results["tasks"]:
         parts += [f"## {entry['task']}", "", entry["description"] + ".", "",

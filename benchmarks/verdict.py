@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from typing import Optional
 
+from benchmarks.optimizers import HEADLINE
 from benchmarks.report_format import contention_warning, format_number
 
 HEADING = ("Verdict: wall-clock time to the target training loss, medians over seeds "
@@ -48,10 +49,10 @@ def task_verdict(entry: dict, threads: Optional[int]) -> str:
             runner, second = reached[1]
             text += (f"; that is {_seconds(first) / _seconds(second):.2f}× {runner}'s time "
                      f"({_seconds(second):.3g} s), the next fastest")
-        if "ngopt" in summaries and winner != "ngopt":
-            ngopt = summaries["ngopt"]
-            if _seconds(ngopt) is not None:
-                text += f"; ngopt (untuned) took {_seconds(ngopt) / _seconds(first):.2f}× {winner}'s time"
+        if HEADLINE in summaries and winner != HEADLINE:
+            method = summaries[HEADLINE]
+            if _seconds(method) is not None:
+                text += f"; {HEADLINE} (untuned) took {_seconds(method) / _seconds(first):.2f}× {winner}'s time"
         if missed:
             text += f"; {', '.join(missed)} did not reach it"
     text += "."

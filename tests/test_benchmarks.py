@@ -36,7 +36,7 @@ def every_step(steps: int) -> EvaluationSchedule:
     """Evaluate after every step (the densest schedule: the reference for the adaptive one)."""
     return EvaluationSchedule(1, 1, steps)
 NGOPT_AVAILABLE = natural_gradient_available()[0]
-OPTIMIZER_NAMES = ["ngopt", "sgd", "adam"] if NGOPT_AVAILABLE else ["sgd", "adam"]
+OPTIMIZER_NAMES = ["fisher-descent", "sgd", "adam"] if NGOPT_AVAILABLE else ["sgd", "adam"]
 API_RUN_FIELDS = {  # the README's results schema
     "optimizer": str, "lr": float, "seed": int, "steps_to_target": (int, type(None)),
     "seconds_to_target": (float, type(None)), "final_train_loss": (float, type(None)),
@@ -85,8 +85,8 @@ def test_every_optimizer_gets_the_same_budget_and_the_stated_protocol(smoke_run)
             tuning = [run for run in runs if run["role"] == "tuning"]
             repeats = [run for run in runs if run["role"] == "repeat"]
             summary = task["summary"][name]
-            # ngopt runs untuned (one point: its own default lr), the baselines over their grids
-            assert summary["lr_tuned"] == (name != "ngopt")
+            # fisher-descent runs untuned (one point: its own default lr), the baselines over their grids
+            assert summary["lr_tuned"] == (name != "fisher-descent")
             assert len(tuning) == (SMOKE_GRID if summary["lr_tuned"] else 1)
             assert {run["seed"] for run in tuning} == {0}
             assert [run["lr"] for run in tuning] == summary["lr_grid"]
@@ -110,7 +110,7 @@ def test_time_split_of_natural_gradient_adds_up(smoke_run):
     _, results = smoke_run
     for task in results["tasks"]:
         for run in task["runs"]:
-            if run["optimizer"] == "ngopt":
+            if run["optimizer"] == "fisher-descent":
                 split = run["time_split_seconds"]
                 parts = sum(value for key, value in split.items() if key != "train_seconds")
                 assert parts == pytest.approx(split["train_seconds"], rel=1e-9)
@@ -191,13 +191,13 @@ def test_data_order_is_a_fixed_permutation_per_epoch():
 def test_diagnostics_option_logs_every_natural_gradient_run(tmp_path, capsys):
     if not diagnostics_available():
         pytest.skip("ngopt.log_diagnostics is not available")
-    argv = ["--tasks", "digits_mlp", "--optimizers", "ngopt,sgd", "--steps", "6", "--grid", "1",
+    argv = ["--tasks", "digits_mlp", "--optimizers", "fisher-descent,sgd", "--steps", "6", "--grid", "1",
             "--seeds", "1", "--diagnostics", "2", "--out", str(tmp_path), "--no-progress"]
     assert main(argv) == 0
     closing = capsys.readouterr().out.strip().splitlines()[-1]
     assert closing.startswith(f"results written to {tmp_path}/") and "diagnostics/" in closing
     logs = list((tmp_path / "diagnostics").iterdir())
-    assert [path.name for path in logs] == ["digits_mlp_ngopt_lrdefault_seed0.jsonl"]  # none for sgd
+    assert [path.name for path in logs] == ["digits_mlp_fisher-descent_lrdefault_seed0.jsonl"]  # none for sgd
     records = [json.loads(line) for line in logs[0].read_text().splitlines()]
     # API.md: a record every `every` steps, each a diagnostics() snapshot
     assert [record["step"] for record in records] == [2, 4, 6]
@@ -222,7 +222,8 @@ def test_scaling_study_writes_its_table_and_plot(tmp_path, monkeypatch):
         assert row["flop_estimate"] == pytest.approx(1 + 4 * row["width"] ** 3 / (6 * row["batch"] * row["width"] ** 2))
         assert row["sgd_step_seconds_median"] > 0
         if NGOPT_AVAILABLE:
-            assert row["ratio"] == pytest.approx(row["ngopt_step_seconds_median"] / row["sgd_step_seconds_median"])
+            assert row["ratio"] == pytest.approx(row["fisher_descent_step_seconds_median"]
+                                                 / row["sgd_step_seconds_median"])
     assert (tmp_path / "scaling.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert (tmp_path / "scaling.csv").read_text().startswith("sweep,width,batch,flop_estimate")
     markdown = (tmp_path / "scaling.md").read_text()
@@ -244,7 +245,7 @@ def test_unknown_names_fail_with_the_valid_names(option, bad):
 def test_resolvers_raise_value_error_naming_the_option():
     with pytest.raises(ValueError, match="tasks.*valid tasks: digits_autoencoder"):
         resolve_tasks(["nope"])
-    with pytest.raises(ValueError, match="optimizers.*valid optimizers: ngopt, sgd, adam"):
+    with pytest.raises(ValueError, match="optimizers.*valid optimizers: fisher-descent, sgd, adam"):
         resolve_optimizers(["nope"])
     with pytest.raises(ValueError, match="seeds"):
         parse_seeds("0")
@@ -286,7 +287,7 @@ def test_step_time_flop_estimate_counts_the_flops():
 
 def test_ratios_bounded_by_the_budget_when_one_side_misses():
     assert bounded_ratio(2.0, 10.0, 8.0, 20.0) == {"ratio": 0.25, "relation": "measured"}
-    # the baseline never got there within 20 s, so ngopt/baseline < 2/20
+    # the baseline never got there within 20 s, so fisher-descent/baseline < 2/20
     assert bounded_ratio(2.0, 10.0, None, 20.0) == {"ratio": 0.1, "relation": "at_most"}
     assert bounded_ratio(None, 10.0, 4.0, 20.0) == {"ratio": 2.5, "relation": "at_least"}
     assert bounded_ratio(None, 10.0, None, 20.0)["relation"] == "neither"
@@ -347,10 +348,11 @@ def test_targets_lie_between_the_trivial_and_the_best_possible_loss():
 
 def test_ngopt_options_reach_every_natural_gradient_row_and_keep_its_curvature():
     from benchmarks.cli import build_parser, make_config
-    args = build_parser().parse_args(["--optimizers", "ngopt,ngopt-ekfac,sgd", "--ngopt-option", "damping=0.001"])
+    args = build_parser().parse_args(["--optimizers", "fisher-descent,fisher-descent-ekfac,sgd",
+                                      "--ngopt-option", "damping=0.001"])
     specs = {spec.name: spec for spec in make_config(args).specs}
-    assert specs["ngopt"].natural_gradient_options["damping"] == 0.001
-    assert specs["ngopt-ekfac"].natural_gradient_options == {"damping": 0.001, "structure": "ekfac"}
+    assert specs["fisher-descent"].natural_gradient_options["damping"] == 0.001
+    assert specs["fisher-descent-ekfac"].natural_gradient_options == {"damping": 0.001, "structure": "ekfac"}
     assert specs["sgd"].natural_gradient_options is None
 
 
@@ -369,7 +371,7 @@ def test_adaptive_evaluation_finds_the_target_step_within_its_stated_resolution(
     assert sparse.curve_steps[-1] == steps
 
 
-def test_ngopt_row_is_built_without_an_lr_unless_one_is_given(monkeypatch):
+def test_fisher_descent_row_is_built_without_an_lr_unless_one_is_given(monkeypatch):
     if not NGOPT_AVAILABLE:
         pytest.skip("ngopt.FisherDescent does not import")
     import ngopt
@@ -384,7 +386,7 @@ def test_ngopt_row_is_built_without_an_lr_unless_one_is_given(monkeypatch):
             super().__init__(*args, **kwargs)
 
     monkeypatch.setattr(ngopt, "FisherDescent", Recording)
-    optimizer = OPTIMIZERS["ngopt"].build(torch.nn.Linear(3, 2), torch.nn.MSELoss(), None)
+    optimizer = OPTIMIZERS["fisher-descent"].build(torch.nn.Linear(3, 2), torch.nn.MSELoss(), None)
     assert keywords[-1] == {}  # ngopt.FisherDescent(model, loss_fn) as a user writes it
     default = library(torch.nn.Linear(3, 2), torch.nn.MSELoss()).param_groups[0]["lr"]
     assert optimizer.param_groups[0]["lr"] == default
@@ -392,9 +394,9 @@ def test_ngopt_row_is_built_without_an_lr_unless_one_is_given(monkeypatch):
     args = build_parser().parse_args(["--ngopt-option", "lr=0.05", "--ngopt-option", "stats_interval=5"])
     spec = make_config(args).specs[0]
     spec.build(torch.nn.Linear(3, 2), torch.nn.MSELoss(), None)
-    assert spec.name == "ngopt" and keywords[-1] == {"lr": 0.05, "stats_interval": 5}
+    assert spec.name == "fisher-descent" and keywords[-1] == {"lr": 0.05, "stats_interval": 5}
     # the tuned row centres its grid at the library's default, whatever it is
-    tuned = OPTIMIZERS["ngopt-tuned"]
+    tuned = OPTIMIZERS["fisher-descent-tuned"]
     assert tuned.grid_centre() == default
     assert math.prod(tuned.lr_grid(3)) == pytest.approx(default ** 3)  # geometric centre
 
@@ -501,18 +503,18 @@ def test_verdict_names_the_first_to_the_target_and_the_time_ratio():
     from benchmarks.verdict import caution, task_verdict
 
     entry = {"task": "t", "target_loss": 0.01, "steps": 100, "load_average_max": 1.0,
-             "summary": {"ngopt": summary_of(0.58, tuned=False), "sgd": summary_of(None, reached=0),
+             "summary": {"fisher-descent": summary_of(0.58, tuned=False), "sgd": summary_of(None, reached=0),
                          "adam": summary_of(1.0)}}
     text = task_verdict(entry, threads=2)
-    assert "ngopt (untuned) reached the target first, in 0.58 s" in text
+    assert "fisher-descent (untuned) reached the target first, in 0.58 s" in text
     assert "0.58× adam's time (1 s), the next fastest" in text and "sgd did not reach it" in text
     assert "[load" not in text
     entry["load_average_max"] = 5.0  # above the 2 threads: other processes competed
     assert task_verdict(entry, threads=2).endswith(". [load 5.0]")
     assert "load average reached L (up to 5.0) with 2" in caution({"settings": {"threads": 2}, "tasks": [entry]})
-    entry["summary"]["ngopt"] = summary_of(1.5, tuned=False)
+    entry["summary"]["fisher-descent"] = summary_of(1.5, tuned=False)
     text = task_verdict(entry, threads=2)
-    assert "adam reached the target first" in text and "ngopt (untuned) took 1.50× adam's time" in text
+    assert "adam reached the target first" in text and "fisher-descent (untuned) took 1.50× adam's time" in text
     entry["summary"] = {"sgd": summary_of(None, 0, final=0.2), "adam": summary_of(None, 0, final=0.1)}
     assert "no optimizer reached the target; the lowest final training loss was adam's, 0.1" in \
         task_verdict(entry, threads=2)
