@@ -8,7 +8,7 @@ import gc
 import json
 import shlex
 import sys
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Optional
 
@@ -52,14 +52,15 @@ class Config:
     scaling: bool
     task_file: Optional[Path] = None
     flush_denormal: bool = False  # whether subnormal floats are flushed to zero (CPU support)
+    skipped: dict = field(default_factory=dict)  # optimizer name -> why it cannot run here
 
 
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="python -m benchmarks",
-        description="Compare ngopt.FisherDescent with SGD (momentum 0.9) and Adam on small CPU "
-                    "tasks: equal lr-grid size, seeds, batches, initial weights, data order and "
-                    "step budget for every optimizer.")
+        description="Compare ngopt.FisherDescent with SGD (momentum 0.9), Adam, AdamW under a warm-up and "
+                    "cosine schedule, and Muon (with AdamW) on small CPU tasks: equal lr grids, seeds, batches, "
+                    "initial weights, data order and step budget for every tuned optimizer.")
     parser.add_argument("--quick", action="store_true",
                         help=f"short budget: each task's quick step count, {QUICK_GRID}-point lr grids "
                              f"(default: full step counts, {FULL_GRID}-point grids)")
@@ -150,6 +151,10 @@ def make_config(args: argparse.Namespace) -> Config:
     specs = [optimizer_registry.with_natural_gradient_options(spec, ngopt_options)
              if spec.natural_gradient_options is not None else spec
              for spec in resolve_optimizers(split_names(args.optimizers))]
+    specs, skipped = optimizer_registry.runnable(specs)
+    if not specs:
+        raise ValueError("--optimizers: none of the chosen optimizers can run here: "
+                         + "; ".join(f"{name}: {reason}" for name, reason in skipped.items()))
     seeds = parse_seeds(args.seeds)
     grid = args.grid if args.grid is not None else (QUICK_GRID if args.quick else FULL_GRID)
     if grid < 1:
@@ -164,7 +169,8 @@ def make_config(args: argparse.Namespace) -> Config:
         raise ValueError("--profile needs --out")
     steps = {task.name: args.steps or (task.quick_steps if args.quick else task.steps) for task in tasks}
     return Config(tasks, specs, seeds, grid, steps, args.steps, ngopt_options, args.quick, args.threads, args.out,
-                  not args.no_progress, args.diagnostics, args.profile, args.scaling, args.task_file)
+                  not args.no_progress, args.diagnostics, args.profile, args.scaling, args.task_file,
+                  skipped=skipped)
 
 
 def natural_gradient_settings(spec: OptimizerSpec) -> dict:
@@ -180,6 +186,7 @@ def settings_of(config: Config, argv: list[str]) -> dict:
         "tasks": [task.name for task in config.tasks],
         "optimizers": [spec.name for spec in config.specs],
         "optimizer_labels": {spec.name: spec.label for spec in config.specs},
+        "skipped_optimizers": config.skipped,
         "seeds": config.seeds,
         "grid_size": config.grid_size,
         "grid_decades": GRID_DECADES,
@@ -341,6 +348,8 @@ def main(argv: Optional[list[str]] = None) -> int:
         check_ready(config)
     except ValueError as error:
         parser.error(str(error))  # exits with status 2 and the message
+    for name, reason in config.skipped.items():
+        print(f"skipping optimizer {name}: {reason}", flush=True)
     threads_before = torch.get_num_threads()
     torch.set_num_threads(config.threads)
     # Subnormal floats (gradients of a loss fitted to ~0) slow CPU arithmetic many times over;

@@ -1,9 +1,17 @@
 """The compared optimizers and their learning-rate grids.
 
-SGD (heavy-ball momentum 0.9) and Adam (its defaults) are tuned over a
-learning-rate grid: every grid is log-spaced, spans the same number of decades
-and has the same number of points, so neither baseline gets a finer search
-than the other.
+The baselines are tuned over a learning-rate grid: every grid is log-spaced,
+spans the same number of decades and has the same number of points, so no
+baseline gets a finer search than another. They are
+
+- ``sgd``: SGD with heavy-ball momentum 0.9;
+- ``adam``: Adam at its defaults;
+- ``adamw-cosine``: AdamW (weight decay 0.01) under a linear warm-up and a
+  cosine decay fitted to the run's step budget (:mod:`benchmarks.schedules`);
+  the grid sets the peak lr;
+- ``muon`` (on request): torch's ``Muon`` on the hidden weight matrices and
+  AdamW on the rest, at one lr (:mod:`benchmarks.muon`); skipped, with the
+  reason, on a torch without ``torch.optim.Muon``.
 
 FisherDescent's headline row, ``fisher-descent``, is not tuned: it is built
 as a user would build it, ``ngopt.FisherDescent(model, loss_fn)``, with only
@@ -29,6 +37,8 @@ import numpy as np
 import torch
 from torch import nn
 
+from benchmarks import schedules
+from benchmarks.muon import build_muon, muon_available
 from benchmarks.selection import select_by_name
 
 HEADLINE = "fisher-descent"  # the method at its defaults, the row every comparison is about
@@ -38,6 +48,12 @@ GRID_DECADES = 2.0  # width of every learning-rate grid, in powers of ten
 
 # (model, loss, lr) -> optimizer; lr None means: do not pass one, use the optimizer's default
 Builder = Callable[[nn.Module, nn.Module, Optional[float]], torch.optim.Optimizer]
+# (optimizer, the run's step budget) -> lr scheduler, stepped after every optimizer step
+Schedule = Callable[[torch.optim.Optimizer, int], torch.optim.lr_scheduler.LRScheduler]
+
+# AdamW's decoupled weight decay: torch's default. The targets are training losses, which decay
+# works against, so the baselines keep the light default rather than a heavier regularizer.
+ADAMW_WEIGHT_DECAY = 0.01
 
 
 @dataclass(frozen=True)
@@ -47,7 +63,9 @@ class OptimizerSpec:
     ``lr_centre`` is the geometric centre of the grid: a grid of n points is
     ``lr_centre * 10 ** linspace(-GRID_DECADES / 2, GRID_DECADES / 2, n)``.
     An untuned row (``tuned=False``) has the one-point grid ``[None]``: it is
-    built without an lr and runs at the optimizer's own default.
+    built without an lr and runs at the optimizer's own default. A row with a
+    ``schedule`` has it built on its optimizer for each run's step budget; the
+    grid then sets the lr the schedule scales.
     """
 
     name: str
@@ -56,6 +74,11 @@ class OptimizerSpec:
     build: Builder
     natural_gradient_options: Optional[dict] = None  # what defines a FisherDescent row; None otherwise
     tuned: bool = True
+    schedule: Optional[Schedule] = None
+    unavailable: Optional[Callable[[], Optional[str]]] = None  # why the row cannot run here (None: it can)
+
+    def why_unavailable(self) -> Optional[str]:
+        return None if self.unavailable is None else self.unavailable()
 
     def lr_grid(self, size: int) -> list[Optional[float]]:
         if size < 1:
@@ -80,6 +103,14 @@ def _sgd(model: nn.Module, loss_fn: nn.Module, lr: Optional[float]) -> torch.opt
 
 def _adam(model: nn.Module, loss_fn: nn.Module, lr: Optional[float]) -> torch.optim.Optimizer:
     return torch.optim.Adam(model.parameters(), lr=lr)
+
+
+def _adamw(model: nn.Module, loss_fn: nn.Module, lr: Optional[float]) -> torch.optim.Optimizer:
+    return torch.optim.AdamW(model.parameters(), lr=lr, weight_decay=ADAMW_WEIGHT_DECAY)
+
+
+def _muon(model: nn.Module, loss_fn: nn.Module, lr: Optional[float]) -> torch.optim.Optimizer:
+    return build_muon(model, loss_fn, lr, ADAMW_WEIGHT_DECAY)
 
 
 def natural_gradient_builder(options: Optional[dict] = None) -> Builder:
@@ -139,22 +170,36 @@ OPTIMIZERS: dict[str, OptimizerSpec] = {
         natural_gradient_row(HEADLINE, {}),
         OptimizerSpec("sgd", "SGD, momentum 0.9, lr tuned", 0.3, _sgd),
         OptimizerSpec("adam", "Adam, lr tuned", 1e-2, _adam),
+        OptimizerSpec("adamw-cosine", f"AdamW (weight decay {ADAMW_WEIGHT_DECAY:g}), {schedules.describe()}; "
+                      "peak lr tuned", 1e-2, _adamw, schedule=schedules.warmup_cosine),
+        OptimizerSpec("muon", "torch's Muon (match_rms_adamw, Newton-Schulz in bfloat16 as torch runs it) on the "
+                      f"hidden weight matrices, AdamW on the rest, weight decay {ADAMW_WEIGHT_DECAY:g}; one lr, tuned",
+                      1e-2, _muon, unavailable=muon_available),
         natural_gradient_row(TUNED, {}, tuned=True),
         natural_gradient_row(f"{HEADLINE}-ekfac", {"structure": "ekfac"}),
         natural_gradient_row(f"{HEADLINE}-diag", {"structure": "diag"}),
     ]
 }
 NATURAL_GRADIENT_ROWS = tuple(name for name, spec in OPTIMIZERS.items() if spec.natural_gradient_options is not None)
-BASELINES = ("sgd", "adam")
+BASELINES = ("sgd", "adam", "adamw-cosine", "muon")
 
 # What runs without --optimizers. The other rows are on request: each adds about as much time as a
-# baseline row (fisher-descent-tuned as much as both untuned rows together).
-DEFAULT_OPTIMIZERS = (HEADLINE, "sgd", "adam")
+# baseline row (fisher-descent-tuned as much as both untuned rows together), except muon: torch's Muon
+# orthogonalizes in bfloat16, whose matrix products a CPU without native bfloat16 support (AVX2 only)
+# runs tens of times slower than float32 ones, so on such a CPU one muon run can take minutes.
+DEFAULT_OPTIMIZERS = (HEADLINE, "sgd", "adam", "adamw-cosine")
 
 
 def resolve_optimizers(names: Optional[list[str]]) -> list[OptimizerSpec]:
     """The optimizers with the given names, in the order given (``DEFAULT_OPTIMIZERS`` for ``None``)."""
     return select_by_name(OPTIMIZERS, list(DEFAULT_OPTIMIZERS) if names is None else names, "optimizers")
+
+
+def runnable(specs: list[OptimizerSpec]) -> tuple[list[OptimizerSpec], dict[str, str]]:
+    """The rows that can run here, and for each other one the reason it cannot (e.g. a torch without Muon)."""
+    reasons = {spec.name: spec.why_unavailable() for spec in specs}
+    return [spec for spec in specs if reasons[spec.name] is None], \
+        {name: reason for name, reason in reasons.items() if reason is not None}
 
 
 def natural_gradient_available() -> tuple[bool, str]:

@@ -76,7 +76,7 @@ def coverage_line(entry: dict) -> Optional[str]:
     """The share of parameters that FisherDescent left to its fallback rule, where any."""
     for name, summary in entry["summary"].items():
         coverage = summary.get("parameter_coverage")
-        if coverage and coverage["fallback_parameters"]:
+        if coverage and coverage.get("fallback_parameters"):
             reasons = coverage.get("fallback_reasons") or {}
             tensors = ", ".join(f"{t} ({reasons[t]})" if t in reasons else t for t in coverage["fallback_tensors"][:6])
             more = len(coverage["fallback_tensors"]) - 6
@@ -84,6 +84,19 @@ def coverage_line(entry: dict) -> Optional[str]:
                     f"({coverage['fallback_parameters']} of {coverage['parameters']}) have no curvature block "
                     f"and took the fallback rule ({name}): {tensors}" + (f" and {more} more" if more > 0 else ""))
     return None
+
+
+def parts_line(entry: dict) -> Optional[str]:
+    """Which share of the parameters each part of a composite optimizer (the muon row) updates."""
+    texts = []
+    for name, summary in entry["summary"].items():
+        coverage = summary.get("parameter_coverage") or {}
+        if "parts" in coverage:
+            total = coverage["parameters"]
+            shares = ", ".join(f"{part} {count} ({100 * count / total:.1f}%)"
+                               for part, count in coverage["parts"].items())
+            texts.append(f"{name} updates {total} parameters: {shares}")
+    return "; ".join(texts) or None
 
 
 def memory_line(entry: dict) -> str:
@@ -131,7 +144,8 @@ def task_block(entry: dict, markdown: bool = False, threads: Optional[int] = Non
     headers = [h.format(metric=entry["test_metric"] or "metric") for h in TABLE_HEADERS]
     warning = contention_warning(entry.get("load_average_max"), threads)
     notes = ratio_lines(entry) + [line for line in (
-        step_time_breakdown(entry, "sgd"), split_line(entry), coverage_line(entry), memory_line(entry),
+        step_time_breakdown(entry, "sgd"), split_line(entry), coverage_line(entry), parts_line(entry),
+        memory_line(entry),
         reference_line(entry), progress_line(entry),
         warning and f"warning: {warning}; the runs were interleaved across optimizers to spread the effect",
     ) if line]
@@ -214,7 +228,9 @@ def settings_lines(results: dict) -> list[str]:
         f"- load average (1 min) at start and end: {settings.get('load_average_start')} / "
         f"{settings.get('load_average_end')} (other processes on the machine inflate wall-clock times)",
         "- optimizers: " + "; ".join(f"{name} = {label}" for name, label in
-                                     settings["optimizer_labels"].items()),
+                                     settings["optimizer_labels"].items())
+        + "".join(f"; skipped: {name} ({reason})" for name, reason in
+                  settings.get("skipped_optimizers", {}).items()),
         f"- seeds {settings['seeds']}; lr grid of {settings['grid_size']} points per tuned optimizer, "
         f"{settings['grid_decades']:g} decades wide: {grids or 'none'}"
         + (f"; not tuned (built without an lr, one run per seed): {', '.join(untuned)}" if untuned else ""),

@@ -290,9 +290,9 @@ def test_curvature_rows_build_their_curvature_untuned_like_the_headline_row(name
 
 
 def test_curvature_rows_run_on_request_and_keep_their_curvature_under_overrides():
-    # The results schema: results list the optimizers "fisher-descent|sgd|adam"; the curvature rows are extra
+    # the untuned method and the tuned baselines by default; the curvature rows (and muon) are extra
     assert [spec.name for spec in resolve_optimizers(None)] == list(DEFAULT_OPTIMIZERS) == [
-        "fisher-descent", "sgd", "adam"]
+        "fisher-descent", "sgd", "adam", "adamw-cosine"]
     assert [spec.name for spec in resolve_optimizers(["fisher-descent-diag", "sgd"])] == ["fisher-descent-diag", "sgd"]
     tuned = with_natural_gradient_options(OPTIMIZERS["fisher-descent-diag"], {"structure": "kfac", "momentum": 0.0})
     optimizer = tuned.build(nn.Linear(3, 2), nn.MSELoss(), 0.1)
@@ -312,7 +312,8 @@ def first_examples(load, n_train: int, n_test: int):
 
 @pytest.mark.parametrize("task_name", NEW_TASKS)
 def test_quick_run_of_the_new_task_with_every_row(task_name, tmp_path, monkeypatch):
-    rows = ["sgd", "adam", "fisher-descent", "fisher-descent-diag", "fisher-descent-ekfac"]
+    rows = ["sgd", "adam", "adamw-cosine", "fisher-descent", "fisher-descent-diag", "fisher-descent-ekfac"]
+    rows += ["muon"] if hasattr(torch.optim, "Muon") else []
     task = TASKS[task_name]
     monkeypatch.setitem(TASKS, task_name, replace(task, load_data=first_examples(task.load_data, 256, 64)))
     steps = 3

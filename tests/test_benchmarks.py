@@ -25,7 +25,8 @@ from benchmarks.attachments import diagnostics_available
 from benchmarks.cli import main, parse_options, parse_seeds
 from benchmarks.comparison import bounded_ratio, step_time_flop_estimate
 from benchmarks.evaluation import EvaluationSchedule
-from benchmarks.optimizers import GRID_DECADES, OPTIMIZERS, natural_gradient_available, resolve_optimizers
+from benchmarks.optimizers import (BASELINES, DEFAULT_OPTIMIZERS, GRID_DECADES, HEADLINE, OPTIMIZERS,
+                                   natural_gradient_available, resolve_optimizers)
 from benchmarks.tasks import TASKS, resolve_tasks
 from benchmarks.training import minibatches, train_run
 
@@ -36,7 +37,9 @@ def every_step(steps: int) -> EvaluationSchedule:
     """Evaluate after every step (the densest schedule: the reference for the adaptive one)."""
     return EvaluationSchedule(1, 1, steps)
 NGOPT_AVAILABLE = natural_gradient_available()[0]
-OPTIMIZER_NAMES = ["fisher-descent", "sgd", "adam"] if NGOPT_AVAILABLE else ["sgd", "adam"]
+# every row the verdict weighs: the default rows and muon (on request), each where it can run
+OPTIMIZER_NAMES = [name for name in [*DEFAULT_OPTIMIZERS, "muon"]
+                   if (NGOPT_AVAILABLE or name != HEADLINE) and OPTIMIZERS[name].why_unavailable() is None]
 API_RUN_FIELDS = {  # the README's results schema
     "optimizer": str, "lr": float, "seed": int, "steps_to_target": (int, type(None)),
     "seconds_to_target": (float, type(None)), "final_train_loss": (float, type(None)),
@@ -209,7 +212,7 @@ def test_scaling_study_writes_its_table_and_plot(tmp_path, monkeypatch):
 
     monkeypatch.setattr(scaling, "WIDTHS", [16, 32])  # tiny sizes: the study's code, not its cost
     monkeypatch.setattr(scaling, "BATCHES", [16, 32])
-    names = ",".join(name for name in OPTIMIZER_NAMES if name != "adam")
+    names = ",".join(name for name in OPTIMIZER_NAMES if name in (HEADLINE, "sgd"))
     argv = ["--scaling", "--optimizers", names, "--steps", "4", "--out", str(tmp_path), "--no-progress"]
     assert main(argv) == 0
     payload = json.loads((tmp_path / "scaling.json").read_text())
