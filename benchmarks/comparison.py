@@ -11,6 +11,7 @@ other side's budget bounds the ratio:
 
 from __future__ import annotations
 
+import math
 from typing import Optional
 
 from benchmarks.optimizers import BASELINES, HEADLINE
@@ -51,9 +52,25 @@ def bounded_ratio(
     return {"ratio": None, "relation": "neither"}
 
 
+def best_baseline(summaries: dict[str, dict]) -> Optional[str]:
+    """The baseline that reached the target in the least median wall-clock time.
+
+    When no baseline reached it, the one with the lowest final training loss
+    (a diverged one last); None when no baseline ran.
+    """
+    present = [name for name in BASELINES if name in summaries]
+    reached = [name for name in present if summaries[name]["seconds_to_target"] is not None]
+    if reached:
+        return min(reached, key=lambda name: summaries[name]["seconds_to_target"])
+    finals = {name: summaries[name]["final_train_loss"] for name in present}
+    return min(present, key=lambda name: math.inf if finals[name] is None else finals[name], default=None)
+
+
 def compare(summaries: dict[str, dict], steps: int, width: Optional[int], batch: int) -> dict:
-    """fisher-descent against each baseline present: time to target, steps to target, step time."""
-    result: dict = {"time_to_target": {}, "steps_to_target": {}, "step_time": {}}
+    """fisher-descent against each baseline present (time to target, steps to target, step time), and
+    which baseline was best."""
+    result: dict = {"time_to_target": {}, "steps_to_target": {}, "step_time": {},
+                    "best_baseline": best_baseline(summaries)}
     result["step_time_flop_estimate"] = step_time_flop_estimate(width, batch) if width else None
     result["estimate_width"], result["estimate_batch"] = width, batch
     method = summaries.get(HEADLINE)

@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import Optional
 
 from benchmarks.comparison import FLOP_ESTIMATE_TEXT, describe_ratio, step_time_breakdown
-from benchmarks.optimizers import HEADLINE
+from benchmarks.optimizers import BASELINES, HEADLINE
 from benchmarks.report_format import contention_warning, format_number, format_table
 from benchmarks.verdict import verdict_text
 
@@ -46,6 +46,9 @@ def ratio_lines(entry: dict) -> list[str]:
     comparison = entry["comparison"]
     lines = []
     if comparison["time_to_target"]:
+        best = comparison["best_baseline"]
+        lines.append(f"best baseline: {best}; time to target {HEADLINE}/{best}: "
+                     f"{describe_ratio(comparison['time_to_target'][best])}")
         lines.append("time to target, " + "; ".join(
             f"{HEADLINE}/{name}: {describe_ratio(value)}" for name, value in comparison["time_to_target"].items()))
         lines.append("steps to target, " + "; ".join(
@@ -163,32 +166,44 @@ def _time_and_steps(summary: Optional[dict]) -> str:
     return f"{summary['seconds_to_target']:.3g} s ({format_number(summary['steps_to_target'])} steps)"
 
 
+def baselines_run(results: dict) -> list[str]:
+    """The baselines this benchmark ran, in the registry's order."""
+    chosen = results["settings"].get("optimizers", [])
+    return [name for name in BASELINES if name in chosen]
+
+
+def step_time_text(comparison: dict) -> str:
+    step_ratio = comparison["step_time"].get("sgd")
+    estimate = comparison["step_time_flop_estimate"]
+    text = "-" if step_ratio is None else f"{step_ratio:.2f}"
+    if step_ratio is not None and estimate is not None:
+        text += f" (flop estimate {estimate:.2f})"
+    return text
+
+
 def overview_rows(results: dict) -> list[list[str]]:
-    """One row per task: median time (steps) to target per optimizer, and fisher-descent's ratios."""
+    """One row per task: median time (steps) to target per optimizer, the best baseline and
+    fisher-descent's time ratio to it, and its step-time ratio to sgd."""
     rows = []
     for entry in results["tasks"]:
         summaries, comparison = entry["summary"], entry["comparison"]
-        step_ratio = comparison["step_time"].get("sgd")
-        estimate = comparison["step_time_flop_estimate"]
-        step_text = "-" if step_ratio is None else f"{step_ratio:.2f}"
-        if step_ratio is not None and estimate is not None:
-            step_text += f" (flop estimate {estimate:.2f})"
+        best = comparison["best_baseline"]
         rows.append([
             entry["task"], f"{entry['target_loss']:g}",
-            *[_time_and_steps(summaries.get(name)) for name in (HEADLINE, "sgd", "adam")],
-            *[describe_ratio(comparison["time_to_target"].get(name)).split(" (")[0]
-              for name in ("sgd", "adam")],
-            step_text,
+            *[_time_and_steps(summaries.get(name)) for name in [HEADLINE] + baselines_run(results)],
+            best or "-", describe_ratio(comparison["time_to_target"].get(best)).split(" (")[0],
+            step_time_text(comparison),
         ])
     return rows
 
 
-OVERVIEW_HEADERS = ["task", "target", f"{HEADLINE} (untuned): time (steps) to target", "sgd", "adam",
-                    f"time {HEADLINE}/sgd", f"time {HEADLINE}/adam", f"step time {HEADLINE}/sgd"]
+def overview_headers(results: dict) -> list[str]:
+    return ["task", "target", f"{HEADLINE} (untuned): time (steps) to target", *baselines_run(results),
+            "best baseline", f"time {HEADLINE}/best", f"step time {HEADLINE}/sgd"]
 
 
 def overview(results: dict, markdown: bool = False) -> str:
-    return format_table(OVERVIEW_HEADERS, overview_rows(results), markdown)
+    return format_table(overview_headers(results), overview_rows(results), markdown)
 
 
 def stop_note(results: dict) -> Optional[str]:
@@ -206,8 +221,8 @@ def console_summary(results: dict, with_tasks: bool = True) -> str:
     threads = results["settings"].get("threads")
     blocks = [task_block(entry, threads=threads) for entry in results["tasks"]] if with_tasks else []
     if results["tasks"]:
-        blocks.append(f"Overview (medians over seeds; {HEADLINE} at its defaults, sgd and adam at their chosen lr)\n"
-                      + overview(results))
+        blocks.append(f"Overview (medians over seeds; {HEADLINE} at its defaults, the baselines at their chosen lr; "
+                      "best baseline: the first to the target)\n" + overview(results))
         blocks.append(verdict_text(results))
     note = stop_note(results)
     if note:
@@ -247,13 +262,15 @@ def settings_lines(results: dict) -> list[str]:
 
 
 def markdown_report(results: dict, plot_files: dict[str, str]) -> str:
-    parts = ["# Benchmark: FisherDescent against SGD and Adam", ""]
+    parts = ["# Benchmark: FisherDescent against tuned baselines", ""]
     note = stop_note(results)
     if note:
         parts += [f"**{note}**", ""]
     parts += [verdict_text(results, markdown=True), "", "## Settings", "", *settings_lines(results), "",
               "## Overview", "", f"Medians over the seeds ({HEADLINE} at its defaults, the baselines at their "
-              f"chosen lr); ratios below 1 favour {HEADLINE}; `<=` where the baseline never reached the target.",
+              f"chosen lr); the best baseline is the one that reached the target first (the lowest final "
+              f"training loss where none did); ratios below 1 favour {HEADLINE}; `<=` where the baseline never "
+              "reached the target.",
               "", overview(results, markdown=True), ""]
     for entry in results["tasks"]:
         parts += [f"## {entry['task']}", "", entry["description"] + ".", "",

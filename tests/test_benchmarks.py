@@ -135,6 +135,33 @@ def test_files_written(smoke_run):
     assert "goal" not in report.lower()  # measurements and comparisons only
 
 
+def test_overview_sets_fisher_descent_against_the_best_of_every_baseline(smoke_run):
+    from benchmarks.report import overview_headers, overview_rows
+
+    _, results = smoke_run
+    baselines = [name for name in OPTIMIZER_NAMES if name in BASELINES]
+    headers = overview_headers(results)
+    assert headers[3:3 + len(baselines)] == baselines
+    for entry, row in zip(results["tasks"], overview_rows(results)):
+        summaries = entry["summary"]
+        # a few steps reach no target: the best baseline is the one with the lowest final training loss
+        finals = {name: summaries[name]["final_train_loss"] for name in baselines}
+        best = entry["comparison"]["best_baseline"]
+        assert row[headers.index("best baseline")] == best
+        assert finals[best] == min(value for value in finals.values() if value is not None)
+
+
+def test_best_baseline_is_the_first_to_the_target_else_the_lowest_final_loss():
+    from benchmarks.comparison import best_baseline
+
+    summaries = {HEADLINE: summary_of(0.1, tuned=False), "sgd": summary_of(2.0),
+                 "adam": summary_of(None, reached=0, final=0.02), "adamw-cosine": summary_of(1.0)}
+    assert best_baseline(summaries) == "adamw-cosine"  # fisher-descent itself is no baseline
+    summaries.update(sgd=summary_of(None, 0, final=None), **{"adamw-cosine": summary_of(None, 0, final=0.5)})
+    assert best_baseline(summaries) == "adam"  # none reached it; a diverged run (final None) ranks last
+    assert best_baseline({HEADLINE: summary_of(0.1)}) is None
+
+
 def test_curves_csv_matches_results_json(smoke_run):
     out, results = smoke_run
     with (out / "curves.csv").open(newline="") as handle:
@@ -511,13 +538,18 @@ def test_verdict_names_the_first_to_the_target_and_the_time_ratio():
     text = task_verdict(entry, threads=2)
     assert "fisher-descent (untuned) reached the target first, in 0.58 s" in text
     assert "0.58× adam's time (1 s), the next fastest" in text and "sgd did not reach it" in text
+    assert "best baseline" not in text  # adam, the best baseline, is the next fastest: said once
     assert "[load" not in text
     entry["load_average_max"] = 5.0  # above the 2 threads: other processes competed
     assert task_verdict(entry, threads=2).endswith(". [load 5.0]")
     assert "load average reached L (up to 5.0) with 2" in caution({"settings": {"threads": 2}, "tasks": [entry]})
     entry["summary"]["fisher-descent"] = summary_of(1.5, tuned=False)
     text = task_verdict(entry, threads=2)
-    assert "adam reached the target first" in text and "fisher-descent (untuned) took 1.50× adam's time" in text
+    assert "adam reached the target first" in text
+    assert "fisher-descent (untuned) took 1.50× the time of the best baseline, adam" in text
+    # a faster baseline beside adam: fisher-descent is set against the best of all of them
+    entry["summary"]["adamw-cosine"] = summary_of(0.5)
+    assert "took 3.00× the time of the best baseline, adamw-cosine" in task_verdict(entry, threads=2)
     entry["summary"] = {"sgd": summary_of(None, 0, final=0.2), "adam": summary_of(None, 0, final=0.1)}
     assert "no optimizer reached the target; the lowest final training loss was adam's, 0.1" in \
         task_verdict(entry, threads=2)
