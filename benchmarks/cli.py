@@ -20,7 +20,7 @@ from benchmarks.attachments import diagnostics_attacher, diagnostics_available
 from benchmarks.evaluation import describe_rule
 from benchmarks.harness import benchmark_task, planned_runs
 from benchmarks.machine import machine_info
-from benchmarks.optimizers import GRID_DECADES, HEADLINE, OptimizerSpec, resolve_optimizers
+from benchmarks.optimizers import GRID_SPACING_DECADES, HEADLINE, OptimizerSpec, grid_span, resolve_optimizers
 from benchmarks.outputs import ProgressiveOutputs
 from benchmarks.pilot import propose_target
 from benchmarks.profiling import write_profile
@@ -28,8 +28,10 @@ from benchmarks.task_file import load_task_file
 from benchmarks.tasks import ON_REQUEST_TASKS, TASKS, Task, resolve_tasks
 from benchmarks.training import load_average
 
-FULL_GRID, QUICK_GRID = 5, 3
-DEFAULT_SEEDS = 3
+# Points per lr grid, quick and full alike: 5 points half a decade apart span 2 decades. --quick saves
+# time on the step budgets and on the seeds instead, so that its grids search as widely and as finely.
+GRID_POINTS = 5
+SEEDS = {"full": 3, "quick": 2}
 SCALING_STEPS = {"quick": (2, 20), "full": (5, 60)}  # (warm-up, timed) steps per point; the
 # timed steps span whole refresh periods of FisherDescent (statistics every 10, inversion every 20)
 
@@ -62,8 +64,8 @@ def build_parser() -> argparse.ArgumentParser:
                     "cosine schedule, and Muon (with AdamW) on small CPU tasks: equal lr grids, seeds, batches, "
                     "initial weights, data order and step budget for every tuned optimizer.")
     parser.add_argument("--quick", action="store_true",
-                        help=f"short budget: each task's quick step count, {QUICK_GRID}-point lr grids "
-                             f"(default: full step counts, {FULL_GRID}-point grids)")
+                        help=f"short budget: each task's quick step count and {SEEDS['quick']} seeds "
+                             f"(default: full step counts, {SEEDS['full']} seeds; the same lr grids)")
     parser.add_argument("--tasks", help="comma-separated task names (default: "
                         f"{', '.join(n for n in TASKS if n not in ON_REQUEST_TASKS)}; on request: "
                         f"{', '.join(ON_REQUEST_TASKS)})")
@@ -74,13 +76,14 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--optimizers", help="comma-separated optimizer names (default: "
                                              f"{', '.join(optimizer_registry.DEFAULT_OPTIMIZERS)}; all: "
                                              f"{', '.join(optimizer_registry.OPTIMIZERS)})")
-    parser.add_argument("--seeds", default=str(DEFAULT_SEEDS),
+    parser.add_argument("--seeds",
                         help="number of seeds N (seeds 0..N-1) or a comma-separated list; the first "
-                             f"seed tunes the lr (default {DEFAULT_SEEDS})")
+                             f"seed tunes the lr (default {SEEDS['full']}, {SEEDS['quick']} with --quick)")
     parser.add_argument("--steps", type=int, help="training steps per run for every task (default: each "
                                                   "task's own budget); with --scaling, timed steps per point")
-    parser.add_argument("--grid", type=int, help="points in every optimizer's lr grid "
-                                                 f"(default {FULL_GRID}, {QUICK_GRID} with --quick)")
+    parser.add_argument("--grid", type=int, help=f"points in every tuned optimizer's lr grid, "
+                                                 f"{GRID_SPACING_DECADES:g} decade apart (default {GRID_POINTS}: "
+                                                 f"{grid_span(GRID_POINTS):g} decades)")
     parser.add_argument("--threads", type=int, default=2, help="torch intra-op threads (default 2)")
     parser.add_argument("--out", type=Path, help="write results.json, curves.csv, PNG plots and "
                                                  "report.md into this folder")
@@ -155,8 +158,8 @@ def make_config(args: argparse.Namespace) -> Config:
     if not specs:
         raise ValueError("--optimizers: none of the chosen optimizers can run here: "
                          + "; ".join(f"{name}: {reason}" for name, reason in skipped.items()))
-    seeds = parse_seeds(args.seeds)
-    grid = args.grid if args.grid is not None else (QUICK_GRID if args.quick else FULL_GRID)
+    seeds = parse_seeds(args.seeds if args.seeds is not None else str(SEEDS["quick" if args.quick else "full"]))
+    grid = args.grid if args.grid is not None else GRID_POINTS
     if grid < 1:
         raise ValueError(f"--grid must be at least 1, got {grid}")
     if args.steps is not None and args.steps < 1:
@@ -189,7 +192,8 @@ def settings_of(config: Config, argv: list[str]) -> dict:
         "skipped_optimizers": config.skipped,
         "seeds": config.seeds,
         "grid_size": config.grid_size,
-        "grid_decades": GRID_DECADES,
+        "grid_decades": grid_span(config.grid_size),
+        "grid_spacing_decades": GRID_SPACING_DECADES,
         "lr_grids": {spec.name: spec.lr_grid(config.grid_size) for spec in config.specs},
         "steps": config.steps,
         "threads": config.threads,

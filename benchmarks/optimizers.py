@@ -1,8 +1,9 @@
 """The compared optimizers and their learning-rate grids.
 
-The baselines are tuned over a learning-rate grid: every grid is log-spaced,
-spans the same number of decades and has the same number of points, so no
-baseline gets a finer search than another. They are
+The baselines are tuned over a learning-rate grid: every grid is log-spaced
+with its points half a decade apart (a factor of sqrt(10), about 3.2) and has
+the same number of points, so no baseline gets a finer or a wider search than
+another. They are
 
 - ``sgd``: SGD with heavy-ball momentum 0.9;
 - ``adam``: Adam at its defaults;
@@ -44,7 +45,14 @@ from benchmarks.selection import select_by_name
 HEADLINE = "fisher-descent"  # the method at its defaults, the row every comparison is about
 TUNED = f"{HEADLINE}-tuned"
 
-GRID_DECADES = 2.0  # width of every learning-rate grid, in powers of ten
+# Between neighbouring points of every learning-rate grid, in powers of ten: at most a factor of
+# about 3.2 from the best lr of the grid to a better one between its points.
+GRID_SPACING_DECADES = 0.5
+
+
+def grid_span(size: int) -> float:
+    """The width of a grid of ``size`` points, in decades."""
+    return GRID_SPACING_DECADES * (size - 1)
 
 # (model, loss, lr) -> optimizer; lr None means: do not pass one, use the optimizer's default
 Builder = Callable[[nn.Module, nn.Module, Optional[float]], torch.optim.Optimizer]
@@ -61,7 +69,7 @@ class OptimizerSpec:
     """How to build one optimizer from (model, loss, lr), and whether and where its lr is tuned.
 
     ``lr_centre`` is the geometric centre of the grid: a grid of n points is
-    ``lr_centre * 10 ** linspace(-GRID_DECADES / 2, GRID_DECADES / 2, n)``.
+    ``lr_centre * 10 ** (GRID_SPACING_DECADES * (k - (n - 1) / 2))`` for k = 0 .. n - 1.
     An untuned row (``tuned=False``) has the one-point grid ``[None]``: it is
     built without an lr and runs at the optimizer's own default. A row with a
     ``schedule`` has it built on its optimizer for each run's step budget; the
@@ -86,9 +94,7 @@ class OptimizerSpec:
         if not self.tuned:
             return [None]
         centre = self.grid_centre()
-        if size == 1:
-            return [centre]
-        exponents = np.linspace(-GRID_DECADES / 2, GRID_DECADES / 2, size)
+        exponents = GRID_SPACING_DECADES * (np.arange(size) - (size - 1) / 2)
         return [float(centre * 10.0 ** e) for e in exponents]
 
     def grid_centre(self) -> float:

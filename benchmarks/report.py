@@ -247,7 +247,8 @@ def settings_lines(results: dict) -> list[str]:
         + "".join(f"; skipped: {name} ({reason})" for name, reason in
                   settings.get("skipped_optimizers", {}).items()),
         f"- seeds {settings['seeds']}; lr grid of {settings['grid_size']} points per tuned optimizer, "
-        f"{settings['grid_decades']:g} decades wide: {grids or 'none'}"
+        f"{settings['grid_spacing_decades']:g} decade apart ({settings['grid_decades']:g} decades wide): "
+        f"{grids or 'none'}"
         + (f"; not tuned (built without an lr, one run per seed): {', '.join(untuned)}" if untuned else ""),
         "- protocol: every lr of the grid on the first seed, the lr with the lowest final training "
         "loss on the remaining seeds, medians over the seeds at that lr; time is the training "

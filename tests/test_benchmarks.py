@@ -25,7 +25,7 @@ from benchmarks.attachments import diagnostics_available
 from benchmarks.cli import main, parse_options, parse_seeds
 from benchmarks.comparison import bounded_ratio, step_time_flop_estimate
 from benchmarks.evaluation import EvaluationSchedule
-from benchmarks.optimizers import (BASELINES, DEFAULT_OPTIMIZERS, GRID_DECADES, HEADLINE, OPTIMIZERS,
+from benchmarks.optimizers import (BASELINES, DEFAULT_OPTIMIZERS, HEADLINE, OPTIMIZERS,
                                    natural_gradient_available, resolve_optimizers)
 from benchmarks.tasks import TASKS, resolve_tasks
 from benchmarks.training import minibatches, train_run
@@ -295,17 +295,32 @@ def test_seed_option_takes_a_count_or_a_list():
         parse_seeds("1,1")
 
 
-def test_lr_grids_are_log_spaced_with_equal_size_and_width():
+def test_lr_grids_are_log_spaced_half_a_decade_apart_around_their_centre():
     for spec in OPTIMIZERS.values():
         if not spec.tuned:
             assert spec.lr_grid(5) == [None]  # built without an lr: the optimizer's own default
             continue
         if spec.natural_gradient_options is not None and not NGOPT_AVAILABLE:
             continue
-        grid, centre = spec.lr_grid(5), spec.grid_centre()
-        expected = np.logspace(np.log10(centre) - GRID_DECADES / 2,
-                               np.log10(centre) + GRID_DECADES / 2, 5)  # numpy.logspace
-        np.testing.assert_allclose(grid, expected, rtol=1e-12)
+        centre = spec.grid_centre()
+        for size in (1, 2, 4, 5):
+            half_width = 0.5 * (size - 1) / 2  # decades from the centre to either end
+            expected = np.logspace(np.log10(centre) - half_width, np.log10(centre) + half_width, size)  # numpy
+            np.testing.assert_allclose(spec.lr_grid(size), expected, rtol=1e-12)
+
+
+@pytest.mark.parametrize("quick", [False, True])
+def test_default_grids_span_two_decades_in_half_decade_steps_quick_or_full(quick):
+    from benchmarks.cli import build_parser, make_config, settings_of
+
+    config = make_config(build_parser().parse_args(["--quick"] if quick else []))
+    settings = settings_of(config, [])
+    assert settings["grid_size"] == 5 and settings["grid_decades"] == 2.0
+    assert len(config.seeds) == (2 if quick else 3)
+    for spec in config.specs:
+        grid = spec.lr_grid(config.grid_size)
+        if spec.tuned:
+            assert np.diff(np.log10(grid)) == pytest.approx([0.5] * 4, rel=1e-12)  # at most half a decade apart
 
 
 def test_step_time_flop_estimate_counts_the_flops():
