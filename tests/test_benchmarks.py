@@ -296,6 +296,9 @@ def test_seed_option_takes_a_count_or_a_list():
 
 
 def test_lr_grids_are_log_spaced_half_a_decade_apart_around_their_centre():
+    # decades from the centre to the lowest and the highest point, by hand: odd counts symmetric,
+    # even ones with the extra point above the centre
+    ends = {1: (0.0, 0.0), 2: (0.0, 0.5), 3: (-0.5, 0.5), 4: (-0.5, 1.0), 5: (-1.0, 1.0)}
     for spec in OPTIMIZERS.values():
         if not spec.tuned:
             assert spec.lr_grid(5) == [None]  # built without an lr: the optimizer's own default
@@ -303,24 +306,26 @@ def test_lr_grids_are_log_spaced_half_a_decade_apart_around_their_centre():
         if spec.natural_gradient_options is not None and not NGOPT_AVAILABLE:
             continue
         centre = spec.grid_centre()
-        for size in (1, 2, 4, 5):
-            half_width = 0.5 * (size - 1) / 2  # decades from the centre to either end
-            expected = np.logspace(np.log10(centre) - half_width, np.log10(centre) + half_width, size)  # numpy
+        for size, (low, high) in ends.items():
+            expected = np.logspace(np.log10(centre) + low, np.log10(centre) + high, size)  # numpy.logspace
             np.testing.assert_allclose(spec.lr_grid(size), expected, rtol=1e-12)
+            assert min(abs(lr / centre - 1) for lr in spec.lr_grid(size)) < 1e-12  # the centre is a point
+    with pytest.raises(ValueError, match="lr grid size must be at least 1"):
+        OPTIMIZERS["sgd"].lr_grid(0)
 
 
 @pytest.mark.parametrize("quick", [False, True])
-def test_default_grids_span_two_decades_in_half_decade_steps_quick_or_full(quick):
+def test_default_grids_have_points_half_a_decade_apart_quick_or_full(quick):
     from benchmarks.cli import build_parser, make_config, settings_of
 
     config = make_config(build_parser().parse_args(["--quick"] if quick else []))
     settings = settings_of(config, [])
-    assert settings["grid_size"] == 5 and settings["grid_decades"] == 2.0
-    assert len(config.seeds) == (2 if quick else 3)
+    points, span = (4, 1.5) if quick else (5, 2.0)
+    assert (settings["grid_size"], settings["grid_decades"], len(config.seeds)) == (points, span, 2 if quick else 3)
     for spec in config.specs:
         grid = spec.lr_grid(config.grid_size)
         if spec.tuned:
-            assert np.diff(np.log10(grid)) == pytest.approx([0.5] * 4, rel=1e-12)  # at most half a decade apart
+            assert np.diff(np.log10(grid)) == pytest.approx([0.5] * (points - 1), rel=1e-12)
 
 
 def test_step_time_flop_estimate_counts_the_flops():
