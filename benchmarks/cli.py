@@ -219,7 +219,7 @@ def check_ready(config: Config) -> None:
         available, reason = optimizer_registry.natural_gradient_available()
         if not available:
             raise ValueError(f"optimizer {HEADLINE}: ngopt.FisherDescent does not import ({reason}); "
-                             "run the baselines alone with --optimizers sgd,adam")
+                             "run the baselines alone with --optimizers sgd,adam,adamw-cosine")
     natural = [spec for spec in config.specs if spec.natural_gradient_options is not None]
     if natural and HEADLINE not in names:
         available, reason = optimizer_registry.natural_gradient_available()
@@ -246,7 +246,7 @@ def check_task_model(task: Task, spec: OptimizerSpec) -> None:
         optimizer = spec.build(task.build_model(), task.make_loss(), None)
     except (TypeError, ValueError) as error:
         raise ValueError(f"{task.name}: ngopt.FisherDescent rejects the model of the task file: {error}; "
-                         "run the baselines alone with --optimizers sgd,adam")
+                         "run the baselines alone with --optimizers sgd,adam,adamw-cosine")
     if hasattr(optimizer, "remove_hooks"):
         optimizer.remove_hooks()
 

@@ -66,6 +66,7 @@ def grid_span(size: int) -> float:
     """The width of a grid of ``size`` points, in decades."""
     return GRID_SPACING_DECADES * (size - 1)
 
+
 # (model, loss, lr) -> optimizer; lr None means: do not pass one, use the optimizer's default
 Builder = Callable[[nn.Module, nn.Module, Optional[float]], torch.optim.Optimizer]
 # (optimizer, the run's step budget) -> lr scheduler, stepped after every optimizer step
