@@ -1,4 +1,4 @@
-"""Benchmark harness: FisherDescent against SGD and Adam on small CPU tasks or a task file of your own.
+"""Benchmark harness: FisherDescent against tuned baselines on small CPU tasks or a task file of your own.
 
 Run ``python -m benchmarks --quick`` from the repository root, or
 ``python -m benchmarks --task-file FILE.py`` for your own problem. Modules,
@@ -9,11 +9,16 @@ one concept each:
 - :mod:`benchmarks.task_file`: a task read (and checked) from a user's Python file
 - :mod:`benchmarks.pilot`: a target proposed from a pilot run when a task file gives none
 - :mod:`benchmarks.optimizers`: the compared optimizers, which are tuned, and their lr grids
+- :mod:`benchmarks.schedules`: the lr schedule over a run's step budget (warm-up, cosine decay)
+- :mod:`benchmarks.composite`: several torch optimizers stepped as one
+- :mod:`benchmarks.muon`: the muon row, torch's Muon on the hidden matrices and AdamW on the rest
 - :mod:`benchmarks.evaluation`: when the training loss is evaluated, and the test metrics
 - :mod:`benchmarks.training`: one timed training run
-- :mod:`benchmarks.coverage`: the share of parameters under FisherDescent's fallback rule
+- :mod:`benchmarks.coverage`: the share of parameters under FisherDescent's fallback rule, or under each
+  part of a composite optimizer
 - :mod:`benchmarks.harness`: the tuning protocol and the medians over seeds
-- :mod:`benchmarks.comparison`: ratios against the baselines and where ngopt's step time goes
+- :mod:`benchmarks.comparison`: ratios against the baselines, the best baseline, and where FisherDescent's
+  step time goes
 - :mod:`benchmarks.verdict`: the one-screen verdict per task
 - :mod:`benchmarks.results`: results.json, the CSV of loss curves, atomic file writes
 - :mod:`benchmarks.outputs`: the files rewritten after every finished run
@@ -21,6 +26,6 @@ one concept each:
 - :mod:`benchmarks.plots`: PNG figures
 - :mod:`benchmarks.scaling`: step time against layer width and batch size
 - :mod:`benchmarks.profiling`: cProfile of one natural-gradient run
-- :mod:`benchmarks.attachments`: the ngopt diagnostics logger on benchmark runs
+- :mod:`benchmarks.attachments`: ngopt's diagnostics logger on the FisherDescent runs
 - :mod:`benchmarks.cli`: the command line
 """

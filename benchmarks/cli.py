@@ -8,7 +8,7 @@ import gc
 import json
 import shlex
 import sys
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Optional
 
@@ -20,7 +20,7 @@ from benchmarks.attachments import diagnostics_attacher, diagnostics_available
 from benchmarks.evaluation import describe_rule
 from benchmarks.harness import benchmark_task, planned_runs
 from benchmarks.machine import machine_info
-from benchmarks.optimizers import GRID_DECADES, OptimizerSpec, resolve_optimizers
+from benchmarks.optimizers import GRID_SPACING_DECADES, HEADLINE, OptimizerSpec, grid_span, resolve_optimizers
 from benchmarks.outputs import ProgressiveOutputs
 from benchmarks.pilot import propose_target
 from benchmarks.profiling import write_profile
@@ -28,10 +28,12 @@ from benchmarks.task_file import load_task_file
 from benchmarks.tasks import ON_REQUEST_TASKS, TASKS, Task, resolve_tasks
 from benchmarks.training import load_average
 
-FULL_GRID, QUICK_GRID = 5, 3
-DEFAULT_SEEDS = 3
+# Points per lr grid, half a decade apart: 5 span 2 decades; --quick drops the lowest point (a short
+# budget rewards the larger lrs) and a seed, to keep a quick run of the built-in tasks near 5 minutes.
+GRID_POINTS = {"full": 5, "quick": 4}
+SEEDS = {"full": 3, "quick": 2}
 SCALING_STEPS = {"quick": (2, 20), "full": (5, 60)}  # (warm-up, timed) steps per point; the
-# timed steps span whole refresh periods of ngopt (statistics every 10, inversion every 20)
+# timed steps span whole refresh periods of FisherDescent (statistics every 10, inversion every 20)
 
 
 @dataclass
@@ -52,17 +54,19 @@ class Config:
     scaling: bool
     task_file: Optional[Path] = None
     flush_denormal: bool = False  # whether subnormal floats are flushed to zero (CPU support)
+    skipped: dict = field(default_factory=dict)  # optimizer name -> why it cannot run here
 
 
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="python -m benchmarks",
-        description="Compare ngopt.FisherDescent with SGD (momentum 0.9) and Adam on small CPU "
-                    "tasks: equal lr-grid size, seeds, batches, initial weights, data order and "
-                    "step budget for every optimizer.")
+        description="Compare ngopt.FisherDescent with SGD (momentum 0.9), Adam, AdamW under a warm-up and "
+                    "cosine schedule, and Muon (with AdamW) on small CPU tasks: equal lr grids, seeds, batches, "
+                    "initial weights, data order and step budget for every tuned optimizer.")
     parser.add_argument("--quick", action="store_true",
-                        help=f"short budget: each task's quick step count, {QUICK_GRID}-point lr grids "
-                             f"(default: full step counts, {FULL_GRID}-point grids)")
+                        help=f"short budget: each task's quick step count, {GRID_POINTS['quick']}-point lr grids "
+                             f"and {SEEDS['quick']} seeds (default: full step counts, {GRID_POINTS['full']}-point "
+                             f"grids, {SEEDS['full']} seeds)")
     parser.add_argument("--tasks", help="comma-separated task names (default: "
                         f"{', '.join(n for n in TASKS if n not in ON_REQUEST_TASKS)}; on request: "
                         f"{', '.join(ON_REQUEST_TASKS)})")
@@ -73,13 +77,14 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--optimizers", help="comma-separated optimizer names (default: "
                                              f"{', '.join(optimizer_registry.DEFAULT_OPTIMIZERS)}; all: "
                                              f"{', '.join(optimizer_registry.OPTIMIZERS)})")
-    parser.add_argument("--seeds", default=str(DEFAULT_SEEDS),
+    parser.add_argument("--seeds",
                         help="number of seeds N (seeds 0..N-1) or a comma-separated list; the first "
-                             f"seed tunes the lr (default {DEFAULT_SEEDS})")
+                             f"seed tunes the lr (default {SEEDS['full']}, {SEEDS['quick']} with --quick)")
     parser.add_argument("--steps", type=int, help="training steps per run for every task (default: each "
                                                   "task's own budget); with --scaling, timed steps per point")
-    parser.add_argument("--grid", type=int, help="points in every optimizer's lr grid "
-                                                 f"(default {FULL_GRID}, {QUICK_GRID} with --quick)")
+    parser.add_argument("--grid", type=int, help=f"points in every tuned optimizer's lr grid, "
+                                                 f"{GRID_SPACING_DECADES:g} decade apart (default "
+                                                 f"{GRID_POINTS['full']}, {GRID_POINTS['quick']} with --quick)")
     parser.add_argument("--threads", type=int, default=2, help="torch intra-op threads (default 2)")
     parser.add_argument("--out", type=Path, help="write results.json, curves.csv, PNG plots and "
                                                  "report.md into this folder")
@@ -87,13 +92,14 @@ def build_parser() -> argparse.ArgumentParser:
                         help="run the step-time scaling study (width 64..1024, batch 64..2048) "
                              "instead of the tasks")
     parser.add_argument("--diagnostics", type=int, metavar="EVERY",
-                        help="log ngopt's curvature diagnostics every EVERY steps into OUT/diagnostics "
-                             "(needs --out; slows ngopt, so its timings are then not comparable)")
+                        help="log FisherDescent's curvature diagnostics every EVERY steps into OUT/diagnostics "
+                             "(needs --out; slows the fisher-descent rows, so their timings are then not "
+                             "comparable)")
     parser.add_argument("--profile", action="store_true",
-                        help="after the benchmark, profile one ngopt run per task at its chosen lr "
-                             "with cProfile into OUT/profile_<task>_ngopt.txt (needs --out)")
+                        help=f"after the benchmark, profile one {HEADLINE} run per task "
+                             f"with cProfile into OUT/profile_<task>_{HEADLINE}.txt (needs --out)")
     parser.add_argument("--ngopt-option", action="append", default=[], metavar="KEY=VALUE",
-                        help="pass one keyword to FisherDescent in every ngopt row and task alike, e.g. "
+                        help="pass one keyword to FisherDescent in every fisher-descent row and task alike, e.g. "
                              "--ngopt-option structure=ekfac or --ngopt-option lr=0.1 (repeatable; values "
                              "are Python literals; keys go to FisherDescent unchecked)")
     parser.add_argument("--no-progress", action="store_true",
@@ -149,8 +155,12 @@ def make_config(args: argparse.Namespace) -> Config:
     specs = [optimizer_registry.with_natural_gradient_options(spec, ngopt_options)
              if spec.natural_gradient_options is not None else spec
              for spec in resolve_optimizers(split_names(args.optimizers))]
-    seeds = parse_seeds(args.seeds)
-    grid = args.grid if args.grid is not None else (QUICK_GRID if args.quick else FULL_GRID)
+    specs, skipped = optimizer_registry.runnable(specs)
+    if not specs:
+        raise ValueError("--optimizers: none of the chosen optimizers can run here: "
+                         + "; ".join(f"{name}: {reason}" for name, reason in skipped.items()))
+    seeds = parse_seeds(args.seeds if args.seeds is not None else str(SEEDS["quick" if args.quick else "full"]))
+    grid = args.grid if args.grid is not None else GRID_POINTS["quick" if args.quick else "full"]
     if grid < 1:
         raise ValueError(f"--grid must be at least 1, got {grid}")
     if args.steps is not None and args.steps < 1:
@@ -163,7 +173,8 @@ def make_config(args: argparse.Namespace) -> Config:
         raise ValueError("--profile needs --out")
     steps = {task.name: args.steps or (task.quick_steps if args.quick else task.steps) for task in tasks}
     return Config(tasks, specs, seeds, grid, steps, args.steps, ngopt_options, args.quick, args.threads, args.out,
-                  not args.no_progress, args.diagnostics, args.profile, args.scaling, args.task_file)
+                  not args.no_progress, args.diagnostics, args.profile, args.scaling, args.task_file,
+                  skipped=skipped)
 
 
 def natural_gradient_settings(spec: OptimizerSpec) -> dict:
@@ -179,9 +190,11 @@ def settings_of(config: Config, argv: list[str]) -> dict:
         "tasks": [task.name for task in config.tasks],
         "optimizers": [spec.name for spec in config.specs],
         "optimizer_labels": {spec.name: spec.label for spec in config.specs},
+        "skipped_optimizers": config.skipped,
         "seeds": config.seeds,
         "grid_size": config.grid_size,
-        "grid_decades": GRID_DECADES,
+        "grid_decades": grid_span(config.grid_size),
+        "grid_spacing_decades": GRID_SPACING_DECADES,
         "lr_grids": {spec.name: spec.lr_grid(config.grid_size) for spec in config.specs},
         "steps": config.steps,
         "threads": config.threads,
@@ -191,24 +204,24 @@ def settings_of(config: Config, argv: list[str]) -> dict:
         "task_file": None if config.task_file is None else str(config.task_file),
     }
     for spec in config.specs:
-        if spec.name == "ngopt":
-            settings["ngopt_group_settings"] = natural_gradient_settings(spec)
-            settings["ngopt_options"] = config.ngopt_options
+        if spec.name == HEADLINE:
+            settings["fisher_descent_group_settings"] = natural_gradient_settings(spec)
+            settings["fisher_descent_options"] = config.ngopt_options
     return settings
 
 
 def check_ready(config: Config) -> None:
     """Fail before any work if a chosen optimizer or logger cannot be had."""
     names = {spec.name for spec in config.specs}
-    if config.scaling and not names & {"ngopt", "sgd"}:
-        raise ValueError("--scaling compares ngopt and sgd: --optimizers must include one of them")
-    if "ngopt" in names:
+    if config.scaling and not names & {HEADLINE, "sgd"}:
+        raise ValueError(f"--scaling compares {HEADLINE} and sgd: --optimizers must include one of them")
+    if HEADLINE in names:
         available, reason = optimizer_registry.natural_gradient_available()
         if not available:
-            raise ValueError(f"optimizer ngopt: ngopt.FisherDescent does not import ({reason}); "
-                             "run the baselines alone with --optimizers sgd,adam")
+            raise ValueError(f"optimizer {HEADLINE}: ngopt.FisherDescent does not import ({reason}); "
+                             "run the baselines alone with --optimizers sgd,adam,adamw-cosine")
     natural = [spec for spec in config.specs if spec.natural_gradient_options is not None]
-    if natural and not names & {"ngopt"}:
+    if natural and HEADLINE not in names:
         available, reason = optimizer_registry.natural_gradient_available()
         if not available:
             raise ValueError(f"optimizers {', '.join(spec.name for spec in natural)}: ngopt.FisherDescent "
@@ -216,7 +229,7 @@ def check_ready(config: Config) -> None:
     for spec in natural:
         try:
             natural_gradient_settings(spec)
-            spec.lr_grid(config.grid_size)  # ngopt-tuned reads its grid centre from the library
+            spec.lr_grid(config.grid_size)  # fisher-descent-tuned reads its grid centre from the library
         except (TypeError, ValueError) as error:
             raise ValueError(f"--ngopt-option: FisherDescent ({spec.name}) rejects "
                              f"{spec.natural_gradient_options}: {error}")
@@ -233,7 +246,7 @@ def check_task_model(task: Task, spec: OptimizerSpec) -> None:
         optimizer = spec.build(task.build_model(), task.make_loss(), None)
     except (TypeError, ValueError) as error:
         raise ValueError(f"{task.name}: ngopt.FisherDescent rejects the model of the task file: {error}; "
-                         "run the baselines alone with --optimizers sgd,adam")
+                         "run the baselines alone with --optimizers sgd,adam,adamw-cosine")
     if hasattr(optimizer, "remove_hooks"):
         optimizer.remove_hooks()
 
@@ -285,9 +298,9 @@ def run_tasks(config: Config, argv: list[str]) -> dict:
     settings["load_average_end"] = load_average()
     results_dict = outputs.finished()
     print(report.console_summary(results_dict, with_tasks=False), flush=True)
-    if config.out is not None and config.profile and "ngopt" in {spec.name for spec in config.specs}:
+    if config.out is not None and config.profile and HEADLINE in {spec.name for spec in config.specs}:
         for outcome in outputs.outcomes:
-            chosen = outcome.outcomes["ngopt"]
+            chosen = outcome.outcomes[HEADLINE]
             path = write_profile(outcome.task, chosen.spec, None if not chosen.spec.tuned else chosen.best_lr,
                                  config.seeds[0], config.steps[outcome.task.name], config.out)
             outputs.written.append(path.name)
@@ -300,7 +313,7 @@ def closing_message(config: Config, outputs: ProgressiveOutputs, interrupted: bo
         return "nothing written (no --out)" if interrupted else ""
     files = ["results.json", "curves.csv", "report.md"] + sorted(set(outputs.written))
     if config.diagnostics_every is not None:
-        files.append("diagnostics/ (one JSON-lines log per ngopt run; `python -m ngopt.report LOG --out DIR` "
+        files.append("diagnostics/ (one JSON-lines log per FisherDescent run; `python -m ngopt.report LOG --out DIR` "
                      "draws one)")
     head = (f"the finished runs ({outputs.finished_count} of {outputs.total}) are written to"
             if interrupted else "results written to")
@@ -308,7 +321,7 @@ def closing_message(config: Config, outputs: ProgressiveOutputs, interrupted: bo
 
 
 def run_scaling_study(config: Config, argv: list[str]) -> list[dict]:
-    specs = {spec.name: spec for spec in config.specs if spec.name in ("ngopt", "sgd")}
+    specs = {spec.name: spec for spec in config.specs if spec.name in (HEADLINE, "sgd")}
     warmup, steps = SCALING_STEPS["quick" if config.quick else "full"]
     steps = config.steps_override or steps
     rows = scaling.run_scaling(specs, warmup, steps, progress=config.progress)
@@ -340,6 +353,8 @@ def main(argv: Optional[list[str]] = None) -> int:
         check_ready(config)
     except ValueError as error:
         parser.error(str(error))  # exits with status 2 and the message
+    for name, reason in config.skipped.items():
+        print(f"skipping optimizer {name}: {reason}", flush=True)
     threads_before = torch.get_num_threads()
     torch.set_num_threads(config.threads)
     # Subnormal floats (gradients of a loss fitted to ~0) slow CPU arithmetic many times over;

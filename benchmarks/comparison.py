@@ -1,24 +1,24 @@
 """Comparisons of FisherDescent with the baselines: time and steps to target, and step time.
 
-Ratios are ngopt / baseline, so below 1 means ngopt is faster. When only one
-side reached the target, the other side's budget bounds the ratio:
+Ratios are fisher-descent / baseline (the untuned FisherDescent row), so below
+1 means FisherDescent is faster. When only one side reached the target, the
+other side's budget bounds the ratio:
 
-- ngopt reached it, the baseline did not: the baseline would have needed more
-  than its whole budget, so ngopt / baseline is *at most* ngopt / budget;
-- the baseline reached it, ngopt did not: the ratio is *at least* budget / baseline.
+- fisher-descent reached it, the baseline did not: the baseline would have
+  needed more than its whole budget, so the ratio is *at most* fisher-descent / budget;
+- the baseline reached it, fisher-descent did not: the ratio is *at least* budget / baseline.
 """
 
 from __future__ import annotations
 
+import math
 from typing import Optional
 
-from benchmarks.optimizers import BASELINES
-
-NGOPT = "ngopt"
+from benchmarks.optimizers import BASELINES, HEADLINE
 
 
 def step_time_flop_estimate(width: int, batch: int) -> float:
-    """Flop-count estimate of the ngopt / SGD step-time ratio for d x d layers and batch B.
+    """Flop-count estimate of the FisherDescent / SGD step-time ratio for d x d layers and batch B.
 
     Forward plus backward cost about 6 B d^2 flops per layer for both;
     natural gradient adds the preconditioning G^-1 (grad) A^-1, two d x d
@@ -33,45 +33,61 @@ def step_time_flop_estimate(width: int, batch: int) -> float:
 
 FLOP_ESTIMATE_TEXT = (
     "the flop-count estimate 1 + 2d/(3B) counts the multiply-adds of forward and backward (about 6Bd^2 "
-    "per d x d layer, for both optimizers) and of ngopt's two preconditioning products (about 4d^3); "
+    "per d x d layer, for both optimizers) and of FisherDescent's two preconditioning products (about 4d^3); "
     "it is not a bound: step times are not proportional to flops, and measured ratios fall below it "
     "at small batch")
 
 
 def bounded_ratio(
-    ngopt_value: Optional[float], ngopt_budget: float,
+    method_value: Optional[float], method_budget: float,
     base_value: Optional[float], base_budget: float,
 ) -> dict:
-    """ngopt / baseline with the relation that holds: measured, at_most, at_least or neither."""
-    if ngopt_value is not None and base_value is not None:
-        return {"ratio": ngopt_value / base_value, "relation": "measured"}
-    if ngopt_value is not None:
-        return {"ratio": ngopt_value / base_budget, "relation": "at_most"}
+    """fisher-descent / baseline with the relation that holds: measured, at_most, at_least or neither."""
+    if method_value is not None and base_value is not None:
+        return {"ratio": method_value / base_value, "relation": "measured"}
+    if method_value is not None:
+        return {"ratio": method_value / base_budget, "relation": "at_most"}
     if base_value is not None:
-        return {"ratio": ngopt_budget / base_value, "relation": "at_least"}
+        return {"ratio": method_budget / base_value, "relation": "at_least"}
     return {"ratio": None, "relation": "neither"}
 
 
+def best_baseline(summaries: dict[str, dict]) -> Optional[str]:
+    """The baseline that reached the target in the least median wall-clock time.
+
+    When no baseline reached it, the one with the lowest final training loss
+    (a diverged one last); None when no baseline ran.
+    """
+    present = [name for name in BASELINES if name in summaries]
+    reached = [name for name in present if summaries[name]["seconds_to_target"] is not None]
+    if reached:
+        return min(reached, key=lambda name: summaries[name]["seconds_to_target"])
+    finals = {name: summaries[name]["final_train_loss"] for name in present}
+    return min(present, key=lambda name: math.inf if finals[name] is None else finals[name], default=None)
+
+
 def compare(summaries: dict[str, dict], steps: int, width: Optional[int], batch: int) -> dict:
-    """ngopt against each baseline present: time to target, steps to target, step time."""
-    result: dict = {"time_to_target": {}, "steps_to_target": {}, "step_time": {}}
+    """fisher-descent against each baseline present (time to target, steps to target, step time), and
+    which baseline was best."""
+    result: dict = {"time_to_target": {}, "steps_to_target": {}, "step_time": {},
+                    "best_baseline": best_baseline(summaries)}
     result["step_time_flop_estimate"] = step_time_flop_estimate(width, batch) if width else None
     result["estimate_width"], result["estimate_batch"] = width, batch
-    ngopt = summaries.get(NGOPT)
-    if ngopt is None:
+    method = summaries.get(HEADLINE)
+    if method is None:
         return result
     for name in BASELINES:
         base = summaries.get(name)
         if base is None:
             continue
         result["time_to_target"][name] = bounded_ratio(
-            ngopt["seconds_to_target"], ngopt["train_seconds"],
+            method["seconds_to_target"], method["train_seconds"],
             base["seconds_to_target"], base["train_seconds"],
         )
         result["steps_to_target"][name] = bounded_ratio(
-            ngopt["steps_to_target"], steps, base["steps_to_target"], steps,
+            method["steps_to_target"], steps, base["steps_to_target"], steps,
         )
-        result["step_time"][name] = ngopt["step_seconds_median"] / base["step_seconds_median"]
+        result["step_time"][name] = method["step_seconds_median"] / base["step_seconds_median"]
     return result
 
 
@@ -84,11 +100,11 @@ def describe_ratio(entry: Optional[dict]) -> str:
     if relation == "at_most":
         return f"<= {ratio:.2f} (baseline never reached the target)"
     if relation == "at_least":
-        return f">= {ratio:.2f} (ngopt never reached the target)"
+        return f">= {ratio:.2f} ({HEADLINE} never reached the target)"
     return "n/a (neither reached the target)"
 
 
-# The knob a user has over each part of the step that ngopt times itself.
+# The knob a user has over each part of the step that FisherDescent times itself.
 USER_KNOBS = {
     "statistics": "stats_interval",
     "statistics_in_backward": "stats_interval, stats_fraction",
@@ -97,15 +113,15 @@ USER_KNOBS = {
 }
 
 
-def per_step_costs(ngopt: dict, baseline: dict) -> Optional[dict]:
-    """ngopt's mean step cost beyond the baseline's, by part.
+def per_step_costs(method: dict, baseline: dict) -> Optional[dict]:
+    """fisher-descent's mean step cost beyond the baseline's, by part.
 
-    Every part ngopt times itself is extra work; "forward_backward_extra" is
-    ngopt's "rest" (the model's forward and backward and untimed hook work)
+    Every part FisherDescent times itself is extra work; "forward_backward_extra" is
+    its "rest" (the model's forward and backward and untimed hook work)
     minus the baseline's whole mean step, which is its forward and backward
     plus a cheap update.
     """
-    split = ngopt.get("time_split_per_step")
+    split = method.get("time_split_per_step")
     if not split:
         return None
     costs = {key: value for key, value in split.items() if key != "rest"}
@@ -114,18 +130,18 @@ def per_step_costs(ngopt: dict, baseline: dict) -> Optional[dict]:
 
 
 def step_time_breakdown(task_entry: dict, baseline: str) -> Optional[str]:
-    """Where ngopt's mean step time beyond the baseline's goes, from its own timers."""
+    """Where fisher-descent's mean step time beyond the baseline's goes, from its own timers."""
     summaries = task_entry["summary"]
-    ngopt, base = summaries.get(NGOPT), summaries.get(baseline)
-    if ngopt is None or base is None:
+    method, base = summaries.get(HEADLINE), summaries.get(baseline)
+    if method is None or base is None:
         return None
-    costs = per_step_costs(ngopt, base)
+    costs = per_step_costs(method, base)
     if not costs:
         return None
     listing = ", ".join(f"{key} {value * 1e3:.2f} ms" for key, value in
                         sorted(costs.items(), key=lambda item: -item[1]))
     largest = max(costs, key=costs.get)
-    sentence = (f"per step ngopt averages {ngopt['step_seconds_mean'] * 1e3:.2f} ms against "
+    sentence = (f"per step {HEADLINE} averages {method['step_seconds_mean'] * 1e3:.2f} ms against "
                 f"{base['step_seconds_mean'] * 1e3:.2f} ms for {baseline}; the difference by part: "
                 f"{listing}; the largest is {largest}")
     if largest in USER_KNOBS:

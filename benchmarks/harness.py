@@ -3,7 +3,7 @@
 For each task and optimizer:
 
 1. run every learning rate of the optimizer's grid (same size for all tuned
-   optimizers) on the first seed; an untuned row (ngopt at its defaults) has
+   optimizers) on the first seed; an untuned row (FisherDescent at its defaults) has
    a single point, the optimizer's own default;
 2. pick the learning rate with the lowest final training loss (a diverged run
    counts as +inf);

@@ -76,7 +76,7 @@ def machine_info() -> dict:
         "environment": {key: os.environ[key] for key in ENVIRONMENT_KEYS if key in os.environ},
         "git_commit": git_commit(Path(__file__).resolve().parent.parent),
         "memory_note": "optimizer_state_bytes: bytes of the tensors in optimizer.state_dict() at the "
-                       "end of a run (curvature factors and inverses for ngopt, momentum or moment "
+                       "end of a run (curvature factors and inverses for FisherDescent, momentum or moment "
                        "buffers for the baselines); process_peak_rss_bytes: the process's resident-set "
                        "high-water mark (getrusage ru_maxrss) when the run ended, which only grows "
                        "over a benchmark and so bounds, not isolates, one run's peak; rss_growth_bytes: "

@@ -10,10 +10,12 @@ matplotlib.use("Agg")  # files only, no display
 import matplotlib.pyplot as plt  # noqa: E402
 
 from benchmarks.harness import TaskOutcome  # noqa: E402
+from benchmarks.optimizers import HEADLINE  # noqa: E402
 from benchmarks.results import write_atomically  # noqa: E402
+from benchmarks.scaling import step_key  # noqa: E402
 
-COLOURS = {"ngopt": "#8e2c48", "ngopt-ekfac": "#4b3f8e", "ngopt-diag": "#c0607a", "sgd": "#3f7f5f",
-           "adam": "#d08c1c"}
+COLOURS = {HEADLINE: "#8e2c48", f"{HEADLINE}-ekfac": "#4b3f8e", f"{HEADLINE}-diag": "#c0607a", "sgd": "#3f7f5f",
+           "adam": "#d08c1c", "adamw-cosine": "#2f6fa8", "muon": "#7a7a2a"}
 FALLBACK_COLOUR = "#555555"
 
 
@@ -53,14 +55,14 @@ def save(figure, path: Path) -> None:
 
 
 def plot_scaling(rows: list[dict], path: Path) -> None:
-    """Median step time against width and against batch, ngopt and SGD, with the ratio."""
+    """Median step time against width and against batch, fisher-descent and SGD, with the ratio."""
     figure, axes = plt.subplots(2, 2, figsize=(11, 7.5))
     for column, sweep in enumerate(("width", "batch")):
         sweep_rows = [row for row in rows if row["sweep"] == sweep]
         x = [row[sweep] for row in sweep_rows]
         times, ratio = axes[0][column], axes[1][column]
-        for name in ("ngopt", "sgd"):
-            key = f"{name}_step_seconds_median"
+        for name in (HEADLINE, "sgd"):
+            key = step_key(name, "median")
             if any(row.get(key) is not None for row in sweep_rows):
                 times.plot(x, [row.get(key) for row in sweep_rows], marker="o",
                            color=COLOURS[name], label=name)
@@ -70,7 +72,7 @@ def plot_scaling(rows: list[dict], path: Path) -> None:
         times.legend(fontsize=8)
         if any(row.get("ratio") is not None for row in sweep_rows):
             ratio.plot(x, [row.get("ratio") for row in sweep_rows], marker="o",
-                       color=COLOURS["ngopt"], label="measured ngopt/sgd")
+                       color=COLOURS[HEADLINE], label=f"measured {HEADLINE}/sgd")
         ratio.plot(x, [row["flop_estimate"] for row in sweep_rows], linestyle="--", color="black",
                    label="flop-count estimate 1 + 2d/(3B)")
         ratio.set_xscale("log", base=2)
@@ -82,7 +84,7 @@ def plot_scaling(rows: list[dict], path: Path) -> None:
         for each in (times, ratio):
             each.grid(True, which="both", alpha=0.25)
     figure.text(0.5, 0.005, "flop-count estimate: forward+backward ~6Bd² flops per d×d layer for both, "
-                "preconditioning ~4d³ more for ngopt; an estimate, not a bound (step time is not "
+                "preconditioning ~4d³ more for FisherDescent; an estimate, not a bound (step time is not "
                 "proportional to flops)", ha="center", va="bottom", fontsize=7.5)
     figure.tight_layout(rect=(0, 0.03, 1, 1))
     save(figure, path)

@@ -1,4 +1,4 @@
-"""Where ngopt's step time goes: one training run under cProfile (``--profile``)."""
+"""Where FisherDescent's step time goes: one training run under cProfile (``--profile``)."""
 
 from __future__ import annotations
 

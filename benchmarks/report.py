@@ -4,7 +4,8 @@ from __future__ import annotations
 
 from typing import Optional
 
-from benchmarks.comparison import FLOP_ESTIMATE_TEXT, NGOPT, describe_ratio, step_time_breakdown
+from benchmarks.comparison import FLOP_ESTIMATE_TEXT, describe_ratio, step_time_breakdown
+from benchmarks.optimizers import BASELINES, HEADLINE
 from benchmarks.report_format import contention_warning, format_number, format_table
 from benchmarks.verdict import verdict_text
 
@@ -41,15 +42,18 @@ def task_rows(entry: dict) -> list[list[str]]:
 
 
 def ratio_lines(entry: dict) -> list[str]:
-    """Time-to-target and step-time ratios of ngopt over each baseline, with the flop-count estimate."""
+    """Time-to-target and step-time ratios of fisher-descent over each baseline, with the flop-count estimate."""
     comparison = entry["comparison"]
     lines = []
     if comparison["time_to_target"]:
+        best = comparison["best_baseline"]
+        lines.append(f"best baseline: {best}; time to target {HEADLINE}/{best}: "
+                     f"{describe_ratio(comparison['time_to_target'][best])}")
         lines.append("time to target, " + "; ".join(
-            f"ngopt/{name}: {describe_ratio(value)}" for name, value in comparison["time_to_target"].items()))
+            f"{HEADLINE}/{name}: {describe_ratio(value)}" for name, value in comparison["time_to_target"].items()))
         lines.append("steps to target, " + "; ".join(
-            f"ngopt/{name}: {describe_ratio(value)}" for name, value in comparison["steps_to_target"].items()))
-        step_parts = [f"ngopt/{name}: {value:.2f}" for name, value in comparison["step_time"].items()]
+            f"{HEADLINE}/{name}: {describe_ratio(value)}" for name, value in comparison["steps_to_target"].items()))
+        step_parts = [f"{HEADLINE}/{name}: {value:.2f}" for name, value in comparison["step_time"].items()]
         line = "median step time, " + "; ".join(step_parts)
         if comparison["step_time_flop_estimate"] is not None:
             line += (f"  [flop-count estimate 1 + 2d/(3B) = {comparison['step_time_flop_estimate']:.2f} "
@@ -60,22 +64,22 @@ def ratio_lines(entry: dict) -> list[str]:
 
 
 def split_line(entry: dict) -> Optional[str]:
-    """ngopt's mean time per step by part, from its own timers."""
-    summary = entry["summary"].get(NGOPT)
+    """fisher-descent's mean time per step by part, from FisherDescent's own timers."""
+    summary = entry["summary"].get(HEADLINE)
     split = summary and summary.get("time_split_per_step")
     if not split:
         return None
     total = sum(split.values())
     parts = ", ".join(f"{key} {value * 1e3:.2f} ms ({100 * value / total:.0f}%)"
                       for key, value in split.items() if total > 0)
-    return f"ngopt time per step (median over seeds): {parts}; rest = forward/backward and untimed work"
+    return f"{HEADLINE} time per step (median over seeds): {parts}; rest = forward/backward and untimed work"
 
 
 def coverage_line(entry: dict) -> Optional[str]:
     """The share of parameters that FisherDescent left to its fallback rule, where any."""
     for name, summary in entry["summary"].items():
         coverage = summary.get("parameter_coverage")
-        if coverage and coverage["fallback_parameters"]:
+        if coverage and coverage.get("fallback_parameters"):
             reasons = coverage.get("fallback_reasons") or {}
             tensors = ", ".join(f"{t} ({reasons[t]})" if t in reasons else t for t in coverage["fallback_tensors"][:6])
             more = len(coverage["fallback_tensors"]) - 6
@@ -83,6 +87,19 @@ def coverage_line(entry: dict) -> Optional[str]:
                     f"({coverage['fallback_parameters']} of {coverage['parameters']}) have no curvature block "
                     f"and took the fallback rule ({name}): {tensors}" + (f" and {more} more" if more > 0 else ""))
     return None
+
+
+def parts_line(entry: dict) -> Optional[str]:
+    """Which share of the parameters each part of a composite optimizer (the muon row) updates."""
+    texts = []
+    for name, summary in entry["summary"].items():
+        coverage = summary.get("parameter_coverage") or {}
+        if "parts" in coverage:
+            total = coverage["parameters"]
+            shares = ", ".join(f"{part} {count} ({100 * count / total:.1f}%)"
+                               for part, count in coverage["parts"].items())
+            texts.append(f"{name} updates {total} parameters: {shares}")
+    return "; ".join(texts) or None
 
 
 def memory_line(entry: dict) -> str:
@@ -130,7 +147,8 @@ def task_block(entry: dict, markdown: bool = False, threads: Optional[int] = Non
     headers = [h.format(metric=entry["test_metric"] or "metric") for h in TABLE_HEADERS]
     warning = contention_warning(entry.get("load_average_max"), threads)
     notes = ratio_lines(entry) + [line for line in (
-        step_time_breakdown(entry, "sgd"), split_line(entry), coverage_line(entry), memory_line(entry),
+        step_time_breakdown(entry, "sgd"), split_line(entry), coverage_line(entry), parts_line(entry),
+        memory_line(entry),
         reference_line(entry), progress_line(entry),
         warning and f"warning: {warning}; the runs were interleaved across optimizers to spread the effect",
     ) if line]
@@ -148,32 +166,44 @@ def _time_and_steps(summary: Optional[dict]) -> str:
     return f"{summary['seconds_to_target']:.3g} s ({format_number(summary['steps_to_target'])} steps)"
 
 
+def baselines_run(results: dict) -> list[str]:
+    """The baselines this benchmark ran, in the registry's order."""
+    chosen = results["settings"].get("optimizers", [])
+    return [name for name in BASELINES if name in chosen]
+
+
+def step_time_text(comparison: dict) -> str:
+    step_ratio = comparison["step_time"].get("sgd")
+    estimate = comparison["step_time_flop_estimate"]
+    text = "-" if step_ratio is None else f"{step_ratio:.2f}"
+    if step_ratio is not None and estimate is not None:
+        text += f" (flop estimate {estimate:.2f})"
+    return text
+
+
 def overview_rows(results: dict) -> list[list[str]]:
-    """One row per task: median time (steps) to target per optimizer, and ngopt's ratios."""
+    """One row per task: median time (steps) to target per optimizer, the best baseline and
+    fisher-descent's time ratio to it, and its step-time ratio to sgd."""
     rows = []
     for entry in results["tasks"]:
         summaries, comparison = entry["summary"], entry["comparison"]
-        step_ratio = comparison["step_time"].get("sgd")
-        estimate = comparison["step_time_flop_estimate"]
-        step_text = "-" if step_ratio is None else f"{step_ratio:.2f}"
-        if step_ratio is not None and estimate is not None:
-            step_text += f" (flop estimate {estimate:.2f})"
+        best = comparison["best_baseline"]
         rows.append([
             entry["task"], f"{entry['target_loss']:g}",
-            *[_time_and_steps(summaries.get(name)) for name in ("ngopt", "sgd", "adam")],
-            *[describe_ratio(comparison["time_to_target"].get(name)).split(" (")[0]
-              for name in ("sgd", "adam")],
-            step_text,
+            *[_time_and_steps(summaries.get(name)) for name in [HEADLINE] + baselines_run(results)],
+            best or "-", describe_ratio(comparison["time_to_target"].get(best)).split(" (")[0],
+            step_time_text(comparison),
         ])
     return rows
 
 
-OVERVIEW_HEADERS = ["task", "target", "ngopt (untuned): time (steps) to target", "sgd", "adam",
-                    "time ngopt/sgd", "time ngopt/adam", "step time ngopt/sgd"]
+def overview_headers(results: dict) -> list[str]:
+    return ["task", "target", f"{HEADLINE} (untuned): time (steps) to target", *baselines_run(results),
+            "best baseline", f"time {HEADLINE}/best", f"step time {HEADLINE}/sgd"]
 
 
 def overview(results: dict, markdown: bool = False) -> str:
-    return format_table(OVERVIEW_HEADERS, overview_rows(results), markdown)
+    return format_table(overview_headers(results), overview_rows(results), markdown)
 
 
 def stop_note(results: dict) -> Optional[str]:
@@ -191,8 +221,8 @@ def console_summary(results: dict, with_tasks: bool = True) -> str:
     threads = results["settings"].get("threads")
     blocks = [task_block(entry, threads=threads) for entry in results["tasks"]] if with_tasks else []
     if results["tasks"]:
-        blocks.append("Overview (medians over seeds; ngopt at its defaults, sgd and adam at their chosen lr)\n"
-                      + overview(results))
+        blocks.append(f"Overview (medians over seeds; {HEADLINE} at its defaults, the baselines at their chosen lr; "
+                      "best baseline: the first to the target)\n" + overview(results))
         blocks.append(verdict_text(results))
     note = stop_note(results)
     if note:
@@ -213,9 +243,12 @@ def settings_lines(results: dict) -> list[str]:
         f"- load average (1 min) at start and end: {settings.get('load_average_start')} / "
         f"{settings.get('load_average_end')} (other processes on the machine inflate wall-clock times)",
         "- optimizers: " + "; ".join(f"{name} = {label}" for name, label in
-                                     settings["optimizer_labels"].items()),
+                                     settings["optimizer_labels"].items())
+        + "".join(f"; skipped: {name} ({reason})" for name, reason in
+                  settings.get("skipped_optimizers", {}).items()),
         f"- seeds {settings['seeds']}; lr grid of {settings['grid_size']} points per tuned optimizer, "
-        f"{settings['grid_decades']:g} decades wide: {grids or 'none'}"
+        f"{settings['grid_spacing_decades']:g} decade apart ({settings['grid_decades']:g} decades wide): "
+        f"{grids or 'none'}"
         + (f"; not tuned (built without an lr, one run per seed): {', '.join(untuned)}" if untuned else ""),
         "- protocol: every lr of the grid on the first seed, the lr with the lowest final training "
         "loss on the remaining seeds, medians over the seeds at that lr; time is the training "
@@ -230,13 +263,15 @@ def settings_lines(results: dict) -> list[str]:
 
 
 def markdown_report(results: dict, plot_files: dict[str, str]) -> str:
-    parts = ["# Benchmark: FisherDescent against SGD and Adam", ""]
+    parts = ["# Benchmark: FisherDescent against tuned baselines", ""]
     note = stop_note(results)
     if note:
         parts += [f"**{note}**", ""]
     parts += [verdict_text(results, markdown=True), "", "## Settings", "", *settings_lines(results), "",
-              "## Overview", "", "Medians over the seeds (ngopt at its defaults, the baselines at their "
-              "chosen lr); ratios below 1 favour ngopt; `<=` where the baseline never reached the target.",
+              "## Overview", "", f"Medians over the seeds ({HEADLINE} at its defaults, the baselines at their "
+              f"chosen lr); the best baseline is the one that reached the target first (the lowest final "
+              f"training loss where none did); ratios below 1 favour {HEADLINE}; `<=` where the baseline never "
+              "reached the target.",
               "", overview(results, markdown=True), ""]
     for entry in results["tasks"]:
         parts += [f"## {entry['task']}", "", entry["description"] + ".", "",

@@ -24,7 +24,7 @@ from torch import nn
 from tqdm import tqdm
 
 from benchmarks.comparison import FLOP_ESTIMATE_TEXT, step_time_flop_estimate
-from benchmarks.optimizers import OptimizerSpec
+from benchmarks.optimizers import HEADLINE, OptimizerSpec
 from benchmarks.report_format import format_number, format_table
 from benchmarks.training import load_average
 
@@ -34,8 +34,15 @@ BATCHES = [64, 128, 256, 512, 1024, 2048]
 BATCH_SWEEP_WIDTH = 256
 LAYERS = 3
 CLASSES = 10
-COLUMNS = ("sweep", "width", "batch", "flop_estimate", "ngopt_step_seconds_median", "sgd_step_seconds_median",
-           "ngopt_step_seconds_mean", "sgd_step_seconds_mean", "ratio", "ratio_of_means", "load_average")
+
+
+def step_key(name: str, statistic: str) -> str:
+    """The row key of an optimizer's median or mean step seconds (an identifier: dashes become underscores)."""
+    return f"{name.replace('-', '_')}_step_seconds_{statistic}"
+
+
+COLUMNS = ("sweep", "width", "batch", "flop_estimate", step_key(HEADLINE, "median"), step_key("sgd", "median"),
+           step_key(HEADLINE, "mean"), step_key("sgd", "mean"), "ratio", "ratio_of_means", "load_average")
 
 
 def scaling_model(width: int) -> nn.Sequential:
@@ -119,11 +126,11 @@ def run_scaling(specs: dict[str, OptimizerSpec], warmup: int, steps: int,
                          "flop_estimate": step_time_flop_estimate(width, batch), "load_average": load_average()}
             bar.set_postfix_str(f"d={width} B={batch}")
             for name, seconds in time_point(specs, width, batch, warmup, steps, bar.update).items():
-                row[f"{name}_step_seconds_median"] = statistics.median(seconds)
-                row[f"{name}_step_seconds_mean"] = statistics.fmean(seconds)
-            if "ngopt" in specs and "sgd" in specs:
-                row["ratio"] = row["ngopt_step_seconds_median"] / row["sgd_step_seconds_median"]
-                row["ratio_of_means"] = row["ngopt_step_seconds_mean"] / row["sgd_step_seconds_mean"]
+                row[step_key(name, "median")] = statistics.median(seconds)
+                row[step_key(name, "mean")] = statistics.fmean(seconds)
+            if HEADLINE in specs and "sgd" in specs:
+                row["ratio"] = row[step_key(HEADLINE, "median")] / row[step_key("sgd", "median")]
+                row["ratio_of_means"] = row[step_key(HEADLINE, "mean")] / row[step_key("sgd", "mean")]
             rows.append(row)
     return rows
 
@@ -136,16 +143,16 @@ def write_scaling_csv(rows: list[dict], path: Path) -> None:
 
 
 def scaling_table(rows: list[dict], markdown: bool = False) -> str:
-    headers = ["sweep", "d", "B", "ngopt ms (median)", "sgd ms (median)", "ratio", "flop estimate 1+2d/(3B)",
-               "ngopt ms (mean)", "sgd ms (mean)", "ratio of means"]
+    headers = ["sweep", "d", "B", f"{HEADLINE} ms (median)", "sgd ms (median)", "ratio", "flop estimate 1+2d/(3B)",
+               f"{HEADLINE} ms (mean)", "sgd ms (mean)", "ratio of means"]
 
     def ms(value):
         return format_number(None if value is None else value * 1e3)
 
     body = [[row["sweep"], str(row["width"]), str(row["batch"]),
-             ms(row.get("ngopt_step_seconds_median")), ms(row.get("sgd_step_seconds_median")),
+             ms(row.get(step_key(HEADLINE, "median"))), ms(row.get(step_key("sgd", "median"))),
              format_number(row.get("ratio")), format_number(row["flop_estimate"]),
-             ms(row.get("ngopt_step_seconds_mean")), ms(row.get("sgd_step_seconds_mean")),
+             ms(row.get(step_key(HEADLINE, "mean"))), ms(row.get(step_key("sgd", "mean"))),
              format_number(row.get("ratio_of_means"))] for row in rows]
     return format_table(headers, body, markdown)
 

@@ -13,7 +13,9 @@ model is built, so every optimizer starts from the same weights) and the data
 order (a separate generator for the minibatch permutations, so an optimizer
 that draws random numbers, as a sampled Fisher does, cannot change the order).
 An lr of ``None`` builds the optimizer without one (at its own default); the
-run records the lr the optimizer then holds.
+run records the lr the optimizer then holds. A row with an lr schedule has it
+built for the run's step budget and stepped after every optimizer step, inside
+the timed region (it is part of what that row's training step costs).
 """
 
 from __future__ import annotations
@@ -29,6 +31,7 @@ from pathlib import Path
 from typing import Callable, Iterator, Optional
 
 import torch
+from torch.optim.lr_scheduler import LRScheduler
 
 from benchmarks.coverage import parameter_coverage
 from benchmarks.evaluation import EvaluationSchedule, evaluate, near_target, near_threshold, test_metric
@@ -197,7 +200,8 @@ def batch_loss_of(returned) -> Optional[float]:
 
 
 def timed_training(task: Task, model, loss_fn, optimizer, data, seed: int, steps: int,
-                   schedule: EvaluationSchedule, on_step: Optional[Callable[[], None]]) -> Trace:
+                   schedule: EvaluationSchedule, on_step: Optional[Callable[[], None]],
+                   lr_schedule: Optional[LRScheduler] = None) -> Trace:
     """The training loop: only the closure and ``optimizer.step`` fall inside the timer."""
     batches = minibatches(len(data.train_x), task.batch_size, seed)
     trace = Trace()
@@ -216,6 +220,8 @@ def timed_training(task: Task, model, loss_fn, optimizer, data, seed: int, steps
 
         start = time.perf_counter()
         returned = optimizer.step(closure)
+        if lr_schedule is not None:
+            lr_schedule.step()
         seconds = time.perf_counter() - start
         trace.step_seconds.append(seconds)
         elapsed += seconds
@@ -252,9 +258,10 @@ def train_run(
     loss_fn = task.make_loss()
     optimizer = spec.build(model, loss_fn, lr)
     lr = float(optimizer.param_groups[0]["lr"]) if lr is None else lr
+    lr_schedule = spec.schedule(optimizer, steps) if spec.schedule is not None else None
     detach = attach(optimizer) if attach is not None else None
     try:
-        trace = timed_training(task, model, loss_fn, optimizer, data, seed, steps, schedule, on_step)
+        trace = timed_training(task, model, loss_fn, optimizer, data, seed, steps, schedule, on_step, lr_schedule)
         coverage = parameter_coverage(optimizer, model)  # blocks are assigned by the training forwards
     finally:
         if detach is not None:

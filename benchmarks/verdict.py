@@ -1,4 +1,5 @@
-"""The one-screen verdict: per task, who reached the target first in wall-clock, and by how much.
+"""The one-screen verdict: per task, who reached the target first in wall-clock, and by how much,
+and the untuned fisher-descent row against the best of the baselines (the first of them to the target).
 
 Built from the results dict alone (the content of results.json), so the
 console and report.md say the same thing.
@@ -8,6 +9,8 @@ from __future__ import annotations
 
 from typing import Optional
 
+from benchmarks.comparison import best_baseline
+from benchmarks.optimizers import HEADLINE
 from benchmarks.report_format import contention_warning, format_number
 
 HEADING = ("Verdict: wall-clock time to the target training loss, medians over seeds "
@@ -27,6 +30,31 @@ def _who(name: str, summary: dict) -> str:
     return name if summary["lr_tuned"] else f"{name} (untuned)"
 
 
+def _against_best_baseline(summaries: dict, said: Optional[str]) -> str:
+    """fisher-descent's time over the best baseline's, when both reached the target and the
+    sentence has not set the two side by side already (``said``: the baseline it compared with)."""
+    best = best_baseline(summaries)
+    method = summaries.get(HEADLINE)
+    if best is None or best == said or method is None or _seconds(method) is None or \
+            _seconds(summaries[best]) is None:
+        return ""
+    return (f"; {HEADLINE} (untuned) took {_seconds(method) / _seconds(summaries[best]):.2f}× the time of "
+            f"the best baseline, {best}")
+
+
+def _first_to_target(reached: list[tuple[str, dict]], summaries: dict) -> str:
+    """Who reached the target first, against the next fastest and fisher-descent against the best baseline."""
+    winner, first = reached[0]
+    text = f"{_who(winner, first)} reached the target first, in {_seconds(first):.3g} s{_seeds_note(first)}"
+    said = None
+    if len(reached) > 1:
+        runner, second = reached[1]
+        text += (f"; that is {_seconds(first) / _seconds(second):.2f}× {runner}'s time "
+                 f"({_seconds(second):.3g} s), the next fastest")
+        said = runner if winner == HEADLINE else None
+    return text + _against_best_baseline(summaries, said)
+
+
 def task_verdict(entry: dict, threads: Optional[int]) -> str:
     """One plain sentence (or two) on one task."""
     summaries = entry["summary"]
@@ -42,16 +70,7 @@ def task_verdict(entry: dict, threads: Optional[int]) -> str:
             best_name, best_loss = min(finals, key=lambda item: item[1])
             text += f"; the lowest final training loss was {best_name}'s, {format_number(best_loss)}"
     else:
-        winner, first = reached[0]
-        text = head + f"{_who(winner, first)} reached the target first, in {_seconds(first):.3g} s{_seeds_note(first)}"
-        if len(reached) > 1:
-            runner, second = reached[1]
-            text += (f"; that is {_seconds(first) / _seconds(second):.2f}× {runner}'s time "
-                     f"({_seconds(second):.3g} s), the next fastest")
-        if "ngopt" in summaries and winner != "ngopt":
-            ngopt = summaries["ngopt"]
-            if _seconds(ngopt) is not None:
-                text += f"; ngopt (untuned) took {_seconds(ngopt) / _seconds(first):.2f}× {winner}'s time"
+        text = head + _first_to_target(reached, summaries)
         if missed:
             text += f"; {', '.join(missed)} did not reach it"
     text += "."

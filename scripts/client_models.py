@@ -142,10 +142,10 @@ def train_side_by_side(client: Client, steps: int, seed: int) -> dict:
     torch.manual_seed(seed)
     base = client.build()
     base.train()
-    models = {"ngopt": base, "adamw": copy.deepcopy(base)}
+    models = {"fisher-descent": base, "adamw": copy.deepcopy(base)}
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        optimizers = {"ngopt": ngopt.FisherDescent(models["ngopt"]),
+        optimizers = {"fisher-descent": ngopt.FisherDescent(models["fisher-descent"]),
                       "adamw": torch.optim.AdamW(models["adamw"].parameters(), lr=1e-3)}
     generator = torch.Generator().manual_seed(seed + 1)
     batches = [client.batch(generator) for _ in range(steps)]
@@ -169,25 +169,27 @@ def train_side_by_side(client: Client, steps: int, seed: int) -> dict:
     for name, model in models.items():
         with torch.no_grad():
             evaluated[name] = float(client.loss(model, held_out))
-    share, reasons = fallback_share(optimizers["ngopt"], models["ngopt"])
+    share, reasons = fallback_share(optimizers["fisher-descent"], models["fisher-descent"])
     step = {name: statistics.median(values[1:]) for name, values in seconds.items()}
     return {"model": client.name, "parameters": sum(p.numel() for p in base.parameters()),
             "fallback_share": share, "fallback": reasons,
-            "first_loss": losses["ngopt"][0], "ngopt_loss": losses["ngopt"][-1], "adamw_loss": losses["adamw"][-1],
-            "ngopt_held_out": evaluated["ngopt"], "adamw_held_out": evaluated["adamw"],
-            "ngopt_step_ms": 1e3 * step["ngopt"], "adamw_step_ms": 1e3 * step["adamw"],
-            "step_ratio": step["ngopt"] / step["adamw"], "skipped": optimizers["ngopt"].diagnostics()["skipped_steps"],
+            "first_loss": losses["fisher-descent"][0], "fisher_descent_loss": losses["fisher-descent"][-1],
+            "adamw_loss": losses["adamw"][-1],
+            "fisher_descent_held_out": evaluated["fisher-descent"], "adamw_held_out": evaluated["adamw"],
+            "fisher_descent_step_ms": 1e3 * step["fisher-descent"], "adamw_step_ms": 1e3 * step["adamw"],
+            "step_ratio": step["fisher-descent"] / step["adamw"],
+            "skipped": optimizers["fisher-descent"].diagnostics()["skipped_steps"],
             "warnings": sorted({str(w.message)[:160] for w in caught})}
 
 
 def table(rows: List[dict]) -> str:
-    header = ("| model | parameters | on fallback | loss at start | ngopt after | AdamW after | held-out ngopt / AdamW "
-              "| step ms ngopt / AdamW (ratio) |")
+    header = ("| model | parameters | on fallback | loss at start | fisher-descent after | AdamW after "
+              "| held-out fisher-descent / AdamW | step ms fisher-descent / AdamW (ratio) |")
     lines = [header, "|" + "---|" * 8]
     for r in rows:
         lines.append(f"| {r['model']} | {r['parameters']:,} | {100 * r['fallback_share']:.2f}% | {r['first_loss']:.3f} | "
-                     f"{r['ngopt_loss']:.3f} | {r['adamw_loss']:.3f} | {r['ngopt_held_out']:.3f} / "
-                     f"{r['adamw_held_out']:.3f} | {r['ngopt_step_ms']:.0f} / {r['adamw_step_ms']:.0f} "
+                     f"{r['fisher_descent_loss']:.3f} | {r['adamw_loss']:.3f} | {r['fisher_descent_held_out']:.3f} / "
+                     f"{r['adamw_held_out']:.3f} | {r['fisher_descent_step_ms']:.0f} / {r['adamw_step_ms']:.0f} "
                      f"({r['step_ratio']:.2f}) |")
     return "\n".join(lines)
 
@@ -214,7 +216,8 @@ def main(argv=None) -> int:
         row = train_side_by_side(client, args.steps, args.seed)
         rows.append(row)
         print(f"{row['model']}: fallback {100 * row['fallback_share']:.2f}%, losses {row['first_loss']:.3f} -> "
-              f"ngopt {row['ngopt_loss']:.3f} / AdamW {row['adamw_loss']:.3f}, step ratio {row['step_ratio']:.2f}",
+              f"fisher-descent {row['fisher_descent_loss']:.3f} / AdamW {row['adamw_loss']:.3f}, "
+              f"step ratio {row['step_ratio']:.2f}",
               flush=True)
         for name, why in row["fallback"].items():
             print(f"    fallback: {name}: {why}")

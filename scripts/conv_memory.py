@@ -111,7 +111,7 @@ def main(argv=None):
     parser.add_argument("--rounds", type=int, default=1, help="fresh runs per optimizer, taking turns")
     parser.add_argument("--optimizers", nargs="+", default=["sgd", "kfac"], choices=["sgd", "kfac", "ekfac", "diag"])
     parser.add_argument("--option", action="append", default=[], metavar="KEY=JSON",
-                        help="a FisherDescent keyword for the ngopt rows, e.g. stats_interval=5")
+                        help="a FisherDescent keyword for the FisherDescent rows, e.g. stats_interval=5")
     parser.add_argument("--worker", help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.worker:

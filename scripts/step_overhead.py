@@ -17,7 +17,7 @@ are not proportional to flops, and measured ratios fall below them at small batc
   ed., sec. 8.3, from memory; EKFAC's refresh also projects the rows into the
   eigenbasis).
 
-"slowest ms" is ngopt's longest single step (an inversion step under
+"slowest ms" is FisherDescent's longest single step (an inversion step under
 inverse_schedule "together"; "staggered" spreads the inversions).
 
     python scripts/step_overhead.py --width 256 --batches 256 1024 [--structure ekfac]
@@ -117,7 +117,7 @@ def main(argv=None):
                              "so that every run times whole refresh periods (default 200)")
     parser.add_argument("--warmup", type=int, default=20)
     parser.add_argument("--threads", type=int, default=2)
-    parser.add_argument("--rounds", type=int, default=3, help="alternate SGD/ngopt runs this many times")
+    parser.add_argument("--rounds", type=int, default=3, help="alternate SGD/FisherDescent runs this many times")
     parser.add_argument("--structure", choices=["kfac", "ekfac", "diag"], default="kfac")
     parser.add_argument("--inverse-schedule", choices=["together", "staggered"], default="together",
                         help="FisherDescent's inverse_schedule: all blocks inverted on one step, or each on its own")
@@ -138,8 +138,8 @@ def main(argv=None):
 
     print(f"widths {'-'.join(map(str, widths))}, load average {os.getloadavg()[0]:.2f}, threads {args.threads}, {args.steps} timed steps x {args.rounds} rounds, "
           f"curvature {args.structure}, inverse_schedule {args.inverse_schedule}")
-    print(f"{'batch':>6} {'sgd ms':>8} {'ngopt ms':>9} {'ratio(mean)':>11} {'ratio(median)':>13} "
-          f"{'precond. est.':>13} {'schedule est.':>13} {'slowest ms':>10}  ngopt split (% of its whole step, forward and backward included)")
+    print(f"{'batch':>6} {'sgd ms':>8} {'fisher-descent ms':>17} {'ratio(mean)':>11} {'ratio(median)':>13} "
+          f"{'precond. est.':>13} {'schedule est.':>13} {'slowest ms':>10}  fisher-descent split (% of its whole step, forward and backward included)")
     for batch in args.batches:
         sgd_times, ng_times, optimizer = [], [], None
         for _ in range(args.rounds):  # interleave so that machine noise hits both alike
@@ -155,7 +155,7 @@ def main(argv=None):
         schedule_estimate = schedule_flop_estimate(widths, batch, args.structure, intervals)
         mean_ratio = statistics.mean(ng_times) / statistics.mean(sgd_times)
         median_ratio = statistics.median(ng_times) / statistics.median(sgd_times)
-        print(f"{batch:>6} {1e3 * statistics.mean(sgd_times):>8.2f} {1e3 * statistics.mean(ng_times):>9.2f} "
+        print(f"{batch:>6} {1e3 * statistics.mean(sgd_times):>8.2f} {1e3 * statistics.mean(ng_times):>17.2f} "
               f"{mean_ratio:>11.2f} {median_ratio:>13.2f} {flop_estimate:>13.2f} {schedule_estimate:>13.2f} {1e3 * max(ng_times):>10.2f}  "
               + ", ".join(f"{k} {v:.0f}%" for k, v in share.items()))
 

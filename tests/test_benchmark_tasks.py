@@ -276,23 +276,25 @@ def test_resnet_shapes_and_batch_norm():
     assert all(int(norm.num_batches_tracked) == 1 for norm in norms)
 
 
-CURVATURE_ROWS = ["ngopt", "ngopt-diag", "ngopt-ekfac"]
+CURVATURE_ROWS = ["fisher-descent", "fisher-descent-diag", "fisher-descent-ekfac"]
 
 
 @pytest.mark.parametrize("name", CURVATURE_ROWS)
-def test_curvature_rows_build_their_curvature_untuned_like_ngopt(name):
+def test_curvature_rows_build_their_curvature_untuned_like_the_headline_row(name):
     spec = OPTIMIZERS[name]
     optimizer = spec.build(nn.Linear(3, 2), nn.MSELoss(), None)
     assert isinstance(optimizer, ngopt.FisherDescent)
-    assert optimizer.structure == {"ngopt": "kfac", "ngopt-diag": "diag", "ngopt-ekfac": "ekfac"}[name]
-    assert spec.lr_grid(3) == OPTIMIZERS["ngopt"].lr_grid(3) == [None]  # no lr grid: the library default
+    assert optimizer.structure == {"fisher-descent": "kfac", "fisher-descent-diag": "diag",
+                                   "fisher-descent-ekfac": "ekfac"}[name]
+    assert spec.lr_grid(3) == OPTIMIZERS["fisher-descent"].lr_grid(3) == [None]  # no lr grid: the library default
 
 
 def test_curvature_rows_run_on_request_and_keep_their_curvature_under_overrides():
-    # The results schema: results list the optimizers "ngopt|sgd|adam"; the curvature rows are extra
-    assert [spec.name for spec in resolve_optimizers(None)] == list(DEFAULT_OPTIMIZERS) == ["ngopt", "sgd", "adam"]
-    assert [spec.name for spec in resolve_optimizers(["ngopt-diag", "sgd"])] == ["ngopt-diag", "sgd"]
-    tuned = with_natural_gradient_options(OPTIMIZERS["ngopt-diag"], {"structure": "kfac", "momentum": 0.0})
+    # the untuned method and the tuned baselines by default; the curvature rows (and muon) are extra
+    assert [spec.name for spec in resolve_optimizers(None)] == list(DEFAULT_OPTIMIZERS) == [
+        "fisher-descent", "sgd", "adam", "adamw-cosine"]
+    assert [spec.name for spec in resolve_optimizers(["fisher-descent-diag", "sgd"])] == ["fisher-descent-diag", "sgd"]
+    tuned = with_natural_gradient_options(OPTIMIZERS["fisher-descent-diag"], {"structure": "kfac", "momentum": 0.0})
     optimizer = tuned.build(nn.Linear(3, 2), nn.MSELoss(), 0.1)
     assert optimizer.structure == "diag" and optimizer.param_groups[0]["momentum"] == 0.0
     assert "structure='diag'" in tuned.label and "momentum=0.0" in tuned.label
@@ -310,7 +312,8 @@ def first_examples(load, n_train: int, n_test: int):
 
 @pytest.mark.parametrize("task_name", NEW_TASKS)
 def test_quick_run_of_the_new_task_with_every_row(task_name, tmp_path, monkeypatch):
-    rows = ["sgd", "adam", "ngopt", "ngopt-diag", "ngopt-ekfac"]
+    rows = ["sgd", "adam", "adamw-cosine", "fisher-descent", "fisher-descent-diag", "fisher-descent-ekfac"]
+    rows += ["muon"] if hasattr(torch.optim, "Muon") else []
     task = TASKS[task_name]
     monkeypatch.setitem(TASKS, task_name, replace(task, load_data=first_examples(task.load_data, 256, 64)))
     steps = 3
@@ -365,7 +368,7 @@ def keys_of(results):
 
 
 def test_task_file_run_writes_the_files_of_a_builtin_task(tmp_path):
-    rows = "ngopt,sgd,adam"
+    rows = "fisher-descent,sgd,adam"
     tiny = ["--steps", "3", "--grid", "1", "--seeds", "2", "--optimizers", rows, "--no-progress"]
     mine = tmp_path / "mine"
     assert main(["--task-file", str(task_file(tmp_path, "target_loss = 0.4")), "--out", str(mine)] + tiny) == 0
@@ -375,7 +378,7 @@ def test_task_file_run_writes_the_files_of_a_builtin_task(tmp_path):
     assert keys_of(ours) == keys_of(theirs)  # the same schema as a built-in task, field for field
     entry = ours["tasks"][0]
     assert entry["task"] == "my_problem" and entry["target_loss"] == 0.4 and entry["batch_size"] == 64
-    assert entry["test_metric"] == "accuracy" and 0 <= entry["summary"]["ngopt"]["final_test_metric"] <= 1
+    assert entry["test_metric"] == "accuracy" and 0 <= entry["summary"]["fisher-descent"]["final_test_metric"] <= 1
     assert sorted(run["optimizer"] for run in entry["runs"]) == sorted(rows.split(",") * 2)
     for name in ("curves.csv", "report.md"):
         assert (mine / name).read_text().splitlines()[0] == (builtin / name).read_text().splitlines()[0]
@@ -387,9 +390,10 @@ def test_task_file_run_writes_the_files_of_a_builtin_task(tmp_path):
 def test_task_file_report_gives_the_share_of_parameters_under_the_fallback_rule(tmp_path):
     out = tmp_path / "out"
     argv = ["--task-file", str(task_file(tmp_path, "target_loss = 0.4")), "--steps", "2", "--grid", "1",
-            "--seeds", "1", "--optimizers", "ngopt", "--out", str(out), "--no-progress"]
+            "--seeds", "1", "--optimizers", "fisher-descent", "--out", str(out), "--no-progress"]
     assert main(argv) == 0
-    coverage = json.loads((out / "results.json").read_text())["tasks"][0]["summary"]["ngopt"]["parameter_coverage"]
+    summary = json.loads((out / "results.json").read_text())["tasks"][0]["summary"]
+    coverage = summary["fisher-descent"]["parameter_coverage"]
     # nn.PReLU has no curvature block (README: supported layers), so its 8 weights take the fallback rule;
     # the count by hand: Linear(4, 8) 40, PReLU(8) 8, Linear(8, 2) 18
     assert (coverage["parameters"], coverage["fallback_parameters"]) == (66, 8)

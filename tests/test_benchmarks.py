@@ -25,7 +25,8 @@ from benchmarks.attachments import diagnostics_available
 from benchmarks.cli import main, parse_options, parse_seeds
 from benchmarks.comparison import bounded_ratio, step_time_flop_estimate
 from benchmarks.evaluation import EvaluationSchedule
-from benchmarks.optimizers import GRID_DECADES, OPTIMIZERS, natural_gradient_available, resolve_optimizers
+from benchmarks.optimizers import (BASELINES, DEFAULT_OPTIMIZERS, HEADLINE, OPTIMIZERS,
+                                   natural_gradient_available, resolve_optimizers)
 from benchmarks.tasks import TASKS, resolve_tasks
 from benchmarks.training import minibatches, train_run
 
@@ -36,7 +37,9 @@ def every_step(steps: int) -> EvaluationSchedule:
     """Evaluate after every step (the densest schedule: the reference for the adaptive one)."""
     return EvaluationSchedule(1, 1, steps)
 NGOPT_AVAILABLE = natural_gradient_available()[0]
-OPTIMIZER_NAMES = ["ngopt", "sgd", "adam"] if NGOPT_AVAILABLE else ["sgd", "adam"]
+# every row the verdict weighs: the default rows and muon (on request), each where it can run
+OPTIMIZER_NAMES = [name for name in [*DEFAULT_OPTIMIZERS, "muon"]
+                   if (NGOPT_AVAILABLE or name != HEADLINE) and OPTIMIZERS[name].why_unavailable() is None]
 API_RUN_FIELDS = {  # the README's results schema
     "optimizer": str, "lr": float, "seed": int, "steps_to_target": (int, type(None)),
     "seconds_to_target": (float, type(None)), "final_train_loss": (float, type(None)),
@@ -85,8 +88,8 @@ def test_every_optimizer_gets_the_same_budget_and_the_stated_protocol(smoke_run)
             tuning = [run for run in runs if run["role"] == "tuning"]
             repeats = [run for run in runs if run["role"] == "repeat"]
             summary = task["summary"][name]
-            # ngopt runs untuned (one point: its own default lr), the baselines over their grids
-            assert summary["lr_tuned"] == (name != "ngopt")
+            # fisher-descent runs untuned (one point: its own default lr), the baselines over their grids
+            assert summary["lr_tuned"] == (name != "fisher-descent")
             assert len(tuning) == (SMOKE_GRID if summary["lr_tuned"] else 1)
             assert {run["seed"] for run in tuning} == {0}
             assert [run["lr"] for run in tuning] == summary["lr_grid"]
@@ -110,7 +113,7 @@ def test_time_split_of_natural_gradient_adds_up(smoke_run):
     _, results = smoke_run
     for task in results["tasks"]:
         for run in task["runs"]:
-            if run["optimizer"] == "ngopt":
+            if run["optimizer"] == "fisher-descent":
                 split = run["time_split_seconds"]
                 parts = sum(value for key, value in split.items() if key != "train_seconds")
                 assert parts == pytest.approx(split["train_seconds"], rel=1e-9)
@@ -130,6 +133,33 @@ def test_files_written(smoke_run):
         assert f"## {task}" in report and f"(loss_{task}.png)" in report
     assert report.index("## Verdict") < report.index("## Settings") < report.index("## Overview")
     assert "goal" not in report.lower()  # measurements and comparisons only
+
+
+def test_overview_sets_fisher_descent_against_the_best_of_every_baseline(smoke_run):
+    from benchmarks.report import overview_headers, overview_rows
+
+    _, results = smoke_run
+    baselines = [name for name in OPTIMIZER_NAMES if name in BASELINES]
+    headers = overview_headers(results)
+    assert headers[3:3 + len(baselines)] == baselines
+    for entry, row in zip(results["tasks"], overview_rows(results)):
+        summaries = entry["summary"]
+        # a few steps reach no target: the best baseline is the one with the lowest final training loss
+        finals = {name: summaries[name]["final_train_loss"] for name in baselines}
+        best = entry["comparison"]["best_baseline"]
+        assert row[headers.index("best baseline")] == best
+        assert finals[best] == min(value for value in finals.values() if value is not None)
+
+
+def test_best_baseline_is_the_first_to_the_target_else_the_lowest_final_loss():
+    from benchmarks.comparison import best_baseline
+
+    summaries = {HEADLINE: summary_of(0.1, tuned=False), "sgd": summary_of(2.0),
+                 "adam": summary_of(None, reached=0, final=0.02), "adamw-cosine": summary_of(1.0)}
+    assert best_baseline(summaries) == "adamw-cosine"  # fisher-descent itself is no baseline
+    summaries.update(sgd=summary_of(None, 0, final=None), **{"adamw-cosine": summary_of(None, 0, final=0.5)})
+    assert best_baseline(summaries) == "adam"  # none reached it; a diverged run (final None) ranks last
+    assert best_baseline({HEADLINE: summary_of(0.1)}) is None
 
 
 def test_curves_csv_matches_results_json(smoke_run):
@@ -191,13 +221,13 @@ def test_data_order_is_a_fixed_permutation_per_epoch():
 def test_diagnostics_option_logs_every_natural_gradient_run(tmp_path, capsys):
     if not diagnostics_available():
         pytest.skip("ngopt.log_diagnostics is not available")
-    argv = ["--tasks", "digits_mlp", "--optimizers", "ngopt,sgd", "--steps", "6", "--grid", "1",
+    argv = ["--tasks", "digits_mlp", "--optimizers", "fisher-descent,sgd", "--steps", "6", "--grid", "1",
             "--seeds", "1", "--diagnostics", "2", "--out", str(tmp_path), "--no-progress"]
     assert main(argv) == 0
     closing = capsys.readouterr().out.strip().splitlines()[-1]
     assert closing.startswith(f"results written to {tmp_path}/") and "diagnostics/" in closing
     logs = list((tmp_path / "diagnostics").iterdir())
-    assert [path.name for path in logs] == ["digits_mlp_ngopt_lrdefault_seed0.jsonl"]  # none for sgd
+    assert [path.name for path in logs] == ["digits_mlp_fisher-descent_lrdefault_seed0.jsonl"]  # none for sgd
     records = [json.loads(line) for line in logs[0].read_text().splitlines()]
     # API.md: a record every `every` steps, each a diagnostics() snapshot
     assert [record["step"] for record in records] == [2, 4, 6]
@@ -209,7 +239,7 @@ def test_scaling_study_writes_its_table_and_plot(tmp_path, monkeypatch):
 
     monkeypatch.setattr(scaling, "WIDTHS", [16, 32])  # tiny sizes: the study's code, not its cost
     monkeypatch.setattr(scaling, "BATCHES", [16, 32])
-    names = ",".join(name for name in OPTIMIZER_NAMES if name != "adam")
+    names = ",".join(name for name in OPTIMIZER_NAMES if name in (HEADLINE, "sgd"))
     argv = ["--scaling", "--optimizers", names, "--steps", "4", "--out", str(tmp_path), "--no-progress"]
     assert main(argv) == 0
     payload = json.loads((tmp_path / "scaling.json").read_text())
@@ -222,7 +252,8 @@ def test_scaling_study_writes_its_table_and_plot(tmp_path, monkeypatch):
         assert row["flop_estimate"] == pytest.approx(1 + 4 * row["width"] ** 3 / (6 * row["batch"] * row["width"] ** 2))
         assert row["sgd_step_seconds_median"] > 0
         if NGOPT_AVAILABLE:
-            assert row["ratio"] == pytest.approx(row["ngopt_step_seconds_median"] / row["sgd_step_seconds_median"])
+            assert row["ratio"] == pytest.approx(row["fisher_descent_step_seconds_median"]
+                                                 / row["sgd_step_seconds_median"])
     assert (tmp_path / "scaling.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert (tmp_path / "scaling.csv").read_text().startswith("sweep,width,batch,flop_estimate")
     markdown = (tmp_path / "scaling.md").read_text()
@@ -244,7 +275,7 @@ def test_unknown_names_fail_with_the_valid_names(option, bad):
 def test_resolvers_raise_value_error_naming_the_option():
     with pytest.raises(ValueError, match="tasks.*valid tasks: digits_autoencoder"):
         resolve_tasks(["nope"])
-    with pytest.raises(ValueError, match="optimizers.*valid optimizers: ngopt, sgd, adam"):
+    with pytest.raises(ValueError, match="optimizers.*valid optimizers: fisher-descent, sgd, adam"):
         resolve_optimizers(["nope"])
     with pytest.raises(ValueError, match="seeds"):
         parse_seeds("0")
@@ -264,17 +295,37 @@ def test_seed_option_takes_a_count_or_a_list():
         parse_seeds("1,1")
 
 
-def test_lr_grids_are_log_spaced_with_equal_size_and_width():
+def test_lr_grids_are_log_spaced_half_a_decade_apart_around_their_centre():
+    # decades from the centre to the lowest and the highest point, by hand: odd counts symmetric,
+    # even ones with the extra point above the centre
+    ends = {1: (0.0, 0.0), 2: (0.0, 0.5), 3: (-0.5, 0.5), 4: (-0.5, 1.0), 5: (-1.0, 1.0)}
     for spec in OPTIMIZERS.values():
         if not spec.tuned:
             assert spec.lr_grid(5) == [None]  # built without an lr: the optimizer's own default
             continue
         if spec.natural_gradient_options is not None and not NGOPT_AVAILABLE:
             continue
-        grid, centre = spec.lr_grid(5), spec.grid_centre()
-        expected = np.logspace(np.log10(centre) - GRID_DECADES / 2,
-                               np.log10(centre) + GRID_DECADES / 2, 5)  # numpy.logspace
-        np.testing.assert_allclose(grid, expected, rtol=1e-12)
+        centre = spec.grid_centre()
+        for size, (low, high) in ends.items():
+            expected = np.logspace(np.log10(centre) + low, np.log10(centre) + high, size)  # numpy.logspace
+            np.testing.assert_allclose(spec.lr_grid(size), expected, rtol=1e-12)
+            assert min(abs(lr / centre - 1) for lr in spec.lr_grid(size)) < 1e-12  # the centre is a point
+    with pytest.raises(ValueError, match="lr grid size must be at least 1"):
+        OPTIMIZERS["sgd"].lr_grid(0)
+
+
+@pytest.mark.parametrize("quick", [False, True])
+def test_default_grids_have_points_half_a_decade_apart_quick_or_full(quick):
+    from benchmarks.cli import build_parser, make_config, settings_of
+
+    config = make_config(build_parser().parse_args(["--quick"] if quick else []))
+    settings = settings_of(config, [])
+    points, span = (4, 1.5) if quick else (5, 2.0)
+    assert (settings["grid_size"], settings["grid_decades"], len(config.seeds)) == (points, span, 2 if quick else 3)
+    for spec in config.specs:
+        grid = spec.lr_grid(config.grid_size)
+        if spec.tuned:
+            assert np.diff(np.log10(grid)) == pytest.approx([0.5] * (points - 1), rel=1e-12)
 
 
 def test_step_time_flop_estimate_counts_the_flops():
@@ -286,7 +337,7 @@ def test_step_time_flop_estimate_counts_the_flops():
 
 def test_ratios_bounded_by_the_budget_when_one_side_misses():
     assert bounded_ratio(2.0, 10.0, 8.0, 20.0) == {"ratio": 0.25, "relation": "measured"}
-    # the baseline never got there within 20 s, so ngopt/baseline < 2/20
+    # the baseline never got there within 20 s, so fisher-descent/baseline < 2/20
     assert bounded_ratio(2.0, 10.0, None, 20.0) == {"ratio": 0.1, "relation": "at_most"}
     assert bounded_ratio(None, 10.0, 4.0, 20.0) == {"ratio": 2.5, "relation": "at_least"}
     assert bounded_ratio(None, 10.0, None, 20.0)["relation"] == "neither"
@@ -347,10 +398,11 @@ def test_targets_lie_between_the_trivial_and_the_best_possible_loss():
 
 def test_ngopt_options_reach_every_natural_gradient_row_and_keep_its_curvature():
     from benchmarks.cli import build_parser, make_config
-    args = build_parser().parse_args(["--optimizers", "ngopt,ngopt-ekfac,sgd", "--ngopt-option", "damping=0.001"])
+    args = build_parser().parse_args(["--optimizers", "fisher-descent,fisher-descent-ekfac,sgd",
+                                      "--ngopt-option", "damping=0.001"])
     specs = {spec.name: spec for spec in make_config(args).specs}
-    assert specs["ngopt"].natural_gradient_options["damping"] == 0.001
-    assert specs["ngopt-ekfac"].natural_gradient_options == {"damping": 0.001, "structure": "ekfac"}
+    assert specs["fisher-descent"].natural_gradient_options["damping"] == 0.001
+    assert specs["fisher-descent-ekfac"].natural_gradient_options == {"damping": 0.001, "structure": "ekfac"}
     assert specs["sgd"].natural_gradient_options is None
 
 
@@ -369,7 +421,7 @@ def test_adaptive_evaluation_finds_the_target_step_within_its_stated_resolution(
     assert sparse.curve_steps[-1] == steps
 
 
-def test_ngopt_row_is_built_without_an_lr_unless_one_is_given(monkeypatch):
+def test_fisher_descent_row_is_built_without_an_lr_unless_one_is_given(monkeypatch):
     if not NGOPT_AVAILABLE:
         pytest.skip("ngopt.FisherDescent does not import")
     import ngopt
@@ -384,7 +436,7 @@ def test_ngopt_row_is_built_without_an_lr_unless_one_is_given(monkeypatch):
             super().__init__(*args, **kwargs)
 
     monkeypatch.setattr(ngopt, "FisherDescent", Recording)
-    optimizer = OPTIMIZERS["ngopt"].build(torch.nn.Linear(3, 2), torch.nn.MSELoss(), None)
+    optimizer = OPTIMIZERS["fisher-descent"].build(torch.nn.Linear(3, 2), torch.nn.MSELoss(), None)
     assert keywords[-1] == {}  # ngopt.FisherDescent(model, loss_fn) as a user writes it
     default = library(torch.nn.Linear(3, 2), torch.nn.MSELoss()).param_groups[0]["lr"]
     assert optimizer.param_groups[0]["lr"] == default
@@ -392,9 +444,9 @@ def test_ngopt_row_is_built_without_an_lr_unless_one_is_given(monkeypatch):
     args = build_parser().parse_args(["--ngopt-option", "lr=0.05", "--ngopt-option", "stats_interval=5"])
     spec = make_config(args).specs[0]
     spec.build(torch.nn.Linear(3, 2), torch.nn.MSELoss(), None)
-    assert spec.name == "ngopt" and keywords[-1] == {"lr": 0.05, "stats_interval": 5}
+    assert spec.name == "fisher-descent" and keywords[-1] == {"lr": 0.05, "stats_interval": 5}
     # the tuned row centres its grid at the library's default, whatever it is
-    tuned = OPTIMIZERS["ngopt-tuned"]
+    tuned = OPTIMIZERS["fisher-descent-tuned"]
     assert tuned.grid_centre() == default
     assert math.prod(tuned.lr_grid(3)) == pytest.approx(default ** 3)  # geometric centre
 
@@ -501,18 +553,23 @@ def test_verdict_names_the_first_to_the_target_and_the_time_ratio():
     from benchmarks.verdict import caution, task_verdict
 
     entry = {"task": "t", "target_loss": 0.01, "steps": 100, "load_average_max": 1.0,
-             "summary": {"ngopt": summary_of(0.58, tuned=False), "sgd": summary_of(None, reached=0),
+             "summary": {"fisher-descent": summary_of(0.58, tuned=False), "sgd": summary_of(None, reached=0),
                          "adam": summary_of(1.0)}}
     text = task_verdict(entry, threads=2)
-    assert "ngopt (untuned) reached the target first, in 0.58 s" in text
+    assert "fisher-descent (untuned) reached the target first, in 0.58 s" in text
     assert "0.58× adam's time (1 s), the next fastest" in text and "sgd did not reach it" in text
+    assert "best baseline" not in text  # adam, the best baseline, is the next fastest: said once
     assert "[load" not in text
     entry["load_average_max"] = 5.0  # above the 2 threads: other processes competed
     assert task_verdict(entry, threads=2).endswith(". [load 5.0]")
     assert "load average reached L (up to 5.0) with 2" in caution({"settings": {"threads": 2}, "tasks": [entry]})
-    entry["summary"]["ngopt"] = summary_of(1.5, tuned=False)
+    entry["summary"]["fisher-descent"] = summary_of(1.5, tuned=False)
     text = task_verdict(entry, threads=2)
-    assert "adam reached the target first" in text and "ngopt (untuned) took 1.50× adam's time" in text
+    assert "adam reached the target first" in text
+    assert "fisher-descent (untuned) took 1.50× the time of the best baseline, adam" in text
+    # a faster baseline beside adam: fisher-descent is set against the best of all of them
+    entry["summary"]["adamw-cosine"] = summary_of(0.5)
+    assert "took 3.00× the time of the best baseline, adamw-cosine" in task_verdict(entry, threads=2)
     entry["summary"] = {"sgd": summary_of(None, 0, final=0.2), "adam": summary_of(None, 0, final=0.1)}
     assert "no optimizer reached the target; the lowest final training loss was adam's, 0.1" in \
         task_verdict(entry, threads=2)
