@@ -73,20 +73,20 @@ def main(argv=None) -> int:
     device = torch.device("cuda")
     print(f"{torch.cuda.get_device_name(device)}, torch {torch.__version__}, {args.steps} timed steps after "
           f"{args.warmup}, options {args.option or 'defaults'}")
-    print("| task | AdamW ms | ngopt ms | ratio | ngopt slowest ms | AdamW MB | ngopt MB |")
+    print("| task | AdamW ms | fisher-descent ms | ratio | its slowest ms | AdamW MB | fisher-descent MB |")
     print("|---|---|---|---|---|---|---|")
     for name, build, make_loss, x, y, batch in problems(args.tasks):
         torch.manual_seed(0)
         base = build().to(device)
         x, y = x.to(device), y.to(device)
         results = {}
-        for which in ("adamw", "ngopt"):
+        for which in ("adamw", "fisher-descent"):
             model = copy.deepcopy(base)
             loss_fn = make_loss()
             opt = torch.optim.AdamW(model.parameters(), lr=1e-3) if which == "adamw" else \
                 ngopt.FisherDescent(model, loss_fn, **parse_options(args.option))
             results[which] = timed(model, opt, loss_fn, x, y, batch, args.steps, args.warmup, device)
-        (a_mean, _, a_mem), (n_mean, n_slow, n_mem) = results["adamw"], results["ngopt"]
+        (a_mean, _, a_mem), (n_mean, n_slow, n_mem) = results["adamw"], results["fisher-descent"]
         print(f"| {name} | {1e3 * a_mean:.2f} | {1e3 * n_mean:.2f} | {n_mean / a_mean:.2f} | {1e3 * n_slow:.1f} | "
               f"{a_mem / 2 ** 20:.0f} | {n_mem / 2 ** 20:.0f} |", flush=True)
     return 0

@@ -123,7 +123,7 @@ def worker(args) -> dict:
     result = {"mean_ms": 1e3 * statistics.mean(times), "median_ms": 1e3 * statistics.median(times),
               "slowest_ms": 1e3 * max(times), "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
               "first_loss": losses[0], "last_loss": losses[-1], "load": os.getloadavg()[0]}
-    if args.optimizer == "ngopt":
+    if args.optimizer == "fisher-descent":
         result["blocks"] = repr(opt)
     return result
 
@@ -150,7 +150,7 @@ def main(argv=None) -> int:
     parser.add_argument("--threads", type=int, default=torch.get_num_threads())
     parser.add_argument("--option", action="append", help="a FisherDescent option KEY=VALUE (repeatable)")
     parser.add_argument("--worker", action="store_true", help=argparse.SUPPRESS)
-    parser.add_argument("--optimizer", default="ngopt", help=argparse.SUPPRESS)
+    parser.add_argument("--optimizer", default="fisher-descent", help=argparse.SUPPRESS)
     parser.add_argument("--size", type=int, default=0, help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.worker:
@@ -165,15 +165,15 @@ def main(argv=None) -> int:
     print("|---|---|---|---|---|---|---|---|---|---|---|")
     for size, layout in cases:
         name = f"V={size}" if args.family == "vocab" else f"ResNet-18 {layout}"
-        runs = {opt: run_in_fresh_process(args.family, size, layout, opt, args) for opt in ("adamw", "ngopt")}
+        runs = {opt: run_in_fresh_process(args.family, size, layout, opt, args) for opt in ("adamw", "fisher-descent")}
         base = runs["adamw"]
         for opt, r in runs.items():
             print(f"| {name} | {opt} | {r['mean_ms']:.0f} | {r['median_ms']:.0f} | {r['slowest_ms']:.0f} | "
                   f"{r['slowest_ms'] / r['median_ms']:.2f} | {r['peak_mb']:.0f} | {r['mean_ms'] / base['mean_ms']:.2f} | "
                   f"{r['peak_mb'] / base['peak_mb']:.2f} | {r['first_loss']:.2f} -> {r['last_loss']:.2f} | "
                   f"{r['load']:.1f} |", flush=True)
-        if "blocks" in runs["ngopt"]:
-            print("\n".join("    " + line for line in runs["ngopt"]["blocks"].splitlines()[2:]
+        if "blocks" in runs["fisher-descent"]:
+            print("\n".join("    " + line for line in runs["fisher-descent"]["blocks"].splitlines()[2:]
                             if "factor" in line or "diag" in line))
     return 0
 
