@@ -105,6 +105,15 @@ class FisherDescent(torch.optim.Optimizer):
         stats_fraction: share of each recorded batch's examples the statistics are formed from
             (drawn uniformly, weighted to stay unbiased; 1.0 uses them all); None (default):
             0.25 for convolutions, whose input factors dominate a refresh, 1.0 for every other layer.
+        cost_budget: each layer's curvature work per step (preconditioning, amortized statistics and
+            inversions) is kept within this multiple of the larger of its own forward and backward
+            and the model's mean layer's, at the batch seen: factors too costly become
+            block-diagonal or the layer takes the exact diagonal (``ngopt/budget.py``); chosen again
+            when the batch changes by more than 2x. None: whole factors wherever they fit in memory.
+        max_factor_size: the largest factor kept whole (an input factor above it is split into
+            blocks of this size, an output factor keeps its diagonal); None: no limit.
+        pinned_structures: ``{block name: structure}`` fixing the structure of the named blocks
+            (names as in ``print(opt)``) whatever the budget says.
     """
 
     # GradScaler hands this optimizer the loss scale and its overflow check (torch.optim's convention),
