@@ -148,6 +148,7 @@ class FisherDescent(torch.optim.Optimizer):
         _refuse_sparse_embeddings(model)
 
         self._defaults_checked = False
+        self._new_parameters = False  # a group added after the first training forward awaits its blocks
         defaults = dict(lr=lr, momentum=momentum, weight_decay=weight_decay, damping=damping,
                         max_step_kl=max_step_kl, fallback=fallback, fallback_lr_scale=fallback_lr_scale)
         self.model = _unwrapped(model)
@@ -199,15 +200,30 @@ class FisherDescent(torch.optim.Optimizer):
 
     # ------------------------------------------------------------------ parameters and their blocks
     def add_param_group(self, param_group: dict) -> None:
-        """Add a group as ``torch.optim.Optimizer`` does; it trains as if given at construction."""
+        """Add a group as ``torch.optim.Optimizer`` does; it trains as if given at construction.
+
+        The constructor's groups come through here too.  Settings the group leaves out take the
+        optimizer's defaults; every setting is checked before anything is added (``ValueError`` or
+        ``TypeError`` naming the key), and a parameter already in another group is a ``ValueError``.
+        Parameters added after the first training forward get their curvature blocks from the next
+        recorded forward, which refreshes the statistics (as the first step does) so that the new
+        blocks precondition from their first step.
+        """
+        if not isinstance(param_group, dict) or "params" not in param_group:
+            raise TypeError("param_group must be a dict with a 'params' entry, like {'params': [...], 'lr': 0.1}; "
+                            f"got {param_group!r:.60}")
+        check_arguments(**{key: param_group.get(key, default) for key, default in self.defaults.items()})
         super().add_param_group(param_group)
         group = self.param_groups[-1]
-        check_arguments(**{key: group[key] for key in self.defaults})
         if group["fallback_lr_scale"] is None:
             group["fallback_lr_scale"] = DEFAULT_FALLBACK_LR_SCALE[group["fallback"]]
         self._group_of = {p: i for i, g in enumerate(self.param_groups) for p in g["params"]}
         if self._capture is not None:
-            self._capture.track(p for p in group["params"] if p.requires_grad)
+            trainable = [p for p in group["params"] if p.requires_grad]
+            self._capture.track(trainable)
+            if trainable and self._assignment.seen_forward:
+                self._new_parameters = True
+                self._plan_capture()
 
     def group_index(self, param: torch.Tensor) -> int:
         """The index of the param group holding ``param``."""
@@ -339,6 +355,7 @@ class FisherDescent(torch.optim.Optimizer):
         if reason is not None:
             self._skip(reason)
         self._steps += 1
+        self._new_parameters = False
         self._plan_capture()
         self._times["step_total"] += time.perf_counter() - started
         return loss
@@ -416,7 +433,8 @@ class FisherDescent(torch.optim.Optimizer):
         self._assignment.subsample_generator.set_state(subsample)
 
     def _statistics_due(self, step_index: int) -> bool:
-        return step_index % self.stats_interval == 0 or not all(b.has_statistics for b in self.blocks.values())
+        return step_index % self.stats_interval == 0 or self._new_parameters \
+            or not all(b.has_statistics for b in self.blocks.values())
 
     def _batch_due(self, step_index: int) -> bool:
         """Whether a rule will evaluate the loss on the batch of step ``step_index``."""
