@@ -49,7 +49,7 @@ DAMPING_DOMINATES_SPREAD = 10.0   # ... while the largest is within this factor 
 STEP_RULE_KEYS = ("alpha", "mu", "reduction_ratio", "damping", "predicted_change", "actual_change")
 LOSS_NOT_LOGGED = ("not logged (call handle.note_loss(loss) after loss.backward(), "
                    "or pass a closure to opt.step)")
-STEP_TIME_KEYS = ("statistics", "inversion", "precondition", "fallback")  # parts of time.step_total
+STEP_TIME_KEYS = ("statistics", "inversion", "precondition", "rules", "fallback")  # parts of time.step_total
 OUTSIDE_STEP_LABELS = {"capture": "capture hooks (in forward/backward)",
                        "extra_backward": "extra backward (sampled/exact Fisher)",
                        "statistics_in_backward": "statistics formed in the extra backward"}
