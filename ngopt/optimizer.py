@@ -37,6 +37,7 @@ from typing import Callable, Dict, List, Optional
 import torch
 from torch import nn
 
+from . import diagnostic_keys
 from . import fallback as fallback_rules
 from .assignment import CurvatureAssignment, ParameterCurvature
 from .blocks.base import LayerCurvature
@@ -50,9 +51,6 @@ from .rules.damping import reduction_ratio
 from .spectra import block_summary
 from .validation import check_arguments
 
-SKIP_REASONS = ("nonfinite_loss", "nonfinite_gradient", "nonfinite_statistics", "nonfinite_update",
-                "loss_scale_overflow")
-TIME_KEYS = ("statistics", "inversion", "precondition", "rules", "fallback", "step_total")
 DEFAULT_FALLBACK_LR_SCALE = {"sgd": 1.0, "adam": 1e-2}
 # Defaults that depend on the step rule: under "quadratic" lr multiplies the step the model chooses
 # and momentum caps mu; under "fixed" they are the step size and heavy-ball coefficient themselves.
@@ -183,8 +181,8 @@ class FisherDescent(torch.optim.Optimizer):
         self.communicator = None
         self._generator: Optional[torch.Generator] = None
         self._steps = 0
-        self._skipped = {reason: 0 for reason in SKIP_REASONS}
-        self._times = {key: 0.0 for key in TIME_KEYS}
+        self._skipped = {reason: 0 for reason in diagnostic_keys.SKIP_REASONS}
+        self._times = {key: 0.0 for key in (*diagnostic_keys.STEP_TIME, diagnostic_keys.STEP_TOTAL)}
         self._last_update: dict = {}
         self._warned = set()
         self._applied: dict = {}
@@ -635,8 +633,6 @@ class FisherDescent(torch.optim.Optimizer):
         update = dict(result.diagnostics)
         update.update(damping=group0["damping"], lr=group0["lr"], loss=None, reduction_ratio=None,
                       actual_change=None)
-        update.setdefault("alpha", None)
-        update.setdefault("mu", None)
         self._last_update = update if result.updates else {}
 
     def _apply_block_updates(self, updates) -> None:
@@ -777,12 +773,12 @@ class FisherDescent(torch.optim.Optimizer):
         return self._steps
 
     def diagnostics(self) -> dict:
-        """A plain-dict snapshot of the latest curvature diagnostics (keys documented in the README)."""
+        """A plain-dict snapshot of the latest curvature diagnostics (keys: ``ngopt/diagnostic_keys.py``)."""
         layers = {name: block_summary(block, self._block_group(block)["damping"],
                                       with_spectra=self.track_spectra)
                   for name, block in self.blocks.items()}
-        update = {k: v for k, v in self._last_update.items() if k != "trust_scale_by_group"}
-        update.setdefault("reduction_ratio", None)
+        # Every key in every snapshot; those the latest step did not measure are None.
+        update = {key: self._last_update.get(key) for key in diagnostic_keys.UPDATE}
         return {"step": self._steps, "skipped_steps": sum(self._skipped.values()),
                 "skip_reasons": dict(self._skipped), "layers": layers, "update": update,
                 "time": dict(self._times, **self._capture.seconds)}
