@@ -32,9 +32,12 @@ rank of the process group:
 
 * **step control** — the KL trust bound and momentum see only shared values
   (averaged gradients, shared curvature).  With ``damping_rule='lm'`` the
-  reduction ratio comes from each rank's own batch, so after every
-  Levenberg-Marquardt update the ranks take the first rank's damping (one
-  tiny broadcast).
+  reduction ratio is that of the global batch: the losses before and after
+  the step are averaged over the ranks (one tiny all-reduce) and the quadratic
+  model's prediction comes from shared values, so every rank computes the same
+  ratio up to rounding.  After every Levenberg-Marquardt update the ranks take
+  the first rank's damping (one tiny broadcast), so that a ratio rounded to
+  either side of a threshold cannot set their damping apart.
 * **replicas** — every rank computes its step from the same bits (DDP's averaged
   gradients, the averaged statistics, the owners' inverses), but kernels may round
   it differently in another process (thread count, memory alignment, another
@@ -240,9 +243,11 @@ class CurvatureCommunicator:
     def _agree_on_damping(self, opt) -> None:
         """After a Levenberg-Marquardt update, every rank takes rank 0's damping.
 
-        The reduction ratio is measured on each rank's own batch, so the ranks' rules
-        could move ``damping`` differently and their inverses drift apart; one tiny
-        broadcast on the adaptation schedule keeps them equal.
+        The reduction ratio is the global batch's (losses averaged over the ranks, the
+        prediction from shared values), but each rank computes it in its own process and
+        rounding may put it on different sides of a threshold; then the ranks' rules would
+        move ``damping`` differently and their inverses drift apart.  One tiny broadcast on
+        the adaptation schedule keeps them equal.
         """
         if opt.steps_taken % opt.damping_interval != 0:
             return
