@@ -5,6 +5,7 @@ Argument checks (7), warnings, ``repr``, ``param_groups`` with
 ``torch.save``/``torch.load(weights_only=True)`` and ``step(closure)`` (3).
 """
 import copy
+import importlib
 import io
 import math
 import warnings
@@ -218,6 +219,23 @@ def test_model_without_parameters_names_the_argument():
 def test_seed_out_of_range_is_refused_at_construction():
     with pytest.raises(ValueError, match="seed"):
         ngopt.FisherDescent(small_mlp(), nn.MSELoss(), seed=2 ** 70)
+
+
+@pytest.mark.parametrize("argument,table", [("step_rule", "ngopt.rules.STEP_RULES"),
+                                             ("damping_rule", "ngopt.rules.DAMPING_RULES"),
+                                             ("structure", "ngopt.blocks.factory.STRUCTURES"),
+                                             ("inverse_schedule", "ngopt.inversion_schedule.INVERSION_SCHEDULES")])
+def test_the_choices_checked_are_those_of_the_implementation_tables(argument, table, monkeypatch):
+    from ngopt.validation import check_arguments
+
+    module, _, name = table.rpartition(".")
+    implementations = getattr(importlib.import_module(module), name)
+    for value in implementations:
+        check_arguments(**{argument: value})
+    with pytest.raises(ValueError, match=argument):
+        check_arguments(**{argument: "newcomer"})
+    monkeypatch.setitem(implementations, "newcomer", object)  # registered once, in its table
+    check_arguments(**{argument: "newcomer"})
 
 
 def test_weight_sharing_choice_is_checked():
