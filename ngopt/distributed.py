@@ -94,6 +94,7 @@ from torch import nn
 from .blocks.base import LayerCurvature
 from .inversion_schedule import longest_first, square_cost
 from .optimizer import FisherDescent
+from .schedule import damping_due, resync_due
 
 _HEADER_LENGTH_BYTES = 8
 
@@ -249,7 +250,7 @@ class CurvatureCommunicator:
         move ``damping`` differently and their inverses drift apart.  One tiny broadcast on
         the adaptation schedule keeps them equal.
         """
-        if opt.steps_taken % opt.damping_interval != 0:
+        if not damping_due(opt.steps_taken - 1, opt.damping_interval):  # the step just taken
             return
         values = torch.tensor([g["damping"] for g in opt.param_groups], dtype=torch.float64, device=self.device)
         self._wait(lambda: dist.broadcast(values, src=_first_rank(self.group), group=self.group, async_op=True),
@@ -258,7 +259,7 @@ class CurvatureCommunicator:
             group["damping"] = value
 
     def _resync(self, opt) -> None:
-        if opt.steps_taken % self.resync_every == 0:
+        if resync_due(opt.steps_taken - 1, self.resync_every):  # the step just taken
             sync_parameters(opt.model, src=_first_rank(self.group), process_group=self.group,
                                  timeout=None if self.timeout is None else self.timeout.total_seconds())
 

@@ -39,6 +39,7 @@ from torch import nn
 
 from . import diagnostic_keys
 from . import fallback as fallback_rules
+from . import schedule
 from .assignment import CurvatureAssignment, ParameterCurvature
 from .blocks.base import LayerCurvature
 from .capture import CaptureHooks, FisherSource
@@ -431,7 +432,7 @@ class FisherDescent(torch.optim.Optimizer):
         self._assignment.subsample_generator.set_state(subsample)
 
     def _statistics_due(self, step_index: int) -> bool:
-        return step_index % self.stats_interval == 0 or self._new_parameters \
+        return schedule.statistics_due(step_index, self.stats_interval) or self._new_parameters \
             or not all(b.has_statistics for b in self.blocks.values())
 
     def _batch_due(self, step_index: int) -> bool:
