@@ -119,9 +119,6 @@ def peak_rss_bytes() -> int:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
 
 
-# Parts of the optimizer's own timing that happen inside step(); the others it reports
-# (capture hooks, extra backward passes) run inside the closure's forward and backward.
-STEP_PARTS = ("statistics", "inversion", "precondition", "rules", "fallback")
 
 
 def current_rss_bytes() -> Optional[int]:
@@ -137,19 +134,21 @@ def time_split(optimizer: torch.optim.Optimizer, train_seconds: float) -> tuple[
     """The optimizer's own time accounting, if it keeps one, completed to the measured total.
 
     From the cumulative seconds of its diagnostics: the parts inside step()
-    (statistics, inversion, precondition, fallback), "step_other" (the rest of
+    (``ngopt.diagnostic_keys.STEP_TIME``), "step_other" (the rest of
     step_total), the parts it times inside forward and backward (capture hooks,
     extra backward), and "rest": the timed training seconds minus all of
     those, i.e. the model's own forward and backward plus untimed hook work.
     """
     if not hasattr(optimizer, "diagnostics"):
         return None, None
+    from ngopt.diagnostic_keys import STEP_TIME, STEP_TOTAL  # imported late: the baselines run without ngopt
+
     snapshot = optimizer.diagnostics()
     reported = {key: float(value) for key, value in snapshot.get("time", {}).items()}
-    step_total = reported.pop("step_total", None)
+    step_total = reported.pop(STEP_TOTAL, None)
     split = dict(reported)
     if step_total is not None:
-        split["step_other"] = step_total - sum(reported.get(key, 0.0) for key in STEP_PARTS)
+        split["step_other"] = step_total - sum(reported.get(key, 0.0) for key in STEP_TIME)
     split["rest"] = train_seconds - sum(split.values())
     split["train_seconds"] = train_seconds
     return split, snapshot.get("skipped_steps")

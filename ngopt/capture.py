@@ -43,6 +43,7 @@ import torch
 from torch import nn
 
 from .blocks.base import LayerCurvature
+from .diagnostic_keys import PASS_TIME
 from .likelihoods import CRITERIA, LossCall, UnsupportedLoss, criterion_arguments, likelihood_from_arguments
 from .output_gradients import batched_output_grads, stream_output_grads
 from .uses import ParamView, UseRecorder, run_eagerly
@@ -188,7 +189,7 @@ class CaptureHooks:
         self.want_batch = False
         self.armed = True             # False inside no_capture()
         # Time spent inside the user's passes; statistics_in_backward: captures folded during the pass.
-        self.seconds = {"capture": 0.0, "extra_backward": 0.0, "statistics_in_backward": 0.0}
+        self.seconds = {key: 0.0 for key in PASS_TIME}
         self.records: List[ForwardRecord] = []
         self.forwards_without_loss = 0
         self._current: Optional[ForwardRecord] = None

@@ -39,53 +39,17 @@ A key missing from a later record is written as an empty cell.
 
 Logged keys
 -----------
-Top level and ``update``/``time``/``layers`` come from ``opt.diagnostics()``;
-``wall_time``, ``log_seconds`` and ``probe`` are added here. "cumulative"
-means summed since the optimizer was built.
+Every record has the keys of ``opt.diagnostics()`` listed in
+``ngopt/diagnostic_keys.py`` (the table at the end of this text is made from
+it; CSV logs start with these columns, in that order), the layers' keys
+below, and ``wall_time``, ``log_seconds`` and ``probe`` added here.
+"cumulative" means summed since the optimizer was built.
 
 =================================  =================================================================  ==========
 key                                meaning                                                            unit
 =================================  =================================================================  ==========
-``step``                           optimizer steps taken, skipped ones included                       steps
-``skipped_steps``                  steps whose update was skipped                                     steps
-``skip_reasons.<reason>``          skipped steps per reason (``nonfinite_gradient``,                  steps
-                                   ``nonfinite_statistics``, ``nonfinite_update``, ``nonfinite_loss``)
 ``wall_time``                      time the record was taken (``time.time()``)                        s (epoch)
 ``log_seconds``                    time spent by this logger before this record, cumulative           s
-``update.grad_norm``               norm of the gradient of the curvature-block parameters             loss/param
-``update.direction_norm``          norm of the preconditioned update nu C^-1 g of those parameters    param / lr
-                                   (before the step size lr and momentum)
-``update.cosine``                  cosine between gradient and preconditioned direction               1
-``update.trust_scale``             factor the KL bound applied to the step (1 = not limited)          1
-``update.kl_estimate``             KL divergence of the step under the quadratic model                nats
-``update.predicted_change``        quadratic model's predicted change of the loss; with               loss
-                                   ``step_rule='quadratic'`` M(delta) = g^T delta + delta^T C delta / 2
-                                   for the step taken
-``update.reduction_ratio``         rho = actual / predicted loss change (``damping_rule='lm'`` or     1
-                                   ``step_rule='quadratic'`` on the steps where it is measured),
-                                   else null
-``update.alpha``                   quadratic step rule: multiplier on the new preconditioned          1
-                                   proposal C^-1 g, chosen to minimise the model (null when not
-                                   computed)
-``update.mu``                      quadratic step rule: multiplier on the previous update, the        1
-                                   momentum the model chose (null when not computed)
-``update.actual_change``           L(theta + delta) - L(theta) on the same batch, when measured,      loss
-                                   else null
-``update.damping``                 Tikhonov damping lambda in use (adapted by the                     curvature
-                                   Levenberg-Marquardt rule when it is on)
-``update.lr``                      step size                                                          1
-``update.loss``                    loss of the step: the optimizer's (``step(closure)``), else the    loss
-                                   latest value given to ``handle.note_loss(loss)``, else null
-``time.statistics``                curvature statistics refreshes, cumulative                         s
-``time.inversion``                 inversions / eigendecompositions of the factors, cumulative        s
-``time.precondition``              applying the inverses to the gradients, cumulative                 s
-``time.fallback``                  fallback rule for parameters outside the blocks, cumulative        s
-``time.step_total``                whole ``step()`` calls, cumulative (includes the four above)       s
-``time.capture``                   capture hooks inside the user's forward/backward, cumulative       s
-``time.extra_backward``            extra backward passes for the sampled/exact Fisher (inside the     s
-                                   user's ``backward()``), cumulative
-``time.statistics_in_backward``    statistics formed inside those passes, one layer at a time as its  s
-                                   gradients arrive (not in ``time.statistics``), cumulative
 ``layers.<name>.block``            layer kind of the curvature block (``linear``, ``conv1d``,         --
                                    ``conv2d``, ``embedding``, ``layer_norm``, ``batch_norm``)
 ``layers.<name>.structure``        curvature kind (``kfac``, ``ekfac``, ``diag``; ``channel_pairs``   --
@@ -151,6 +115,8 @@ from numbers import Real
 from pathlib import Path
 from typing import Any, Iterable
 
+from . import diagnostic_keys
+
 __all__ = [
     "DiagnosticsLog",
     "log_diagnostics",
@@ -161,6 +127,21 @@ __all__ = [
     "unflatten_record",
     "summary_line",
 ]
+
+
+
+def _key_table() -> str:
+    """The snapshot's keys with meaning and unit, as a reStructuredText table for this module's docstring."""
+    rows = [(f"``{key}``", entry.meaning, entry.unit) for key, entry in diagnostic_keys.describe().items()]
+    widths = [max(len(row[i]) for row in rows + [("key", "meaning", "unit")]) for i in range(3)]
+    rule = "  ".join("=" * width for width in widths)
+    line = lambda row: "  ".join(cell.ljust(width) for cell, width in zip(row, widths)).rstrip()  # noqa: E731
+    return "\n".join(["", "Keys of every snapshot", "----------------------", "", rule,
+                      line(("key", "meaning", "unit")), rule, *map(line, rows), rule, ""])
+
+
+if __doc__ is not None:  # python -OO strips docstrings
+    __doc__ += _key_table()
 
 # Sub-dicts whose children are named by module names, which may contain dots.
 _NAMED_CHILDREN = ("layers",)
@@ -320,7 +301,10 @@ class CsvWriter:
 
     def write(self, record: dict) -> None:
         flat = flatten_record(record)
-        new_columns = [key for key in flat if key not in self.columns]
+        # A new log starts with every snapshot key in the schema's order, then the record's own.
+        known = self.columns or diagnostic_keys.columns()
+        new_columns = [key for key in known if key not in self.columns] + \
+            [key for key in flat if key not in known]
         if new_columns:
             self._extend_columns(new_columns)
         writer = csv.writer(self._file)
@@ -420,7 +404,7 @@ def summary_line(record: dict) -> str:
     total = times.get("step_total")
     if isinstance(total, Real) and total > 0:
         split = ", ".join(f"{key} {100.0 * times[key] / total:.0f}%"
-                          for key in ("statistics", "inversion", "precondition", "fallback")
+                          for key in diagnostic_keys.STEP_TIME
                           if isinstance(times.get(key), Real))
         parts.append(f"time {split}")
     return " | ".join(parts)

@@ -32,9 +32,12 @@ rank of the process group:
 
 * **step control** — the KL trust bound and momentum see only shared values
   (averaged gradients, shared curvature).  With ``damping_rule='lm'`` the
-  reduction ratio comes from each rank's own batch, so after every
-  Levenberg-Marquardt update the ranks take the first rank's damping (one
-  tiny broadcast).
+  reduction ratio is that of the global batch: the losses before and after
+  the step are averaged over the ranks (one tiny all-reduce) and the quadratic
+  model's prediction comes from shared values, so every rank computes the same
+  ratio up to rounding.  After every Levenberg-Marquardt update the ranks take
+  the first rank's damping (one tiny broadcast), so that a ratio rounded to
+  either side of a threshold cannot set their damping apart.
 * **replicas** — every rank computes its step from the same bits (DDP's averaged
   gradients, the averaged statistics, the owners' inverses), but kernels may round
   it differently in another process (thread count, memory alignment, another
@@ -91,6 +94,7 @@ from torch import nn
 from .blocks.base import LayerCurvature
 from .inversion_schedule import longest_first, square_cost
 from .optimizer import FisherDescent
+from .schedule import damping_due, resync_due
 
 _HEADER_LENGTH_BYTES = 8
 
@@ -240,11 +244,13 @@ class CurvatureCommunicator:
     def _agree_on_damping(self, opt) -> None:
         """After a Levenberg-Marquardt update, every rank takes rank 0's damping.
 
-        The reduction ratio is measured on each rank's own batch, so the ranks' rules
-        could move ``damping`` differently and their inverses drift apart; one tiny
-        broadcast on the adaptation schedule keeps them equal.
+        The reduction ratio is the global batch's (losses averaged over the ranks, the
+        prediction from shared values), but each rank computes it in its own process and
+        rounding may put it on different sides of a threshold; then the ranks' rules would
+        move ``damping`` differently and their inverses drift apart.  One tiny broadcast on
+        the adaptation schedule keeps them equal.
         """
-        if opt.steps_taken % opt.damping_interval != 0:
+        if not damping_due(opt.steps_taken - 1, opt.damping_interval):  # the step just taken
             return
         values = torch.tensor([g["damping"] for g in opt.param_groups], dtype=torch.float64, device=self.device)
         self._wait(lambda: dist.broadcast(values, src=_first_rank(self.group), group=self.group, async_op=True),
@@ -253,7 +259,7 @@ class CurvatureCommunicator:
             group["damping"] = value
 
     def _resync(self, opt) -> None:
-        if opt.steps_taken % self.resync_every == 0:
+        if resync_due(opt.steps_taken - 1, self.resync_every):  # the step just taken
             sync_parameters(opt.model, src=_first_rank(self.group), process_group=self.group,
                                  timeout=None if self.timeout is None else self.timeout.total_seconds())
 

@@ -14,6 +14,8 @@ from __future__ import annotations
 
 from typing import Dict, List, Sequence
 
+from .schedule import inversion_due
+
 
 def longest_first(costs: Sequence[float], bins: int) -> List[int]:
     """Greedy longest-processing-time rule: largest job first, to the least-loaded bin (lowest on ties).
@@ -50,7 +52,7 @@ class TogetherSchedule:
     name = "together"
 
     def due(self, block, step_index: int, interval: int, blocks: Sequence) -> bool:
-        return step_index % interval == 0
+        return inversion_due(step_index, interval)
 
 
 class StaggeredSchedule:
@@ -69,7 +71,7 @@ class StaggeredSchedule:
         return self._phases
 
     def due(self, block, step_index: int, interval: int, blocks: Sequence) -> bool:
-        return (step_index - self.phases(interval, blocks)[block]) % interval == 0
+        return inversion_due(step_index, interval, self.phases(interval, blocks)[block])
 
 
 INVERSION_SCHEDULES = {"together": TogetherSchedule, "staggered": StaggeredSchedule}

@@ -37,7 +37,9 @@ from typing import Callable, Dict, List, Optional
 import torch
 from torch import nn
 
+from . import diagnostic_keys
 from . import fallback as fallback_rules
+from . import schedule
 from .assignment import CurvatureAssignment, ParameterCurvature
 from .blocks.base import LayerCurvature
 from .capture import CaptureHooks, FisherSource
@@ -50,9 +52,6 @@ from .rules.damping import reduction_ratio
 from .spectra import block_summary
 from .validation import check_arguments
 
-SKIP_REASONS = ("nonfinite_loss", "nonfinite_gradient", "nonfinite_statistics", "nonfinite_update",
-                "loss_scale_overflow")
-TIME_KEYS = ("statistics", "inversion", "precondition", "rules", "fallback", "step_total")
 DEFAULT_FALLBACK_LR_SCALE = {"sgd": 1.0, "adam": 1e-2}
 # Defaults that depend on the step rule: under "quadratic" lr multiplies the step the model chooses
 # and momentum caps mu; under "fixed" they are the step size and heavy-ball coefficient themselves.
@@ -157,6 +156,7 @@ class FisherDescent(torch.optim.Optimizer):
         _refuse_sparse_embeddings(model)
 
         self._defaults_checked = False
+        self._new_parameters = False  # a group added after the first training forward awaits its blocks
         defaults = dict(lr=lr, momentum=momentum, weight_decay=weight_decay, damping=damping,
                         max_step_kl=max_step_kl, fallback=fallback, fallback_lr_scale=fallback_lr_scale)
         self.model = _unwrapped(model)
@@ -191,8 +191,8 @@ class FisherDescent(torch.optim.Optimizer):
         self.communicator = None
         self._generator: Optional[torch.Generator] = None
         self._steps = 0
-        self._skipped = {reason: 0 for reason in SKIP_REASONS}
-        self._times = {key: 0.0 for key in TIME_KEYS}
+        self._skipped = {reason: 0 for reason in diagnostic_keys.SKIP_REASONS}
+        self._times = {key: 0.0 for key in (*diagnostic_keys.STEP_TIME, diagnostic_keys.STEP_TOTAL)}
         self._last_update: dict = {}
         self._warned = set()
         self._applied: dict = {}
@@ -208,15 +208,30 @@ class FisherDescent(torch.optim.Optimizer):
 
     # ------------------------------------------------------------------ parameters and their blocks
     def add_param_group(self, param_group: dict) -> None:
-        """Add a group as ``torch.optim.Optimizer`` does; it trains as if given at construction."""
+        """Add a group as ``torch.optim.Optimizer`` does; it trains as if given at construction.
+
+        The constructor's groups come through here too.  Settings the group leaves out take the
+        optimizer's defaults; every setting is checked before anything is added (``ValueError`` or
+        ``TypeError`` naming the key), and a parameter already in another group is a ``ValueError``.
+        Parameters added after the first training forward get their curvature blocks from the next
+        recorded forward, which refreshes the statistics (as the first step does) so that the new
+        blocks precondition from their first step.
+        """
+        if not isinstance(param_group, dict) or "params" not in param_group:
+            raise TypeError("param_group must be a dict with a 'params' entry, like {'params': [...], 'lr': 0.1}; "
+                            f"got {param_group!r:.60}")
+        check_arguments(**{key: param_group.get(key, default) for key, default in self.defaults.items()})
         super().add_param_group(param_group)
         group = self.param_groups[-1]
-        check_arguments(**{key: group[key] for key in self.defaults})
         if group["fallback_lr_scale"] is None:
             group["fallback_lr_scale"] = DEFAULT_FALLBACK_LR_SCALE[group["fallback"]]
         self._group_of = {p: i for i, g in enumerate(self.param_groups) for p in g["params"]}
         if self._capture is not None:
-            self._capture.track(p for p in group["params"] if p.requires_grad)
+            trainable = [p for p in group["params"] if p.requires_grad]
+            self._capture.track(trainable)
+            if trainable and self._assignment.seen_forward:
+                self._new_parameters = True
+                self._plan_capture()
 
     def group_index(self, param: torch.Tensor) -> int:
         """The index of the param group holding ``param``."""
@@ -348,6 +363,7 @@ class FisherDescent(torch.optim.Optimizer):
         if reason is not None:
             self._skip(reason)
         self._steps += 1
+        self._new_parameters = False
         self._plan_capture()
         self._times["step_total"] += time.perf_counter() - started
         return loss
@@ -425,7 +441,8 @@ class FisherDescent(torch.optim.Optimizer):
         self._assignment.subsample_generator.set_state(subsample)
 
     def _statistics_due(self, step_index: int) -> bool:
-        return step_index % self.stats_interval == 0 or not all(b.has_statistics for b in self.blocks.values())
+        return schedule.statistics_due(step_index, self.stats_interval) or self._new_parameters \
+            or not all(b.has_statistics for b in self.blocks.values())
 
     def _batch_due(self, step_index: int) -> bool:
         """Whether a rule will evaluate the loss on the batch of step ``step_index``."""
@@ -626,8 +643,6 @@ class FisherDescent(torch.optim.Optimizer):
         update = dict(result.diagnostics)
         update.update(damping=group0["damping"], lr=group0["lr"], loss=None, reduction_ratio=None,
                       actual_change=None)
-        update.setdefault("alpha", None)
-        update.setdefault("mu", None)
         self._last_update = update if result.updates else {}
 
     def _apply_block_updates(self, updates) -> None:
@@ -768,12 +783,12 @@ class FisherDescent(torch.optim.Optimizer):
         return self._steps
 
     def diagnostics(self) -> dict:
-        """A plain-dict snapshot of the latest curvature diagnostics (keys documented in the README)."""
+        """A plain-dict snapshot of the latest curvature diagnostics (keys: ``ngopt/diagnostic_keys.py``)."""
         layers = {name: block_summary(block, self._block_group(block)["damping"],
                                       with_spectra=self.track_spectra)
                   for name, block in self.blocks.items()}
-        update = {k: v for k, v in self._last_update.items() if k != "trust_scale_by_group"}
-        update.setdefault("reduction_ratio", None)
+        # Every key in every snapshot; those the latest step did not measure are None.
+        update = {key: self._last_update.get(key) for key in diagnostic_keys.UPDATE}
         return {"step": self._steps, "skipped_steps": sum(self._skipped.values()),
                 "skip_reasons": dict(self._skipped), "layers": layers, "update": update,
                 "time": dict(self._times, **self._capture.seconds)}

@@ -36,6 +36,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .diagnostic_keys import STEP_TIME, STEP_TOTAL
 from .diagnostics_log import read_log
 from .fisher_probe import DAMPING_DOMINATES_SHARE, far_from_fisher
 
@@ -49,7 +50,7 @@ DAMPING_DOMINATES_SPREAD = 10.0   # ... while the largest is within this factor 
 STEP_RULE_KEYS = ("alpha", "mu", "reduction_ratio", "damping", "predicted_change", "actual_change")
 LOSS_NOT_LOGGED = ("not logged (call handle.note_loss(loss) after loss.backward(), "
                    "or pass a closure to opt.step)")
-STEP_TIME_KEYS = ("statistics", "inversion", "precondition", "fallback")  # parts of time.step_total
+# Display names of the parts timed outside step() (diagnostic_keys.PASS_TIME); others show their key.
 OUTSIDE_STEP_LABELS = {"capture": "capture hooks (in forward/backward)",
                        "extra_backward": "extra backward (sampled/exact Fisher)",
                        "statistics_in_backward": "statistics formed in the extra backward"}
@@ -370,12 +371,12 @@ def time_split(record: dict) -> dict:
     extra backward) and in this logger.
     """
     times = record.get("time") or {}
-    split = {key: _number(times[key]) for key in STEP_TIME_KEYS if math.isfinite(_number(times.get(key)))}
-    total = _number(times.get("step_total"))
+    split = {key: _number(times[key]) for key in STEP_TIME if math.isfinite(_number(times.get(key)))}
+    total = _number(times.get(STEP_TOTAL))
     if math.isfinite(total):
         split["other step work"] = max(total - sum(split.values()), 0.0)
     for key, value in times.items():
-        if key not in STEP_TIME_KEYS and key != "step_total" and math.isfinite(_number(value)):
+        if key not in STEP_TIME and key != STEP_TOTAL and math.isfinite(_number(value)):
             split[OUTSIDE_STEP_LABELS.get(key, key)] = _number(value)
     log_seconds = _number(record.get("log_seconds"))
     if math.isfinite(log_seconds):

@@ -6,10 +6,16 @@ import numbers
 
 from torch import nn
 
-CHOICES = {"fisher": ("sampled", "exact", "empirical"), "structure": ("kfac", "ekfac", "diag"),
+from .blocks.factory import STRUCTURES
+from .inversion_schedule import INVERSION_SCHEDULES
+from .rules import DAMPING_RULES, STEP_RULES
+
+# Choices with a table of implementations are read from it (registering a rule there is enough);
+# the rest are spelled here.
+CHOICES = {"fisher": ("sampled", "exact", "empirical"), "structure": STRUCTURES,
            "fallback": ("sgd", "adam"), "weight_sharing": ("expand", "reduce"),
-           "damping_rule": ("fixed", "lm"), "step_rule": ("fixed", "quadratic"),
-           "inverse_schedule": ("together", "staggered")}
+           "damping_rule": DAMPING_RULES, "step_rule": STEP_RULES,
+           "inverse_schedule": INVERSION_SCHEDULES}
 PLANNED: dict = {}  # {argument: {value: message}} for values announced but not built yet
 
 
@@ -36,11 +42,11 @@ def _integer(name, value, *, low):
 
 def _choice(name, value):
     if not isinstance(value, str):
-        raise TypeError(f"{name} must be a string, one of {CHOICES[name]}; got {type(value).__name__}")
+        raise TypeError(f"{name} must be a string, one of {tuple(CHOICES[name])}; got {type(value).__name__}")
     if value in PLANNED.get(name, {}):
         raise ValueError(f"{name}: {PLANNED[name][value]}")
     if value not in CHOICES[name]:
-        raise ValueError(f"{name} must be one of {CHOICES[name]}, got {value!r}")
+        raise ValueError(f"{name} must be one of {tuple(CHOICES[name])}, got {value!r}")
 
 
 CHECKS = {
@@ -122,7 +128,8 @@ def _check_pinned_structures(value):
         if not isinstance(name, str):
             raise TypeError(f"pinned_structures: keys must be block names (str), got {name!r}")
         if structure not in CHOICES["structure"]:
-            raise ValueError(f"pinned_structures[{name!r}] must be one of {CHOICES['structure']}, got {structure!r}")
+            raise ValueError(f"pinned_structures[{name!r}] must be one of {tuple(CHOICES['structure'])}, "
+                             f"got {structure!r}")
 
 
 def check_arguments(**arguments) -> None:

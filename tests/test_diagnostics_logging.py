@@ -1,4 +1,5 @@
 """``ngopt.log_diagnostics`` on a real optimizer: when records are written and what they hold."""
+import csv
 import logging
 import warnings
 
@@ -7,6 +8,7 @@ import torch
 from torch import nn
 
 import ngopt
+from ngopt import diagnostic_keys, diagnostics_log
 from ngopt.diagnostics_log import log_diagnostics, read_csv_log, read_jsonl_log
 
 
@@ -162,3 +164,45 @@ def test_skipped_steps_reach_the_log(tmp_path):
     (record,) = read_jsonl_log(path)
     assert record["step"] == 2 and record["skipped_steps"] == 1
     assert record["skip_reasons"]["nonfinite_gradient"] == 1
+
+
+def _keys(snapshot):
+    """The snapshot's keys in the schema's flattened form, layers left out."""
+    flat = [key for key in snapshot if key != "layers" and not isinstance(snapshot[key], dict)]
+    for parent in ("skip_reasons", "update", "time"):
+        flat += [f"{parent}.{child}" for child in snapshot[parent]]
+    return flat
+
+
+@pytest.mark.parametrize("options", [{}, {"step_rule": "quadratic"}, {"damping_rule": "fixed", "momentum": 0.0}])
+def test_diagnostics_keys_are_the_schema_after_a_real_step(options):
+    torch.manual_seed(0)
+    x, y = torch.randn(32, 6), torch.randint(0, 3, (32,))
+    model = nn.Sequential(nn.Linear(6, 8), nn.Tanh(), nn.Linear(8, 3))
+    opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss(), **options)
+    for _ in range(3):
+        train(x, y, model, nn.CrossEntropyLoss(), opt, 1)
+        snapshot = opt.diagnostics()
+        assert list(snapshot) == list(diagnostic_keys.SNAPSHOT)
+        assert sorted(_keys(snapshot)) == sorted(diagnostic_keys.columns())
+    assert set(snapshot["time"]) == set(diagnostic_keys.STEP_TIME) | {diagnostic_keys.STEP_TOTAL} | \
+        set(diagnostic_keys.PASS_TIME)
+
+
+def test_csv_log_columns_come_from_the_schema(tmp_path):
+    x, y, model, loss_fn, opt = small_run_setup()
+    path = tmp_path / "run.csv"
+    with log_diagnostics(opt, path, every=2):
+        train(x, y, model, loss_fn, opt, 4)
+    with open(path, newline="") as f:
+        header = next(csv.reader(f))
+    schema = diagnostic_keys.columns()
+    assert header[:len(schema)] == schema
+    rest = header[len(schema):]
+    assert all(key.startswith("layers.") for key in rest if key not in ("wall_time", "log_seconds"))
+
+
+def test_the_log_documents_every_schema_key():
+    documented = diagnostics_log.__doc__
+    for key, entry in diagnostic_keys.describe().items():
+        assert f"``{key}``" in documented and entry.meaning in documented

@@ -305,3 +305,54 @@ def test_one_rank_group_changes_nothing(one_rank_group, tmp_path):
     assert "natural_gradient" in torch.load(tmp_path / "state.pt", weights_only=True)["optimizer"]
     communicator.close()
     assert opt.communicator is None
+
+
+class _SecondRankStandIn:
+    """The communicator of rank 0 in a two-rank run whose other rank measured ``other`` (before, after).
+
+    Statistics and inverses stay local (both ranks would hold the same); scalars are averaged with
+    the other rank's, as ``CurvatureCommunicator.average_scalars`` does.
+    """
+
+    def __init__(self, other):
+        self.other, self.averaged = other, []
+
+    def average_statistics(self, opt, batches, projected=False):
+        return batches
+
+    def invert(self, opt, jobs):
+        return {block: block.prepare_inverse(stats, damping, opt.track_spectra) for block, stats, damping in jobs}
+
+    def average_scalars(self, *values):
+        self.averaged.append(values)
+        return tuple((mine + theirs) / 2 for mine, theirs in zip(values, self.other))
+
+
+def test_the_reduction_ratio_is_the_global_batchs():
+    # What the module docstring says: the losses before and after a step are averaged over the
+    # ranks, and the ratio is their change over the (shared) model's prediction.
+    model = mlp()
+    opt = quiet_optimizer(model, nn.MSELoss(), damping_rule="lm", damping_interval=1, stats_interval=1)
+    other = (2.0, 1.5)  # the other rank's loss before and after the step
+    opt.communicator = _SecondRankStandIn(other)
+    generator = torch.Generator().manual_seed(0)
+    x, y = torch.randn(32, 6, generator=generator, dtype=torch.float64), \
+        torch.randn(32, 4, generator=generator, dtype=torch.float64)
+    opt.zero_grad()
+    before = nn.MSELoss()(model(x), y)
+    before.backward()
+    opt.step()
+    with torch.no_grad():
+        after = nn.MSELoss()(model(x), y)
+    update = opt.diagnostics()["update"]
+    assert len(opt.communicator.averaged) == 1
+    # The rank's own losses, measured here and by the optimizer on the recorded batch: the same
+    # float64 forward, so only summation order could differ.
+    mine_before, mine_after = opt.communicator.averaged[0]
+    assert mine_before == pytest.approx(float(before.detach()), rel=1e-12)
+    assert mine_after == pytest.approx(float(after), rel=1e-12)
+    global_change = (mine_after + other[1]) / 2 - (mine_before + other[0]) / 2
+    assert update["actual_change"] == pytest.approx(global_change, rel=1e-12)
+    assert update["reduction_ratio"] == pytest.approx(global_change / update["predicted_change"], rel=1e-12)
+    assert update["reduction_ratio"] != pytest.approx((mine_after - mine_before) / update["predicted_change"],
+                                                      rel=1e-3)  # not the rank's own ratio

@@ -5,6 +5,7 @@ Argument checks (7), warnings, ``repr``, ``param_groups`` with
 ``torch.save``/``torch.load(weights_only=True)`` and ``step(closure)`` (3).
 """
 import copy
+import importlib
 import io
 import math
 import warnings
@@ -139,6 +140,72 @@ def test_weight_and_bias_in_different_groups_is_refused():
         opt.assign_curvature(torch.randn(2, model[0].in_features, dtype=DTYPE))
 
 
+def _two_groups(model):
+    """The first layer in one group; the PReLU (a fallback layer) and the head in another, with own settings."""
+    return ([{"params": list(model[0].parameters())},
+             {"params": list(model[2].parameters()) + list(model[3].parameters()), "lr": 0.05,
+              "fallback": "adam", "damping": 3e-2}])
+
+
+def test_a_group_added_before_the_first_step_trains_as_if_given_to_the_constructor():
+    batches = class_batches(6)
+    given, added = small_mlp(), small_mlp()
+    settings = dict(fisher="sampled", seed=3, stats_interval=2, inverse_interval=2, damping_interval=2)
+    given_opt = ngopt.FisherDescent(given, nn.CrossEntropyLoss(), param_groups=_two_groups(given), **settings)
+    first, second = _two_groups(added)
+    added_opt = ngopt.FisherDescent(added, nn.CrossEntropyLoss(), param_groups=[first], **settings)
+    added_opt.add_param_group(second)
+    assert added_opt.param_groups[1]["fallback_lr_scale"] == given_opt.param_groups[1]["fallback_lr_scale"] == 1e-2
+    for batch in batches:
+        train_step(given, given_opt, nn.CrossEntropyLoss(), batch)
+        train_step(added, added_opt, nn.CrossEntropyLoss(), batch)
+    assert added_opt.curvature_assignment() == given_opt.curvature_assignment()
+    # One process, the same operations in the same order: only float64 rounding could separate them.
+    for a, b, start in zip(added.parameters(), given.parameters(), small_mlp().parameters()):
+        assert (b - start).abs().max() > 1e-4  # every parameter moved
+        torch.testing.assert_close(a, b, rtol=1e-12, atol=1e-14)
+
+
+def test_a_group_added_after_training_started_gets_its_blocks_at_the_next_step():
+    model = small_mlp()
+    opt = quiet_optimizer(model, nn.MSELoss(), param_groups=[{"params": list(model[0].parameters())}],
+                          stats_interval=10)
+    batches = regression_batches(3)
+    train_step(model, opt, nn.MSELoss(), batches[0])
+    assert list(opt.blocks) == ["0"]
+    opt.add_param_group({"params": list(model[2].parameters()) + list(model[3].parameters()), "lr": 0.1})
+    before = model[3].weight.detach().clone()
+    train_step(model, opt, nn.MSELoss(), batches[1])  # step 1: off the statistics schedule
+    assert opt.curvature_assignment()["3.weight"].block == "3"
+    assert opt.blocks["3"].has_statistics and opt.blocks["3"].has_inverse
+    assert (model[3].weight - before).abs().max() > 0
+    assert not opt.statistics_due()  # the extra refresh was a one-off: step 2 keeps the schedule
+
+
+@pytest.mark.parametrize("key,value,error", [("lr", -1.0, ValueError), ("damping", 0.0, ValueError),
+                                             ("fallback", "lion", ValueError), ("momentum", "high", TypeError),
+                                             ("fallback_lr_scale", -2.0, ValueError)])
+def test_add_param_group_checks_the_settings_before_adding(key, value, error):
+    model = small_mlp()
+    opt = ngopt.FisherDescent(model, nn.MSELoss(), param_groups=[{"params": list(model[0].parameters())}])
+    rest = list(model[2].parameters()) + list(model[3].parameters())
+    with pytest.raises(error, match=key):
+        opt.add_param_group({"params": rest, key: value})
+    assert len(opt.param_groups) == 1  # nothing half-added: the same parameters can still be added
+    opt.add_param_group({"params": rest})
+    train_step(model, opt, nn.MSELoss(), regression_batches(1)[0])
+
+
+def test_add_param_group_refuses_parameters_already_in_the_optimizer():
+    model = small_mlp()
+    opt = ngopt.FisherDescent(model, nn.MSELoss())
+    with pytest.raises(ValueError, match="more than one parameter group"):
+        opt.add_param_group({"params": [model[3].weight]})
+    with pytest.raises(TypeError, match="'params'"):
+        opt.add_param_group({"lr": 0.1})
+    assert len(opt.param_groups) == 1
+
+
 def test_param_groups_of_the_wrong_type_name_the_argument():
     with pytest.raises(TypeError, match="param_groups"):
         ngopt.FisherDescent(small_mlp(), nn.MSELoss(), param_groups=5)
@@ -152,6 +219,23 @@ def test_model_without_parameters_names_the_argument():
 def test_seed_out_of_range_is_refused_at_construction():
     with pytest.raises(ValueError, match="seed"):
         ngopt.FisherDescent(small_mlp(), nn.MSELoss(), seed=2 ** 70)
+
+
+@pytest.mark.parametrize("argument,table", [("step_rule", "ngopt.rules.STEP_RULES"),
+                                             ("damping_rule", "ngopt.rules.DAMPING_RULES"),
+                                             ("structure", "ngopt.blocks.factory.STRUCTURES"),
+                                             ("inverse_schedule", "ngopt.inversion_schedule.INVERSION_SCHEDULES")])
+def test_the_choices_checked_are_those_of_the_implementation_tables(argument, table, monkeypatch):
+    from ngopt.validation import check_arguments
+
+    module, _, name = table.rpartition(".")
+    implementations = getattr(importlib.import_module(module), name)
+    for value in implementations:
+        check_arguments(**{argument: value})
+    with pytest.raises(ValueError, match=argument):
+        check_arguments(**{argument: "newcomer"})
+    monkeypatch.setitem(implementations, "newcomer", object)  # registered once, in its table
+    check_arguments(**{argument: "newcomer"})
 
 
 def test_weight_sharing_choice_is_checked():

@@ -19,7 +19,7 @@ import ngopt  # noqa: E402
 from ngopt.diagnostics_log import log_diagnostics  # noqa: E402
 from ngopt.fisher_probe import probe_fisher_quality  # noqa: E402
 from ngopt.diagnostics_log import read_log  # noqa: E402
-from ngopt.report import main, one_record_per_step, summarize, write_report  # noqa: E402
+from ngopt.report import main, one_record_per_step, summarize, time_split, write_report  # noqa: E402
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -347,3 +347,22 @@ def test_step_rule_figure_keeps_the_sign_when_a_step_went_up(tmp_path, monkeypat
     assert changes.get_yscale() == "symlog"
     lines = {line.get_label(): line for line in changes.get_lines()}
     assert lines[r"measured $(L(\theta + \delta) - L(\theta))$"].get_ydata()[3] == pytest.approx(0.02)
+
+
+def test_time_split_counts_each_second_of_the_step_once(tmp_path):
+    # A real run whose rules take time (Levenberg-Marquardt damping measures the loss again).
+    path = digits_run(tmp_path, steps=12, probe=False, damping_rule="lm", damping_interval=2)
+    record = read_log(path)[-1]
+    times = record["time"]
+    assert times["rules"] > 0
+    split = time_split(record)
+    inside = ("statistics", "inversion", "precondition", "rules", "fallback", "other step work")
+    outside = [label for label in split if label not in inside]
+    # The parts of step() add up to the whole step time; sums of a few doubles differ from it
+    # only by rounding (relative 1e-12 is ~4500 ulps, far above a handful of additions).
+    assert sum(split[key] for key in inside) == pytest.approx(times["step_total"], rel=1e-12, abs=1e-15)
+    # And every measured second appears once: the step, the user's passes, the logger.
+    measured = times["step_total"] + times["capture"] + times["extra_backward"] + \
+        times["statistics_in_backward"] + record["log_seconds"]
+    assert sum(split[key] for key in outside) + sum(split[key] for key in inside) == \
+        pytest.approx(measured, rel=1e-12, abs=1e-15)

@@ -4,6 +4,8 @@ from __future__ import annotations
 import math
 from typing import Optional, Tuple
 
+from ..schedule import damping_due
+
 
 def reduction_ratio(loss_before: float, loss_after: float, predicted_change: Optional[float]) -> Optional[float]:
     """``rho = (L(theta + delta) - L(theta)) / M(delta)``; ``None`` when the model predicts no decrease."""
@@ -47,7 +49,7 @@ class LevenbergMarquardt(FixedDamping):
         self.damping_range = tuple(float(x) for x in damping_range)
 
     def wants_ratio(self, step_index: int) -> bool:
-        return (step_index + 1) % self.interval == 0
+        return damping_due(step_index, self.interval)
 
     def adapt(self, damping: float, rho: Optional[float]) -> float:
         if rho is None:

@@ -27,6 +27,7 @@ from typing import Dict, List, Optional
 
 import torch
 
+from ..schedule import solve_due
 from .base import StepInputs, StepResult, blocks_in, group_of, norms
 from .trust import kl_trust_scale
 
@@ -76,7 +77,7 @@ class QuadraticStep:
     def wants_batch(self, step_index: int) -> bool:
         if self.unavailable:
             return False
-        return step_index % self.interval == 0 or self.alpha is None
+        return solve_due(step_index, self.interval) or self.alpha is None
 
     def _give_up(self, error: Exception) -> None:
         self.unavailable = True

@@ -1,0 +1,47 @@
+"""Which step does what: every "is this work due at step t?" of the optimizer, in one place.
+
+Steps are numbered from 0: step ``t`` is the ``step()`` call made after ``t`` earlier ones
+(``opt.steps_taken`` while it runs).  Work that prepares a step is due at the start of each
+interval, ``t % n == 0``, so the first step already has it: a statistics refresh
+(``stats_interval``), an inversion (``inverse_interval``; a staggered block at its own phase
+``o``: ``(t - o) % n == 0``), a solve of the quadratic step rule (``rule_interval``).  Work that
+judges a step is due at the end of each interval, ``(t + 1) % n == 0``: the Levenberg-Marquardt
+damping update (``damping_interval``, from the ratio of the interval's last step) and the
+replicas' parameter resync (``resync_every``, after the step).
+"""
+from __future__ import annotations
+
+
+def starts_interval(step_index: int, interval: int, phase: int = 0) -> bool:
+    """Whether step ``step_index`` is the first of an interval of ``interval`` steps shifted by ``phase``."""
+    return (step_index - phase) % interval == 0
+
+
+def ends_interval(step_index: int, interval: int) -> bool:
+    """Whether step ``step_index`` is the last of an interval of ``interval`` steps."""
+    return (step_index + 1) % interval == 0
+
+
+def statistics_due(step_index: int, stats_interval: int) -> bool:
+    """The forward and backward of this step are recorded and their statistics refreshed."""
+    return starts_interval(step_index, stats_interval)
+
+
+def inversion_due(step_index: int, inverse_interval: int, phase: int = 0) -> bool:
+    """A block (at ``phase`` in the interval when staggered) inverts its damped factors on this step."""
+    return starts_interval(step_index, inverse_interval, phase)
+
+
+def solve_due(step_index: int, rule_interval: int) -> bool:
+    """The quadratic step rule solves for its step size and momentum on this step."""
+    return starts_interval(step_index, rule_interval)
+
+
+def damping_due(step_index: int, damping_interval: int) -> bool:
+    """The Levenberg-Marquardt rule measures this step's reduction ratio and updates the damping."""
+    return ends_interval(step_index, damping_interval)
+
+
+def resync_due(step_index: int, resync_every: int) -> bool:
+    """After this step the replicas take the first rank's parameters."""
+    return ends_interval(step_index, resync_every)
