@@ -135,7 +135,7 @@ def parse_options(items: list[str]) -> dict:
     for item in items:
         key, separator, text = item.partition("=")
         if not separator or not key.strip().isidentifier():
-            raise ValueError(f"--ngopt-option takes KEY=VALUE, got {item!r}")
+            raise ValueError(f"an option takes KEY=VALUE, got {item!r}")
         try:
             options[key.strip()] = ast.literal_eval(text.strip())
         except (ValueError, SyntaxError):

@@ -22,6 +22,7 @@ import argparse
 import copy
 import json
 import statistics
+import os
 import sys
 import time
 import warnings
@@ -31,7 +32,9 @@ from typing import Callable, List
 import torch
 from torch import nn
 
-import ngopt
+sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))  # the checkout, not an install
+import ngopt  # noqa: E402
+from benchmarks.cli import parse_options  # noqa: E402
 
 
 # ----------------------------------------------------------------------------------------- data
@@ -138,14 +141,14 @@ def fallback_share(opt: ngopt.FisherDescent, model: nn.Module) -> tuple:
     return count / sum(numel.values()), fallback
 
 
-def train_side_by_side(client: Client, steps: int, seed: int) -> dict:
+def train_side_by_side(client: Client, steps: int, seed: int, options: dict) -> dict:
     torch.manual_seed(seed)
     base = client.build()
     base.train()
     models = {"fisher-descent": base, "adamw": copy.deepcopy(base)}
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        optimizers = {"fisher-descent": ngopt.FisherDescent(models["fisher-descent"]),
+        optimizers = {"fisher-descent": ngopt.FisherDescent(models["fisher-descent"], **options),
                       "adamw": torch.optim.AdamW(models["adamw"].parameters(), lr=1e-3)}
     generator = torch.Generator().manual_seed(seed + 1)
     batches = [client.batch(generator) for _ in range(steps)]
@@ -201,6 +204,7 @@ def main(argv=None) -> int:
     parser.add_argument("--only", nargs="*", default=None, help="substrings of the model names to run")
     parser.add_argument("--threads", type=int, default=None, help="torch threads (default: torch's)")
     parser.add_argument("--json", default=None, help="also write the rows to this file")
+    parser.add_argument("--option", action="append", help="a FisherDescent option KEY=VALUE (repeatable)")
     args = parser.parse_args(argv)
     if args.threads:
         torch.set_num_threads(args.threads)
@@ -213,7 +217,7 @@ def main(argv=None) -> int:
         chosen = [c for c in chosen if any(s in c.name for s in args.only)]
     rows = []
     for client in chosen:
-        row = train_side_by_side(client, args.steps, args.seed)
+        row = train_side_by_side(client, args.steps, args.seed, parse_options(args.option or []))
         rows.append(row)
         print(f"{row['model']}: fallback {100 * row['fallback_share']:.2f}%, losses {row['first_loss']:.3f} -> "
               f"fisher-descent {row['fisher_descent_loss']:.3f} / AdamW {row['adamw_loss']:.3f}, "
@@ -224,7 +228,8 @@ def main(argv=None) -> int:
         for message in row["warnings"]:
             print(f"    warning: {message}")
     print()
-    print(f"torch {torch.__version__}, {args.steps} steps, seed {args.seed}, {torch.get_num_threads()} threads")
+    print(f"torch {torch.__version__}, {args.steps} steps, seed {args.seed}, {torch.get_num_threads()} threads, "
+          f"options {args.option or 'defaults'}")
     print(table(rows))
     if args.json:
         with open(args.json, "w") as handle:

@@ -30,6 +30,9 @@ from torch import nn
 CHANNELS = (64, 64, 128, 128, 256)
 POOL_AFTER = (1, 3, 4)  # indices of the convolutions followed by 2x2 max-pooling
 
+sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))  # the checkout, not an install
+from benchmarks.cli import parse_options  # noqa: E402
+
 
 def make_cnn(classes: int = 10) -> nn.Module:
     layers, width = [], 3
@@ -95,14 +98,6 @@ def merged_rounds(results) -> dict:
     return merged
 
 
-def parse_options(pairs) -> dict:
-    options = {}
-    for pair in pairs:
-        key, _, value = pair.partition("=")
-        options[key] = json.loads(value)
-    return options
-
-
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--batch", type=int, default=128)
@@ -115,7 +110,7 @@ def main(argv=None):
     parser.add_argument("--worker", help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.worker:
-        print(json.dumps(worker(args.worker, args.batch, args.steps, args.threads, parse_options(args.option))))
+        print(json.dumps(worker(args.worker, args.batch, args.steps, args.threads, parse_options(args.option or []))))
         return
     print(f"CNN {'-'.join(map(str, CHANNELS))}, batch {args.batch}, {args.steps} timed steps x {args.rounds} rounds, "
           f"threads {args.threads}, load average {os.getloadavg()[0]:.2f}")

@@ -26,7 +26,8 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 import ngopt  # noqa: E402
 from benchmarks.tasks import TASKS  # noqa: E402
-from scripts.large_layers import ResNet18, parse_options  # noqa: E402
+from benchmarks.cli import parse_options  # noqa: E402
+from scripts.large_layers import ResNet18  # noqa: E402
 
 
 def problems(names):
@@ -84,7 +85,7 @@ def main(argv=None) -> int:
             model = copy.deepcopy(base)
             loss_fn = make_loss()
             opt = torch.optim.AdamW(model.parameters(), lr=1e-3) if which == "adamw" else \
-                ngopt.FisherDescent(model, loss_fn, **parse_options(args.option))
+                ngopt.FisherDescent(model, loss_fn, **parse_options(args.option or []))
             results[which] = timed(model, opt, loss_fn, x, y, batch, args.steps, args.warmup, device)
         (a_mean, _, a_mem), (n_mean, n_slow, n_mem) = results["adamw"], results["fisher-descent"]
         print(f"| {name} | {1e3 * a_mean:.2f} | {1e3 * n_mean:.2f} | {n_mean / a_mean:.2f} | {1e3 * n_slow:.1f} | "

@@ -33,6 +33,9 @@ import torch
 from torch import nn
 import torch.nn.functional as F
 
+sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))  # the checkout, not an install
+from benchmarks.cli import parse_options  # noqa: E402
+
 
 # ----------------------------------------------------------------------------------------- models
 def vocab_model(vocab: int, width: int) -> nn.Module:
@@ -75,17 +78,6 @@ class ResNet18(nn.Module):
 
 
 # ----------------------------------------------------------------------------------------- one run
-def parse_options(pairs):
-    options = {}
-    for pair in pairs or []:
-        key, value = pair.split("=", 1)
-        try:
-            options[key] = json.loads(value)
-        except json.JSONDecodeError:
-            options[key] = value
-    return options
-
-
 def worker(args) -> dict:
     torch.manual_seed(0)
     torch.set_num_threads(args.threads)
@@ -108,7 +100,7 @@ def worker(args) -> dict:
         opt = torch.optim.AdamW(model.parameters(), lr=1e-3)
     else:
         import ngopt
-        opt = ngopt.FisherDescent(model, **parse_options(args.option))
+        opt = ngopt.FisherDescent(model, **parse_options(args.option or []))
     times, losses = [], []
     for step in range(args.warmup + args.steps):
         started = time.perf_counter()
