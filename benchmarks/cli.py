@@ -25,7 +25,8 @@ from benchmarks.outputs import ProgressiveOutputs
 from benchmarks.pilot import propose_target
 from benchmarks.profiling import write_profile
 from benchmarks.task_file import load_task_file
-from benchmarks.tasks import ON_REQUEST_TASKS, TASKS, Task, resolve_tasks
+from benchmarks.task_sets import DEFAULT_TASKS, TASK_SETS, resolve_tasks
+from benchmarks.tasks import ON_REQUEST_TASKS, Task
 from benchmarks.training import load_average
 
 # Points per lr grid, half a decade apart: 5 span 2 decades; --quick drops the lowest point (a short
@@ -67,9 +68,10 @@ def build_parser() -> argparse.ArgumentParser:
                         help=f"short budget: each task's quick step count, {GRID_POINTS['quick']}-point lr grids "
                              f"and {SEEDS['quick']} seeds (default: full step counts, {GRID_POINTS['full']}-point "
                              f"grids, {SEEDS['full']} seeds)")
-    parser.add_argument("--tasks", help="comma-separated task names (default: "
-                        f"{', '.join(n for n in TASKS if n not in ON_REQUEST_TASKS)}; on request: "
-                        f"{', '.join(ON_REQUEST_TASKS)})")
+    parser.add_argument("--tasks", help="comma-separated task names and set names: built-in (the default: "
+                        f"{', '.join(DEFAULT_TASKS)}), held-out (problems the defaults are checked on, never "
+                        f"tuned on: {', '.join(TASK_SETS['held-out'])}); {', '.join(ON_REQUEST_TASKS)} "
+                        "by name only")
     parser.add_argument("--task-file", type=Path, metavar="FILE.py",
                         help="run the comparison on your own problem described in FILE.py (data, make_model, "
                              "criterion, batch_size, steps, optional target_loss; see examples/my_task.py) "

@@ -1,8 +1,10 @@
-"""Offline data for the built-in benchmark tasks.
+"""Offline data for the built-in and the held-out benchmark tasks.
 
-Nothing here touches the network: scikit-learn ships the digits, the
-``mnist1d`` package generates its data set from templates on the fly, and the
-ill-conditioned regression and the token corpus are synthetic. Every loader
+Nothing here touches the network: scikit-learn ships the digits and the
+breast-cancer data and generates the Friedman #1 regression and the
+many-class problem, the ``mnist1d`` package generates its data set from
+templates on the fly, and the ill-conditioned regression and the token corpus
+are synthetic. Every loader
 returns a :class:`Split` of float32 (or int64 label) tensors, int64 tokens for
 the corpus, and is cached, so a benchmark run builds each data set once.
 """
@@ -165,3 +167,95 @@ def next_tokens() -> Split:
     train, test = tokens[:CORPUS_TRAIN], tokens[CORPUS_TRAIN:]
     return Split(train[:, :-1].contiguous(), train[:, 1:].contiguous(),
                  test[:, :-1].contiguous(), test[:, 1:].contiguous())
+
+
+# Held-out data sets (benchmarks/held_out.py): each split is fixed by its own seed, and features and
+# regression targets are standardized with the training set's mean and standard deviation.
+HELD_OUT_SPLIT_SEED = 0
+HELD_OUT_TRAIN_FRACTION = 0.8
+
+
+def _standardize(train: np.ndarray, test: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Both sets shifted and scaled by the training set's per-column mean and standard deviation."""
+    mean, std = train.mean(axis=0), train.std(axis=0)
+    std = np.where(std > 0, std, 1.0)
+    return (train - mean) / std, (test - mean) / std
+
+
+def _fixed_split(n: int) -> tuple[np.ndarray, np.ndarray]:
+    order = np.random.RandomState(HELD_OUT_SPLIT_SEED).permutation(n)
+    n_train = int(HELD_OUT_TRAIN_FRACTION * n)
+    return order[:n_train], order[n_train:]
+
+
+@functools.lru_cache(maxsize=None)
+def breast_cancer() -> Split:
+    """scikit-learn's breast-cancer data: 30 standardized features, label 1 for benign as a float
+    column ``[n, 1]`` (the layout nn.BCEWithLogitsLoss takes with one logit); 455 train / 114 test."""
+    from sklearn.datasets import load_breast_cancer
+
+    data = load_breast_cancer()
+    train, test = _fixed_split(len(data.target))
+    train_x, test_x = _standardize(data.data[train], data.data[test])
+    labels = data.target.astype(np.float64)[:, None]
+    return _to_split(train_x, labels[train], test_x, labels[test], torch.float32)
+
+
+# Friedman #1 regression: the numbers that define it.
+FRIEDMAN_SAMPLES = 2560  # 2048 train / 512 test
+FRIEDMAN_FEATURES = 10  # the first 5 carry the signal, the others are noise
+FRIEDMAN_NOISE_STD = 1.0
+FRIEDMAN_SEED = 3
+
+
+@functools.lru_cache(maxsize=None)
+def friedman1() -> Split:
+    """scikit-learn's make_friedman1: y = 10 sin(pi x1 x2) + 20 (x3 - 0.5)^2 + 10 x4 + 5 x5 + noise,
+    x uniform on [0, 1]^10; inputs and target standardized, the target a column ``[n, 1]``."""
+    from sklearn.datasets import make_friedman1
+
+    inputs, targets = make_friedman1(n_samples=FRIEDMAN_SAMPLES, n_features=FRIEDMAN_FEATURES,
+                                     noise=FRIEDMAN_NOISE_STD, random_state=FRIEDMAN_SEED)
+    train, test = _fixed_split(FRIEDMAN_SAMPLES)
+    train_x, test_x = _standardize(inputs[train], inputs[test])
+    train_y, test_y = _standardize(targets[train, None], targets[test, None])
+    return _to_split(train_x, train_y, test_x, test_y, torch.float32)
+
+
+def friedman1_noise_floor() -> float:
+    """The noise variance in the standardized target's units: no model's expected error is below it."""
+    from sklearn.datasets import make_friedman1
+
+    _, targets = make_friedman1(n_samples=FRIEDMAN_SAMPLES, n_features=FRIEDMAN_FEATURES,
+                                noise=FRIEDMAN_NOISE_STD, random_state=FRIEDMAN_SEED)
+    return FRIEDMAN_NOISE_STD ** 2 / targets[_fixed_split(FRIEDMAN_SAMPLES)[0]].var()
+
+
+def mnist1d_sequences() -> Split:
+    """mnist1d as one-channel sequences ``[n, 1, 40]`` for 1-D convolutions, same split as :func:`mnist1d`."""
+    split = mnist1d()
+    return Split(split.train_x[:, None, :], split.train_y, split.test_x[:, None, :], split.test_y)
+
+
+# Many-class problem: the numbers that define it.
+MANY_CLASSES = 20
+MANY_CLASS_SAMPLES = 5000  # 4000 train / 1000 test
+MANY_CLASS_FEATURES = 40
+MANY_CLASS_INFORMATIVE = 30
+MANY_CLASS_SEED = 5
+
+
+@functools.lru_cache(maxsize=None)
+def many_classes() -> Split:
+    """scikit-learn's make_classification: 20 classes, 2 Gaussian clusters each on a 30-dimensional
+    informative subspace, 40 features (5 redundant combinations, 5 noise), no flipped labels;
+    standardized features."""
+    from sklearn.datasets import make_classification
+
+    inputs, labels = make_classification(
+        n_samples=MANY_CLASS_SAMPLES, n_features=MANY_CLASS_FEATURES, n_informative=MANY_CLASS_INFORMATIVE,
+        n_redundant=5, n_classes=MANY_CLASSES, n_clusters_per_class=2, flip_y=0.0,
+        random_state=MANY_CLASS_SEED)
+    train, test = _fixed_split(MANY_CLASS_SAMPLES)
+    train_x, test_x = _standardize(inputs[train], inputs[test])
+    return _to_split(train_x, labels[train], test_x, labels[test], torch.int64)

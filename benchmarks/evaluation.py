@@ -77,7 +77,13 @@ def evaluate(model: torch.nn.Module, loss_fn: torch.nn.Module, inputs, targets) 
 
 
 def accuracy(outputs: torch.Tensor, labels: torch.Tensor) -> float:
-    """Share of argmax predictions over class dim 1 that match; for sequences, over every position."""
+    """Share of argmax predictions over class dim 1 that match; for sequences, over every position.
+
+    A single output column is one logit of a binary label (0 or 1, as nn.BCEWithLogitsLoss takes it):
+    the prediction is 1 where the logit is positive.
+    """
+    if outputs.dim() == 2 and outputs.shape[1] == 1:
+        return ((outputs > 0).to(labels.dtype) == labels).float().mean().item()
     return (outputs.argmax(dim=1) == labels).float().mean().item()
 
 

@@ -73,6 +73,7 @@ def task_entry(outcome: TaskOutcome) -> dict:
         "target_loss": task.target_loss,
         "description": task.description,
         "target_reason": task.target_reason,
+        "held_out": task.held_out,  # the defaults are checked on this task, never tuned on it
         "test_metric": task.metric,
         "test_metric_higher_is_better": task.higher_is_better,
         "reference": task.reference,

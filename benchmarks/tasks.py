@@ -17,7 +17,6 @@ import torch.nn.functional as F
 from torch import nn
 
 from benchmarks import corpus, datasets
-from benchmarks.selection import select_by_name
 
 
 @dataclass(frozen=True)
@@ -44,6 +43,7 @@ class Task:
     widest_width: Optional[int] = None
     reference: Optional[str] = None  # published figure to compare the test metric with
     reference_band: Optional[tuple[float, float]] = None
+    held_out: bool = False  # a problem the defaults are checked on, never tuned on (benchmarks/held_out.py)
 
     @property
     def higher_is_better(self) -> bool:
@@ -385,10 +385,3 @@ TASKS: dict[str, Task] = {
 
 # Run when named with --tasks: the built-in language model rebuilt from torch's own layers.
 ON_REQUEST_TASKS = ("corpus_torch_transformer",)
-
-
-def resolve_tasks(names: Optional[list[str]]) -> list[Task]:
-    """The tasks with the given names, in the order given (for ``None``, all but the on-request ones)."""
-    if names is None:
-        return [task for name, task in TASKS.items() if name not in ON_REQUEST_TASKS]
-    return select_by_name(TASKS, names, "tasks")

@@ -13,6 +13,7 @@ from benchmarks.comparison import best_baseline
 from benchmarks.optimizers import HEADLINE
 from benchmarks.report_format import contention_warning, format_number
 
+HELD_OUT_HEADING = "Held-out problems (defaults never tuned on these)"
 HEADING = ("Verdict: wall-clock time to the target training loss, medians over seeds "
            "(training steps only, evaluation excluded)")
 
@@ -98,14 +99,20 @@ def caution(results: dict) -> Optional[str]:
     return text
 
 
-def verdict_lines(results: dict) -> list[str]:
+def verdict_lines(results: dict, held_out: bool = False) -> list[str]:
+    """One line per task of the tuning set, or (``held_out``) per held-out task."""
     threads = results["settings"].get("threads")
-    return [task_verdict(entry, threads) for entry in results["tasks"]]
+    return [task_verdict(entry, threads) for entry in results["tasks"] if bool(entry.get("held_out")) == held_out]
 
 
 def verdict_text(results: dict, markdown: bool = False) -> str:
-    lines, warning = verdict_lines(results), caution(results)
+    lines, held_out, warning = verdict_lines(results), verdict_lines(results, held_out=True), caution(results)
     if markdown:
-        return "\n".join(["## Verdict", "", HEADING + ".", ""] + [f"- {line}" for line in lines]
-                         + ([""] + [warning] if warning else []))
-    return "\n".join([HEADING] + [f"* {line}" for line in lines] + ([warning] if warning else []))
+        parts = ["## Verdict", "", HEADING + "."] + ([""] + [f"- {line}" for line in lines] if lines else [])
+        if held_out:
+            parts += ["", f"{HELD_OUT_HEADING}:", ""] + [f"- {line}" for line in held_out]
+        return "\n".join(parts + (["", warning] if warning else []))
+    parts = [HEADING] + [f"* {line}" for line in lines]
+    if held_out:
+        parts += [f"{HELD_OUT_HEADING}:"] + [f"* {line}" for line in held_out]
+    return "\n".join(parts + ([warning] if warning else []))

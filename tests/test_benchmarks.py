@@ -27,7 +27,8 @@ from benchmarks.comparison import bounded_ratio, step_time_flop_estimate
 from benchmarks.evaluation import EvaluationSchedule
 from benchmarks.optimizers import (BASELINES, DEFAULT_OPTIMIZERS, HEADLINE, OPTIMIZERS,
                                    natural_gradient_available, resolve_optimizers)
-from benchmarks.tasks import TASKS, resolve_tasks
+from benchmarks.task_sets import resolve_tasks
+from benchmarks.tasks import TASKS
 from benchmarks.training import minibatches, train_run
 
 REPOSITORY = Path(__file__).resolve().parent.parent
@@ -142,7 +143,7 @@ def test_overview_sets_fisher_descent_against_the_best_of_every_baseline(smoke_r
     baselines = [name for name in OPTIMIZER_NAMES if name in BASELINES]
     headers = overview_headers(results)
     assert headers[3:3 + len(baselines)] == baselines
-    for entry, row in zip(results["tasks"], overview_rows(results)):
+    for entry, row in zip(results["tasks"], overview_rows(results, results["tasks"])):
         summaries = entry["summary"]
         # a few steps reach no target: the best baseline is the one with the lowest final training loss
         finals = {name: summaries[name]["final_train_loss"] for name in baselines}
