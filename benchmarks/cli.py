@@ -34,7 +34,7 @@ from benchmarks.training import load_average
 GRID_POINTS = {"full": 5, "quick": 4}
 SEEDS = {"full": 3, "quick": 2}
 SCALING_STEPS = {"quick": (2, 20), "full": (5, 60)}  # (warm-up, timed) steps per point; the
-# timed steps span whole refresh periods of FisherDescent (statistics every 10, inversion every 20)
+# timed steps span whole refresh periods of FisherDescent (statistics every 5, inversion every 10)
 
 
 @dataclass

@@ -38,7 +38,7 @@ def main(argv=None) -> None:
     model = nn.Sequential(nn.Linear(64, 128), nn.Tanh(), nn.Linear(128, 10))
     loss_fn = nn.CrossEntropyLoss()
     opt = ngopt.FisherDescent(model, loss_fn, lr=0.3, stats_interval=args.stats_interval,
-                              stats_memory=args.stats_memory, fisher=args.fisher)
+                              inverse_interval=20, stats_memory=args.stats_memory, fisher=args.fisher)
     x, y = torch.randn(256, 64), torch.randint(0, 10, (256,))
     print("step  " + "  ".join(COLUMNS))
     with ngopt.log_diagnostics(opt, args.out / "run.jsonl", every=10) as handle:

@@ -121,8 +121,8 @@ class FisherDescent(torch.optim.Optimizer):
 
     def __init__(self, model: nn.Module, loss_fn=None, *, lr: Optional[float] = None,
                  momentum: Optional[float] = None, weight_decay: float = 0.0, damping: float = 1e-2,
-                 fisher: str = "sampled", structure: str = "kfac", stats_interval: int = 10,
-                 inverse_interval: int = 20, stats_memory: float = 0.9, max_step_kl: Optional[float] = 1e-2,
+                 fisher: str = "sampled", structure: str = "kfac", stats_interval: int = 5,
+                 inverse_interval: int = 10, stats_memory: float = 0.8, max_step_kl: Optional[float] = 1e-2,
                  damping_rule: str = "lm", damping_interval: int = 5, step_rule: str = "fixed",
                  rule_interval: int = 1, rule_batch_fraction: float = 0.25, fallback: str = "sgd",
                  fallback_lr_scale: Optional[float] = None, fisher_samples: int = 1, damping_range=(1e-6, 1e2),

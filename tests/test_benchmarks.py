@@ -541,7 +541,7 @@ def test_step_overhead_script_refuses_steps_off_the_inversion_period(capsys):
         pytest.skip("ngopt.FisherDescent does not import")
     script = runpy.run_path(str(REPOSITORY / "scripts" / "step_overhead.py"), run_name="step_overhead")
     with pytest.raises(SystemExit) as stopped:
-        script["main"](["--steps", "50"])
+        script["main"](["--steps", "55"])
     assert stopped.value.code == 2  # argparse's usage-error status
     assert "--steps must be a positive multiple of inverse_interval" in capsys.readouterr().err
 
