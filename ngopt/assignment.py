@@ -153,7 +153,7 @@ class CurvatureAssignment:
         the budget's floor, so that a layer cheap beside the model keeps its whole factors."""
         flops, layers = 0.0, set()
         for call in record.calls:
-            if call.use.key[0] in BLOCKABLE_KINDS:
+            if call.use.key[0] in BLOCKABLE_KINDS or call.use.key[0] == "convolution":
                 flops += 6.0 * _rows([call]) * call.use.weight.numel()
                 layers.add(call.use.key)
         if layers:

@@ -182,6 +182,15 @@ def test_the_budget_reads_the_models_mean_layer_from_the_recorded_forward():
     assert opt._assignment.mean_layer_flops == pytest.approx(6 * 32 * (64 * 512 + 512 * 10) / 2)
 
 
+def test_the_models_mean_layer_counts_convolutions_at_their_output_positions():
+    model = nn.Sequential(nn.Conv2d(3, 8, 3, padding=1), nn.ReLU(), nn.Flatten(), nn.Linear(8 * 6 * 6, 10))
+    opt = ngopt.FisherDescent(model)
+    opt.assign_curvature(torch.randn(4, 3, 6, 6))
+    # a 3x3 convolution forward is 2 x (examples x output pixels) x weight entries flops, x3 with the backward
+    expected = (6 * 4 * 36 * (8 * 3 * 9) + 6 * 4 * (8 * 36 * 10)) / 2
+    assert opt._assignment.mean_layer_flops == pytest.approx(expected)
+
+
 def vocab_model(vocab=4096, width=16):
     torch.manual_seed(4)
     return nn.Sequential(nn.Embedding(vocab, width), nn.Linear(width, width), nn.Tanh(), nn.Linear(width, vocab))
