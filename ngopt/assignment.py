@@ -29,6 +29,9 @@ from .blocks.factory import block_for_uses, make_block
 from .blocks.subsample import ExampleSubsample
 from .budget import BLOCKABLE_KINDS, Plan, Schedule, choose
 
+# Uses whose forward and backward make the model's mean layer cost (the cost budget's floor): the linear
+# kinds, and convolutions, whose use kind is one for the conv1d and conv2d layers it makes.
+COSTED_USE_KINDS = frozenset(BLOCKABLE_KINDS) | {"convolution"}
 FALLBACK_WARNING_SHARE = 0.1  # warn when more of the trainable parameters than this take the fallback rule
 
 
@@ -153,7 +156,7 @@ class CurvatureAssignment:
         the budget's floor, so that a layer cheap beside the model keeps its whole factors."""
         flops, layers = 0.0, set()
         for call in record.calls:
-            if call.use.key[0] in BLOCKABLE_KINDS or call.use.key[0] == "convolution":
+            if call.use.key[0] in COSTED_USE_KINDS:
                 flops += 6.0 * _rows([call]) * call.use.weight.numel()
                 layers.add(call.use.key)
         if layers:

@@ -80,7 +80,7 @@ def diagonal_flops(d_in: int, d_out: int, rows: int, schedule: Schedule) -> floa
     return 2.0 * rows * schedule.stats_fraction * d_in * d_out / schedule.stats_interval + 4.0 * d_in * d_out
 
 
-def _halve_until(dim: int, block: int, fits) -> int:
+def _halve_until(block: int, fits) -> int:
     """The largest of ``block, block / 2, ...`` (not below :data:`SMALLEST_BLOCK`) for which ``fits``."""
     while not fits(block) and block >= 2 * SMALLEST_BLOCK:
         block //= 2
@@ -108,8 +108,7 @@ def choose(kind: str, d_in: int, d_out: int, rows: int, structure: str, budget: 
     # Memory: no factor keeps more numbers than its layer has parameters (or MEMORY_FLOOR), as Adam's
     # two moments keep twice the parameters.
     numbers = max(d_in * d_out, MEMORY_FLOOR)
-    capped = (_halve_until(d_in, b_in, lambda b: d_in * b <= numbers),
-              _halve_until(d_out, b_out, lambda b: d_out * b <= numbers))
+    capped = (_halve_until(b_in, lambda b: d_in * b <= numbers), _halve_until(b_out, lambda b: d_out * b <= numbers))
     if capped != (b_in, b_out):
         reasons.append("a whole factor would keep more numbers than the layer has parameters")
     b_in, b_out = capped

@@ -111,9 +111,6 @@ class BlockDiagonal(Whole):
         blocks = self._blocks(rows)
         factor.baddbmm_(blocks.transpose(1, 2), blocks, alpha=alpha)
 
-    def trace(self, factor):
-        return factor.diagonal(dim1=-2, dim2=-1).sum()
-
     def _pad_mask(self, factor64: torch.Tensor) -> torch.Tensor:
         """Ones on the padded coordinates' diagonal: they stay invertible and contribute nothing."""
         mask = torch.zeros(self.count * self.block, dtype=factor64.dtype, device=factor64.device)

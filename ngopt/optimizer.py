@@ -155,7 +155,6 @@ class FisherDescent(torch.optim.Optimizer):
                           "values around 1e-3..1e-1 are the usual range", stacklevel=2)
         _refuse_sparse_embeddings(model)
 
-        self._defaults_checked = False
         self._new_parameters = False  # a group added after the first training forward awaits its blocks
         defaults = dict(lr=lr, momentum=momentum, weight_decay=weight_decay, damping=damping,
                         max_step_kl=max_step_kl, fallback=fallback, fallback_lr_scale=fallback_lr_scale)

@@ -56,13 +56,11 @@ def make_block(layer: LayerAdapter, structure: str, state: dict, weight_sharing:
                factor_blocks=(None, None)) -> LayerCurvature:
     if layer.kind in _CONSTANT_INPUT_KINDS:
         weight_sharing = "reduce"
-    cls = block_class(layer, structure)
     if factor_blocks != (None, None):
         # Block-diagonal factors (ngopt/factors.py) are kept by the K-FAC block only: an eigenbasis
         # is kept for whole factors.
-        cls = block_class(layer, "kfac")
-        return cls(layer, state, weight_sharing=weight_sharing, factor_blocks=factor_blocks)
-    return cls(layer, state, weight_sharing=weight_sharing)
+        return block_class(layer, "kfac")(layer, state, weight_sharing=weight_sharing, factor_blocks=factor_blocks)
+    return block_class(layer, structure)(layer, state, weight_sharing=weight_sharing)
 
 
 def block_for_uses(layers: List[LayerAdapter], structure: str, state: dict, weight_sharing: str = "expand",
@@ -91,8 +89,8 @@ def block_for_uses(layers: List[LayerAdapter], structure: str, state: dict, weig
     relations = ["same", layout_relation(layers[0], layers[1])]
     if relations[1] == "other":
         return None, f"applied in two ways ({kinds}) that lay the parameter out differently"
-    whole = plan is None or all(plan(layer).blocks == (None, None) and plan(layer).structure != "diag"
-                                for layer in layers)
+    whole = plan is None or all(chosen.blocks == (None, None) and chosen.structure != "diag"
+                                for chosen in map(plan, layers))
     diagonal = structure == "diag" or not whole
     terms = [make_block(layer, "diag" if diagonal else "kfac", {}, weight_sharing) for layer in layers]
     tied = TiedDiagonalBlock if diagonal else TiedKroneckerBlock
