@@ -43,6 +43,8 @@ def parse_args(argv=None):
     parser.add_argument("--fisher", choices=("sampled", "exact", "empirical"), default="sampled")
     parser.add_argument("--stats-interval", type=int, default=10)
     parser.add_argument("--inverse-interval", type=int, default=20)
+    parser.add_argument("--interval-warmup", type=int, default=2,
+                        help="refresh and inversion gaps grow 1, 1, 2, 2, ... up to the intervals (0: fixed)")
     parser.add_argument("--replicate-inversions", action="store_true",
                         help="every rank inverts every block (no inverse traffic, R times the compute)")
     parser.add_argument("--resync-every", type=int, default=None,
@@ -117,7 +119,8 @@ def main(argv=None):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the empirical-Fisher advice, when asked for
         opt = ngopt.FisherDescent(trained, loss_fn, fisher=args.fisher, stats_interval=args.stats_interval,
-                                  inverse_interval=args.inverse_interval, seed=args.seed)
+                                  inverse_interval=args.inverse_interval, interval_warmup=args.interval_warmup,
+                                  seed=args.seed)
     if args.resume:
         state = torch.load(args.resume, map_location=device, weights_only=True)
         model.load_state_dict(state["model"])

@@ -764,7 +764,8 @@ def _parameters(params) -> Iterable[torch.Tensor]:
 
 def _setup_fingerprint(opt) -> int:
     """A 62-bit hash of what must match across ranks: blocks, sizes, schedule, step count."""
-    parts = [opt.fisher, opt.structure, opt.stats_interval, opt.inverse_interval, opt.steps_taken]
+    parts = [opt.fisher, opt.structure, opt.stats_interval, opt.inverse_interval, opt.interval_warmup,
+             opt.steps_taken]
     parts += [(name, b.structure, b.layer.in_dim, b.layer.out_dim) for name, b in opt.blocks.items()]
     digest = hashlib.blake2b(repr(parts).encode(), digest_size=8).digest()
     return int.from_bytes(digest, "little") >> 2

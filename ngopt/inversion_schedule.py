@@ -1,6 +1,7 @@
 """When each block's damped factors are inverted: all on one step, or staggered over the interval.
 
-``"together"`` inverts every block on the steps ``t`` with ``t % inverse_interval == 0``: the
+``"together"`` inverts every block on the steps ``t`` with ``t % inverse_interval == 0`` (after the
+ramp of ``interval_warmup``, :mod:`ngopt.schedule`): the
 cheapest bookkeeping, but that one step carries the whole cost (a stall of seconds for wide
 layers).  ``"staggered"`` gives every block its own phase ``o`` in ``[0, inverse_interval)`` and
 inverts it on the steps with ``(t - o) % inverse_interval == 0``; the phases split the blocks'
@@ -51,8 +52,8 @@ def square_cost(shapes) -> float:
 class TogetherSchedule:
     name = "together"
 
-    def due(self, block, step_index: int, interval: int, blocks: Sequence) -> bool:
-        return inversion_due(step_index, interval)
+    def due(self, block, step_index: int, interval: int, blocks: Sequence, warmup: int = 0) -> bool:
+        return inversion_due(step_index, interval, warmup=warmup)
 
 
 class StaggeredSchedule:
@@ -70,8 +71,8 @@ class StaggeredSchedule:
             self._interval = interval
         return self._phases
 
-    def due(self, block, step_index: int, interval: int, blocks: Sequence) -> bool:
-        return inversion_due(step_index, interval, self.phases(interval, blocks)[block])
+    def due(self, block, step_index: int, interval: int, blocks: Sequence, warmup: int = 0) -> bool:
+        return inversion_due(step_index, interval, self.phases(interval, blocks)[block], warmup)
 
 
 INVERSION_SCHEDULES = {"together": TogetherSchedule, "staggered": StaggeredSchedule}

@@ -81,6 +81,9 @@ class FisherDescent(torch.optim.Optimizer):
         structure: ``'kfac'``, ``'ekfac'`` or ``'diag'``.
         stats_interval: steps between curvature-statistics refreshes.
         inverse_interval: steps between inversions of the factors.
+        interval_warmup: the gaps between refreshes and between inversions start at one step and
+            grow by one every ``interval_warmup`` of them until they reach their intervals (early
+            training moves the curvature fastest); 0: fixed intervals from step 0.
         inverse_schedule: ``'together'`` (every block on the same step) or ``'staggered'``
             (each block on its own step of the interval, the cost spread evenly; see
             ``inversion_schedule.py``).
@@ -88,7 +91,8 @@ class FisherDescent(torch.optim.Optimizer):
         max_step_kl: bound on the step's KL divergence under the quadratic model (None: off).
         damping_rule: ``'fixed'``, or ``'lm'``: Levenberg-Marquardt adaptation of ``damping``
             from the reduction ratio, measured on the recorded batch (or through ``step(closure)``).
-        fallback: ``'sgd'`` or ``'adam'`` for parameters outside any block (per group).
+        fallback: ``'adam'`` (default: scale-free, safe where nothing tells a parameter's scale) or
+            ``'sgd'`` for parameters outside any block (per group).
         fallback_lr_scale: the fallback rule's step is ``lr * fallback_lr_scale``
             (default 1 for ``'sgd'``, 1e-2 for ``'adam'``; per group).
         fisher_samples: Monte Carlo draws per example for ``fisher='sampled'``.
@@ -124,12 +128,12 @@ class FisherDescent(torch.optim.Optimizer):
                  fisher: str = "sampled", structure: str = "kfac", stats_interval: int = 5,
                  inverse_interval: int = 10, stats_memory: float = 0.8, max_step_kl: Optional[float] = 1e-2,
                  damping_rule: str = "lm", damping_interval: int = 5, step_rule: str = "fixed",
-                 rule_interval: int = 1, rule_batch_fraction: float = 0.25, fallback: str = "sgd",
+                 rule_interval: int = 1, rule_batch_fraction: float = 0.25, fallback: str = "adam",
                  fallback_lr_scale: Optional[float] = None, fisher_samples: int = 1, damping_range=(1e-6, 1e2),
                  param_groups=None, seed: Optional[int] = None, weight_sharing: str = "expand",
                  stats_fraction: Optional[float] = None, inverse_schedule: str = "together",
                  cost_budget: Optional[float] = 1.0, max_factor_size: Optional[int] = 4096,
-                 pinned_structures: Optional[dict] = None):
+                 pinned_structures: Optional[dict] = None, interval_warmup: int = 2):
         check_arguments(step_rule=step_rule)
         lr = RULE_DEFAULTS[step_rule]["lr"] if lr is None else lr
         momentum = RULE_DEFAULTS[step_rule]["momentum"] if momentum is None else momentum
@@ -142,7 +146,7 @@ class FisherDescent(torch.optim.Optimizer):
                         rule_interval=rule_interval, rule_batch_fraction=rule_batch_fraction,
                         stats_fraction=stats_fraction, inverse_schedule=inverse_schedule,
                         cost_budget=cost_budget, max_factor_size=max_factor_size,
-                        pinned_structures=pinned_structures)
+                        pinned_structures=pinned_structures, interval_warmup=interval_warmup)
         if loss_fn is not None and isinstance(loss_fn, nn.Module) and (fisher != "empirical"
                                                                        or STEP_RULES[step_rule].needs_batch):
             likelihood_for(loss_fn)  # a clear ValueError for a criterion without a closed form
@@ -166,6 +170,7 @@ class FisherDescent(torch.optim.Optimizer):
         self._capture = None
         self.stats_interval = stats_interval
         self.inverse_interval = inverse_interval
+        self.interval_warmup = interval_warmup
         self.cost_budget, self.max_factor_size = cost_budget, max_factor_size
         self._assignment = CurvatureAssignment(self.model, self, structure, weight_sharing, stats_fraction,
                                                self._seed, cost_budget, max_factor_size, pinned_structures)
@@ -294,6 +299,7 @@ class FisherDescent(torch.optim.Optimizer):
     def __repr__(self) -> str:
         lines = [f"FisherDescent(fisher={self.fisher!r}, structure={self.structure!r}, "
                  f"stats_interval={self.stats_interval}, inverse_interval={self.inverse_interval}, "
+                 f"interval_warmup={self.interval_warmup}, "
                  f"inverse_schedule={self.inverse_schedule!r}, "
                  f"stats_memory={self.stats_memory}, step_rule={self.step_rule!r}, "
                  f"damping_rule={self.damping_rule!r})"]
@@ -440,7 +446,8 @@ class FisherDescent(torch.optim.Optimizer):
         self._assignment.subsample_generator.set_state(subsample)
 
     def _statistics_due(self, step_index: int) -> bool:
-        return schedule.statistics_due(step_index, self.stats_interval) or self._new_parameters \
+        return schedule.statistics_due(step_index, self.stats_interval, self.interval_warmup) \
+            or self._new_parameters \
             or not all(b.has_statistics for b in self.blocks.values())
 
     def _batch_due(self, step_index: int) -> bool:
@@ -580,7 +587,7 @@ class FisherDescent(torch.optim.Optimizer):
         blocks = list(self.blocks.values())
         jobs = []
         for block in blocks:
-            due = self._inversions.due(block, step_index, self.inverse_interval, blocks)
+            due = self._inversions.due(block, step_index, self.inverse_interval, blocks, self.interval_warmup)
             fresh = block in statistics
             if (due and (fresh or block.has_statistics)) or (fresh and not block.has_inverse):
                 damping = self._block_group(block)["damping"]

@@ -8,8 +8,16 @@ interval, ``t % n == 0``, so the first step already has it: a statistics refresh
 judges a step is due at the end of each interval, ``(t + 1) % n == 0``: the Levenberg-Marquardt
 damping update (``damping_interval``, from the ratio of the interval's last step) and the
 replicas' parameter resync (``resync_every``, after the step).
+
+Refreshes and inversions ramp up to their intervals (``interval_warmup``): early in training the
+weights, and with them the curvature, change fastest, so the first gaps are short and grow by one
+step every ``interval_warmup`` refreshes, ``1, 1, 2, 2, ..., n-1, n-1`` for a warm-up of 2, after
+which every gap is the interval ``n``.  The ramp costs ``(interval_warmup - 1/2) * n`` extra
+refreshes or inversions roughly, once; ``interval_warmup=0`` gives plain intervals from step 0.
 """
 from __future__ import annotations
+
+from functools import lru_cache
 
 
 def starts_interval(step_index: int, interval: int, phase: int = 0) -> bool:
@@ -22,14 +30,37 @@ def ends_interval(step_index: int, interval: int) -> bool:
     return (step_index + 1) % interval == 0
 
 
-def statistics_due(step_index: int, stats_interval: int) -> bool:
+@lru_cache(maxsize=64)
+def _ramp(interval: int, warmup: int) -> tuple:
+    """``(steps of the ramp, the step it ends on)``: gaps ``1..interval-1``, each ``warmup`` times."""
+    steps, step = [0], 0
+    for gap in range(1, interval):
+        for _ in range(warmup):
+            step += gap
+            steps.append(step)
+    return frozenset(steps), step
+
+
+def ramped_interval_due(step_index: int, interval: int, warmup: int, phase: int = 0) -> bool:
+    """Whether step ``step_index`` starts an interval whose gaps ramp up to ``interval`` (module docstring).
+
+    ``phase`` shifts the whole sequence; steps before the phase are never due.
+    """
+    shifted = step_index - phase
+    if shifted < 0:
+        return False
+    ramp, end = _ramp(interval, warmup)
+    return shifted in ramp if shifted < end else (shifted - end) % interval == 0
+
+
+def statistics_due(step_index: int, stats_interval: int, warmup: int = 0) -> bool:
     """The forward and backward of this step are recorded and their statistics refreshed."""
-    return starts_interval(step_index, stats_interval)
+    return ramped_interval_due(step_index, stats_interval, warmup)
 
 
-def inversion_due(step_index: int, inverse_interval: int, phase: int = 0) -> bool:
+def inversion_due(step_index: int, inverse_interval: int, phase: int = 0, warmup: int = 0) -> bool:
     """A block (at ``phase`` in the interval when staggered) inverts its damped factors on this step."""
-    return starts_interval(step_index, inverse_interval, phase)
+    return ramped_interval_due(step_index, inverse_interval, warmup, phase)
 
 
 def solve_due(step_index: int, rule_interval: int) -> bool:

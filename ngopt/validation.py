@@ -59,6 +59,7 @@ CHECKS = {
     "fallback_lr_scale": lambda v: _real("fallback_lr_scale", v, low=0.0, optional=True),
     "stats_interval": lambda v: _integer("stats_interval", v, low=1),
     "inverse_interval": lambda v: _integer("inverse_interval", v, low=1),
+    "interval_warmup": lambda v: _integer("interval_warmup", v, low=0),
     "fisher_samples": lambda v: _integer("fisher_samples", v, low=1),
     "damping_interval": lambda v: _integer("damping_interval", v, low=1),
     "fisher": lambda v: _choice("fisher", v),

@@ -226,7 +226,7 @@ def test_the_communicator_reads_no_private_optimizer_attribute():
 
 def test_public_schedule_seed_and_sampling_generator():
     model, loss_fn = mlp(), nn.CrossEntropyLoss()
-    opt = quiet_optimizer(model, loss_fn, stats_interval=3, seed=11)
+    opt = quiet_optimizer(model, loss_fn, stats_interval=3, interval_warmup=0, seed=11)
     assert opt.seed == 11
     drawn_on = []
 

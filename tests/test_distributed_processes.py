@@ -48,7 +48,7 @@ WORLD = 2
 REPOSITORY = Path(__file__).resolve().parents[1]
 EXAMPLE = REPOSITORY / "examples" / "train_ddp.py"
 EXAMPLE_ARGS = ["--steps", "8", "--warmup", "2", "--hidden", "16", "--fisher", "exact", "--stats-interval", "2",
-                "--inverse-interval", "4"]
+                "--inverse-interval", "4", "--interval-warmup", "0"]
 THREADS_VARIABLE = "NGOPT_TEST_THREADS"
 KERNELS_VARIABLE = "NGOPT_TEST_KERNELS"
 JOB_SECONDS = 120           # hard bound on one spawned job (generous: a loaded 2-core machine)
@@ -57,8 +57,8 @@ FAULT_TIMEOUT_SECONDS = 3   # share_curvature(timeout=...) in the fault jobs
 STEPS = 6
 CHECKPOINT_STEP = 3
 GLOBAL_BATCH = 24
-SETTINGS = dict(lr=0.3, momentum=0.5, damping=1e-2, stats_interval=2, inverse_interval=3, stats_memory=0.9, max_step_kl=1e-2,
-                step_rule="fixed", damping_rule="fixed")
+SETTINGS = dict(lr=0.3, momentum=0.5, damping=1e-2, stats_interval=2, inverse_interval=3, interval_warmup=0,
+                stats_memory=0.9, max_step_kl=1e-2, step_rule="fixed", damping_rule="fixed")
 
 
 # The quadratic rule on the whole recorded batch of each rank, LM damping every other step.

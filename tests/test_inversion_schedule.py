@@ -26,7 +26,8 @@ def make(schedule, interval, seed=0, **kwargs):
     model = nn.Sequential(nn.Linear(6, 8), nn.Tanh(), nn.Linear(8, 8), nn.Tanh(), nn.Linear(8, 8), nn.Tanh(),
                           nn.Linear(8, 3)).to(DTYPE)
     options = dict(step_rule="fixed", damping_rule="fixed", stats_interval=1, inverse_interval=interval,
-                   inverse_schedule=schedule, seed=1, **kwargs)
+                   inverse_schedule=schedule, seed=1, interval_warmup=0)  # plain intervals: the phases show
+    options.update(kwargs)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss(), **options)

@@ -127,7 +127,7 @@ def test_more_than_a_tenth_on_the_fallback_rule_is_a_warning_naming_the_largest(
         warnings.simplefilter("error")  # 6 of 99 parameters (6%): no warning
         opt = ngopt.FisherDescent(model, loss_fn)
         opt.assign_curvature(x)
-    assert "fallback rule (sgd): 1 tensors, 6 parameters" in repr(opt)
+    assert "fallback rule (adam): 1 tensors, 6 parameters" in repr(opt)
     assert "1.weight (6): applied by prelu, which has no curvature block" in repr(opt)
 
     class Pairwise(nn.Module):

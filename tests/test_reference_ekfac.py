@@ -105,7 +105,7 @@ def test_a_new_basis_without_fresh_statistics_starts_from_the_kfac_eigenvalues()
     # restart from L_G L_A^T, and the block is then exactly K-FAC's A (x) G (numpy.kron).
     model, inputs, targets, loss_fn = network_problem("mlp", "mse")
     opt = ngopt.FisherDescent(model, loss_fn, lr=1e-2, momentum=0.0, structure="ekfac", stats_interval=2,
-                              inverse_interval=3, max_step_kl=None)
+                              inverse_interval=3, interval_warmup=0, max_step_kl=None)
     for _ in range(4):
         opt.zero_grad()
         loss_fn(model(inputs), targets).backward()

@@ -14,10 +14,26 @@ def test_interval_starts_and_ends():
     assert all(schedule.starts_interval(t, 1) and schedule.ends_interval(t, 1) for t in range(5))
 
 
-def test_the_optimizer_works_on_the_steps_the_schedule_names():
+def test_a_ramp_of_two_repeats_each_shorter_gap_twice_then_keeps_the_interval():
+    due = [t for t in range(40) if schedule.ramped_interval_due(t, 5, warmup=2)]
+    assert due == [0, 1, 2, 4, 6, 9, 12, 16, 20, 25, 30, 35]  # gaps 1 1 2 2 3 3 4 4, then 5
+    assert [t for t in range(12) if schedule.ramped_interval_due(t, 4, warmup=1)] == [0, 1, 3, 6, 10]
+    assert [t for t in range(12) if schedule.ramped_interval_due(t, 4, warmup=0)] == [0, 4, 8]
+    assert [t for t in range(9) if schedule.ramped_interval_due(t, 1, warmup=3)] == list(range(9))
+    # a phase shifts the whole sequence; nothing is due before it
+    assert [t for t in range(12) if schedule.ramped_interval_due(t, 4, warmup=1, phase=2)] == [2, 3, 5, 8]
+    # long intervals: the ramp ends on step warmup * n (n - 1) / 2 and the interval holds from there
+    ramp_end = 3 * 100 * 99 // 2
+    assert schedule.ramped_interval_due(ramp_end, 100, warmup=3)
+    assert [t for t in range(ramp_end + 1, ramp_end + 201) if schedule.ramped_interval_due(t, 100, warmup=3)] \
+        == [ramp_end + 100, ramp_end + 200]
+
+
+@pytest.mark.parametrize("warmup", [0, 2])
+def test_the_optimizer_works_on_the_steps_the_schedule_names(warmup):
     torch.manual_seed(0)
     model = nn.Sequential(nn.Linear(5, 7), nn.Tanh(), nn.Linear(7, 3)).double()
-    intervals = dict(stats_interval=3, inverse_interval=4, damping_interval=5)
+    intervals = dict(stats_interval=3, inverse_interval=4, damping_interval=5, interval_warmup=warmup)
     opt = ngopt.FisherDescent(model, nn.MSELoss(), damping_rule="lm", stats_memory=0.5, **intervals)
     generator = torch.Generator().manual_seed(1)
     refreshed, inverted, measured = [], [], []
@@ -35,9 +51,11 @@ def test_the_optimizer_works_on_the_steps_the_schedule_names():
             inverted.append(t)
         if snapshot["update"]["actual_change"] is not None:
             measured.append(t)
-    assert refreshed == [t for t in range(16) if schedule.statistics_due(t, 3)] == [0, 3, 6, 9, 12, 15]
-    assert inverted == [t for t in range(16) if schedule.inversion_due(t, 4)] == [0, 4, 8, 12]
-    assert measured == [t for t in range(16) if schedule.damping_due(t, 5)] == [4, 9, 14]
+    assert refreshed == [t for t in range(16) if schedule.statistics_due(t, 3, warmup)] \
+        == ([0, 3, 6, 9, 12, 15] if warmup == 0 else [0, 1, 2, 4, 6, 9, 12, 15])
+    assert inverted == [t for t in range(16) if schedule.inversion_due(t, 4, warmup=warmup)] \
+        == ([0, 4, 8, 12] if warmup == 0 else [0, 1, 2, 4, 6, 9, 12])
+    assert measured == [t for t in range(16) if schedule.damping_due(t, 5)] == [4, 9, 14]  # no ramp
 
 
 @pytest.mark.parametrize("name", ["statistics_due", "inversion_due", "solve_due", "damping_due", "resync_due"])
