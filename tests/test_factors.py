@@ -244,3 +244,16 @@ def test_a_layer_chooses_again_when_the_batch_changes_and_a_pinned_layer_keeps_i
         ngopt.FisherDescent(nn.Linear(2, 2), cost_budget=0.0)
     with pytest.raises(TypeError, match="max_factor_size must be an int"):
         ngopt.FisherDescent(nn.Linear(2, 2), max_factor_size=2.5)
+
+
+def test_a_pinned_name_that_is_no_block_is_a_warning_naming_the_blocks():
+    model = nn.Sequential(nn.Linear(4, 5), nn.Tanh(), nn.Linear(5, 3))
+    opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss(), pinned_structures={"2": "diag", "layer2": "kfac"})
+    with pytest.warns(UserWarning, match=r"pinned_structures names no curvature block: 'layer2'; .*: 0, 2"):
+        opt.assign_curvature(torch.zeros(1, 4))
+    assert opt.blocks["2"].structure == "diag"  # the name that matched still applies
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # once only, and never for names that match
+        opt.assign_curvature(torch.zeros(1, 4))
+        ngopt.FisherDescent(nn.Sequential(nn.Linear(4, 3)), nn.CrossEntropyLoss(),
+                            pinned_structures={"0": "diag"}).assign_curvature(torch.zeros(1, 4))
