@@ -17,12 +17,16 @@ from typing import Optional
 
 from benchmarks.comparison import compare
 from benchmarks.harness import TaskOutcome, summarize
+from benchmarks.optimizers import HEADLINE
 from benchmarks.training import RunResult
 
 SCHEMA = "ngopt-benchmark-results/1"
 # The fields every run carries per the README's results schema; more follow them.
 RUN_FIELDS = ("optimizer", "lr", "seed", "steps_to_target", "seconds_to_target",
               "final_train_loss", "final_test_metric", "step_seconds_median")
+# A run's "optimizer" in results.json is the schema's: the package's name for its headline row, the
+# row's own name otherwise; "method" is always the row's name, as the report and the CSV show it.
+SCHEMA_OPTIMIZER_NAMES = {HEADLINE: "ngopt"}
 CURVE_COLUMNS = ("task", "optimizer", "lr", "seed", "selected", "step", "seconds", "train_loss")
 
 
@@ -39,7 +43,9 @@ def finite_or_none(value):
 
 def run_entry(run: RunResult, role: str, selected: bool) -> dict:
     entry = {name: getattr(run, name) for name in RUN_FIELDS}
+    entry["optimizer"] = SCHEMA_OPTIMIZER_NAMES.get(run.optimizer, run.optimizer)
     entry.update({
+        "method": run.optimizer,
         "role": role,  # "tuning" (first seed, every lr of the grid) or "repeat" (other seeds)
         "selected": selected,  # at the optimizer's chosen lr: these runs make the medians
         "diverged": run.diverged,

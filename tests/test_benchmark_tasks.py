@@ -322,9 +322,9 @@ def test_quick_run_of_the_new_task_with_every_row(task_name, tmp_path, monkeypat
     assert main(argv) == 0
     entry = json.loads((tmp_path / "results.json").read_text())["tasks"][0]
     assert entry["task"] == task_name and entry["target_loss"] == TASKS[task_name].target_loss
-    assert sorted(run["optimizer"] for run in entry["runs"]) == sorted(rows)
+    assert sorted(run["method"] for run in entry["runs"]) == sorted(rows)
     for run in entry["runs"]:
-        assert run["steps_run"] == steps and not run["diverged"], run["optimizer"]
+        assert run["steps_run"] == steps and not run["diverged"], run["method"]
         assert math.isfinite(run["final_train_loss"]) and 0 <= run["final_test_metric"] <= 1
 
 
@@ -379,7 +379,7 @@ def test_task_file_run_writes_the_files_of_a_builtin_task(tmp_path):
     entry = ours["tasks"][0]
     assert entry["task"] == "my_problem" and entry["target_loss"] == 0.4 and entry["batch_size"] == 64
     assert entry["test_metric"] == "accuracy" and 0 <= entry["summary"]["fisher-descent"]["final_test_metric"] <= 1
-    assert sorted(run["optimizer"] for run in entry["runs"]) == sorted(rows.split(",") * 2)
+    assert sorted(run["method"] for run in entry["runs"]) == sorted(rows.split(",") * 2)
     for name in ("curves.csv", "report.md"):
         assert (mine / name).read_text().splitlines()[0] == (builtin / name).read_text().splitlines()[0]
     assert (mine / "loss_my_problem.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
