@@ -12,8 +12,9 @@ replicas' parameter resync (``resync_every``, after the step).
 Refreshes and inversions ramp up to their intervals (``interval_warmup``): early in training the
 weights, and with them the curvature, change fastest, so the first gaps are short and grow by one
 step every ``interval_warmup`` refreshes, ``1, 1, 2, 2, ..., n-1, n-1`` for a warm-up of 2, after
-which every gap is the interval ``n``.  The ramp costs ``(interval_warmup - 1/2) * n`` extra
-refreshes or inversions roughly, once; ``interval_warmup=0`` gives plain intervals from step 0.
+which every gap is the interval ``n``.  The ramp costs about ``interval_warmup * (n - 1) / 2`` extra
+refreshes or inversions, once; ``interval_warmup=0`` gives plain intervals from step 0.  A staggered
+block's phase shifts its intervals from the end of the ramp on.
 """
 from __future__ import annotations
 
@@ -44,13 +45,13 @@ def _ramp(interval: int, warmup: int) -> tuple:
 def ramped_interval_due(step_index: int, interval: int, warmup: int, phase: int = 0) -> bool:
     """Whether step ``step_index`` starts an interval whose gaps ramp up to ``interval`` (module docstring).
 
-    ``phase`` shifts the whole sequence; steps before the phase are never due.
+    The ramp is the same for every phase (its gaps are short, so staggering would only delay the early
+    refreshes); from its last step on, a ``phase`` in ``[0, interval)`` shifts the intervals.
     """
-    shifted = step_index - phase
-    if shifted < 0:
-        return False
     ramp, end = _ramp(interval, warmup)
-    return shifted in ramp if shifted < end else (shifted - end) % interval == 0
+    if step_index < end:
+        return step_index in ramp
+    return (step_index - end - phase) % interval == 0 and step_index - end >= phase
 
 
 def statistics_due(step_index: int, stats_interval: int, warmup: int = 0) -> bool:

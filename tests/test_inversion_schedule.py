@@ -97,6 +97,19 @@ def test_staggered_blocks_invert_on_their_own_phase_from_that_steps_statistics()
     assert inverted_per_step[1:] == [1] * (len(inverted_per_step) - 1)
 
 
+def test_staggered_blocks_share_the_ramp_then_keep_their_phases():
+    interval = 4
+    model, opt = make("staggered", interval, interval_warmup=1)  # ramp: steps 0, 1, 3, 6
+    blocks = list(opt.blocks.values())
+    phases = opt._inversions.phases(interval, blocks)
+    for t, (x, y) in enumerate(batches(16)):
+        train_step(model, opt, x, y)
+        for block in blocks:
+            due = [s for s in range(t + 1) if s in (0, 1, 3) or (s >= 6 + phases[block]
+                                                                  and (s - 6 - phases[block]) % interval == 0)]
+            assert block.info["inversion_step"] == due[-1], (t, phases[block])
+
+
 def test_together_inverts_every_block_on_the_same_steps():
     model, opt = make("together", interval=3)
     for t, (x, y) in enumerate(batches(7)):

@@ -20,8 +20,9 @@ def test_a_ramp_of_two_repeats_each_shorter_gap_twice_then_keeps_the_interval():
     assert [t for t in range(12) if schedule.ramped_interval_due(t, 4, warmup=1)] == [0, 1, 3, 6, 10]
     assert [t for t in range(12) if schedule.ramped_interval_due(t, 4, warmup=0)] == [0, 4, 8]
     assert [t for t in range(9) if schedule.ramped_interval_due(t, 1, warmup=3)] == list(range(9))
-    # a phase shifts the whole sequence; nothing is due before it
-    assert [t for t in range(12) if schedule.ramped_interval_due(t, 4, warmup=1, phase=2)] == [2, 3, 5, 8]
+    # a phase shifts the intervals after the ramp (0, 1, 3, 6); without a ramp, nothing is due before it
+    assert [t for t in range(16) if schedule.ramped_interval_due(t, 4, warmup=1, phase=2)] == [0, 1, 3, 8, 12]
+    assert [t for t in range(12) if schedule.ramped_interval_due(t, 4, warmup=0, phase=3)] == [3, 7, 11]
     # long intervals: the ramp ends on step warmup * n (n - 1) / 2 and the interval holds from there
     ramp_end = 3 * 100 * 99 // 2
     assert schedule.ramped_interval_due(ramp_end, 100, warmup=3)
