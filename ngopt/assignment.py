@@ -94,7 +94,7 @@ class CurvatureAssignment:
         self.subsample_generator = torch.Generator().manual_seed(seed + 1)
         self._subsamples: Dict[float, ExampleSubsample] = {}
         self._warned_new_use = set()
-        self._warned_pins = False
+        self._pins_checked = False
         self.mean_layer_flops = 0.0
 
     # -- deciding -----------------------------------------------------------------------------
@@ -123,19 +123,18 @@ class CurvatureAssignment:
             for key, calls in uses[param].items():
                 self._attach(block, param, key, calls)
         self.blocks = dict(sorted(self.blocks.items(), key=lambda item: self.order.get(item[1].layer.weight, 0)))
-        if self.seen_forward:
-            self._check_pins()
+        if self.seen_forward and not self._pins_checked:
+            self._pins_checked = True
+            self._warn_unknown_pins()
 
-    def _check_pins(self) -> None:
-        """Once, after the first forward that assigned blocks: a pinned name that is no block is a typo
-        (or a layer the forward never applied), and it would otherwise be ignored without a word."""
+    def _warn_unknown_pins(self) -> None:
+        """After the first forward that assigned blocks: a pinned name that is no block is a typo (or a
+        layer the forward never applied), and it would otherwise be ignored without a word."""
         unknown = sorted(set(self.pinned) - set(self.blocks))
-        if unknown and not self._warned_pins:
-            self._warned_pins = True
+        if unknown:
             known = ", ".join(list(self.blocks)[:8]) + (", ..." if len(self.blocks) > 8 else "")
             warnings.warn(f"pinned_structures names no curvature block: {', '.join(map(repr, unknown))}; the "
                           f"blocks are named as in print(opt): {known}", stacklevel=4)
-        self._warned_pins = True
 
     def _decide(self, param, by_key, record, claimed_biases) -> Optional[LayerCurvature]:
         biases = {key[2] for key in by_key if key[2] is not None}
