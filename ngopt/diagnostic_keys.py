@@ -42,6 +42,9 @@ UPDATE: Dict[str, Key] = {
     "cosine": Key("cosine between the gradient and the preconditioned direction", "1"),
     "trust_scale": Key("factor the KL bound applied to the step (1 = not limited)", "1"),
     "kl_estimate": Key("KL divergence of the step under the quadratic model (null when not computed)", "nats"),
+    "fisher_length_ratio": Key("fixed step rule with rule_interval > 0: the proposal's squared length in the "
+                               "exact Fisher of the whole model over the blocks' model's, at the latest check; "
+                               "the KL bound uses it (null before any check and under other rules)", "1"),
     "predicted_change": Key("quadratic model's predicted change of the loss, g^T delta + delta^T C delta / 2 "
                             "under step_rule='quadratic'", "loss"),
     "reduction_ratio": Key("rho = actual / predicted loss change on the steps where it is measured, else null",

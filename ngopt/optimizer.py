@@ -55,7 +55,10 @@ from .validation import check_arguments
 DEFAULT_FALLBACK_LR_SCALE = {"sgd": 1.0, "adam": 1e-2}
 # Defaults that depend on the step rule: under "quadratic" lr multiplies the step the model chooses
 # and momentum caps mu; under "fixed" they are the step size and heavy-ball coefficient themselves.
-RULE_DEFAULTS = {"quadratic": {"lr": 1.0, "momentum": 0.9}, "fixed": {"lr": 0.3, "momentum": 0.5}}
+# rule_interval: steps between the quadratic rule's solves, or the fixed rule's checks of its KL bound
+# against the exact Fisher (0: never; rules/fixed_step.py says why that is its default).
+RULE_DEFAULTS = {"quadratic": {"lr": 1.0, "momentum": 0.9, "rule_interval": 1},
+                 "fixed": {"lr": 0.3, "momentum": 0.5, "rule_interval": 0}}
 
 
 class FisherDescent(torch.optim.Optimizer):
@@ -89,6 +92,13 @@ class FisherDescent(torch.optim.Optimizer):
             ``inversion_schedule.py``).
         stats_memory: weight of the old statistics in the running average.
         max_step_kl: bound on the step's KL divergence under the quadratic model (None: off).
+        step_rule: ``'fixed'`` (lr, momentum and the KL bound as given) or ``'quadratic'`` (step size
+            and momentum chosen on the exact Fisher of the recorded batch; ``rules/``).
+        rule_interval: steps between the step rule's evaluations on the recorded batch: the
+            quadratic rule's solves (default 1), or the fixed rule's checks of its KL bound against
+            the exact Fisher of the whole model (default 0: never, the bound rests on the blocks'
+            model, which can understate a step's KL many times over on small noisy batches).
+        rule_batch_fraction: share of the recorded batch (its first rows) those evaluations use.
         damping_rule: ``'fixed'``, or ``'lm'``: Levenberg-Marquardt adaptation of ``damping``
             from the reduction ratio, measured on the recorded batch (or through ``step(closure)``).
         fallback: ``'adam'`` (default: scale-free, safe where nothing tells a parameter's scale) or
@@ -128,7 +138,7 @@ class FisherDescent(torch.optim.Optimizer):
                  fisher: str = "sampled", structure: str = "kfac", stats_interval: int = 5,
                  inverse_interval: int = 10, stats_memory: float = 0.8, max_step_kl: Optional[float] = 1e-2,
                  damping_rule: str = "lm", damping_interval: int = 5, step_rule: str = "fixed",
-                 rule_interval: int = 1, rule_batch_fraction: float = 0.25, fallback: str = "adam",
+                 rule_interval: Optional[int] = None, rule_batch_fraction: float = 0.25, fallback: str = "adam",
                  fallback_lr_scale: Optional[float] = None, fisher_samples: int = 1, damping_range=(1e-6, 1e2),
                  param_groups=None, seed: Optional[int] = None, weight_sharing: str = "expand",
                  stats_fraction: Optional[float] = None, inverse_schedule: str = "together",
@@ -137,6 +147,7 @@ class FisherDescent(torch.optim.Optimizer):
         check_arguments(step_rule=step_rule)
         lr = RULE_DEFAULTS[step_rule]["lr"] if lr is None else lr
         momentum = RULE_DEFAULTS[step_rule]["momentum"] if momentum is None else momentum
+        rule_interval = RULE_DEFAULTS[step_rule]["rule_interval"] if rule_interval is None else rule_interval
         check_arguments(model=model, loss_fn=loss_fn, lr=lr, momentum=momentum, weight_decay=weight_decay,
                         damping=damping, fisher=fisher, structure=structure, stats_interval=stats_interval,
                         inverse_interval=inverse_interval, stats_memory=stats_memory, max_step_kl=max_step_kl,
@@ -147,6 +158,9 @@ class FisherDescent(torch.optim.Optimizer):
                         stats_fraction=stats_fraction, inverse_schedule=inverse_schedule,
                         cost_budget=cost_budget, max_factor_size=max_factor_size,
                         pinned_structures=pinned_structures, interval_warmup=interval_warmup)
+        if step_rule == "quadratic" and rule_interval == 0:
+            raise ValueError("rule_interval must be >= 1 with step_rule='quadratic' (it sets the steps between "
+                             "its solves), got 0")
         if loss_fn is not None and isinstance(loss_fn, nn.Module) and (fisher != "empirical"
                                                                        or STEP_RULES[step_rule].needs_batch):
             likelihood_for(loss_fn)  # a clear ValueError for a criterion without a closed form
@@ -490,7 +504,7 @@ class FisherDescent(torch.optim.Optimizer):
             return "nonfinite_update"
         tick = time.perf_counter()
         evaluator = self._evaluator(batch, step_index, closure)
-        inputs.evaluator = evaluator if self.rules.step.needs_batch else None
+        inputs.evaluator = evaluator if self.rules.step.wants_batch(step_index) else None
         result = self.rules.step.updates(inputs)
         self._times["rules"] += time.perf_counter() - tick
         tick = time.perf_counter()
@@ -720,21 +734,26 @@ class FisherDescent(torch.optim.Optimizer):
         wanted = self.rules.step.wants_batch(step_index) or self.rules.damping.wants_ratio(step_index)
         if not wanted:
             return None
-        if closure is not None and not steered:
+        rule_wants = self.rules.step.wants_batch(step_index)
+        if closure is not None and not steered and not rule_wants:
             return None  # the damping rule measures the closure's loss itself
         problem = replayable(batch)
         if problem:
-            if closure is None or steered:
-                self._warn_not_replayable(problem)
+            if closure is None or steered or rule_wants:
+                self._warn_not_replayable(problem, rule_wants)
             return None
-        fraction = self.rule_batch_fraction if steered else 1.0
-        return BatchEvaluator(self.model, batch, fraction)
+        # The rule's products need only a share of the rows; the damping rule's ratio compares the loss on
+        # the rows the step's prediction was made for: the whole batch, or the quadratic rule's share.
+        whole = self.rules.damping.wants_ratio(step_index) and not steered
+        return BatchEvaluator(self.model, batch, 1.0 if whole else self.rule_batch_fraction)
 
-    def _warn_not_replayable(self, problem: str) -> None:
+    def _warn_not_replayable(self, problem: str, rule_wants: bool) -> None:
         steered = self.rules.step.needs_batch
-        rule = f"step_rule={self.step_rule!r}" if steered else f"damping_rule={self.damping_rule!r}"
-        fallback = "the step falls back to the blocks' own model with the KL bound" if steered \
-            else "lambda stays as it is"
+        if steered or rule_wants:
+            rule = f"step_rule={self.step_rule!r}" + ("" if steered else f" with rule_interval={self.rule_interval}")
+            fallback = "the step falls back to the blocks' own model with the KL bound"
+        else:
+            rule, fallback = f"damping_rule={self.damping_rule!r}", "lambda stays as it is"
         self._warn_once("replay", f"{rule} evaluates the loss on the recorded batch, but {problem}, so {fallback}. "
                         "Compute the loss with F.cross_entropy/F.mse_loss/F.binary_cross_entropy_with_logits (or "
                         "their criterion objects) from the model's output, or pass step(closure) for the "

@@ -4,7 +4,8 @@ Steps are numbered from 0: step ``t`` is the ``step()`` call made after ``t`` ea
 (``opt.steps_taken`` while it runs).  Work that prepares a step is due at the start of each
 interval, ``t % n == 0``, so the first step already has it: a statistics refresh
 (``stats_interval``), an inversion (``inverse_interval``; a staggered block at its own phase
-``o``: ``(t - o) % n == 0``), a solve of the quadratic step rule (``rule_interval``).  Work that
+``o``: ``(t - o) % n == 0``), a solve of the quadratic step rule or a
+check of the fixed rule's KL bound (``rule_interval``).  Work that
 judges a step is due at the end of each interval, ``(t + 1) % n == 0``: the Levenberg-Marquardt
 damping update (``damping_interval``, from the ratio of the interval's last step) and the
 replicas' parameter resync (``resync_every``, after the step).
@@ -66,6 +67,11 @@ def inversion_due(step_index: int, inverse_interval: int, phase: int = 0, warmup
 
 def solve_due(step_index: int, rule_interval: int) -> bool:
     """The quadratic step rule solves for its step size and momentum on this step."""
+    return starts_interval(step_index, rule_interval)
+
+
+def kl_check_due(step_index: int, rule_interval: int) -> bool:
+    """The fixed step rule checks its KL bound against the exact Fisher on this step."""
     return starts_interval(step_index, rule_interval)
 
 

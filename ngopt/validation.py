@@ -69,7 +69,7 @@ CHECKS = {
     "damping_rule": lambda v: _choice("damping_rule", v),
     "step_rule": lambda v: _choice("step_rule", v),
     "inverse_schedule": lambda v: _choice("inverse_schedule", v),
-    "rule_interval": lambda v: _integer("rule_interval", v, low=1),
+    "rule_interval": lambda v: _integer("rule_interval", v, low=0),
     "rule_batch_fraction": lambda v: _real("rule_batch_fraction", v, low=0.0, high=1.0, low_open=True),
     "stats_fraction": lambda v: _real("stats_fraction", v, low=0.0, high=1.0, low_open=True, optional=True),
     "cost_budget": lambda v: _real("cost_budget", v, low=0.0, low_open=True, optional=True),

@@ -51,3 +51,14 @@ def norms(inputs: StepInputs, scale_of: Dict[object, float]) -> dict:
 
 def blocks_in(inputs: StepInputs) -> List[object]:
     return [b for blocks in inputs.blocks_by_group.values() for b in blocks]
+
+
+def as_parameters(matrices: Dict[object, torch.Tensor]) -> dict:
+    """Block matrices as ``{parameter: tensor}`` for the evaluator's forward-mode products."""
+    direction = {}
+    for block, matrix in matrices.items():
+        weight_part, bias_part = block.layer.split_matrix(matrix)
+        direction[block.layer.weight] = weight_part
+        if bias_part is not None:
+            direction[block.layer.bias] = bias_part
+    return direction

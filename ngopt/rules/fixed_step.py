@@ -13,14 +13,25 @@ is kept without any product with the curvature: with ``p = C^-1 g`` and ``C p = 
 a recursion in dot products the step computes anyway (plus one, ``buf_{t-1}^T g_t``).  Each term uses
 the curvature of the step that added it (the one its proposal was computed with), so across a refresh
 or an inversion the quadratic form mixes the curvatures the buffer was built from.
+
+With ``rule_interval = k > 0`` the rule checks its KL bound every ``k`` steps against the exact Fisher
+of the whole model on the recorded batch (:func:`ngopt.rules.trust.fisher_length_ratio`) and bounds
+the KL of the steps up to the next check by the blocks' model times the measured ratio.  Off by
+default: on large clean batches the blocks' model understates the KL a few times over and the
+larger steps it allows pay; on small, noisy batches (a sequence classifier at batch 8, say) it can
+understate it fifty times over and the steps then fit each batch's noise.
 """
 from __future__ import annotations
+
+import math
+import warnings
 
 import torch
 
 from ..fallback import heavy_ball
+from ..schedule import kl_check_due
 from .base import StepInputs, StepResult, norms
-from .trust import kl_trust_scale
+from .trust import fisher_length_ratio, kl_trust_scale
 
 
 def _buffer_gradient_dots(blocks, buffers, inputs: StepInputs) -> list:
@@ -40,23 +51,42 @@ class FixedStep:
     needs_batch = False            # evaluates nothing on the recorded batch
     keeps_previous_update = False  # heavy-ball momentum lives in its own buffer
 
-    def __init__(self, interval: int = 1, batch_fraction: float = 1.0):
-        pass
+    def __init__(self, interval: int = 0, batch_fraction: float = 0.25):
+        self.interval = interval            # steps between checks of the KL bound; 0: never
+        self.batch_fraction = batch_fraction
+        self.length_ratio = 1.0             # exact / blocks' length of the proposal at the latest check
+        self.checks = 0
+        self.unavailable = False            # the model has an operation without forward-mode rules
 
     def wants_batch(self, step_index: int) -> bool:
-        return False
+        return self.interval > 0 and not self.unavailable and kl_check_due(step_index, self.interval)
+
+    def _check(self, inputs: StepInputs) -> None:
+        try:
+            ratio = fisher_length_ratio(inputs)
+        except (NotImplementedError, RuntimeError) as error:  # an operation without a forward-mode rule
+            self.unavailable = True
+            warnings.warn(f"step_rule='fixed' with rule_interval={self.interval}: the model's Jacobian-vector "
+                          f"products failed ({error}); the KL bound rests on the blocks' own model from now on.",
+                          stacklevel=6)
+            return
+        if math.isfinite(ratio) and ratio > 0:  # else the last measurement stands
+            self.length_ratio = ratio
+            self.checks += 1
 
     def updates(self, inputs: StepInputs) -> StepResult:
+        if inputs.evaluator is not None and self.wants_batch(inputs.step_index):
+            self._check(inputs)
         updates, scales, scale_of, states = {}, {}, {}, {}
         kl = predicted = 0.0
         for index, blocks in inputs.blocks_by_group.items():
             group = inputs.groups[index]
             lr, momentum = group["lr"], group["momentum"]
             dot = sum(inputs.dots[b][0] for b in blocks)
-            nu = kl_trust_scale(dot, lr, group["max_step_kl"])
+            nu = kl_trust_scale(dot * self.length_ratio, lr, group["max_step_kl"])
             scales[index] = nu
             step = lr * nu
-            kl += 0.5 * step * step * dot
+            kl += 0.5 * step * step * dot * self.length_ratio
             for block in blocks:
                 scale_of[block] = nu
             proposals = [inputs.directions[block][1] for block in blocks]
@@ -79,11 +109,13 @@ class FixedStep:
                     states[block]["momentum_buffer"] = d
         diagnostics = norms(inputs, scale_of)
         diagnostics.update(trust_scale=min(scales.values()) if scales else 1.0, trust_scale_by_group=scales,
-                           kl_estimate=kl, predicted_change=predicted)
+                           kl_estimate=kl, predicted_change=predicted,
+                           fisher_length_ratio=self.length_ratio if self.checks else None)
         return StepResult(updates, diagnostics, predicted_change=predicted, states=states)
 
     def state_dict(self) -> dict:
-        return {}
+        return {"length_ratio": self.length_ratio, "checks": self.checks}
 
     def load_state_dict(self, state: dict) -> None:
-        pass
+        self.length_ratio = float(state.get("length_ratio", 1.0))
+        self.checks = int(state.get("checks", 0))

@@ -28,7 +28,7 @@ from typing import Dict, List, Optional
 import torch
 
 from ..schedule import solve_due
-from .base import StepInputs, StepResult, blocks_in, group_of, norms
+from .base import StepInputs, StepResult, as_parameters, blocks_in, group_of, norms
 from .trust import kl_trust_scale
 
 
@@ -103,7 +103,7 @@ class QuadraticStep:
         if mu_cap > 0 and len(previous) == len(blocks) and blocks:
             span.append(previous)
         try:
-            loss, gram = inputs.evaluator.curvature_products([_as_parameters(v) for v in span])
+            loss, gram = inputs.evaluator.curvature_products([as_parameters(v) for v in span])
         except (NotImplementedError, RuntimeError) as error:  # an operation without a forward-mode rule
             self._give_up(error)
             return None
@@ -175,13 +175,3 @@ class QuadraticStep:
         self.alpha = state.get("alpha")
         self.solves = int(state.get("solves", 0))
 
-
-def _as_parameters(matrices: Dict[object, torch.Tensor]) -> dict:
-    """Block matrices as ``{parameter: tensor}`` for the forward-mode products."""
-    direction = {}
-    for block, matrix in matrices.items():
-        weight_part, bias_part = block.layer.split_matrix(matrix)
-        direction[block.layer.weight] = weight_part
-        if bias_part is not None:
-            direction[block.layer.bias] = bias_part
-    return direction
