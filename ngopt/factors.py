@@ -19,7 +19,7 @@ from typing import Optional, Tuple
 
 import torch
 
-from .linalg import damped_inverse
+from .linalg import damped_inverse, inversion_dtype, largest_eigenvalue_bound
 
 
 class Whole:
@@ -49,9 +49,14 @@ class Whole:
     def trace(self, factor: torch.Tensor) -> torch.Tensor:
         return factor.diagonal(dim1=-2, dim2=-1).sum()
 
-    def inverse(self, factor64: torch.Tensor, shift: float, want_spectrum: bool):
-        """``(inverse of factor + shift I, ascending undamped eigenvalues or None, used the eigen fallback)``."""
-        result = damped_inverse(factor64, shift, want_spectrum)
+    def inverse(self, factor64: torch.Tensor, shift: float, want_spectrum: bool,
+                precision: torch.dtype = torch.float64):
+        """``(inverse of factor + shift I, ascending undamped eigenvalues or None, used the eigen fallback)``.
+
+        ``precision``: the statistics' own dtype (single precision may be inverted in float32, see
+        :mod:`ngopt.linalg`); the inverse comes back in float64.
+        """
+        result = damped_inverse(factor64, shift, want_spectrum, precision)
         return result.inverse, result.eigenvalues, result.used_fallback
 
     def eigenvalues(self, factor64: torch.Tensor) -> torch.Tensor:
@@ -118,15 +123,16 @@ class BlockDiagonal(Whole):
             mask[self.dim:] = 1.0
         return torch.diag_embed(mask.reshape(self.count, self.block))
 
-    def inverse(self, factor64, shift, want_spectrum):
+    def inverse(self, factor64, shift, want_spectrum, precision=torch.float64):
         sym = 0.5 * (factor64 + factor64.transpose(1, 2))
         padded = sym + self._pad_mask(sym)
-        damped = padded + shift * torch.eye(self.block, dtype=sym.dtype)
+        dtype = inversion_dtype(largest_eigenvalue_bound(sym), shift, precision)  # the worst block decides
+        damped = (padded + shift * torch.eye(self.block, dtype=sym.dtype)).to(dtype)
         chol, info = torch.linalg.cholesky_ex(damped)
         # S^-1 = L^-T L^-1: batched triangular solves run far faster than a batch of cholesky_inverse.
-        eye = torch.eye(self.block, dtype=sym.dtype).expand_as(damped)
+        eye = torch.eye(self.block, dtype=dtype).expand_as(damped)
         lower_inverse = torch.linalg.solve_triangular(chol, eye, upper=False)
-        inverse = lower_inverse.transpose(1, 2) @ lower_inverse
+        inverse = (lower_inverse.transpose(1, 2) @ lower_inverse).to(torch.float64)
         failed = info.nonzero().squeeze(1)
         if failed.numel():
             # Numerically indefinite blocks only: their nearest positive semi-definite matrix, damped.

@@ -1,4 +1,4 @@
-"""Damping and inversion of curvature factors, in float64 on the CPU.
+"""Damping and inversion of curvature factors on the CPU: float64, or float32 where that is safe.
 
 Factored Tikhonov damping (Martens & Grosse 2015, sec. 6.3): the damped
 Kronecker block ``A (x) G + lambda I`` is approximated by
@@ -7,6 +7,15 @@ Kronecker block ``A (x) G + lambda I`` is approximated by
     pi = sqrt((tr A / dim A) / (tr G / dim G)),
 
 which keeps the product's scale balanced between the two factors.
+
+A factor whose statistics are single precision is inverted in float32 when the damping keeps it well
+conditioned: for a positive semi-definite ``S``, ``cond(S + shift I) <= (b + shift) / shift`` with ``b`` the
+smaller of its trace and its largest absolute row sum (both bound its largest eigenvalue), and a
+float32 Cholesky inverse is accurate to about ``cond * 6e-8`` relative, so up to
+:data:`SINGLE_PRECISION_CONDITION` the inverse is within about 1e-4 of the float64 one, far below the
+change the damping itself makes.  Float32 Cholesky and inverse ran 1.24x (d = 257) to 1.36x
+(d = 513) faster than float64 on a 2-core CPU (``python scripts/inversion_precision.py``).  Float64
+statistics are always inverted in float64.
 """
 from __future__ import annotations
 
@@ -17,6 +26,15 @@ from typing import Optional
 import torch
 
 _TINY = 1e-30
+SINGLE_PRECISION_CONDITION = 1e3
+
+
+def inversion_dtype(largest_eigenvalue_bound: float, shift: float, precision: torch.dtype) -> torch.dtype:
+    """float32 for single-precision statistics whose damped condition number is surely small, else float64."""
+    if precision == torch.float64 or not shift > 0:
+        return torch.float64
+    bound = (largest_eigenvalue_bound + shift) / shift
+    return torch.float32 if math.isfinite(bound) and bound <= SINGLE_PRECISION_CONDITION else torch.float64
 
 
 def factored_damping(trace_in: float, dim_in: int, trace_out: float, dim_out: int,
@@ -41,8 +59,17 @@ class DampedInverse:
     used_fallback: bool
 
 
-def damped_inverse(matrix: torch.Tensor, shift: float, want_spectrum: bool = False) -> DampedInverse:
-    """Invert ``matrix + shift I`` for a symmetric positive semi-definite ``matrix``.
+def largest_eigenvalue_bound(sym: torch.Tensor) -> float:
+    """An upper bound on the largest eigenvalue of each positive semi-definite matrix in ``sym`` (max over a
+    batch): the smaller of its trace and its largest absolute row sum (Gershgorin)."""
+    trace = sym.diagonal(dim1=-2, dim2=-1).sum(-1)
+    rows = sym.abs().sum(-1).amax(-1)
+    return float(torch.minimum(trace, rows).max())
+
+
+def damped_inverse(matrix: torch.Tensor, shift: float, want_spectrum: bool = False,
+                   precision: torch.dtype = torch.float64) -> DampedInverse:
+    """Invert ``matrix + shift I`` for a symmetric positive semi-definite ``matrix`` (float64).
 
     Cholesky is the fast path.  When the damped matrix is numerically indefinite
     (Cholesky fails) or the spectrum is wanted, an eigendecomposition is used
@@ -50,14 +77,17 @@ def damped_inverse(matrix: torch.Tensor, shift: float, want_spectrum: bool = Fal
     shift, which is the nearest positive semi-definite matrix in Frobenius norm
     (Higham 1988).  A statistic that is symmetric only up to rounding is replaced
     by its symmetric part first (both factorizations would read one triangle only).
+    ``precision`` is the statistics' own dtype: the Cholesky path runs in float32 where
+    :func:`inversion_dtype` allows; the inverse is returned in float64 either way.
     """
     sym = torch.add(matrix, matrix.T).mul_(0.5)
     if not want_spectrum:
-        damped = sym.clone()
+        dtype = inversion_dtype(largest_eigenvalue_bound(sym), shift, precision)
+        damped = sym.to(dtype, copy=True)
         damped.diagonal().add_(shift)  # in place: no identity matrix is built
         chol, info = torch.linalg.cholesky_ex(damped)
         if int(info) == 0:
-            return DampedInverse(torch.cholesky_inverse(chol), None, False)
+            return DampedInverse(torch.cholesky_inverse(chol).to(torch.float64), None, False)
     eigenvalues, vectors = torch.linalg.eigh(sym)
     clipped = eigenvalues.clamp(min=0.0) + shift
     inverse = (vectors / clipped) @ vectors.T

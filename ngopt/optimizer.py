@@ -11,8 +11,9 @@ One ``step()``:
 1. every ``stats_interval`` steps the forward/backward just run was recorded;
    its statistics are blended into the running averages (the first refresh
    sets them outright);
-2. every ``inverse_interval`` steps the damped factors are inverted on the CPU in
-   float64 (all blocks on one step, or each on its own: ``inversion_schedule.py``);
+2. every ``inverse_interval`` steps the damped factors are inverted on the CPU, in float64 or,
+   where the damping keeps single-precision statistics well conditioned, float32 (``linalg.py``;
+   all blocks on one step, or each on its own: ``inversion_schedule.py``);
 3. each block's gradient (plus ``weight_decay * w``) is preconditioned,
    ``delta = C^-1 grad``; the KL trust bound scales all blocks of a group by
    ``nu``; heavy-ball momentum ``buf = momentum * buf + nu * delta``;

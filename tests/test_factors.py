@@ -257,3 +257,19 @@ def test_a_pinned_name_that_is_no_block_is_a_warning_naming_the_blocks():
         opt.assign_curvature(torch.zeros(1, 4))
         ngopt.FisherDescent(nn.Sequential(nn.Linear(4, 3)), nn.CrossEntropyLoss(),
                             pinned_structures={"0": "diag"}).assign_curvature(torch.zeros(1, 4))
+
+
+def test_block_diagonal_single_precision_inverse_matches_float64_within_float32_accuracy():
+    # The worst-conditioned block decides the precision; cond <= 11 here, so float32's inverse is
+    # within ~1e-5 relative (Higham, Accuracy and Stability of Numerical Algorithms, ch. 14).
+    dim, block = 300, 64
+    form = BlockDiagonal(dim, block)
+    rows = random_rows(400, dim)
+    factor = form.zeros(rows)
+    form.add_moment(factor, rows)
+    shift = 0.1 * float(factor.diagonal(dim1=1, dim2=2).sum(-1).max())
+    single, _, _ = form.inverse(factor, shift, want_spectrum=False, precision=torch.float32)
+    double, _, _ = form.inverse(factor, shift, want_spectrum=False)
+    assert single.dtype == double.dtype == torch.float64
+    error = float((single - double).norm() / double.norm())
+    assert 1e-12 < error < 1e-5

@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 import torch
 
-from ngopt.linalg import damped_inverse, factored_damping
+from ngopt.linalg import damped_inverse, factored_damping, inversion_dtype
 
 
 def _spd(n, seed, rank=None):
@@ -74,3 +74,33 @@ def test_factored_damping_balances_the_factors_and_multiplies_to_lambda():
     # A dead factor has no scale: the shifts split evenly.
     assert factored_damping(0.0, 4, 0.6, 3, 1e-2) == pytest.approx((0.1, 0.1), rel=1e-12)
     assert all(math.isfinite(s) for s in factored_damping(1e300, 1, 1e-300, 1, 1e-2))
+
+
+# Single-precision statistics.  Cholesky in float32 has a backward error of order n * 6e-8 and the
+# inverse a relative error of order cond * 6e-8 (Higham, ch. 10 and 14); with cond <= 1e3 that is
+# ~1e-4 at worst, so 1e-4 relative (in the Frobenius norm) is the bound asserted.
+@pytest.mark.parametrize("n", [40, 300])
+def test_single_precision_statistics_are_inverted_in_float32_when_the_damping_keeps_them_well_conditioned(n):
+    matrix = _spd(n, seed=n)
+    shift = 0.1 * np.trace(matrix)  # cond <= (tr + shift) / shift = 11
+    assert inversion_dtype(np.trace(matrix), shift, torch.float32) == torch.float32
+    result = damped_inverse(torch.from_numpy(matrix), shift, precision=torch.float32)
+    expected = np.linalg.inv(matrix + shift * np.eye(n))
+    assert result.inverse.dtype == torch.float64
+    error = np.linalg.norm(result.inverse.numpy() - expected) / np.linalg.norm(expected)
+    assert 1e-12 < error < 1e-4  # float32 rounding shows: the fast path ran
+
+
+def test_a_badly_conditioned_single_precision_factor_is_inverted_in_float64():
+    matrix = _spd(40, seed=5)
+    shift = 1e-6 * np.trace(matrix)  # cond bound 1e6: float32 could lose every digit
+    assert inversion_dtype(np.trace(matrix), shift, torch.float32) == torch.float64
+    result = damped_inverse(torch.from_numpy(matrix), shift, precision=torch.float32)
+    expected = np.linalg.inv(matrix + shift * np.eye(40))
+    np.testing.assert_allclose(result.inverse.numpy(), expected, rtol=1e-6, atol=1e-6 * np.abs(expected).max())
+
+
+def test_double_precision_statistics_are_always_inverted_in_float64():
+    assert inversion_dtype(1.0, 10.0, torch.float64) == torch.float64
+    assert inversion_dtype(1.0, 0.0, torch.float32) == torch.float64
+    assert inversion_dtype(math.inf, 1.0, torch.float32) == torch.float64

@@ -137,7 +137,7 @@ class EmbeddingKroneckerBlock(LayerCurvature):
         factor_in = to_cpu64(statistics["factor_in"]).clamp(min=0.0)
         factor_out = to_cpu64(statistics["factor_out"])
         shift_in, shift_out = self._shifts(factor_in, factor_out, damping)
-        inv_out = damped_inverse(factor_out, shift_out, want_spectrum)
+        inv_out = damped_inverse(factor_out, shift_out, want_spectrum, statistics["factor_out"].dtype)
         ref = self.layer.weight
         info = {
             "in_trace": float(factor_in.sum()), "out_trace": float(factor_out.trace()),

@@ -104,8 +104,9 @@ class KroneckerBlock(LayerCurvature):
         factor_out = to_cpu64(statistics["factor_out"])
         trace_in, trace_out = float(self.form_in.trace(factor_in)), float(self.form_out.trace(factor_out))
         shift_in, shift_out = factored_damping(trace_in, self.form_in.dim, trace_out, self.form_out.dim, damping)
-        inv_in, eig_in, fallback_in = self.form_in.inverse(factor_in, shift_in, want_spectrum)
-        inv_out, eig_out, fallback_out = self.form_out.inverse(factor_out, shift_out, want_spectrum)
+        precision_in, precision_out = statistics["factor_in"].dtype, statistics["factor_out"].dtype
+        inv_in, eig_in, fallback_in = self.form_in.inverse(factor_in, shift_in, want_spectrum, precision_in)
+        inv_out, eig_out, fallback_out = self.form_out.inverse(factor_out, shift_out, want_spectrum, precision_out)
         ref = self.layer.weight
         info = {
             "in_trace": trace_in, "out_trace": trace_out,
