@@ -45,8 +45,8 @@ from .assignment import CurvatureAssignment, ParameterCurvature
 from .blocks.base import LayerCurvature
 from .capture import CaptureHooks, FisherSource
 from .inversion_schedule import INVERSION_SCHEDULES
-from .likelihoods import CRITERIA, likelihood_for
-from .quadratic_model import BatchEvaluator, replayable
+from .likelihoods import likelihood_for
+from .batch_evaluation import evaluator_for, model_change, not_replayable_message
 from .rules import DAMPING_RULES, STEP_RULES
 from .rules.base import StepInputs
 from .rules.damping import reduction_ratio
@@ -731,39 +731,19 @@ class FisherDescent(torch.optim.Optimizer):
     # ------------------------------------------------------------------ evaluations on the batch
     def _evaluator(self, batch, step_index: int, closure):
         """A :class:`BatchEvaluator` on this step's recorded batch when a rule needs one, else None."""
-        steered = self.rules.step.needs_batch
-        wanted = self.rules.step.wants_batch(step_index) or self.rules.damping.wants_ratio(step_index)
-        if not wanted:
-            return None
-        rule_wants = self.rules.step.wants_batch(step_index)
-        if closure is not None and not steered and not rule_wants:
-            return None  # the damping rule measures the closure's loss itself
-        problem = replayable(batch)
+        evaluator, problem = evaluator_for(self.rules, self.model, batch, step_index, closure is not None,
+                                           self.rule_batch_fraction)
         if problem:
-            if closure is None or steered or rule_wants:
-                self._warn_not_replayable(problem, rule_wants)
-            return None
-        # The rule's products need only a share of the rows; the damping rule's ratio compares the loss on
-        # the rows the step's prediction was made for: the whole batch, or the quadratic rule's share.
-        whole = self.rules.damping.wants_ratio(step_index) and not steered
-        return BatchEvaluator(self.model, batch, 1.0 if whole else self.rule_batch_fraction)
-
-    def _warn_not_replayable(self, problem: str, rule_wants: bool) -> None:
-        steered = self.rules.step.needs_batch
-        if steered or rule_wants:
-            rule = f"step_rule={self.step_rule!r}" + ("" if steered else f" with rule_interval={self.rule_interval}")
-            fallback = "the step falls back to the blocks' own model with the KL bound"
-        else:
-            rule, fallback = f"damping_rule={self.damping_rule!r}", "lambda stays as it is"
-        self._warn_once("replay", f"{rule} evaluates the loss on the recorded batch, but {problem}, so {fallback}. "
-                        "Compute the loss with F.cross_entropy/F.mse_loss/F.binary_cross_entropy_with_logits (or "
-                        "their criterion objects) from the model's output, or pass step(closure) for the "
-                        "damping rule.")
+            self._warn_once("replay", not_replayable_message(
+                problem, self.step_rule, self.damping_rule, self.rule_interval, self.rules.step.needs_batch,
+                self.rules.step.wants_batch(step_index)))
+        return evaluator
 
     def _adapt_damping(self, result, evaluator, batch, closure, loss) -> None:
         """Levenberg-Marquardt: the loss change on the same rows against the quadratic model's prediction."""
         # Before any re-evaluation: a closure's backward overwrites the gradients the model uses.
-        predicted = result.predicted_change if result.predicted_change is not None else self._model_change()
+        predicted = result.predicted_change if result.predicted_change is not None \
+            else model_change(self._applied, lambda block: self._block_group(block)["damping"])
         before = after = None
         if closure is not None and loss is not None:  # the closure defines the loss: it is honoured
             before = float(loss)
@@ -781,17 +761,6 @@ class FisherDescent(torch.optim.Optimizer):
             group["damping"] = self.rules.damping.adapt(group["damping"], rho)
         self._last_update.update(reduction_ratio=rho, actual_change=after - before,
                                  damping=self.param_groups[0]["damping"])
-
-    def _model_change(self) -> Optional[float]:
-        """``M(delta) = grad^T delta + delta^T C delta / 2`` for the update just applied (blocks only)."""
-        terms = []
-        for block, delta in self._applied.items():
-            layer = block.layer
-            group = self._block_group(block)
-            grad = layer.gradient_matrix(layer.weight.grad, layer.bias.grad if layer.has_bias else None)
-            curved = block.damped_product(delta, group["damping"])
-            terms.append((grad * delta).sum(dtype=torch.float64) + 0.5 * (delta * curved).sum(dtype=torch.float64))
-        return float(torch.stack(terms).sum()) if terms else 0.0  # one host sync for all blocks
 
     # ------------------------------------------------------------------ hooks, diagnostics, state
     @contextlib.contextmanager

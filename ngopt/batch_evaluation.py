@@ -1,0 +1,61 @@
+"""What the rules evaluate on the recorded batch: whether a step needs it, on which rows, and the
+quadratic model's predicted change for the Levenberg-Marquardt ratio.
+
+A step rule may want the batch (the quadratic rule's solves, the fixed rule's KL checks: the rule's
+``wants_batch``) and the damping rule may want the loss change on it (``wants_ratio``).  The batch is
+replayed from the training forward's recording (:mod:`ngopt.quadratic_model`); when it cannot be,
+:func:`evaluator_for` says why, and the optimizer warns once.
+"""
+from __future__ import annotations
+
+from typing import Callable, Dict, Optional, Tuple
+
+import torch
+
+from .quadratic_model import BatchEvaluator, replayable
+
+
+def evaluator_for(rules, model, batch, step_index: int, has_closure: bool,
+                  rule_batch_fraction: float) -> Tuple[Optional[BatchEvaluator], str]:
+    """``(evaluator or None, why the batch could not be replayed or "")`` for step ``step_index``.
+
+    The problem is reported only where someone would miss the evaluation: a step rule that wants the
+    batch, or the damping rule without a closure (with one, the closure's loss serves it).
+    """
+    steered = rules.step.needs_batch
+    rule_wants = rules.step.wants_batch(step_index)
+    ratio_wanted = rules.damping.wants_ratio(step_index)
+    if not (rule_wants or ratio_wanted):
+        return None, ""
+    if has_closure and not steered and not rule_wants:
+        return None, ""  # the damping rule measures the closure's loss itself
+    problem = replayable(batch)
+    if problem:
+        return None, problem if (not has_closure or steered or rule_wants) else ""
+    # The rule's products need only a share of the rows; the damping rule's ratio compares the loss on
+    # the rows the step's prediction was made for: the whole batch, or the quadratic rule's share.
+    whole = ratio_wanted and not steered
+    return BatchEvaluator(model, batch, 1.0 if whole else rule_batch_fraction), ""
+
+
+def not_replayable_message(problem: str, step_rule: str, damping_rule: str, rule_interval: int,
+                           steered: bool, rule_wants: bool) -> str:
+    if steered or rule_wants:
+        rule = f"step_rule={step_rule!r}" + ("" if steered else f" with rule_interval={rule_interval}")
+        fallback = "the step falls back to the blocks' own model with the KL bound"
+    else:
+        rule, fallback = f"damping_rule={damping_rule!r}", "lambda stays as it is"
+    return (f"{rule} evaluates the loss on the recorded batch, but {problem}, so {fallback}. Compute the loss "
+            "with F.cross_entropy/F.mse_loss/F.binary_cross_entropy_with_logits (or their criterion objects) "
+            "from the model's output, or pass step(closure) for the damping rule.")
+
+
+def model_change(applied: Dict[object, torch.Tensor], damping_of: Callable[[object], float]) -> float:
+    """``M(delta) = grad^T delta + delta^T C delta / 2`` for the block updates just applied."""
+    terms = []
+    for block, delta in applied.items():
+        layer = block.layer
+        grad = layer.gradient_matrix(layer.weight.grad, layer.bias.grad if layer.has_bias else None)
+        curved = block.damped_product(delta, damping_of(block))
+        terms.append((grad * delta).sum(dtype=torch.float64) + 0.5 * (delta * curved).sum(dtype=torch.float64))
+    return float(torch.stack(terms).sum()) if terms else 0.0  # one host sync for all blocks
