@@ -46,6 +46,7 @@ from .blocks.base import LayerCurvature
 from .capture import CaptureHooks, FisherSource
 from .inversion_schedule import INVERSION_SCHEDULES
 from .likelihoods import likelihood_for
+from .loss_scaling import UNSCALED_WITHOUT_SEEN_SCALE, step_loss_scale
 from .batch_evaluation import evaluator_for, model_change, not_replayable_message
 from .rules import DAMPING_RULES, STEP_RULES
 from .rules.base import StepInputs
@@ -390,29 +391,13 @@ class FisherDescent(torch.optim.Optimizer):
 
     def _loss_scale(self) -> Optional[float]:
         """The factor the loss was scaled by (1 without a scaler); None when the scaler found an overflow."""
-        found_inf = getattr(self, "found_inf", None)
-        if found_inf is None:
-            return 1.0
-        if float(found_inf) > 0:
-            return None
-        grad_scale = getattr(self, "grad_scale", None)
-        if grad_scale is not None:
-            # The gradients are still scaled: unscale them as GradScaler.unscale_ would (float64 reciprocal).
-            scale = float(grad_scale)
-            grads = [p.grad for p in self._trainable() if p.grad is not None]
-            if grads:
-                torch._foreach_mul_(grads, float(1.0 / torch.tensor(scale, dtype=torch.float64)))
-            return scale
-        seen = self._capture.loss_scale_seen()
-        if seen is None:
+        def warn_if_needed():
             if self._statistics_due(self._steps) or self._batch_due(self._steps):
-                self._warn_once("scale", "the loss scaler's gradients were unscaled before step() "
-                                "(scaler.unscale_(opt)), and the loss scale was not seen on the backward "
-                                "(scaler.scale(loss).backward()): the curvature statistics keep that scale. "
-                                "Call scaler.scale(loss).backward() right after the forward, without a "
-                                "torch function mode around it.")
-            return 1.0
-        return seen
+                self._warn_once("scale", UNSCALED_WITHOUT_SEEN_SCALE)
+
+        return step_loss_scale(getattr(self, "found_inf", None), getattr(self, "grad_scale", None),
+                               lambda: [p.grad for p in self._trainable() if p.grad is not None],
+                               self._capture.loss_scale_seen, warn_if_needed)
 
     def _check_found_losses(self) -> None:
         """A refresh with the sampled or exact Fisher needs a loss call (or a criterion to assume)."""
