@@ -215,7 +215,6 @@ class FisherDescent(torch.optim.Optimizer):
         self._times = {key: 0.0 for key in (*diagnostic_keys.STEP_TIME, diagnostic_keys.STEP_TOTAL)}
         self._last_update: dict = {}
         self._warned = set()
-        self._applied: dict = {}
         self._warned_fallback_share = False
 
         source = None if fisher == "empirical" else FisherSource(fisher, fisher_samples, self._generator_for)
@@ -653,7 +652,6 @@ class FisherDescent(torch.optim.Optimizer):
 
     def _apply_block_updates(self, updates) -> None:
         """``w += u`` for every block; the quadratic rule keeps ``u`` as the next step's momentum direction."""
-        self._applied = updates
         keep = self.rules.step.keeps_previous_update
         params, parts = [], []
         for block, update in updates.items():
@@ -728,7 +726,7 @@ class FisherDescent(torch.optim.Optimizer):
         """Levenberg-Marquardt: the loss change on the same rows against the quadratic model's prediction."""
         # Before any re-evaluation: a closure's backward overwrites the gradients the model uses.
         predicted = result.predicted_change if result.predicted_change is not None \
-            else model_change(self._applied, lambda block: self._block_group(block)["damping"])
+            else model_change(result.updates, lambda block: self._block_group(block)["damping"])
         before = after = None
         if closure is not None and loss is not None:  # the closure defines the loss: it is honoured
             before = float(loss)
