@@ -50,12 +50,16 @@ def not_replayable_message(problem: str, step_rule: str, damping_rule: str, rule
             "from the model's output, or pass step(closure) for the damping rule.")
 
 
-def model_change(applied: Dict[object, torch.Tensor], damping_of: Callable[[object], float]) -> float:
-    """``M(delta) = grad^T delta + delta^T C delta / 2`` for the block updates just applied."""
+def model_change(applied: Dict[object, torch.Tensor], scale: Dict[object, float],
+                 damping_of: Callable[[object], float]) -> float:
+    """``M(delta) = grad^T delta + delta^T C delta / 2`` for the block updates just applied,
+    ``delta = scale * u`` (``scale`` 1 where absent)."""
     terms = []
-    for block, delta in applied.items():
+    for block, update in applied.items():
+        s = scale.get(block, 1.0)
         layer = block.layer
         grad = layer.gradient_matrix(layer.weight.grad, layer.bias.grad if layer.has_bias else None)
-        curved = block.damped_product(delta, damping_of(block))
-        terms.append((grad * delta).sum(dtype=torch.float64) + 0.5 * (delta * curved).sum(dtype=torch.float64))
+        curved = block.damped_product(update, damping_of(block))
+        terms.append(s * (grad * update).sum(dtype=torch.float64)
+                     + 0.5 * s * s * (update * curved).sum(dtype=torch.float64))
     return float(torch.stack(terms).sum()) if terms else 0.0  # one host sync for all blocks

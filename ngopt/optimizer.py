@@ -507,7 +507,7 @@ class FisherDescent(torch.optim.Optimizer):
             block.info = dict(info, inversion_step=step_index)
         for block, entries in result.states.items():
             block.state.update(entries)
-        self._apply_block_updates(result.updates)
+        self._apply_block_updates(result.updates, result.update_scale)
         tick = time.perf_counter()
         for part in fallback:
             part.apply(self.state)
@@ -650,11 +650,13 @@ class FisherDescent(torch.optim.Optimizer):
                       actual_change=None)
         self._last_update = update if result.updates else {}
 
-    def _apply_block_updates(self, updates) -> None:
-        """``w += u`` for every block; the quadratic rule keeps ``u`` as the next step's momentum direction."""
+    def _apply_block_updates(self, updates, update_scale) -> None:
+        """``w += s * u`` for every block (``s`` from ``update_scale``, 1 where absent); the quadratic rule
+        keeps ``u`` as the next step's momentum direction."""
         keep = self.rules.step.keeps_previous_update
-        params, parts = [], []
+        by_scale: Dict[float, tuple] = {}  # one fused add per distinct factor (one per param group at most)
         for block, update in updates.items():
+            params, parts = by_scale.setdefault(update_scale.get(block, 1.0), ([], []))
             weight_part, bias_part = block.layer.split_matrix(update)
             for param, part in ((block.layer.weight, weight_part), (block.layer.bias, bias_part)):
                 if part is not None and param.grad is not None:
@@ -662,8 +664,9 @@ class FisherDescent(torch.optim.Optimizer):
                     parts.append(part)
             if keep:
                 block.state["previous_update"] = update
-        if params:
-            torch._foreach_add_(params, parts)
+        for scale, (params, parts) in by_scale.items():
+            if params:
+                torch._foreach_add_(params, parts, alpha=scale)
 
     def _fallback_updates(self) -> List["_FallbackUpdate"]:
         """Per param group, the fallback rule's changes to the parameters outside every block, unwritten."""
@@ -726,7 +729,7 @@ class FisherDescent(torch.optim.Optimizer):
         """Levenberg-Marquardt: the loss change on the same rows against the quadratic model's prediction."""
         # Before any re-evaluation: a closure's backward overwrites the gradients the model uses.
         predicted = result.predicted_change if result.predicted_change is not None \
-            else model_change(result.updates, lambda block: self._block_group(block)["damping"])
+            else model_change(result.updates, result.update_scale, lambda block: self._block_group(block)["damping"])
         before = after = None
         if closure is not None and loss is not None:  # the closure defines the loss: it is honoured
             before = float(loss)

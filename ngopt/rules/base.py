@@ -27,11 +27,16 @@ class StepInputs:
 
 @dataclass
 class StepResult:
-    updates: Dict[object, torch.Tensor]              # block -> change added to its weights (matrix layout)
+    updates: Dict[object, torch.Tensor]              # block -> change added to its weights (matrix layout),
+                                                     # times update_scale
     diagnostics: dict = field(default_factory=dict)
     loss_before: Optional[float] = None              # on the evaluator's rows, when the rule measured it
     predicted_change: Optional[float] = None         # M(delta) for the update returned; None: the blocks' model
     states: Dict[object, dict] = field(default_factory=dict)  # block -> state entries to keep if the step is written
+    # Each update is applied times this factor (1 where absent): a rule whose update is a multiple of a
+    # tensor it keeps anyway (the fixed rule's -lr * momentum buffer) hands over that tensor, so no
+    # parameter-sized copy of it is made.
+    update_scale: Dict[object, float] = field(default_factory=dict)
 
 
 def group_of(inputs: StepInputs) -> Dict[object, dict]:

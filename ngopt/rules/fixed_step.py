@@ -77,7 +77,7 @@ class FixedStep:
     def updates(self, inputs: StepInputs) -> StepResult:
         if inputs.evaluator is not None and self.wants_batch(inputs.step_index):
             self._check(inputs)
-        updates, scales, scale_of, states = {}, {}, {}, {}
+        updates, update_scale, scales, scale_of, states = {}, {}, {}, {}, {}
         kl = predicted = 0.0
         for index, blocks in inputs.blocks_by_group.items():
             group = inputs.groups[index]
@@ -93,7 +93,9 @@ class FixedStep:
             # One fused call per operation over the group's blocks (small layers are per-call overhead).
             buffers = [block.state.get("momentum_buffer") for block in blocks]
             directions = heavy_ball(buffers, proposals, momentum, scale=nu)
-            updates.update(zip(blocks, torch._foreach_mul(directions, -lr)))
+            # w -= lr * buf: the new buffer itself with its factor, not a scaled copy of it.
+            updates.update(zip(blocks, directions))
+            update_scale.update((block, -lr) for block in blocks)
             cross = _buffer_gradient_dots(blocks, buffers, inputs) if momentum else [0.0] * len(blocks)
             for block, buffer_dot in zip(blocks, cross):
                 previous = float(block.state["buffer_curvature"]) if momentum and "buffer_curvature" in block.state \
@@ -111,7 +113,7 @@ class FixedStep:
         diagnostics.update(trust_scale=min(scales.values()) if scales else 1.0, trust_scale_by_group=scales,
                            kl_estimate=kl, predicted_change=predicted,
                            fisher_length_ratio=self.length_ratio if self.checks else None)
-        return StepResult(updates, diagnostics, predicted_change=predicted, states=states)
+        return StepResult(updates, diagnostics, predicted_change=predicted, states=states, update_scale=update_scale)
 
     def state_dict(self) -> dict:
         return {"length_ratio": self.length_ratio, "checks": self.checks}
