@@ -204,7 +204,7 @@ class FisherDescent(torch.optim.Optimizer):
         self.inverse_schedule = inverse_schedule
         self._inversions = INVERSION_SCHEDULES[inverse_schedule]()
         self.loss_fn = loss_fn
-        self.rules = SimpleNamespace(step=STEP_RULES[step_rule](rule_interval, rule_batch_fraction),
+        self.rules = SimpleNamespace(step=STEP_RULES[step_rule](rule_interval),
                                      damping=DAMPING_RULES[damping_rule](damping_interval, damping_range))
         self.track_spectra = False
         # Set by ngopt.distributed to share statistics and inversions across ranks; None = one process.

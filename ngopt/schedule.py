@@ -65,13 +65,9 @@ def inversion_due(step_index: int, inverse_interval: int, phase: int = 0, warmup
     return ramped_interval_due(step_index, inverse_interval, warmup, phase)
 
 
-def solve_due(step_index: int, rule_interval: int) -> bool:
-    """The quadratic step rule solves for its step size and momentum on this step."""
-    return starts_interval(step_index, rule_interval)
-
-
-def kl_check_due(step_index: int, rule_interval: int) -> bool:
-    """The fixed step rule checks its KL bound against the exact Fisher on this step."""
+def rule_evaluation_due(step_index: int, rule_interval: int) -> bool:
+    """The step rule evaluates on the recorded batch this step: the quadratic rule solves for its step
+    size and momentum, the fixed rule checks its KL bound against the exact Fisher."""
     return starts_interval(step_index, rule_interval)
 
 

@@ -59,7 +59,7 @@ def test_the_optimizer_works_on_the_steps_the_schedule_names(warmup):
     assert measured == [t for t in range(16) if schedule.damping_due(t, 5)] == [4, 9, 14]  # no ramp
 
 
-@pytest.mark.parametrize("name", ["statistics_due", "inversion_due", "solve_due", "damping_due", "resync_due"])
+@pytest.mark.parametrize("name", ["statistics_due", "inversion_due", "rule_evaluation_due", "damping_due", "resync_due"])
 def test_every_question_has_the_interval_as_its_second_argument(name):
     due = getattr(schedule, name)
     assert [t for t in range(6) if due(t, 1)] == list(range(6))  # an interval of 1: every step

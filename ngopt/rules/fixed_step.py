@@ -29,7 +29,7 @@ import warnings
 import torch
 
 from ..fallback import heavy_ball
-from ..schedule import kl_check_due
+from ..schedule import rule_evaluation_due
 from .base import StepInputs, StepResult, norms
 from .trust import fisher_length_ratio, kl_trust_scale
 
@@ -51,15 +51,14 @@ class FixedStep:
     needs_batch = False            # evaluates nothing on the recorded batch
     keeps_previous_update = False  # heavy-ball momentum lives in its own buffer
 
-    def __init__(self, interval: int = 0, batch_fraction: float = 0.25):
+    def __init__(self, interval: int = 0):
         self.interval = interval            # steps between checks of the KL bound; 0: never
-        self.batch_fraction = batch_fraction
         self.length_ratio = 1.0             # exact / blocks' length of the proposal at the latest check
         self.checks = 0
         self.unavailable = False            # the model has an operation without forward-mode rules
 
     def wants_batch(self, step_index: int) -> bool:
-        return self.interval > 0 and not self.unavailable and kl_check_due(step_index, self.interval)
+        return self.interval > 0 and not self.unavailable and rule_evaluation_due(step_index, self.interval)
 
     def _check(self, inputs: StepInputs) -> None:
         try:

@@ -27,7 +27,7 @@ from typing import Dict, List, Optional
 
 import torch
 
-from ..schedule import solve_due
+from ..schedule import rule_evaluation_due
 from .base import StepInputs, StepResult, as_parameters, blocks_in, group_of, norms
 from .trust import kl_trust_scale
 
@@ -67,9 +67,8 @@ class QuadraticStep:
     needs_batch = True             # its 2x2 system is built on the recorded batch
     keeps_previous_update = True   # delta_0, the second direction of the span
 
-    def __init__(self, interval: int = 1, batch_fraction: float = 0.25):
+    def __init__(self, interval: int = 1):
         self.interval = interval
-        self.batch_fraction = batch_fraction
         self.alpha: Optional[float] = None   # from the latest solve, reused between solves
         self.solves = 0
         self.unavailable = False             # the model has an operation without forward-mode rules
@@ -77,7 +76,7 @@ class QuadraticStep:
     def wants_batch(self, step_index: int) -> bool:
         if self.unavailable:
             return False
-        return solve_due(step_index, self.interval) or self.alpha is None
+        return rule_evaluation_due(step_index, self.interval) or self.alpha is None
 
     def _give_up(self, error: Exception) -> None:
         self.unavailable = True
