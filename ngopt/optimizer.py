@@ -496,8 +496,11 @@ class FisherDescent(torch.optim.Optimizer):
         fallback = self._fallback_updates()
         self._times["fallback"] += time.perf_counter() - tick
         # One check of everything the step would write; nothing is written before it passes.
+        # A block update is applied times its factor: its norm is scaled to the norm of what is written.
         written = list(result.updates.values()) + [t for part in fallback for t in part.tensors()]
-        if not _all_finite(written) or not _finite_numbers(result.diagnostics):
+        factors = [abs(result.update_scale.get(block, 1.0)) for block in result.updates]
+        factors += [1.0] * (len(written) - len(factors))
+        if not _all_finite(written, factors) or not _finite_numbers(result.diagnostics):
             return "nonfinite_update"
 
         for block, tensors in statistics.items():
@@ -856,9 +859,15 @@ def _finite_numbers(values: dict) -> bool:
     return all(math.isfinite(v) for v in values.values() if isinstance(v, float))
 
 
-def _all_finite(tensors: List[torch.Tensor]) -> bool:
-    """Whether every entry of every tensor is finite: one fused reduction and one host sync."""
-    return not tensors or bool(torch.isfinite(torch.stack(torch._foreach_norm(tensors))).all())
+def _all_finite(tensors: List[torch.Tensor], factors: Optional[List[float]] = None) -> bool:
+    """Whether every entry of every tensor (times its factor, when given) is finite: one fused reduction
+    and one host sync."""
+    if not tensors:
+        return True
+    norms = torch._foreach_norm(tensors)
+    if factors is not None:
+        norms = torch._foreach_mul(norms, factors)
+    return bool(torch.isfinite(torch.stack(norms)).all())
 
 
 def _refuse_sparse_embeddings(model: nn.Module) -> None:

@@ -676,3 +676,20 @@ def test_an_update_that_overflows_skips_the_step_and_writes_no_state(fallback, o
         opt.step()
     assert opt.diagnostics()["skip_reasons"]["nonfinite_update"] == 1
     assert_same_snapshot(snapshot(model, opt), before)
+
+
+def test_an_update_that_overflows_only_once_scaled_by_lr_skips_the_step():
+    # The fixed rule hands over its momentum buffer with the factor -lr: here the buffer (~1e4) and
+    # every diagnostic are finite, and only lr * buffer overflows float32 (max ~3.4e38).
+    torch.manual_seed(0)
+    model = nn.Linear(3, 2)
+    x, y = torch.randn(8, 3), 1e4 * torch.randn(8, 2)
+    opt = quiet_optimizer(model, nn.MSELoss(), lr=1e38, momentum=0.0, max_step_kl=None)
+    before = snapshot(model, opt)
+    opt.zero_grad()
+    nn.functional.mse_loss(model(x), y).backward()
+    with pytest.warns(UserWarning, match="skipped"):
+        opt.step()
+    assert opt.diagnostics()["skip_reasons"]["nonfinite_update"] == 1
+    for p, q in zip(model.parameters(), before[0]):
+        assert torch.equal(p, q)
