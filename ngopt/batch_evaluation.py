@@ -50,6 +50,30 @@ def not_replayable_message(problem: str, step_rule: str, damping_rule: str, rule
             "from the model's output, or pass step(closure) for the damping rule.")
 
 
+def loss_change(result, evaluator, closure, loss, no_capture: Callable,
+                damping_of: Callable[[object], float]) -> Optional[Tuple[float, float, float]]:
+    """``(loss before, loss after, predicted change)`` of the step just written, on the same rows; None
+    when there is nothing to measure it on.
+
+    With a closure the closure defines the loss and is evaluated again (inside ``no_capture()``);
+    else the evaluator replays the recorded batch.  The prediction is the rule's own, or the blocks'
+    quadratic model of the applied updates.
+    """
+    # Before any re-evaluation: a closure's backward overwrites the gradients the model uses.
+    predicted = result.predicted_change if result.predicted_change is not None \
+        else model_change(result.updates, result.update_scale, damping_of)
+    if closure is not None and loss is not None:
+        before = float(loss)
+        with no_capture(), torch.enable_grad():
+            after = float(closure().detach())
+    elif evaluator is not None:
+        before = result.loss_before if result.loss_before is not None else evaluator.recorded_loss()
+        after = evaluator.loss()
+    else:
+        return None
+    return before, after, predicted
+
+
 def model_change(applied: Dict[object, torch.Tensor], scale: Dict[object, float],
                  damping_of: Callable[[object], float]) -> float:
     """``M(delta) = grad^T delta + delta^T C delta / 2`` for the block updates just applied,

@@ -499,3 +499,30 @@ class CaptureHooks:
         self.records.clear()
         for block in blocks:
             block.clear_pending()
+
+    def check_losses(self, fisher: str, loss_fn) -> Optional[str]:
+        """Before a refresh with the sampled or exact Fisher: every recorded forward needs a loss call
+        (or ``loss_fn`` to assume one).  Raises (after :meth:`discard`) where none can be had; returns a
+        warning when the curvature was taken at the model's output for want of a loss call, else None."""
+        if fisher == "empirical":
+            return None
+        for record in self.records:
+            if not record.statistics or record.losses:
+                continue
+            if record.unsupported_losses:
+                self.discard()
+                raise RuntimeError(f"fisher={fisher!r}: the training loss has no closed-form curvature: "
+                                   f"{record.unsupported_losses[0]}. Use fisher='empirical'.")
+            if record.calls and loss_fn is None:
+                self.discard()
+                raise RuntimeError(f"fisher={fisher!r} found no loss call after the recorded forward "
+                                   "(F.cross_entropy, F.mse_loss, F.binary_cross_entropy_with_logits or their "
+                                   "criterion objects, in your code or inside the model); pass loss_fn=... to "
+                                   "say which likelihood the model's output has, or use fisher='empirical'")
+        if not self.forwards_without_loss:
+            return None
+        self.forwards_without_loss = 0
+        return (f"fisher={fisher!r}: no loss call was seen after a recorded training forward, so the curvature "
+                f"was taken at the model's output as if {type(loss_fn).__name__} were applied to it directly. "
+                "That is wrong if your code reshapes, slices or scales the output first, or computes the loss "
+                "with a function ngopt does not know.")

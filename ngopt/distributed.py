@@ -177,22 +177,23 @@ class CurvatureCommunicator:
                        "inversions_here": 0}
 
     # -- the two calls the optimizer makes -------------------------------------------------------------
-    def average_statistics(self, opt, batches: Dict[LayerCurvature, dict],
-                           projected: bool = False) -> Dict[LayerCurvature, dict]:
-        """``batches`` averaged over the ranks; called on every step, exchanges only when a refresh is due.
+    def average_statistics(self, blocks: Sequence[LayerCurvature], batches: Dict[LayerCurvature, dict],
+                           due: bool, projected: bool = False) -> Dict[LayerCurvature, dict]:
+        """``batches`` averaged over the ranks; called on every step, exchanges only when ``due`` (a refresh).
 
+        ``blocks``: every block of the optimizer, in its order (the same on every rank);
         ``projected``: the second-phase statistics (EKFAC's scales) of the blocks that have them.
         """
         if self.world_size == 1:
             return batches
-        if not self._blocks_checked and opt.blocks:
+        if not self._blocks_checked and blocks:
             # Blocks are built at the first recorded forward, after share_curvature: check them once,
             # on the first step that has them (the same step on every rank).
             self._blocks_checked = True
-            self.check_same_setup(opt)
-        if not opt.statistics_due():
+            self.check_same_setup(self._opt)
+        if not due:
             return batches
-        blocks = list(opt.blocks.values())
+        blocks = list(blocks)
         if projected:
             blocks = [b for b in blocks if b.projected_keys]
         averaged: Dict[LayerCurvature, dict] = {}
@@ -204,12 +205,14 @@ class CurvatureCommunicator:
         self.totals["statistics_exchanges"] += 1
         return averaged
 
-    def invert(self, opt, jobs: Sequence[Tuple[LayerCurvature, dict, float]]):
+    def invert(self, blocks: Sequence[LayerCurvature], jobs: Sequence[Tuple[LayerCurvature, dict, float]],
+               track_spectra: bool = False):
         """``{block: (tensors, info)}`` as ``block.prepare_inverse`` gives it, the same on every rank.
 
+        ``blocks``: every block of the optimizer (a peer's results are matched to them by name).
         Sharded blocks carry their owner's bits; blocks every rank inverts itself agree to within rounding.
         """
-        want = opt.track_spectra
+        want = track_spectra
         sharding = self.shard_inversions and self.world_size > 1
         shared = [job for job in jobs if sharding and _has_own_inverse(job[0])]
         local = [job for job in jobs if not (sharding and _has_own_inverse(job[0]))]
@@ -226,7 +229,7 @@ class CurvatureCommunicator:
         except Exception as exc:  # sent to the peers so that they fail too instead of waiting
             error = exc
         self.totals["inversions_here"] += len(mine)
-        received = self._exchange_inverses(opt, mine, error)
+        received = self._exchange_inverses(blocks, mine, error)
         results.update(received)
         results.update(mine)
         return {block: results[block] for block, _, _ in jobs}
@@ -302,7 +305,7 @@ class CurvatureCommunicator:
         if clock:
             self.totals[clock] += time.perf_counter() - started
 
-    def _exchange_inverses(self, opt, mine, error):
+    def _exchange_inverses(self, blocks, mine, error):
         """Share every owner's results (sizes first, then one collective); returns the blocks others computed."""
         payload = encode_inverses(mine, error, self.rank, self.device)
         sizes = [torch.zeros(1, dtype=torch.int64, device=self.device) for _ in range(self.world_size)]
@@ -318,7 +321,7 @@ class CurvatureCommunicator:
             buffers = self._reduce_payloads(payload, sizes)
         self.totals["inverse_exchanges"] += 1
         self.totals["inverse_bytes"] += int(inverse_exchange_bytes(sizes, collective))
-        by_name = {block.layer.name: block for block in opt.blocks.values()}
+        by_name = {block.layer.name: block for block in blocks}
         received, errors = {}, []
         for rank, buffer in enumerate(buffers):
             entries, peer_error = decode_inverses(buffer, by_name)

@@ -87,6 +87,7 @@ from torch import nn
 from torch.func import functional_call, hessian, jacrev, vmap
 
 from .likelihoods import criterion_arguments, likelihood_for, likelihood_from_arguments
+from .step_pipeline import PendingStep, add_projected_statistics, new_inverses, new_statistics
 from .uses.recorder import record_uses
 
 __all__ = ["probe_fisher_quality", "exact_layer_fisher", "fresh_blocks", "far_from_fisher",
@@ -333,20 +334,23 @@ def fresh_blocks(blocks: dict, model: nn.Module, loss_fn, inputs: torch.Tensor, 
         term = known.index(use.key) if use.key in known else 0
         rows = use.output_rows(torch.stack(grads).detach())
         fresh[name].add_capture(use.input_rows, rows, scale * use.weight_scale, 0, term=term)
-    built = {}
-    for name, block in fresh.items():
-        statistics = block.batch_statistics(1)
+    # The blocks' own first refresh, on this batch alone (an EKFAC block inverts to find its basis).
+    blocks = list(fresh.values())
+    forwards = {block: 1 for block in blocks}
+    try:
+        statistics = new_statistics(blocks, forwards, stats_memory=0.0)
         if statistics is None:
-            continue
-        block.commit(statistics)
-        if block.projected_keys:
-            tensors, _ = block.prepare_inverse(block.state, damping[name], False)
-            block.commit(tensors)
-            block.commit(block.blend_projected(block.projected_batch_statistics(block.state, 1),
-                                               block.state, True, 0.0))
-        block.clear_pending()
-        built[name] = block
-    return built
+            raise ValueError("the probe batch gives non-finite curvature statistics")
+        names = {block: name for name, block in fresh.items()}
+        inverses = new_inverses([(b, statistics[b], damping[names[b]]) for b in blocks
+                                 if b.projected_keys and b in statistics])
+        if inverses is None or not add_projected_statistics(blocks, statistics, inverses, forwards, 0.0):
+            raise ValueError("the probe batch gives non-finite curvature statistics")
+        PendingStep(statistics, inverses).write_curvature(step_index=0)
+    finally:
+        for block in blocks:
+            block.clear_pending()
+    return {name: block for name, block in fresh.items() if block in statistics}
 
 
 # --------------------------------------------------------------------------

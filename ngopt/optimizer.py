@@ -4,7 +4,8 @@ The optimizer only schedules and composes: capture hooks (``capture.py``)
 record layer inputs and output gradients, curvature blocks (``blocks/``) turn
 them into statistics, inverses and preconditioned directions, the step and damping
 rules (``rules/``) scale the update and adapt lambda, and ``fallback.py`` moves the
-parameters outside every block.
+parameters outside every block; ``step_pipeline.py`` holds the stages of one step
+and the check-then-write of everything it changes.
 
 One ``step()``:
 
@@ -30,8 +31,6 @@ import contextlib
 import math
 import time
 import warnings
-from collections import ChainMap
-from dataclasses import dataclass
 from types import SimpleNamespace
 from typing import Callable, Dict, List, Optional
 
@@ -39,7 +38,6 @@ import torch
 from torch import nn
 
 from . import diagnostic_keys
-from . import fallback as fallback_rules
 from . import schedule
 from .assignment import CurvatureAssignment, ParameterCurvature
 from .blocks.base import LayerCurvature
@@ -47,11 +45,13 @@ from .capture import CaptureHooks, FisherSource
 from .inversion_schedule import INVERSION_SCHEDULES
 from .likelihoods import likelihood_for
 from .loss_scaling import UNSCALED_WITHOUT_SEEN_SCALE, step_loss_scale
-from .batch_evaluation import evaluator_for, model_change, not_replayable_message
+from .batch_evaluation import evaluator_for, loss_change, not_replayable_message
 from .rules import DAMPING_RULES, STEP_RULES
 from .rules.base import StepInputs
 from .rules.damping import reduction_ratio
 from .spectra import block_summary
+from .step_pipeline import (PendingStep, add_projected_statistics, all_finite, fallback_changes, new_inverses,
+                            new_statistics, proposals)
 from .validation import check_arguments
 
 DEFAULT_FALLBACK_LR_SCALE = {"sgd": 1.0, "adam": 1e-2}
@@ -376,7 +376,9 @@ class FisherDescent(torch.optim.Optimizer):
         if batch is not None and relative != 1.0:
             for call in batch.losses:
                 call.rescale(1.0 / relative)
-        self._check_found_losses()
+        warning = self._capture.check_losses(self.fisher, self.loss_fn)
+        if warning:
+            self._warn_once("output", warning)
         reason = self._attempt(loss, step_index, batch, closure, relative)
         if loss is not None and self._last_update:
             self._last_update["loss"] = float(loss)
@@ -397,31 +399,6 @@ class FisherDescent(torch.optim.Optimizer):
         return step_loss_scale(getattr(self, "found_inf", None), getattr(self, "grad_scale", None),
                                lambda: [p.grad for p in self._trainable() if p.grad is not None],
                                self._capture.loss_scale_seen, warn_if_needed)
-
-    def _check_found_losses(self) -> None:
-        """A refresh with the sampled or exact Fisher needs a loss call (or a criterion to assume)."""
-        if self.fisher == "empirical":
-            return
-        for record in self._capture.records:
-            if not record.statistics or record.losses:
-                continue
-            if record.unsupported_losses:
-                self._capture.discard()
-                raise RuntimeError(f"fisher={self.fisher!r}: the training loss has no closed-form curvature: "
-                                   f"{record.unsupported_losses[0]}. Use fisher='empirical'.")
-            if record.calls and self.loss_fn is None:
-                self._capture.discard()
-                raise RuntimeError(f"fisher={self.fisher!r} found no loss call after the recorded forward "
-                                   "(F.cross_entropy, F.mse_loss, F.binary_cross_entropy_with_logits or their "
-                                   "criterion objects, in your code or inside the model); pass loss_fn=... to "
-                                   "say which likelihood the model's output has, or use fisher='empirical'")
-        if self._capture.forwards_without_loss:
-            self._capture.forwards_without_loss = 0
-            self._warn_once("output", f"fisher={self.fisher!r}: no loss call was seen after a recorded training "
-                            f"forward, so the curvature was taken at the model's output as if "
-                            f"{type(self.loss_fn).__name__} were applied to it directly. That is wrong if your "
-                            "code reshapes, slices or scales the output first, or computes the loss with a "
-                            "function ngopt does not know.")
 
     def _warn_once(self, key: str, message: str) -> None:
         if key not in self._warned:
@@ -454,73 +431,71 @@ class FisherDescent(torch.optim.Optimizer):
         return self.rules.step.wants_batch(step_index) or self.rules.damping.wants_ratio(step_index)
 
     def _attempt(self, loss, step_index: int, batch, closure, loss_scale: float = 1.0) -> Optional[str]:
-        """Compute the whole step, then write it; return a skip reason instead of writing."""
+        """Compute the whole step (``step_pipeline.py``), then write it; return a skip reason instead of writing."""
         if loss is not None and not self._finite_everywhere(loss):
             self._capture.discard()
             return "nonfinite_loss"
-        grads = [p.grad for g in self.param_groups for p in g["params"] if p.grad is not None]
-        if not _all_finite(grads):
+        if not all_finite([p.grad for g in self.param_groups for p in g["params"] if p.grad is not None]):
             self._capture.discard()
             return "nonfinite_gradient"
-
+        blocks = list(self.blocks.values())
+        pending = PendingStep()
         try:
-            tick = time.perf_counter()
-            statistics, forwards = self._new_statistics(loss_scale)
-            self._times["statistics"] += time.perf_counter() - tick
-            if statistics is None:
+            with self._timed("statistics"):
+                forwards = self._capture.hand_over()
+                pending.statistics = new_statistics(blocks, forwards, self.stats_memory, loss_scale,
+                                                    self._statistics_sharing(blocks))
+            if pending.statistics is None:
                 return "nonfinite_statistics"
-            tick = time.perf_counter()
-            inverses = self._new_inverses(statistics, step_index)
-            self._times["inversion"] += time.perf_counter() - tick
-            if inverses is None:
+            with self._timed("inversion"):
+                pending.inverses = new_inverses(self._inversion_jobs(blocks, pending.statistics, step_index),
+                                                self._inversion_sharing(blocks), self.track_spectra)
+            if pending.inverses is None:
                 return "nonfinite_statistics"
-            tick = time.perf_counter()
-            if not self._add_projected_statistics(statistics, inverses, forwards, loss_scale):
-                return "nonfinite_statistics"
-            self._times["statistics"] += time.perf_counter() - tick
+            with self._timed("statistics"):
+                if not add_projected_statistics(blocks, pending.statistics, pending.inverses, forwards,
+                                                self.stats_memory, loss_scale,
+                                                self._statistics_sharing(blocks, projected=True)):
+                    return "nonfinite_statistics"
         finally:
-            for block in self.blocks.values():
+            for block in blocks:
                 block.clear_pending()
 
-        tick = time.perf_counter()
-        inputs = self._step_inputs(statistics, inverses, step_index)
-        self._times["precondition"] += time.perf_counter() - tick
-        if inputs is None:
-            return "nonfinite_update"
-        tick = time.perf_counter()
-        evaluator = self._evaluator(batch, step_index, closure)
-        inputs.evaluator = evaluator if self.rules.step.wants_batch(step_index) else None
-        result = self.rules.step.updates(inputs)
-        self._times["rules"] += time.perf_counter() - tick
-        tick = time.perf_counter()
-        fallback = self._fallback_updates()
-        self._times["fallback"] += time.perf_counter() - tick
+        with self._timed("precondition"):
+            average = self.communicator.average_scalars if self.communicator is not None else (lambda *v: v)
+            inputs, missing = proposals(blocks, self.param_groups, self.group_index, pending.statistics,
+                                        pending.inverses, step_index, average)
+            if inputs is None:
+                return "nonfinite_update"
+            self._refuse_blocks_without_statistics(missing, bool(pending.statistics))
+        with self._timed("rules"):
+            evaluator = self._evaluator(batch, step_index, closure)
+            inputs.evaluator = evaluator if self.rules.step.wants_batch(step_index) else None
+            pending.result = self.rules.step.updates(inputs)
+        with self._timed("fallback"):
+            pending.fallback = fallback_changes(self.param_groups, self._assignment.block_of, self.state)
         # One check of everything the step would write; nothing is written before it passes.
-        # A block update is applied times its factor: its norm is scaled to the norm of what is written.
-        written = list(result.updates.values()) + [t for part in fallback for t in part.tensors()]
-        factors = [abs(result.update_scale.get(block, 1.0)) for block in result.updates]
-        factors += [1.0] * (len(written) - len(factors))
-        if not _all_finite(written, factors) or not _finite_numbers(result.diagnostics):
+        if not pending.finite():
             return "nonfinite_update"
 
-        for block, tensors in statistics.items():
-            block.commit(tensors)
-        for block, (tensors, info) in inverses.items():
-            block.commit(tensors)
-            block.info = dict(info, inversion_step=step_index)
-        for block, entries in result.states.items():
-            block.state.update(entries)
-        self._apply_block_updates(result.updates, result.update_scale)
-        tick = time.perf_counter()
-        for part in fallback:
-            part.apply(self.state)
-        self._times["fallback"] += time.perf_counter() - tick
-        self._record_update(result)
+        pending.write_curvature(step_index)
+        pending.write_block_updates(keep_previous=self.rules.step.keeps_previous_update)
+        with self._timed("fallback"):
+            pending.write_fallback(self.state)
+        self._record_update(pending.result)
         if self.rules.damping.wants_ratio(step_index):
-            tick = time.perf_counter()
-            self._adapt_damping(result, evaluator, batch, closure, loss)
-            self._times["rules"] += time.perf_counter() - tick
+            with self._timed("rules"):
+                self._adapt_damping(pending.result, evaluator, closure, loss)
         return None
+
+    @contextlib.contextmanager
+    def _timed(self, part: str):
+        """Adds the seconds spent inside to ``diagnostics()["time"][part]``."""
+        started = time.perf_counter()
+        try:
+            yield
+        finally:
+            self._times[part] += time.perf_counter() - started
 
     def _finite_everywhere(self, loss) -> bool:
         """Whether the loss is finite on every rank: a skip must be a joint decision."""
@@ -529,122 +504,29 @@ class FisherDescent(torch.optim.Optimizer):
             finite = self.communicator.average_scalars(float(finite))[0] == 1.0
         return finite
 
-    def _new_statistics(self, loss_scale: float = 1.0):
-        """``({block: blended statistics}, {block: forwards seen})``; statistics None if non-finite.
+    def _statistics_sharing(self, blocks, projected: bool = False) -> Optional[Callable]:
+        """Averages batch statistics over the ranks (None in one process)."""
+        if self.communicator is None:
+            return None
+        due = self.statistics_due()
+        return lambda batches: self.communicator.average_statistics(blocks, batches, due, projected=projected)
 
-        The captures stay pending: blocks with projected statistics need them once more.
-        """
-        forwards = self._capture.hand_over()
-        batches = {}
-        for block in self.blocks.values():
-            if block in forwards:
-                batch = block.batch_statistics(forwards[block])
-                if batch is not None:
-                    batches[block] = block.unscaled(batch, loss_scale)
-        if self.communicator is not None:
-            batches = self.communicator.average_statistics(self, batches)
-        statistics = {block: block.blend(batch, self.stats_memory) for block, batch in batches.items()}
-        tensors = [t for stats in statistics.values() for t in stats.values()]
-        if not _all_finite(tensors):
-            return None, forwards
-        return statistics, forwards
+    def _inversion_sharing(self, blocks) -> Optional[Callable]:
+        """Shares the inversions over the ranks (None in one process)."""
+        if self.communicator is None:
+            return None
+        return lambda jobs: self.communicator.invert(blocks, jobs, self.track_spectra)
 
-    def _add_projected_statistics(self, statistics, inverses, forwards, loss_scale: float = 1.0) -> bool:
-        """Second phase for blocks whose statistics live in a basis the inversion makes (EKFAC).
-
-        Adds them to ``statistics``; False if any is non-finite.
-        """
-        blocks = [b for b in self.blocks.values() if b.projected_keys and (b in statistics or b in inverses)]
-        if not blocks:
-            return True
-        views = {b: self._tentative_view(b, statistics, inverses) for b in blocks}
-        batches = {}
-        for block in blocks:
-            if block in statistics and block in forwards:
-                batch = block.projected_batch_statistics(views[block], forwards[block])
-                if batch is not None:
-                    batches[block] = block.unscaled(batch, loss_scale)
-        if self.communicator is not None:
-            batches = self.communicator.average_statistics(self, batches, projected=True)
-        new = {}
-        for block in blocks:
-            new[block] = block.blend_projected(batches.get(block), views[block], block in inverses,
-                                               self.stats_memory)
-        if not _all_finite([t for tensors in new.values() for t in tensors.values()]):
-            return False
-        for block, tensors in new.items():
-            if tensors:
-                statistics.setdefault(block, {}).update(tensors)
-        return True
-
-    @staticmethod
-    def _tentative_view(block, statistics, inverses):
-        """The block's tensors as this step will leave them: new ones first, then the committed state."""
-        if block not in inverses and block not in statistics:
-            return block.state
-        return ChainMap(inverses[block][0] if block in inverses else {}, statistics.get(block, {}), block.state)
-
-    def _new_inverses(self, statistics, step_index: int):
-        """``{block: (tensors, info)}`` for the blocks due an inversion, or None if non-finite."""
-        blocks = list(self.blocks.values())
+    def _inversion_jobs(self, blocks, statistics, step_index: int) -> list:
+        """``[(block, statistics, damping)]`` for the blocks whose inversion the schedule makes due now,
+        and for those with their first statistics."""
         jobs = []
         for block in blocks:
             due = self._inversions.due(block, step_index, self.inverse_interval, blocks, self.interval_warmup)
             fresh = block in statistics
             if (due and (fresh or block.has_statistics)) or (fresh and not block.has_inverse):
-                damping = self._block_group(block)["damping"]
-                jobs.append((block, statistics[block] if fresh else block.state, damping))
-        if self.communicator is not None:
-            inverses = self.communicator.invert(self, jobs)
-        else:
-            inverses = {block: block.prepare_inverse(stats, damping, self.track_spectra)
-                        for block, stats, damping in jobs}
-        tensors = [t for new, _ in inverses.values() for t in new.values()]
-        if not _all_finite(tensors):
-            return None
-        return inverses
-
-    def _step_inputs(self, statistics, inverses, step_index: int):
-        """Every block's gradient matrix and preconditioned gradient, with their dot products."""
-        directions = {}
-        per_group: Dict[int, List] = {}
-        missing: List[LayerCurvature] = []  # blocks with a gradient and still no curvature
-        for block in self.blocks.values():
-            layer = block.layer
-            if layer.weight.grad is None:
-                continue
-            group = self._block_group(block)
-            weight_grad = layer.weight.grad
-            bias_grad = layer.bias.grad if layer.has_bias else None
-            if group["weight_decay"]:
-                weight_grad = weight_grad.add(layer.weight, alpha=group["weight_decay"])
-                if bias_grad is not None:
-                    bias_grad = bias_grad.add(layer.bias, alpha=group["weight_decay"])
-            grad_matrix = layer.gradient_matrix(weight_grad, bias_grad)
-            view = self._tentative_view(block, statistics, inverses)
-            if all(key in view for key in block.inverse_keys):
-                proposal = block.precondition(grad_matrix, group["damping"], view)
-            else:
-                missing.append(block)
-                proposal = grad_matrix
-            directions[block] = (grad_matrix, proposal)
-            per_group.setdefault(self._group_of[layer.weight], []).append(block)
-        dots = {}
-        if directions:
-            # One reduction for all the scalars the step needs: <p, g>, |p|^2, |g|^2 per block.
-            order = list(directions)
-            scalars = []
-            for grad_matrix, proposal in (directions[b] for b in order):
-                g, d = grad_matrix.reshape(-1), proposal.reshape(-1)
-                scalars += [torch.dot(d, g), torch.dot(d, d), torch.dot(g, g)]
-            sums = torch.stack(scalars).double().cpu()
-            if not bool(torch.isfinite(sums).all()):
-                return None
-            values = sums.tolist()
-            dots = {block: tuple(values[3 * i:3 * i + 3]) for i, block in enumerate(order)}
-            self._refuse_blocks_without_statistics([b for b in missing if dots[b][2] > 0.0], bool(statistics))
-        average = self.communicator.average_scalars if self.communicator is not None else (lambda *v: v)
-        return StepInputs(self.param_groups, per_group, directions, dots, step_index, average=average)
+                jobs.append((block, statistics[block] if fresh else block.state, self._block_group(block)["damping"]))
+        return jobs
 
     def _record_update(self, result) -> None:
         group0 = self.param_groups[0]
@@ -652,45 +534,6 @@ class FisherDescent(torch.optim.Optimizer):
         update.update(damping=group0["damping"], lr=group0["lr"], loss=None, reduction_ratio=None,
                       actual_change=None)
         self._last_update = update if result.updates else {}
-
-    def _apply_block_updates(self, updates, update_scale) -> None:
-        """``w += s * u`` for every block (``s`` from ``update_scale``, 1 where absent); the quadratic rule
-        keeps ``u`` as the next step's momentum direction."""
-        keep = self.rules.step.keeps_previous_update
-        by_scale: Dict[float, tuple] = {}  # one fused add per distinct factor (one per param group at most)
-        for block, update in updates.items():
-            params, parts = by_scale.setdefault(update_scale.get(block, 1.0), ([], []))
-            weight_part, bias_part = block.layer.split_matrix(update)
-            for param, part in ((block.layer.weight, weight_part), (block.layer.bias, bias_part)):
-                if part is not None and param.grad is not None:
-                    params.append(param)
-                    parts.append(part)
-            if keep:
-                block.state["previous_update"] = update
-        for scale, (params, parts) in by_scale.items():
-            if params:
-                torch._foreach_add_(params, parts, alpha=scale)
-
-    def _fallback_updates(self) -> List["_FallbackUpdate"]:
-        """Per param group, the fallback rule's changes to the parameters outside every block, unwritten."""
-        parts = []
-        for group in self.param_groups:
-            covered = self._assignment.block_of
-            params = [p for p in group["params"] if p.grad is not None and p not in covered]
-            if not params:
-                continue
-            grads = [p.grad for p in params]
-            states = [self.state[p] for p in params]
-            if group["fallback"] == "adam":
-                directions, new_states = fallback_rules.adam_directions(params, grads, states,
-                                                                        weight_decay=group["weight_decay"])
-            else:
-                directions, new_states = fallback_rules.sgd_directions(params, grads, states,
-                                                                       momentum=group["momentum"],
-                                                                       weight_decay=group["weight_decay"])
-            step = group["lr"] * group["fallback_lr_scale"]
-            parts.append(_FallbackUpdate(params, torch._foreach_mul(directions, -step), new_states))
-        return parts
 
     def _refuse_blocks_without_statistics(self, blocks: List[LayerCurvature], recorded: bool) -> None:
         """A nonzero gradient on a block that a due refresh left without statistics is an error.
@@ -728,21 +571,13 @@ class FisherDescent(torch.optim.Optimizer):
                 self.rules.step.wants_batch(step_index)))
         return evaluator
 
-    def _adapt_damping(self, result, evaluator, batch, closure, loss) -> None:
+    def _adapt_damping(self, result, evaluator, closure, loss) -> None:
         """Levenberg-Marquardt: the loss change on the same rows against the quadratic model's prediction."""
-        # Before any re-evaluation: a closure's backward overwrites the gradients the model uses.
-        predicted = result.predicted_change if result.predicted_change is not None \
-            else model_change(result.updates, result.update_scale, lambda block: self._block_group(block)["damping"])
-        before = after = None
-        if closure is not None and loss is not None:  # the closure defines the loss: it is honoured
-            before = float(loss)
-            with self.no_capture(), torch.enable_grad():
-                after = float(closure().detach())
-        elif evaluator is not None:
-            before = result.loss_before if result.loss_before is not None else evaluator.recorded_loss()
-            after = evaluator.loss()
-        if before is None:
+        measured = loss_change(result, evaluator, closure, loss, self.no_capture,
+                               lambda block: self._block_group(block)["damping"])
+        if measured is None:
             return
+        before, after, predicted = measured
         if self.communicator is not None:  # the ratio of the global batch, the same on every rank
             before, after = self.communicator.average_scalars(before, after)
         rho = reduction_ratio(before, after, predicted)
@@ -835,39 +670,6 @@ class FisherDescent(torch.optim.Optimizer):
         """
         if self._capture.source is not None:
             self._capture.source.generator_for = self._generator_for if generator_for is None else generator_for
-
-
-@dataclass
-class _FallbackUpdate:
-    """One group's fallback changes: ``params += changes``, then the new state entries."""
-
-    params: List[torch.Tensor]
-    changes: List[torch.Tensor]
-    new_states: List[dict]
-
-    def tensors(self) -> List[torch.Tensor]:
-        """Everything this part would write (the states too: Adam's moments can overflow alone)."""
-        return list(self.changes) + [t for entries in self.new_states for t in entries.values()]
-
-    def apply(self, state) -> None:
-        torch._foreach_add_(self.params, self.changes)
-        for param, entries in zip(self.params, self.new_states):
-            state[param].update(entries)
-
-
-def _finite_numbers(values: dict) -> bool:
-    return all(math.isfinite(v) for v in values.values() if isinstance(v, float))
-
-
-def _all_finite(tensors: List[torch.Tensor], factors: Optional[List[float]] = None) -> bool:
-    """Whether every entry of every tensor (times its factor, when given) is finite: one fused reduction
-    and one host sync."""
-    if not tensors:
-        return True
-    norms = torch._foreach_norm(tensors)
-    if factors is not None:
-        norms = torch._foreach_mul(norms, factors)
-    return bool(torch.isfinite(torch.stack(norms)).all())
 
 
 def _refuse_sparse_embeddings(model: nn.Module) -> None:

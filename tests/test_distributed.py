@@ -317,11 +317,11 @@ class _SecondRankStandIn:
     def __init__(self, other):
         self.other, self.averaged = other, []
 
-    def average_statistics(self, opt, batches, projected=False):
+    def average_statistics(self, blocks, batches, due, projected=False):
         return batches
 
-    def invert(self, opt, jobs):
-        return {block: block.prepare_inverse(stats, damping, opt.track_spectra) for block, stats, damping in jobs}
+    def invert(self, blocks, jobs, track_spectra=False):
+        return {block: block.prepare_inverse(stats, damping, track_spectra) for block, stats, damping in jobs}
 
     def average_scalars(self, *values):
         self.averaged.append(values)

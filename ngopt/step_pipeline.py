@@ -1,0 +1,240 @@
+"""One step's curvature work, computed in full before anything is written.
+
+    recorded forwards -> statistics -> inverses -> projected statistics (EKFAC) -> proposals
+        -> step rule (rules/) -> fallback changes -> one finiteness check -> write
+
+Each stage is a function of explicit arguments that returns new tensors and writes nothing; the
+:class:`PendingStep` they fill in is checked once and then written as a whole, so a step with a
+non-finite value anywhere leaves weights and curvature state untouched.  A data-parallel
+communicator, when given, averages the statistics and shares the inversions (``distributed.py``).
+"""
+from __future__ import annotations
+
+import math
+from collections import ChainMap
+from dataclasses import dataclass, field
+from typing import Callable, Dict, List, Optional, Sequence
+
+import torch
+
+from . import fallback as fallback_rules
+from .blocks.base import LayerCurvature
+from .rules.base import StepInputs, StepResult
+
+
+def all_finite(tensors: Sequence[torch.Tensor], factors: Optional[List[float]] = None) -> bool:
+    """Whether every entry of every tensor (times its factor, when given) is finite: one fused reduction
+    and one host sync."""
+    if not tensors:
+        return True
+    norms = torch._foreach_norm(list(tensors))
+    if factors is not None:
+        norms = torch._foreach_mul(norms, factors)
+    return bool(torch.isfinite(torch.stack(norms)).all())
+
+
+def finite_numbers(values: dict) -> bool:
+    return all(math.isfinite(v) for v in values.values() if isinstance(v, float))
+
+
+def tentative_view(block: LayerCurvature, statistics: dict, inverses: dict):
+    """The block's tensors as this step will leave them: new ones first, then the committed state."""
+    if block not in inverses and block not in statistics:
+        return block.state
+    return ChainMap(inverses[block][0] if block in inverses else {}, statistics.get(block, {}), block.state)
+
+
+# ---------------------------------------------------------------------------------------- the stages
+def new_statistics(blocks: Sequence[LayerCurvature], forwards: dict, stats_memory: float,
+                   loss_scale: float = 1.0, share: Optional[Callable] = None) -> Optional[dict]:
+    """``{block: blended statistics}`` from the recorded forwards; None if any is non-finite.
+
+    ``share(batches)`` averages the batch statistics over ranks (data-parallel).
+    """
+    batches = {}
+    for block in blocks:
+        if block in forwards:
+            batch = block.batch_statistics(forwards[block])
+            if batch is not None:
+                batches[block] = block.unscaled(batch, loss_scale)
+    if share is not None:
+        batches = share(batches)
+    statistics = {block: block.blend(batch, stats_memory) for block, batch in batches.items()}
+    if not all_finite([t for stats in statistics.values() for t in stats.values()]):
+        return None
+    return statistics
+
+
+def new_inverses(jobs: list, invert: Optional[Callable] = None, track_spectra: bool = False) -> Optional[dict]:
+    """``{block: (tensors, info)}`` for ``jobs = [(block, statistics, damping)]``; None if non-finite.
+
+    ``invert(jobs)`` shares the inversions over ranks (data-parallel); else each block inverts its own.
+    """
+    if invert is not None:
+        inverses = invert(jobs)
+    else:
+        inverses = {block: block.prepare_inverse(stats, damping, track_spectra) for block, stats, damping in jobs}
+    if not all_finite([t for new, _ in inverses.values() for t in new.values()]):
+        return None
+    return inverses
+
+
+def add_projected_statistics(blocks: Sequence[LayerCurvature], statistics: dict, inverses: dict, forwards: dict,
+                             stats_memory: float, loss_scale: float = 1.0, share: Optional[Callable] = None) -> bool:
+    """Second phase for blocks whose statistics live in a basis the inversion makes (EKFAC).
+
+    Adds them to ``statistics``; False if any is non-finite.  ``share(batches)`` as in :func:`new_statistics`.
+    """
+    blocks = [b for b in blocks if b.projected_keys and (b in statistics or b in inverses)]
+    if not blocks:
+        return True
+    views = {b: tentative_view(b, statistics, inverses) for b in blocks}
+    batches = {}
+    for block in blocks:
+        if block in statistics and block in forwards:
+            batch = block.projected_batch_statistics(views[block], forwards[block])
+            if batch is not None:
+                batches[block] = block.unscaled(batch, loss_scale)
+    if share is not None:
+        batches = share(batches)
+    new = {block: block.blend_projected(batches.get(block), views[block], block in inverses, stats_memory)
+           for block in blocks}
+    if not all_finite([t for tensors in new.values() for t in tensors.values()]):
+        return False
+    for block, tensors in new.items():
+        if tensors:
+            statistics.setdefault(block, {}).update(tensors)
+    return True
+
+
+def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Callable[[torch.Tensor], int],
+              statistics: dict, inverses: dict, step_index: int,
+              average: Callable = lambda *values: values) -> "tuple[Optional[StepInputs], list]":
+    """Every block's gradient matrix ``g`` (plus weight decay) and proposal ``p = C^-1 g``, with their dots.
+
+    Returns ``(inputs, missing)``: ``missing`` are the blocks with a nonzero gradient and still no
+    curvature to precondition it; ``inputs`` is None if a dot product is non-finite.
+    """
+    directions, per_group, missing = {}, {}, []
+    for block in blocks:
+        layer = block.layer
+        if layer.weight.grad is None:
+            continue
+        index = group_index(layer.weight)
+        group = groups[index]
+        weight_grad, bias_grad = layer.weight.grad, layer.bias.grad if layer.has_bias else None
+        if group["weight_decay"]:
+            weight_grad = weight_grad.add(layer.weight, alpha=group["weight_decay"])
+            if bias_grad is not None:
+                bias_grad = bias_grad.add(layer.bias, alpha=group["weight_decay"])
+        grad_matrix = layer.gradient_matrix(weight_grad, bias_grad)
+        view = tentative_view(block, statistics, inverses)
+        if all(key in view for key in block.inverse_keys):
+            proposal = block.precondition(grad_matrix, group["damping"], view)
+        else:
+            missing.append(block)
+            proposal = grad_matrix
+        directions[block] = (grad_matrix, proposal)
+        per_group.setdefault(index, []).append(block)
+    dots = {}
+    if directions:
+        # One reduction for all the scalars the step needs: <p, g>, |p|^2, |g|^2 per block.
+        order = list(directions)
+        scalars = []
+        for grad_matrix, proposal in (directions[b] for b in order):
+            g, d = grad_matrix.reshape(-1), proposal.reshape(-1)
+            scalars += [torch.dot(d, g), torch.dot(d, d), torch.dot(g, g)]
+        sums = torch.stack(scalars).double().cpu()
+        if not bool(torch.isfinite(sums).all()):
+            return None, []
+        values = sums.tolist()
+        dots = {block: tuple(values[3 * i:3 * i + 3]) for i, block in enumerate(order)}
+    missing = [b for b in missing if dots[b][2] > 0.0]
+    return StepInputs(groups, per_group, directions, dots, step_index, average=average), missing
+
+
+@dataclass
+class FallbackChange:
+    """One group's fallback changes: ``params += changes``, then the new state entries."""
+
+    params: List[torch.Tensor]
+    changes: List[torch.Tensor]
+    new_states: List[dict]
+
+    def tensors(self) -> List[torch.Tensor]:
+        """Everything this part would write (the states too: Adam's moments can overflow alone)."""
+        return list(self.changes) + [t for entries in self.new_states for t in entries.values()]
+
+    def apply(self, state) -> None:
+        torch._foreach_add_(self.params, self.changes)
+        for param, entries in zip(self.params, self.new_states):
+            state[param].update(entries)
+
+
+def fallback_changes(groups: list, covered, state) -> List[FallbackChange]:
+    """Per param group, the fallback rule's changes to the parameters outside every block, unwritten."""
+    parts = []
+    for group in groups:
+        params = [p for p in group["params"] if p.grad is not None and p not in covered]
+        if not params:
+            continue
+        grads = [p.grad for p in params]
+        states = [state[p] for p in params]
+        if group["fallback"] == "adam":
+            directions, new_states = fallback_rules.adam_directions(params, grads, states,
+                                                                    weight_decay=group["weight_decay"])
+        else:
+            directions, new_states = fallback_rules.sgd_directions(params, grads, states, momentum=group["momentum"],
+                                                                   weight_decay=group["weight_decay"])
+        step = group["lr"] * group["fallback_lr_scale"]
+        parts.append(FallbackChange(params, torch._foreach_mul(directions, -step), new_states))
+    return parts
+
+
+# ---------------------------------------------------------------------------------------- check, write
+@dataclass
+class PendingStep:
+    """Everything one step would write, kept apart until :meth:`finite` passes and :meth:`write` runs."""
+
+    statistics: dict = field(default_factory=dict)     # block -> new statistics tensors
+    inverses: dict = field(default_factory=dict)       # block -> (new inverse tensors, info)
+    result: Optional[StepResult] = None                # the step rule's updates and state entries
+    fallback: List[FallbackChange] = field(default_factory=list)
+
+    def finite(self) -> bool:
+        """One check of every update the step would write (block updates times their factors)."""
+        updates = self.result.updates
+        written = list(updates.values()) + [t for part in self.fallback for t in part.tensors()]
+        factors = [abs(self.result.update_scale.get(block, 1.0)) for block in updates]
+        factors += [1.0] * (len(written) - len(factors))
+        return all_finite(written, factors) and finite_numbers(self.result.diagnostics)
+
+    def write_curvature(self, step_index: int) -> None:
+        for block, tensors in self.statistics.items():
+            block.commit(tensors)
+        for block, (tensors, info) in self.inverses.items():
+            block.commit(tensors)
+            block.info = dict(info, inversion_step=step_index)
+        for block, entries in (self.result.states if self.result is not None else {}).items():
+            block.state.update(entries)
+
+    def write_block_updates(self, keep_previous: bool) -> None:
+        """``w += s * u`` for every block (``s`` from ``update_scale``, 1 where absent); ``keep_previous``
+        keeps ``u`` as the next step's momentum direction (the quadratic rule)."""
+        by_scale: Dict[float, tuple] = {}  # one fused add per distinct factor (one per param group at most)
+        for block, update in self.result.updates.items():
+            params, parts = by_scale.setdefault(self.result.update_scale.get(block, 1.0), ([], []))
+            weight_part, bias_part = block.layer.split_matrix(update)
+            for param, part in ((block.layer.weight, weight_part), (block.layer.bias, bias_part)):
+                if part is not None and param.grad is not None:
+                    params.append(param)
+                    parts.append(part)
+            if keep_previous:
+                block.state["previous_update"] = update
+        for scale, (params, parts) in by_scale.items():
+            if params:
+                torch._foreach_add_(params, parts, alpha=scale)
+
+    def write_fallback(self, state) -> None:
+        for part in self.fallback:
+            part.apply(state)
