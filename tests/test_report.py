@@ -311,7 +311,7 @@ def test_step_rule_figure_from_a_synthetic_log(tmp_path):
 
 
 def test_step_rule_figure_draws_the_logged_series(tmp_path, monkeypatch):
-    from ngopt import report
+    from ngopt.report import plots as report
 
     drawn = {}
     monkeypatch.setattr(report, "_save", lambda fig, path: drawn.setdefault("axes", fig.axes) and path)
@@ -336,7 +336,7 @@ def test_log_without_step_rule_keys_gets_a_one_line_note(tmp_path):
 
 
 def test_step_rule_figure_keeps_the_sign_when_a_step_went_up(tmp_path, monkeypatch):
-    from ngopt import report
+    from ngopt.report import plots as report
 
     drawn = {}
     monkeypatch.setattr(report, "_save", lambda fig, path: drawn.setdefault("axes", fig.axes) and path)

@@ -1,115 +1,16 @@
-"""Figures and a text summary from a diagnostics log.
-
-    python -m ngopt.report run.jsonl --out DIR
-
-writes into DIR (only the figures the log has data for):
-
-=========================  ==========================================================
-file                       message
-=========================  ==========================================================
-``spectra_<layer>.png``    each Kronecker factor's eigenvalue spectrum over training
-                           (steps across, eigenvalues up, log colour for the count
-                           per bin) against the damping added to that factor
-``conditioning.png``       condition numbers per layer, damped block and raw factors
-``damping.png``            lambda over steps and its split between the two factors
-``update.png``             gradient and update norms, their cosine, trust scaling, KL
-``loss.png``               loss and the quadratic model's reduction ratio
-``time.png``               where the optimizer's time goes, per step and in total
-``probe.png``              Fisher-probe errors and angles per layer (when logged)
-``step_rule.png``          the quadratic step rule's multipliers alpha and mu, the
-                           reduction ratio rho, the damping lambda, and the
-                           predicted against the measured loss change (when logged)
-``summary.txt``            plain-text summary with warnings
-=========================  ==========================================================
-
-A CSV log works too, without the spectra (CSV leaves lists out).
-"""
-
+"""The report's figures, one function per file it writes (``python -m ngopt.report``)."""
 from __future__ import annotations
 
-import argparse
 import math
 import re
-import sys
-from numbers import Real
 from pathlib import Path
 
 import numpy as np
 
-from .diagnostic_keys import STEP_TIME, STEP_TOTAL
-from .diagnostics_log import read_log
-from .fisher_probe import DAMPING_DOMINATES_SHARE, far_from_fisher
-
-__all__ = ["write_report", "summarize", "main"]
-
-CONDITION_WARNING = 1e8          # damped condition number called ill-conditioned
-SKIPPED_WARNING_FRACTION = 0.05  # share of skipped steps called "many"
-PROBE_ANGLE_WARNING_DEG = 45.0   # angle between directions called "far apart"
-DAMPING_DOMINATES_FRACTION = 0.9  # share of a factor's eigenvalues under its damping called "dominated"
-DAMPING_DOMINATES_SPREAD = 10.0   # ... while the largest is within this factor of the damping
-STEP_RULE_KEYS = ("alpha", "mu", "reduction_ratio", "damping", "predicted_change", "actual_change")
-LOSS_NOT_LOGGED = ("not logged (call handle.note_loss(loss) after loss.backward(), "
-                   "or pass a closure to opt.step)")
-# Display names of the parts timed outside step() (diagnostic_keys.PASS_TIME); others show their key.
-OUTSIDE_STEP_LABELS = {"capture": "capture hooks (in forward/backward)",
-                       "extra_backward": "extra backward (sampled/exact Fisher)",
-                       "statistics_in_backward": "statistics formed in the extra backward"}
+from ..diagnostic_keys import STEP_TIME, STEP_TOTAL
+from .series import (CONDITION_WARNING, OUTSIDE_STEP_LABELS, PROBE_ANGLE_WARNING_DEG, STEP_RULE_KEYS, _get, _has_data, _number, layer_names, series)
 
 
-# --------------------------------------------------------------------------
-# reading series out of records
-# --------------------------------------------------------------------------
-
-def _number(value) -> float:
-    if isinstance(value, Real) and not isinstance(value, bool):
-        return float(value)
-    return math.nan
-
-
-def _get(record: dict, path: tuple):
-    node = record
-    for key in path:
-        if not isinstance(node, dict) or key not in node:
-            return None
-        node = node[key]
-    return node
-
-
-def series(records: list, *path: str) -> tuple[np.ndarray, np.ndarray]:
-    """Steps and values of one key over the records (NaN where missing)."""
-    steps = np.array([r["step"] for r in records], dtype=float)
-    values = np.array([_number(_get(r, path)) for r in records], dtype=float)
-    return steps, values
-
-
-def one_record_per_step(records: list) -> list:
-    """Keep the last record of each step (probe records repeat a step)."""
-    by_step = {}
-    for record in records:
-        by_step[record["step"]] = record
-    return [by_step[step] for step in sorted(by_step)]
-
-
-def layer_names(records: list) -> list:
-    names: dict = {}
-    for record in records:
-        for name in (record.get("layers") or {}):
-            names.setdefault(name, None)
-    return list(names)
-
-
-def _text(value, spec: str = ".3g") -> str:
-    number = _number(value)
-    return "-" if math.isnan(number) else format(number, spec)
-
-
-def _has_data(values: np.ndarray) -> bool:
-    return bool(np.isfinite(values).any())
-
-
-# --------------------------------------------------------------------------
-# figures
-# --------------------------------------------------------------------------
 
 def _pyplot():
     import matplotlib
@@ -297,6 +198,11 @@ def plot_damping(records: list, path: Path):
     return _save(fig, path)
 
 
+def _note(ax, text: str) -> None:
+    """A panel with nothing to draw says why, in its middle."""
+    ax.text(0.5, 0.5, text, ha="center", va="center", transform=ax.transAxes)
+
+
 def _line_panel(ax, steps, values, label, ylabel, colour, log=False):
     ax.plot(steps, values, marker=".", color=colour, label=label)
     if log and (np.nan_to_num(values) > 0).any():
@@ -342,8 +248,7 @@ def plot_loss(records: list, path: Path):
             top.set_yscale("log")
         top.legend(fontsize=8)
     else:
-        top.text(0.5, 0.5, "no loss recorded (use step(closure) or handle.note_loss(loss))", ha="center",
-                 va="center", transform=top.transAxes)
+        _note(top, "no loss recorded (use step(closure) or handle.note_loss(loss))")
     top.set_ylabel("loss (as defined by loss_fn)")
     top.set_title("loss")
     if _has_data(ratio):
@@ -352,8 +257,7 @@ def plot_loss(records: list, path: Path):
         bottom.axhline(1.0, color="black", linestyle=":", linewidth=1, label=r"model exact ($\rho = 1$)")
         bottom.legend(fontsize=8)
     else:
-        bottom.text(0.5, 0.5, "no reduction ratio recorded (needs damping_rule='lm')", ha="center",
-                    va="center", transform=bottom.transAxes)
+        _note(bottom, "no reduction ratio recorded (needs damping_rule='lm')")
     bottom.set_ylabel("actual / predicted change")
     bottom.set_xlabel("optimizer step")
     bottom.set_title("quadratic model's reduction ratio")
@@ -554,279 +458,3 @@ def plot_probe(records: list, path: Path):
     return _save(fig, path)
 
 
-# --------------------------------------------------------------------------
-# text summary
-# --------------------------------------------------------------------------
-
-def _condition_warnings(records: list) -> list:
-    tail = records[-max(1, math.ceil(len(records) / 4)):]
-    found = []
-    for name in layer_names(records):
-        values = [_number(_get(r, ("layers", name, "condition"))) for r in tail]
-        values = [v for v in values if v == v]
-        if values and min(values) > CONDITION_WARNING:
-            lam = _number(_get(tail[-1], ("update", "damping")))
-            found.append(f"layer {name}: the damped condition number stays above {CONDITION_WARNING:.0e} "
-                         f"over the last {len(tail)} records (final {values[-1]:.3g}) with damping "
-                         f"lambda = {lam:.3g}; raise the damping or check this layer's inputs")
-    return found
-
-
-def _skip_warnings(record: dict) -> list:
-    steps = record.get("step", 0) or 0
-    skipped = record.get("skipped_steps", 0) or 0
-    if steps and skipped / steps > SKIPPED_WARNING_FRACTION:
-        reasons = ", ".join(f"{k}: {v}" for k, v in (record.get("skip_reasons") or {}).items() if v)
-        return [f"{skipped} of {steps} steps were skipped ({100 * skipped / steps:.1f}%; {reasons or 'no reason given'})"]
-    return []
-
-
-def _update_warnings(records: list) -> list:
-    found = []
-    _, cosine = series(records, "update", "cosine")
-    bad = int(np.sum(np.nan_to_num(cosine, nan=1.0) <= 0))
-    if bad:
-        found.append(f"{bad} records have cosine <= 0 between gradient and update: the step did not "
-                     "point downhill (the preconditioner should be positive definite)")
-    _, trust = series(records, "update", "trust_scale")
-    trust = trust[np.isfinite(trust)]
-    if trust.size and np.median(trust) < 0.5:
-        found.append(f"the KL trust bound shrinks most steps (median scale {np.median(trust):.3g}): "
-                     "the effective step size is well below lr")
-    return found
-
-
-def _probe_warnings(records: list) -> list:
-    found = last_probe(records)
-    if found is None:
-        return []
-    step, probe = found
-    messages = [f"at step {step}: {text}" for text in far_from_fisher(probe, PROBE_ANGLE_WARNING_DEG)]
-    for name, entry in (probe.get("layers") or {}).items():
-        block_angle = _number(entry.get("block_angle_deg"))
-        if block_angle > PROBE_ANGLE_WARNING_DEG:
-            messages.append(f"layer {name}: the optimizer's direction is {block_angle:.0f} degrees from the "
-                            f"exact natural gradient at step {step}")
-    return messages
-
-
-def _damping_panels(entry: dict, lam: float) -> list:
-    """(values, max, damping added, name) per curvature part that damping is added to."""
-    kronecker = entry.get("structure") == "kfac"  # EKFAC adds lambda to its scales, not to A and G
-    parts = []
-    if kronecker:
-        parts += [("in", _number(entry.get("in_damping")), "input factor A"),
-                  ("out", _number(entry.get("out_damping")), "output-gradient factor G")]
-    parts += [("diag", lam, "diagonal Fisher"), ("scale", lam, "EKFAC scales"),
-              ("pair_eig", lam, "norm-layer (gamma, beta) blocks")]
-    panels = []
-    for prefix, shift, name in parts:
-        values_key = f"{prefix}_eigenvalues" if prefix in ("in", "out") else f"{prefix}_values"
-        largest_key = f"{prefix}_eig_max" if prefix in ("in", "out") else f"{prefix}_max"
-        values = entry.get(values_key)
-        largest = _number(entry.get(largest_key))
-        if math.isfinite(largest) and math.isfinite(shift):
-            panels.append((values if isinstance(values, list) and values else None, largest, shift, name))
-    return panels
-
-
-def damping_dominance(records: list) -> list:
-    """Layers where (nearly) every eigenvalue of a factor lies under the damping added to it.
-
-    Dominated: at least ``DAMPING_DOMINATES_FRACTION`` of the eigenvalues under
-    the damping and the largest within ``DAMPING_DOMINATES_SPREAD`` times it, so
-    the damped factor is close to a multiple of the identity in every direction
-    (a few large eigenvalues above the damping still shape the step, and are
-    not called dominated).  Reads the final record: the full spectra where
-    logged (JSONL), else the largest eigenvalue (CSV: every eigenvalue under).
-    """
-    final = records[-1]
-    lam = _number(_get(final, ("update", "damping")))
-    found = []
-    for name, entry in (final.get("layers") or {}).items():
-        for values, largest, shift, part in _damping_panels(entry, lam):
-            if values is not None:
-                under, total = sum(1 for v in values if _number(v) < shift), len(values)
-                dominated = under >= DAMPING_DOMINATES_FRACTION * total and largest < DAMPING_DOMINATES_SPREAD * shift
-                count = f"{under} of {total} eigenvalues"
-            else:
-                dominated, count = largest < shift, "every eigenvalue"
-            if dominated:
-                found.append(f"layer {name}: damping dominates the {part}: {count} lie under the damping added to "
-                             f"it ({shift:.3g}, lambda = {lam:.3g}; largest eigenvalue {largest:.3g}) at step "
-                             f"{final['step']}; the step there is mostly the gradient scaled by 1/damping. Lower "
-                             "damping (or use damping_rule='lm') if this persists")
-    return found
-
-
-def _format_table(rows: list) -> list:
-    widths = [max(len(str(row[i])) for row in rows) for i in range(len(rows[0]))]
-    return ["  " + "  ".join(str(cell).ljust(w) for cell, w in zip(row, widths)).rstrip() for row in rows]
-
-
-def _layer_table(record: dict) -> list:
-    rows = [("layer", "kind", "A dim", "G dim", "cond damped", "cond A", "cond G", "eig A min..max", "eig G min..max")]
-    for name, e in (record.get("layers") or {}).items():
-        rows.append((name, f"{e.get('block', '?')}/{e.get('structure', '?')}", e.get("in_dim", "-"),
-                     e.get("out_dim", "-"), f"{_number(e.get('condition')):.3g}",
-                     f"{_number(e.get('in_condition')):.3g}", f"{_number(e.get('out_condition')):.3g}",
-                     f"{_number(e.get('in_eig_min')):.2e}..{_number(e.get('in_eig_max')):.2e}",
-                     f"{_number(e.get('out_eig_min')):.2e}..{_number(e.get('out_eig_max')):.2e}"))
-    return _format_table(rows) if len(rows) > 1 else ["  (no curvature blocks)"]
-
-
-def _time_lines(record: dict) -> list:
-    split = time_split(record)
-    total = sum(split.values())
-    if total <= 0:
-        return ["  (no timing)"]
-    width = max(len(key) for key in split)
-    return [f"  {key:<{width}} {seconds:9.3f} s  {100 * seconds / total:5.1f}%" for key, seconds in split.items()]
-
-
-def _logging_cost_line(records: list) -> str:
-    final = records[-1]
-    log_seconds = _number(final.get("log_seconds"))
-    step_total = _number(_get(final, ("time", "step_total")))
-    if not math.isfinite(log_seconds):
-        return "logging cost: not recorded"
-    per_record = log_seconds / max(len(records) - 1, 1)
-    share = f", {100 * log_seconds / step_total:.2f}% of the time in step()" if step_total > 0 else ""
-    return f"logging cost: {log_seconds:.4f} s in total, {1e3 * per_record:.2f} ms per record{share}"
-
-
-PROBE_COLUMNS = (
-    ("block error", "the optimizer's block (running statistics) against the exact Fisher F of the probe batch"),
-    ("fresh error", "the same structure built from the probe batch alone (exact expectation): the structure's "
-                    "own error"),
-    ("stats gap", "the running statistics against the probe batch's (lag of the average, Monte Carlo noise)"),
-    ("trace C/F", "trace of the optimizer's block over the trace of F"),
-    ("block angle", "damped direction (C + lambda I)^-1 g against (F + lambda I)^-1 g"),
-    ("diag error/angle", "the diagonal of F itself as the approximation"),
-    ("F eig < lambda", "share of F's eigenvalues under the damping: near 100%, every damped direction is close "
-                       "to g / lambda and small angles say little"),
-)
-
-
-def _percent(share) -> str:
-    number = _number(share)
-    return "-" if math.isnan(number) else f"{100 * number:.0f}%"
-
-
-def _probe_row(name: str, e: dict) -> tuple:
-    ratio = _number(e.get("block_trace")) / _number(e.get("exact_trace")) if _number(e.get("exact_trace")) else math.nan
-    return (name, e.get("params", "-"), _text(e.get("block_error")), _text(e.get("fresh_error")),
-            _text(e.get("statistics_gap")), _text(ratio), f"{_text(e.get('block_angle_deg'), '.1f')} deg",
-            f"{_text(e.get('diag_error'))} / {_text(e.get('diag_angle_deg'), '.1f')} deg",
-            _percent(e.get("exact_below_damping")),
-            f"{_text(e.get('empirical_vs_sampled_angle_deg'), '.1f')} deg")
-
-
-def _probe_lines(records: list) -> list:
-    found = last_probe(records)
-    if found is None:
-        return []
-    step, probe = found
-    lines = [f"Fisher probe (step {step}, {probe.get('batch_size', '?')} examples; errors are relative "
-             "Frobenius errors of the undamped matrices, 1 = as far as the zero matrix):"]
-    rows = [("layer", "params") + tuple(title for title, _ in PROBE_COLUMNS) + ("emp/sampled angle",)]
-    rows += [_probe_row(name, e) for name, e in (probe.get("layers") or {}).items()]
-    if len(rows) > 1:
-        lines += _format_table(rows)
-        lines += [f"    {title}: {meaning}" for title, meaning in PROBE_COLUMNS]
-    skipped = probe.get("skipped_layers") or {}
-    lines += [f"  {name}: not probed ({why})" for name, why in skipped.items()]
-    angle = _number(probe.get("empirical_vs_sampled_angle_deg"))
-    if angle == angle:
-        lines.append(f"  all probed layers together: optimizer's direction {_number(probe.get('block_angle_deg')):.1f} "
-                     f"deg from the exact natural gradient; empirical vs sampled Fisher {angle:.1f} deg apart")
-    return lines
-
-
-def _loss_text(records: list) -> str:
-    steps, loss = series(records, "update", "loss")
-    logged = np.flatnonzero(np.isfinite(loss))
-    if not logged.size:
-        return LOSS_NOT_LOGGED
-    last = logged[-1]
-    at = "" if last == len(records) - 1 else f" (step {int(steps[last])}, the latest logged)"
-    return _text(loss[last], ".4g") + at
-
-
-def summarize(records: list, source: str = "log") -> tuple[str, list]:
-    """The text summary and the list of warnings."""
-    if not records:
-        raise ValueError(f"{source}: the log holds no records")
-    final = records[-1]
-    warnings_found = (_condition_warnings(records) + damping_dominance(records) + _skip_warnings(final)
-                      + _update_warnings(records) + _probe_warnings(records))
-    update = final.get("update") or {}
-    wall = [r.get("wall_time") for r in records if isinstance(r.get("wall_time"), Real)]
-    lines = [f"ngopt diagnostics report for {source}",
-             f"records: {len(records)} (steps {records[0]['step']} .. {final['step']})"
-             + (f", {wall[-1] - wall[0]:.1f} s of wall time between first and last" if len(wall) > 1 else ""),
-             f"final: loss {_loss_text(records)}, damping {_text(update.get('damping'))}, "
-             f"lr {_text(update.get('lr'))}",
-             f"skipped steps: {final.get('skipped_steps', 0)} of {final['step']}",
-             _logging_cost_line(records), "",
-             f"curvature blocks at step {final['step']}:", *_layer_table(final), "",
-             "time split (cumulative):", *_time_lines(final)]
-    probe = _probe_lines(records)
-    if probe:
-        lines += ["", *probe]
-    if not has_step_rule(records):
-        lines += ["", "step rule: no alpha/mu/reduction-ratio records (step_rule='quadratic' logs them); "
-                      "step_rule.png not drawn"]
-    lines += ["", "warnings:"] + ([f"  - {w}" for w in warnings_found] or ["  (none)"])
-    return "\n".join(lines) + "\n", warnings_found
-
-
-# --------------------------------------------------------------------------
-# command line
-# --------------------------------------------------------------------------
-
-def write_report(log_path, out_dir) -> dict:
-    """Write all figures and summary.txt; returns {"figures": [...], "summary": path, "warnings": [...]}."""
-    log_path = Path(log_path)
-    if not log_path.is_file():
-        raise FileNotFoundError(f"diagnostics log not found: {log_path}")
-    all_records = read_log(log_path)
-    records = one_record_per_step(all_records)
-    text, found = summarize(records, str(log_path))
-    out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
-    figures = [plot_spectra(records, name, out_dir / f"spectra_{_safe_name(name)}.png")
-               for name in layer_names(records)]
-    figures += [plot_conditioning(records, out_dir / "conditioning.png"),
-                plot_damping(records, out_dir / "damping.png"),
-                plot_update(records, out_dir / "update.png"),
-                plot_loss(records, out_dir / "loss.png"),
-                plot_time(records, out_dir / "time.png"),
-                plot_probe(all_records, out_dir / "probe.png"),
-                plot_step_rule(records, out_dir / "step_rule.png")]
-    summary_path = out_dir / "summary.txt"
-    summary_path.write_text(text, encoding="utf-8")
-    return {"figures": [p for p in figures if p is not None], "summary": summary_path, "warnings": found}
-
-
-def main(argv=None) -> int:
-    parser = argparse.ArgumentParser(prog="python -m ngopt.report",
-                                     description="Plots and a text summary from an ngopt diagnostics log.")
-    parser.add_argument("log", help="diagnostics log written by ngopt.log_diagnostics (.jsonl or .csv)")
-    parser.add_argument("--out", required=True, help="directory for the PNG figures and summary.txt")
-    args = parser.parse_args(argv)
-    try:
-        result = write_report(args.log, args.out)
-    except (ValueError, FileNotFoundError) as error:
-        print(f"error: {error}", file=sys.stderr)
-        return 2
-    for figure in result["figures"]:
-        print(figure)
-    print(result["summary"])
-    for warning in result["warnings"]:
-        print(f"warning: {warning}", file=sys.stderr)
-    return 0
-
-
-if __name__ == "__main__":
-    sys.exit(main())
