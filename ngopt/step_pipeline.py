@@ -6,7 +6,7 @@
 Each stage is a function of explicit arguments that returns new tensors and writes nothing; the
 :class:`PendingStep` they fill in is checked once and then written as a whole, so a step with a
 non-finite value anywhere leaves weights and curvature state untouched.  A data-parallel
-communicator, when given, averages the statistics and shares the inversions (``distributed.py``).
+communicator, when given, averages the statistics and shares the inversions (``distributed/``).
 """
 from __future__ import annotations
 
