@@ -57,8 +57,8 @@ from .validation import check_arguments
 DEFAULT_FALLBACK_LR_SCALE = {"sgd": 1.0, "adam": 1e-2}
 # Defaults that depend on the step rule: under "quadratic" lr multiplies the step the model chooses
 # and momentum caps mu; under "fixed" they are the step size and heavy-ball coefficient themselves.
-# rule_interval: steps between the quadratic rule's solves, or the fixed rule's checks of its KL bound
-# against the exact Fisher (0: never; rules/fixed_step.py says why that is its default).
+# rule_interval: steps between the quadratic rule's solves, or the fixed rule's measurements of the step's
+# length in the exact Fisher for max_exact_step_kl (0: never; rules/fixed_step.py says why that is its default).
 RULE_DEFAULTS = {"quadratic": {"lr": 1.0, "momentum": 0.9, "rule_interval": 1},
                  "fixed": {"lr": 0.3, "momentum": 0.5, "rule_interval": 0}}
 
@@ -93,13 +93,17 @@ class FisherDescent(torch.optim.Optimizer):
             (each block on its own step of the interval, the cost spread evenly; see
             ``inversion_schedule.py``).
         stats_memory: weight of the old statistics in the running average.
-        max_step_kl: bound on the step's KL divergence under the quadratic model (None: off).
+        max_step_kl: bound on the step's KL divergence in the curvature blocks' own model (None: off).
+        max_exact_step_kl: ``step_rule='fixed'``: ceiling on the step's KL in the exact Fisher of the
+            whole model, measured every ``rule_interval`` steps (None: off; per group; no effect with
+            ``rule_interval=0``).  The blocks' model drops every product between blocks and can
+            understate a step's KL many times over on small noisy batches; the ceiling binds only there.
         step_rule: ``'fixed'`` (lr, momentum and the KL bound as given) or ``'quadratic'`` (step size
             and momentum chosen on the exact Fisher of the recorded batch; ``rules/``).
         rule_interval: steps between the step rule's evaluations on the recorded batch: the
-            quadratic rule's solves (default 1), or the fixed rule's checks of its KL bound against
-            the exact Fisher of the whole model (default 0: never, the bound rests on the blocks'
-            model, which can understate a step's KL many times over on small noisy batches).
+            quadratic rule's solves (default 1), or the fixed rule's measurements of the proposal's
+            length in the exact Fisher for ``max_exact_step_kl`` (default 0: never; 5 is a good
+            choice for small noisy batches, see ``rules/fixed_step.py``).
         rule_batch_fraction: share of the recorded batch (its first rows) those evaluations use.
         damping_rule: ``'fixed'``, or ``'lm'``: Levenberg-Marquardt adaptation of ``damping``
             from the reduction ratio, measured on the recorded batch (or through ``step(closure)``).
@@ -139,6 +143,7 @@ class FisherDescent(torch.optim.Optimizer):
                  momentum: Optional[float] = None, weight_decay: float = 0.0, damping: float = 1e-2,
                  fisher: str = "sampled", structure: str = "kfac", stats_interval: int = 5,
                  inverse_interval: int = 10, stats_memory: float = 0.8, max_step_kl: Optional[float] = 1e-2,
+                 max_exact_step_kl: Optional[float] = 5e-2,
                  damping_rule: str = "lm", damping_interval: int = 5, step_rule: str = "fixed",
                  rule_interval: Optional[int] = None, rule_batch_fraction: float = 0.25, fallback: str = "adam",
                  fallback_lr_scale: Optional[float] = None, fisher_samples: int = 1, damping_range=(1e-6, 1e2),
@@ -153,6 +158,7 @@ class FisherDescent(torch.optim.Optimizer):
         check_arguments(model=model, loss_fn=loss_fn, lr=lr, momentum=momentum, weight_decay=weight_decay,
                         damping=damping, fisher=fisher, structure=structure, stats_interval=stats_interval,
                         inverse_interval=inverse_interval, stats_memory=stats_memory, max_step_kl=max_step_kl,
+                        max_exact_step_kl=max_exact_step_kl,
                         damping_rule=damping_rule, fallback=fallback, fallback_lr_scale=fallback_lr_scale,
                         fisher_samples=fisher_samples, damping_range=damping_range, damping_interval=damping_interval,
                         seed=seed, param_groups=param_groups, weight_sharing=weight_sharing,
@@ -177,7 +183,8 @@ class FisherDescent(torch.optim.Optimizer):
 
         self._new_parameters = False  # a group added after the first training forward awaits its blocks
         defaults = dict(lr=lr, momentum=momentum, weight_decay=weight_decay, damping=damping,
-                        max_step_kl=max_step_kl, fallback=fallback, fallback_lr_scale=fallback_lr_scale)
+                        max_step_kl=max_step_kl, max_exact_step_kl=max_exact_step_kl, fallback=fallback,
+                        fallback_lr_scale=fallback_lr_scale)
         self.model = _unwrapped(model)
         self._seed = int(torch.initial_seed() if seed is None else seed)
         self.structure = structure
@@ -192,6 +199,10 @@ class FisherDescent(torch.optim.Optimizer):
                                                self._seed, cost_budget, max_factor_size, pinned_structures)
         groups = param_groups if param_groups is not None else [{"params": list(model.parameters())}]
         super().__init__(groups, defaults)  # every group goes through add_param_group
+        if step_rule == "fixed" and rule_interval and all(g["max_exact_step_kl"] is None for g in self.param_groups):
+            warnings.warn(f"rule_interval={rule_interval} measures each proposal's length in the exact Fisher for "
+                          "max_exact_step_kl, which is None in every group: the forward-mode passes are wasted. "
+                          "Pass rule_interval=0 with max_exact_step_kl=None.", stacklevel=2)
 
         self.fisher = fisher
         self.stats_memory = stats_memory
@@ -320,7 +331,7 @@ class FisherDescent(torch.optim.Optimizer):
                  f"damping_rule={self.damping_rule!r})"]
         for i, group in enumerate(self.param_groups):
             settings = ", ".join(f"{k}={group[k]}" for k in ("lr", "momentum", "weight_decay", "damping",
-                                                               "max_step_kl", "fallback"))
+                                                               "max_step_kl", "max_exact_step_kl", "fallback"))
             lines.append(f"  group {i}: {settings}")
         assignment = self.curvature_assignment()
         if not self._assignment.seen_forward:

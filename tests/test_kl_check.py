@@ -1,14 +1,16 @@
-"""The fixed rule's check of its KL bound against the exact Fisher of the whole model (``rule_interval``).
+"""The fixed rule's ceiling on a step's KL in the exact Fisher of the whole model (``max_exact_step_kl``,
+measured every ``rule_interval`` steps).
 
 Reference: the exact Fisher (generalized Gauss-Newton) of softmax cross-entropy,
 ``F = sum_n w_n J_n^T (diag(p) - p p^T) J_n`` (Martens & Grosse 2015, sec. 9), from torch.func
 Jacobians in float64 (``fisher_reference.py``); the bound keeps the step's squared length in the
-damped metric, ``u^T (F + lambda I) u``, at ``max_step_kl`` (Ba, Grosse & Martens, ICLR 2017).
+damped metric, ``u^T (F + lambda I) u``, at the ceiling (Ba, Grosse & Martens, ICLR 2017).
 """
 from __future__ import annotations
 
 import copy
 import math
+import warnings
 
 import pytest
 import torch
@@ -33,7 +35,7 @@ def problem(seed=4):
 
 def checked(model, loss_fn, **overrides):
     settings = dict(fisher="exact", damping=DAMPING, damping_rule="fixed", momentum=0.0, lr=1.0,
-                    max_step_kl=KAPPA, stats_memory=0.0, stats_interval=1, inverse_interval=1,
+                    max_step_kl=KAPPA, max_exact_step_kl=KAPPA, stats_memory=0.0, stats_interval=1, inverse_interval=1,
                     rule_interval=1, rule_batch_fraction=1.0, seed=0)
     settings.update(overrides)
     return ngopt.FisherDescent(model, loss_fn, **settings)
@@ -148,12 +150,51 @@ def test_rule_interval_is_checked(settings, error):
         ngopt.FisherDescent(model, loss_fn, **settings)
 
 
-def test_the_default_fixed_rule_does_not_replay_the_batch(monkeypatch):
+def test_the_ceiling_binds_only_where_the_exact_length_exceeds_it():
+    model, loss_fn, x, y = problem()
+    start = copy.deepcopy(model)
+    # Blocks' bound off: the ceiling alone sets the length in the exact Fisher.
+    update = one_step(checked(model, loss_fn, max_step_kl=None), model, loss_fn, x, y)
+    assert damped_length(start, x, y, update) == pytest.approx(KAPPA, rel=1e-8)
+
+    # A ceiling above the exact length the blocks' bound allows (ratio 1.39 for this seed): the
+    # blocks' bound decides and the step is the unchecked one.
+    loose_model, plain_model = copy.deepcopy(start), copy.deepcopy(start)
+    loose = one_step(checked(loose_model, loss_fn, max_exact_step_kl=2 * KAPPA), loose_model, loss_fn, x, y)
+    plain = one_step(checked(plain_model, loss_fn, rule_interval=0), plain_model, loss_fn, x, y)
+    assert torch.allclose(loose, plain, rtol=0, atol=1e-14)
+
+
+def test_measuring_for_no_ceiling_warns():
+    model, loss_fn, _, _ = problem()
+    with pytest.warns(UserWarning, match="max_exact_step_kl"):
+        ngopt.FisherDescent(model, loss_fn, max_exact_step_kl=None, rule_interval=5).remove_hooks()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        ngopt.FisherDescent(model, loss_fn, max_exact_step_kl=None)
+
+
+@pytest.mark.parametrize("value", [0.0, -1e-3])
+def test_max_exact_step_kl_is_checked(value):
+    model, loss_fn, _, _ = problem()
+    with pytest.raises(ValueError, match="max_exact_step_kl"):
+        ngopt.FisherDescent(model, loss_fn, max_exact_step_kl=value)
+
+
+def test_measurements_run_every_rule_interval_steps_and_not_by_default(monkeypatch):
     model, loss_fn, x, y = problem(9)
     calls = []
     monkeypatch.setattr(BatchEvaluator, "curvature_products",
                         lambda self, directions: calls.append(1) or (math.nan, [[math.nan]]))
-    opt = ngopt.FisherDescent(model, loss_fn)
+    opt = ngopt.FisherDescent(model, loss_fn, rule_interval=5)
     for _ in range(6):
         one_step(opt, model, loss_fn, x, y)
-    assert not calls and opt.diagnostics()["update"]["fisher_length_ratio"] is None
+    assert len(calls) == 2  # steps 0 and 5
+    # A non-finite measurement is no measurement: no ratio, the blocks' bound alone.
+    assert opt.diagnostics()["update"]["fisher_length_ratio"] is None
+    opt.remove_hooks()
+    calls.clear()
+    off = ngopt.FisherDescent(model, loss_fn)
+    for _ in range(6):
+        one_step(off, model, loss_fn, x, y)
+    assert not calls

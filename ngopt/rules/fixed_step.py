@@ -14,12 +14,19 @@ a recursion in dot products the step computes anyway (plus one, ``buf_{t-1}^T g_
 the curvature of the step that added it (the one its proposal was computed with), so across a refresh
 or an inversion the quadratic form mixes the curvatures the buffer was built from.
 
-With ``rule_interval = k > 0`` the rule checks its KL bound every ``k`` steps against the exact Fisher
-of the whole model on the recorded batch (:func:`ngopt.rules.trust.fisher_length_ratio`) and bounds
-the KL of the steps up to the next check by the blocks' model times the measured ratio.  Off by
-default: on large clean batches the blocks' model understates the KL a few times over and the
-larger steps it allows pay; on small, noisy batches (a sequence classifier at batch 8, say) it can
-understate it fifty times over and the steps then fit each batch's noise.
+Two bounds on the step's KL.  ``max_step_kl`` holds in the blocks' own model on every step.  That
+model drops every product between blocks and can understate the step's true KL: a few times over
+on large clean batches, where the longer steps it allows pay, and up to fifty times over on small
+noisy ones (a sequence classifier at batch 8, say), where the steps then fit each batch's noise.
+So every ``rule_interval = k`` steps (0: never) the rule measures the proposal's length in the exact
+Fisher of the whole model on the recorded batch (:func:`ngopt.rules.trust.fisher_length_ratio`,
+one forward-mode pass on ``rule_batch_fraction`` of the rows), and up to the next check it also keeps
+the blocks' KL times the measured ratio at most ``max_exact_step_kl`` (a ceiling a few times the
+first bound: it binds only where the blocks' model is far off).
+
+Off by default: the measurements cost a forward-mode pass each, and on the tasks of the benchmark
+harness and most client models the longer steps the blocks' model allows pay; on a BERT-style
+classifier at batch 8 they do not (README, *Cautions*).
 """
 from __future__ import annotations
 
@@ -82,7 +89,9 @@ class FixedStep:
             group = inputs.groups[index]
             lr, momentum = group["lr"], group["momentum"]
             dot = sum(inputs.dots[b][0] for b in blocks)
-            nu = kl_trust_scale(dot * self.length_ratio, lr, group["max_step_kl"])
+            nu = kl_trust_scale(dot, lr, group["max_step_kl"])
+            if self.checks:  # the ceiling on the KL in the exact Fisher, through the latest measured ratio
+                nu = min(nu, kl_trust_scale(dot * self.length_ratio, lr, group["max_exact_step_kl"]))
             scales[index] = nu
             step = lr * nu
             kl += 0.5 * step * step * dot * self.length_ratio
