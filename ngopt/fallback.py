@@ -16,6 +16,12 @@ ADAM_BETAS = (0.9, 0.999)
 ADAM_EPS = 1e-8
 
 
+def with_weight_decay(grad: Optional[torch.Tensor], param: torch.Tensor, weight_decay: float):
+    """``grad + weight_decay * param`` (a new tensor), the L2 term every rule adds; ``grad`` itself without
+    decay or gradient."""
+    return grad.add(param, alpha=weight_decay) if weight_decay and grad is not None else grad
+
+
 def heavy_ball(buffers: List[Optional[torch.Tensor]], directions: List[torch.Tensor], momentum: float,
                scale: float = 1.0) -> List[torch.Tensor]:
     """New momentum buffers ``momentum * buf + scale * direction`` (``scale * direction`` where ``buf`` is
@@ -44,8 +50,7 @@ def sgd_directions(params: List[torch.Tensor], grads: List[torch.Tensor], states
 
     Returns the directions and each parameter's new state entries; ``states`` is only read.
     """
-    directions = [grad.add(param, alpha=weight_decay) if weight_decay else grad
-                  for param, grad in zip(params, grads)]
+    directions = [with_weight_decay(grad, param, weight_decay) for param, grad in zip(params, grads)]
     directions = heavy_ball([state.get("momentum_buffer") for state in states], directions, momentum)
     new_states = [{"momentum_buffer": d} for d in directions] if momentum else [{} for _ in directions]
     return directions, new_states
@@ -60,7 +65,7 @@ def adam_directions(params: List[torch.Tensor], grads: List[torch.Tensor], state
     beta1, beta2 = ADAM_BETAS
     directions, new_states = [], []
     for param, grad, state in zip(params, grads, states):
-        grad = grad.add(param, alpha=weight_decay) if weight_decay else grad
+        grad = with_weight_decay(grad, param, weight_decay)
         steps = state["adam_step"] + 1 if "adam_step" in state else torch.ones((), dtype=torch.float64)
         exp_avg = state["exp_avg"].mul(beta1) if "exp_avg" in state else torch.zeros_like(param)
         exp_avg.add_(grad, alpha=1 - beta1)

@@ -86,7 +86,7 @@ import torch
 from torch import nn
 from torch.func import functional_call, hessian, jacrev, vmap
 
-from .likelihoods import criterion_arguments, likelihood_for, likelihood_from_arguments
+from .likelihoods import criterion_arguments, likelihood_from_arguments
 from .step_pipeline import PendingStep, add_projected_statistics, new_inverses, new_statistics
 from .uses.recorder import record_uses
 

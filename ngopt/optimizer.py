@@ -28,7 +28,6 @@ state untouched and is counted in ``diagnostics()["skipped_steps"]``.
 from __future__ import annotations
 
 import contextlib
-import math
 import time
 import warnings
 from types import SimpleNamespace
@@ -47,7 +46,6 @@ from .likelihoods import likelihood_for
 from .loss_scaling import UNSCALED_WITHOUT_SEEN_SCALE, step_loss_scale
 from .batch_evaluation import evaluator_for, loss_change, not_replayable_message
 from .rules import DAMPING_RULES, STEP_RULES
-from .rules.base import StepInputs
 from .rules.damping import reduction_ratio
 from .spectra import block_summary
 from .step_pipeline import (PendingStep, add_projected_statistics, all_finite, fallback_changes, new_inverses,

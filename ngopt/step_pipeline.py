@@ -18,6 +18,7 @@ from typing import Callable, Dict, List, Optional, Sequence
 import torch
 
 from . import fallback as fallback_rules
+from .fallback import with_weight_decay
 from .blocks.base import LayerCurvature
 from .rules.base import StepInputs, StepResult
 
@@ -122,11 +123,8 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
             continue
         index = group_index(layer.weight)
         group = groups[index]
-        weight_grad, bias_grad = layer.weight.grad, layer.bias.grad if layer.has_bias else None
-        if group["weight_decay"]:
-            weight_grad = weight_grad.add(layer.weight, alpha=group["weight_decay"])
-            if bias_grad is not None:
-                bias_grad = bias_grad.add(layer.bias, alpha=group["weight_decay"])
+        weight_grad = with_weight_decay(layer.weight.grad, layer.weight, group["weight_decay"])
+        bias_grad = with_weight_decay(layer.bias.grad, layer.bias, group["weight_decay"]) if layer.has_bias else None
         grad_matrix = layer.gradient_matrix(weight_grad, bias_grad)
         view = tentative_view(block, statistics, inverses)
         if all(key in view for key in block.inverse_keys):

@@ -23,9 +23,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from typing import Dict, List, Optional
-
-import torch
+from typing import List, Optional
 
 from ..schedule import rule_evaluation_due
 from .base import StepInputs, StepResult, as_parameters, blocks_in, group_of, norms
@@ -125,9 +123,7 @@ class QuadraticStep:
         kappa = next(iter(groups.values()))["max_step_kl"]
         coefficients = [alpha, mu][:len(span)]
         fisher_length = quadratic_value(gram, [0.0] * len(span), coefficients) * 2.0  # c^T F c
-        cap = 1.0
-        if kappa is not None and lr > 0 and fisher_length > 0 and lr * math.sqrt(fisher_length) > math.sqrt(kappa):
-            cap = math.sqrt(kappa) / (lr * math.sqrt(fisher_length))
+        cap = kl_trust_scale(fisher_length, lr, kappa)
         self.alpha, self.solves = alpha * cap, self.solves + 1
         updates = {}
         for block in blocks:
