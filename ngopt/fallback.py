@@ -23,11 +23,20 @@ def with_weight_decay(grad: Optional[torch.Tensor], param: torch.Tensor, weight_
 
 
 def heavy_ball(buffers: List[Optional[torch.Tensor]], directions: List[torch.Tensor], momentum: float,
-               scale: float = 1.0) -> List[torch.Tensor]:
+               scale: float = 1.0, reuse_directions: bool = False) -> List[torch.Tensor]:
     """New momentum buffers ``momentum * buf + scale * direction`` (``scale * direction`` where ``buf`` is
-    None, the first step); without momentum, the scaled directions themselves.  Out of place: the caller
-    keeps them only once the whole step is known to be finite.  Fused foreach calls: on small layers the
-    per-call overhead is most of the cost."""
+    None, the first step); without momentum, the scaled directions themselves.  The old buffers are only
+    read: the caller keeps the new ones once the whole step is known to be finite.  With
+    ``reuse_directions`` the new buffers are written into the directions' own storage (they must be the
+    caller's scratch tensors, not gradients): no parameter-sized allocation per layer.  Fused foreach
+    calls: on small layers the per-call overhead is most of the cost."""
+    if reuse_directions:
+        if scale != 1.0:
+            torch._foreach_mul_(directions, scale)
+        old = [i for i, buffer in enumerate(buffers) if buffer is not None]
+        if momentum and old:
+            torch._foreach_add_([directions[i] for i in old], [buffers[i] for i in old], alpha=momentum)
+        return list(directions)
     if not momentum:
         return torch._foreach_mul(directions, scale) if scale != 1.0 else list(directions)
     new: List[Optional[torch.Tensor]] = [None] * len(directions)

@@ -113,6 +113,8 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
               average: Callable = lambda *values: values) -> "tuple[Optional[StepInputs], list]":
     """Every block's gradient matrix ``g`` (plus weight decay) and proposal ``p = C^-1 g``, with their dots.
 
+    Each proposal is a new tensor that nothing else holds, so a step rule may write into it.
+
     Returns ``(inputs, missing)``: ``missing`` are the blocks with a nonzero gradient and still no
     curvature to precondition it; ``inputs`` is None if a dot product is non-finite.
     """
@@ -131,7 +133,7 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
             proposal = block.precondition(grad_matrix, group["damping"], view)
         else:
             missing.append(block)
-            proposal = grad_matrix
+            proposal = grad_matrix.clone()  # a proposal is always the step's own tensor: rules may reuse it
         directions[block] = (grad_matrix, proposal)
         per_group.setdefault(index, []).append(block)
     dots = {}

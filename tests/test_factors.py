@@ -125,6 +125,20 @@ def test_the_block_diagonal_form_is_off_the_exact_fisher_by_the_dropped_blocks_o
     np.testing.assert_allclose(blocked.precondition(grad, 1e-2).numpy(), expected, rtol=1e-9, atol=1e-12)
 
 
+def test_a_diagonal_output_factor_preconditions_as_the_dense_solve():
+    # An output factor above max_factor_size keeps its diagonal; the step scales the rows of the product
+    # with the input factor in place: still the solve of the damped dense curvature (numpy.linalg.solve).
+    model, x, y = single_layer_problem(d_in=9, d_out=12)
+    block = refreshed(model, x, y, max_factor_size=5).blocks["Linear"]
+    assert block.form_out.block == 1 and block.form_out.dim == 12
+    grad = torch.cat([model.weight.grad, model.bias.grad.unsqueeze(1)], dim=1)
+    kept = grad.clone()
+    damped = block.dense_curvature(1e-2).numpy()
+    expected = np.linalg.solve(damped, grad.T.reshape(-1).numpy()).reshape(10, 12).T
+    np.testing.assert_allclose(block.precondition(grad, 1e-2).numpy(), expected, rtol=1e-9, atol=1e-12)
+    assert torch.equal(grad, kept)  # the operand is only read
+
+
 def test_below_the_limit_the_forms_change_nothing():
     # A limit no factor reaches, and a budget no layer exceeds, give the very same step (same process).
     runs = []

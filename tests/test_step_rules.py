@@ -318,8 +318,9 @@ def test_forwards_inside_no_capture_change_neither_statistics_nor_the_recorded_b
         assert torch.equal(p, q)  # one process, the same operations in the same order
 
 
+@pytest.mark.parametrize("reuse", [False, True])
 @pytest.mark.parametrize("momentum", [0.0, 0.9])
-def test_fused_heavy_ball_keeps_the_buffers_torch_sgd_keeps(momentum):
+def test_fused_heavy_ball_keeps_the_buffers_torch_sgd_keeps(momentum, reuse):
     # Reference: torch.optim.SGD's momentum recursion (dampening 0), buf = momentum * buf + d with
     # buf = d on the first step, fed the scaled directions; one tensor joins late (a fresh buffer).
     from ngopt.fallback import heavy_ball
@@ -336,9 +337,12 @@ def test_fused_heavy_ball_keeps_the_buffers_torch_sgd_keeps(momentum):
             p.grad = directions[i] * scale if i in directions else None
         reference.step()
         kept = {i: states[i]["momentum_buffer"].clone() for i in directions if "momentum_buffer" in states[i]}
-        taken = heavy_ball([states[i].get("momentum_buffer") for i in directions], list(directions.values()),
-                           momentum, scale=scale)
+        scratch = {i: d.clone() for i, d in directions.items()}  # with reuse the new buffers are written here
+        taken = heavy_ball([states[i].get("momentum_buffer") for i in directions], list(scratch.values()),
+                           momentum, scale=scale, reuse_directions=reuse)
         assert all(torch.equal(states[i]["momentum_buffer"], old) for i, old in kept.items())  # only read
+        if reuse:
+            assert all(t is scratch[i] for i, t in zip(directions, taken))
         if momentum:  # out of place: the caller keeps the new buffers
             for i, buffer in zip(directions, taken):
                 states[i]["momentum_buffer"] = buffer
@@ -346,3 +350,18 @@ def test_fused_heavy_ball_keeps_the_buffers_torch_sgd_keeps(momentum):
             buffer = reference.state[params[i]].get("momentum_buffer")  # None without momentum (older torch)
             expected = buffer if buffer is not None else params[i].grad
             torch.testing.assert_close(direction, expected, rtol=1e-14, atol=1e-15)
+
+
+def test_a_step_leaves_the_gradients_as_they_were():
+    # The fixed rule writes its momentum buffers into the step's own proposals; a layer without bias
+    # hands the blocks its gradient itself (a view), which must stay untouched, as torch's optimizers leave it.
+    torch.manual_seed(3)
+    model = nn.Sequential(nn.Linear(4, 6, bias=False), nn.Tanh(), nn.Linear(6, 3, bias=False)).to(DTYPE)
+    opt = ngopt.FisherDescent(model, nn.CrossEntropyLoss(), stats_interval=1, momentum=0.9)
+    x, y = torch.randn(16, 4, dtype=DTYPE), torch.randint(0, 3, (16,))
+    for _ in range(3):
+        opt.zero_grad()
+        nn.CrossEntropyLoss()(model(x), y).backward()
+        grads = [p.grad.clone() for p in model.parameters()]
+        opt.step()
+        assert all(torch.equal(p.grad, g) for p, g in zip(model.parameters(), grads))

@@ -119,6 +119,11 @@ class KroneckerBlock(LayerCurvature):
 
     def precondition(self, grad_matrix, damping, tensors=None):
         tensors = self.state if tensors is None else tensors
+        if self.form_out.block == 1 and self.form_out.dim > 1:
+            # A diagonal output factor (a large output layer) scales rows: done in place on the product
+            # with the input factor, one parameter-sized tensor fewer than the two products in turn.
+            right = self.form_in.right(grad_matrix, tensors["inverse_in"])
+            return right.mul_(tensors["inverse_out"].reshape(-1, 1))
         left = self.form_out.left(tensors["inverse_out"], grad_matrix)
         return self.form_in.right(left, tensors["inverse_in"])
 

@@ -100,7 +100,8 @@ class FixedStep:
             proposals = [inputs.directions[block][1] for block in blocks]
             # One fused call per operation over the group's blocks (small layers are per-call overhead).
             buffers = [block.state.get("momentum_buffer") for block in blocks]
-            directions = heavy_ball(buffers, proposals, momentum, scale=nu)
+            # The proposals are this step's own tensors (step_pipeline.proposals): the new buffers reuse them.
+            directions = heavy_ball(buffers, proposals, momentum, scale=nu, reuse_directions=True)
             # w -= lr * buf: the new buffer itself with its factor, not a scaled copy of it.
             updates.update(zip(blocks, directions))
             update_scale.update((block, -lr) for block in blocks)
