@@ -96,3 +96,16 @@ def damped_inverse(matrix: torch.Tensor, shift: float, want_spectrum: bool = Fal
 
 def to_cpu64(tensor: torch.Tensor) -> torch.Tensor:
     return tensor.detach().to(device="cpu", dtype=torch.float64)
+
+
+def flat_dot(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
+    """``sum(a * b)`` over all entries of two tensors of one shape, as a 0-d tensor of their dtype.
+
+    No copy of either where both share a dense layout: contiguous, or a transposed contiguous 2-d
+    view (an embedding's gradient matrix is the transpose of its weight's gradient); other layouts
+    are copied once.  Accumulated in the tensors' precision, as ``torch.dot`` does.
+    """
+    if a.dim() == 2 and not (a.is_contiguous() and b.is_contiguous()) and a.T.is_contiguous() \
+            and b.T.is_contiguous():
+        a, b = a.T, b.T
+    return torch.dot(a.reshape(-1), b.reshape(-1))

@@ -19,6 +19,7 @@ import torch
 
 from . import fallback as fallback_rules
 from .fallback import with_weight_decay
+from .linalg import flat_dot
 from .blocks.base import LayerCurvature
 from .rules.base import StepInputs, StepResult
 
@@ -141,9 +142,8 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
         # One reduction for all the scalars the step needs: <p, g>, |p|^2, |g|^2 per block.
         order = list(directions)
         scalars = []
-        for grad_matrix, proposal in (directions[b] for b in order):
-            g, d = grad_matrix.reshape(-1), proposal.reshape(-1)
-            scalars += [torch.dot(d, g), torch.dot(d, d), torch.dot(g, g)]
+        for g, d in (directions[b] for b in order):
+            scalars += [flat_dot(d, g), flat_dot(d, d), flat_dot(g, g)]
         sums = torch.stack(scalars).double().cpu()
         if not bool(torch.isfinite(sums).all()):
             return None, []

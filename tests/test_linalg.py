@@ -104,3 +104,24 @@ def test_double_precision_statistics_are_always_inverted_in_float64():
     assert inversion_dtype(1.0, 10.0, torch.float64) == torch.float64
     assert inversion_dtype(1.0, 0.0, torch.float32) == torch.float64
     assert inversion_dtype(math.inf, 1.0, torch.float32) == torch.float64
+
+
+@pytest.mark.parametrize("layout", ["contiguous", "transposed", "mixed", "strided"])
+def test_flat_dot_is_the_sum_of_products_in_every_layout(layout):
+    # Reference: numpy's sum of the elementwise product in float64.  Float32 inputs accumulate in float32:
+    # within 4 sqrt(n) eps32 sum|a b| (the usual probabilistic bound on a sum's rounding; common practice).
+    from ngopt.linalg import flat_dot
+    generator = torch.Generator().manual_seed(0)
+    a = torch.randn(40, 30, generator=generator)
+    b = torch.randn(40, 30, generator=generator)
+    if layout == "transposed":      # an embedding's gradient matrix and its proposal: transposed views
+        a, b = a.T.contiguous().T, b.T.contiguous().T
+    elif layout == "mixed":
+        a = a.T.contiguous().T
+    elif layout == "strided":
+        a, b = torch.randn(40, 60, generator=generator)[:, ::2], torch.randn(40, 60, generator=generator)[:, ::2]
+    products = a.double().numpy() * b.double().numpy()
+    expected = float(products.sum())
+    bound = 4 * math.sqrt(products.size) * float(torch.finfo(torch.float32).eps) * float(np.abs(products).sum())
+    assert float(flat_dot(a, b)) == pytest.approx(expected, abs=bound)
+    assert float(flat_dot(a.double(), b.double())) == pytest.approx(expected, rel=1e-12)

@@ -36,6 +36,7 @@ import warnings
 import torch
 
 from ..fallback import heavy_ball
+from ..linalg import flat_dot
 from ..schedule import rule_evaluation_due
 from .base import StepInputs, StepResult, norms
 from .trust import fisher_length_ratio, kl_trust_scale
@@ -46,8 +47,9 @@ def _buffer_gradient_dots(blocks, buffers, inputs: StepInputs) -> list:
     present = [i for i, b in enumerate(buffers) if b is not None]
     values = [0.0] * len(blocks)
     if present:
-        dots = torch.stack([(buffers[i] * inputs.directions[blocks[i]][0]).sum(dtype=torch.float64)
-                            for i in present]).tolist()
+        # No parameter-sized product or float64 copy: a large layer would pay both on every step.
+        dots = torch.stack([flat_dot(buffers[i], inputs.directions[blocks[i]][0])
+                            for i in present]).double().tolist()
         for i, value in zip(present, dots):
             values[i] = value
     return values
