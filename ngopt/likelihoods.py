@@ -257,9 +257,12 @@ class CrossEntropy(OutputLikelihood):
             return torch.full((num_samples,) + output.shape, float("nan"), dtype=output.dtype,
                               device=output.device)
         draws = torch.multinomial(flat, num_samples, replacement=True, generator=generator)  # [terms, S]
-        onehot = F.one_hot(draws.T, classes).to(prob.dtype)                                  # [S, terms, C]
-        onehot = onehot.reshape((num_samples,) + prob.movedim(1, -1).shape).movedim(-1, 2)
-        return prob.unsqueeze(0) - onehot
+        # p - e_y for each draw y: the drawn class's entry lowered by one in a copy of p (no one-hot
+        # tensor, which for a large vocabulary would be several times the size of the logits).
+        grads = flat.unsqueeze(0).expand(num_samples, -1, -1).clone()                        # [S, terms, C]
+        index = draws.T.unsqueeze(-1)
+        grads.scatter_add_(2, index, torch.full(index.shape, -1.0, dtype=grads.dtype, device=grads.device))
+        return grads.reshape((num_samples,) + prob.movedim(1, -1).shape).movedim(-1, 2)
 
     def exact_output_grad_columns(self, output):
         # H = diag(p) - p p^T = S S^T with columns S_k = sqrt(p_k) (e_k - p), one per class k

@@ -150,3 +150,21 @@ def test_streamed_refresh_gives_the_statistics_of_a_collected_one(structure, wei
         for key, value in tensors.items():
             torch.testing.assert_close(value, states[1][name][key], rtol=1e-10, atol=1e-13, msg=f"{name} {key}")
     assert len(streams) == 3
+
+
+@pytest.mark.parametrize("shape", [(7, 5), (4, 6, 3), (2, 4, 3, 5)])
+@pytest.mark.parametrize("samples", [1, 3])
+def test_sampled_cross_entropy_gradients_are_softmax_minus_the_drawn_one_hot(shape, samples):
+    # The gradient of -log p_y with respect to the logits is p - e_y (common practice); the draws are
+    # torch.multinomial's from the same generator, along the class dimension (dim 1).
+    from ngopt.likelihoods import likelihood_for
+    output = torch.randn(*shape, generator=torch.Generator().manual_seed(1))
+    got = likelihood_for(nn.CrossEntropyLoss()).sampled_output_grads(output, torch.Generator().manual_seed(0),
+                                                                     samples)
+    prob = torch.softmax(output, dim=1)
+    flat = prob.movedim(1, -1).reshape(-1, shape[1])
+    draws = torch.multinomial(flat, samples, replacement=True, generator=torch.Generator().manual_seed(0))
+    one_hot = torch.nn.functional.one_hot(draws.T, shape[1]).to(prob.dtype)
+    expected = (flat.unsqueeze(0) - one_hot).reshape((samples,) + prob.movedim(1, -1).shape).movedim(-1, 2)
+    assert got.shape == (samples,) + tuple(shape)
+    assert torch.equal(got, expected)  # the same subtraction of 1.0 from the same entries
