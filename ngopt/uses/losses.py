@@ -86,27 +86,31 @@ class Program:
 
     def run(self, output: Any) -> torch.Tensor:
         values: Dict[int, Any] = {}
-
-        def value(ref):
-            if ref.kind == "leaf":
-                return follow(output, ref.key)
-            index, element = ref.key
-            result = values[index]
-            return result if element is None else result[element]
-
-        def fill(template):
-            if isinstance(template, _Ref):
-                return value(template)
-            if isinstance(template, list):
-                return [fill(t) for t in template]
-            if isinstance(template, tuple):
-                return tuple(fill(t) for t in template)
-            return template
-
         for index, (func, args, kwargs) in enumerate(self.nodes):
             if func is not None:
-                values[index] = func(*fill(args), **{k: fill(v) for k, v in kwargs.items()})
-        return value(self.result)
+                values[index] = func(*_filled(args, output, values),
+                                     **{k: _filled(v, output, values) for k, v in kwargs.items()})
+        return _value(self.result, output, values)
+
+
+# Module functions, not closures: a recursive closure is a reference cycle, and the tensors it reaches
+# (a vocabulary's logits) would then wait for the cyclic garbage collector instead of being freed.
+def _value(ref: _Ref, output: Any, values: Dict[int, Any]):
+    if ref.kind == "leaf":
+        return follow(output, ref.key)
+    index, element = ref.key
+    result = values[index]
+    return result if element is None else result[element]
+
+
+def _filled(template, output: Any, values: Dict[int, Any]):
+    if isinstance(template, _Ref):
+        return _value(template, output, values)
+    if isinstance(template, list):
+        return [_filled(t, output, values) for t in template]
+    if isinstance(template, tuple):
+        return tuple(_filled(t, output, values) for t in template)
+    return template
 
 
 class LossWatch(TorchFunctionMode):
@@ -164,18 +168,16 @@ class LossWatch(TorchFunctionMode):
         result = self.ref(tensor)
         if result is None:
             return None
-        needed = set()
-
-        def visit(ref):
+        needed, pending = set(), [result]
+        while pending:  # a stack, not a recursive closure (see _value)
+            ref = pending.pop()
             if ref.kind == "node" and ref.key[0] not in needed:
                 needed.add(ref.key[0])
                 _, args, kwargs = self.nodes[ref.key[0]]
                 for template in list(args) + list(kwargs.values()):
                     for inner in (template if isinstance(template, (list, tuple)) else [template]):
                         if isinstance(inner, _Ref):
-                            visit(inner)
-
-        visit(result)
+                            pending.append(inner)
         nodes = [node if index in needed else (None, (), {}) for index, node in enumerate(self.nodes)]
         return Program(nodes, result)
 
