@@ -152,8 +152,8 @@ class BlockDiagonal(Whole):
     def eigh(self, factor64):
         raise NotImplementedError("an eigenbasis is kept only for whole factors")
 
-    # Up to this many blocks, one product per block written into its slice of the result beats a
-    # batched product of reshaped copies (they cost a pass over the operand each); beyond, the batch.
+    # With padding and up to this many blocks, one product per block written into its slice of the result
+    # beats a batched product of a padded copy (a pass over the operand); otherwise, one batched product.
     LOOPED_BLOCKS = 64
 
     def _ranges(self):
@@ -161,12 +161,15 @@ class BlockDiagonal(Whole):
             start = index * self.block
             yield index, start, min(self.dim, start + self.block)
 
+    def _looped(self) -> bool:
+        return bool(self.padding) and self.count <= self.LOOPED_BLOCKS
+
     def _apply(self, blocks: torch.Tensor, operand: torch.Tensor, transpose: bool) -> torch.Tensor:
         """``blockdiag(B) @ M`` for ``M [d, k]``."""
         k = operand.shape[1]
         if self.block == 1:  # the diagonal
             return blocks.reshape(-1, 1) * operand
-        if self.count <= self.LOOPED_BLOCKS:
+        if self._looped():
             result = torch.empty_like(operand)
             for index, start, stop in self._ranges():
                 part = blocks[index, :stop - start, :stop - start]
@@ -181,17 +184,24 @@ class BlockDiagonal(Whole):
         return self._apply(matrix, operand, transpose)
 
     def right(self, operand, matrix, transpose=False):
-        """``M @ blockdiag(B)`` for ``M [k, d]``: each block on its slice of columns."""
+        """``M @ blockdiag(B)`` for ``M [k, d]``: each block on its slice of columns.
+
+        The result is contiguous: it becomes a proposal and a momentum buffer, and a transposed layout
+        would make every later elementwise pass over it, and the reshape to the weight's shape, slow.
+        """
         if self.block == 1:
             return operand * matrix.reshape(1, -1)
-        if self.count <= self.LOOPED_BLOCKS:
+        if self._looped():
             result = torch.empty_like(operand)
             for index, start, stop in self._ranges():
                 part = matrix[index, :stop - start, :stop - start]
                 torch.mm(operand[:, start:stop], part.T if transpose else part, out=result[:, start:stop])
             return result
-        # M @ S = (S^T @ M^T)^T
-        return self._apply(matrix, operand.T, not transpose).T
+        k = operand.shape[0]
+        padded = torch.nn.functional.pad(operand, (0, self.padding)) if self.padding else operand
+        blocks = matrix.transpose(1, 2) if transpose else matrix
+        result = torch.einsum("knb,nbc->knc", padded.reshape(k, self.count, self.block), blocks).reshape(k, -1)
+        return result[:, :self.dim].contiguous() if self.padding else result
 
     def left_damped(self, factor, shift, operand):
         return self._apply(factor, operand, False) + shift * operand

@@ -34,7 +34,8 @@ def diagonal_blocks(matrix: np.ndarray, block: int):
     return [matrix[i:i + block, i:i + block] for i in range(0, matrix.shape[0], block)]
 
 
-@pytest.mark.parametrize("dim, block", [(12, 4), (13, 4), (10, 1), (7, 3)])
+# (261, 2) and (256, 2): more blocks than BlockDiagonal.LOOPED_BLOCKS, with and without padding (the batched paths).
+@pytest.mark.parametrize("dim, block", [(12, 4), (13, 4), (10, 1), (7, 3), (261, 2), (256, 2)])
 def test_block_diagonal_statistics_inverse_and_products_against_numpy(dim, block):
     form = BlockDiagonal(dim, block)
     assert form.count == math.ceil(dim / block) and form.block * form.count - dim < form.count
@@ -55,7 +56,13 @@ def test_block_diagonal_statistics_inverse_and_products_against_numpy(dim, block
     operand = random_rows(dim, 5, seed=1)
     np.testing.assert_allclose(form.left(inverse, operand).numpy(), expected_inverse @ operand.numpy(), rtol=1e-10,
                                atol=1e-12)
-    np.testing.assert_allclose(form.right(operand.T, inverse).numpy(), operand.numpy().T @ expected_inverse,
+    right = form.right(operand.T.contiguous(), inverse)
+    np.testing.assert_allclose(right.numpy(), operand.numpy().T @ expected_inverse, rtol=1e-10, atol=1e-12)
+    # A proposal in a transposed layout made every later pass over it (momentum, the write) slow.
+    assert right.is_contiguous()
+    np.testing.assert_allclose(form.right(operand.T, inverse, transpose=True).numpy(),
+                               operand.numpy().T @ expected_inverse.T, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(form.left(inverse, operand, transpose=True).numpy(), expected_inverse.T @ operand.numpy(),
                                rtol=1e-10, atol=1e-12)
     damped = reference + shift * np.eye(dim)
     np.testing.assert_allclose(form.left_damped(factor, shift, operand).numpy(), damped @ operand.numpy(),
