@@ -72,7 +72,7 @@ def on_used_columns(matrix: torch.Tensor, operation) -> torch.Tensor:
     ``d^2`` per token seen instead of per token of the vocabulary.  ``used`` is None when every column
     is worked on.
     """
-    used = matrix.ne(0).any(dim=0).nonzero().squeeze(1)
+    used = matrix.any(dim=0).nonzero().squeeze(1)  # no boolean copy of the matrix, as ne(0) would make
     if used.numel() > matrix.shape[1] // 4:
         return operation(matrix, None)
     result = torch.zeros_like(matrix)
