@@ -8,6 +8,7 @@ replayed from the training forward's recording (:mod:`ngopt.quadratic_model`); w
 """
 from __future__ import annotations
 
+import math
 from typing import Callable, Dict, Optional, Tuple
 
 import torch
@@ -27,10 +28,9 @@ def evaluator_for(rules, model, batch, step_index: int, has_closure: bool,
     ratio_wanted = rules.damping.wants_ratio(step_index)
     if not (rule_wants or ratio_wanted):
         return None, ""
-    if has_closure and not steered and not rule_wants:
-        return None, ""  # the damping rule measures the closure's loss itself
     problem = replayable(batch)
     if problem:
+        # With a closure and only the damping rule asking, the closure's loss serves: nothing is missed.
         return None, problem if (not has_closure or steered or rule_wants) else ""
     # The rule's products need only a share of the rows; the damping rule's ratio compares the loss on
     # the rows the step's prediction was made for: the whole batch, or the quadratic rule's share.
@@ -55,13 +55,18 @@ def loss_change(result, evaluator, closure, loss, no_capture: Callable,
     """``(loss before, loss after, predicted change)`` of the step just written, on the same rows; None
     when there is nothing to measure it on.
 
-    With a closure the closure defines the loss and is evaluated again (inside ``no_capture()``);
-    else the evaluator replays the recorded batch.  The prediction is the rule's own, or the blocks'
+    With a closure the closure defines the loss and is evaluated again (inside ``no_capture()``), unless
+    the recorded batch's replay gives the same loss (:func:`replay_measures_closure_loss`): a forward
+    without gradients then does, instead of the closure's forward and backward.  Without a closure the
+    evaluator replays the recorded batch.  The prediction is the rule's own, or the blocks'
     quadratic model of the applied updates.
     """
     # Before any re-evaluation: a closure's backward overwrites the gradients the model uses.
     predicted = result.predicted_change if result.predicted_change is not None \
         else model_change(result.updates, result.update_scale, damping_of)
+    if evaluator is not None and closure is not None and loss is not None \
+            and replay_measures_closure_loss(evaluator, float(loss)):
+        closure = None  # the replay's forward without gradients measures the same loss as the closure's
     if closure is not None and loss is not None:
         before = float(loss)
         with no_capture(), torch.enable_grad():
@@ -72,6 +77,17 @@ def loss_change(result, evaluator, closure, loss, no_capture: Callable,
     else:
         return None
     return before, after, predicted
+
+
+def replay_measures_closure_loss(evaluator, closure_loss: float) -> bool:
+    """Whether replaying the recorded batch gives the closure's loss: every row evaluated, and the recorded
+    loss calls add up to the closure's value (no penalty or other term beside them; a relative 1e-5
+    covers float32 rounding of one loss value summed in float64, common practice)."""
+    if evaluator.subsampled:
+        return False
+    recorded = evaluator.recorded_loss()
+    return recorded is not None and math.isfinite(closure_loss) \
+        and abs(recorded - closure_loss) <= 1e-5 * max(abs(closure_loss), 1e-12)
 
 
 def model_change(applied: Dict[object, torch.Tensor], scale: Dict[object, float],

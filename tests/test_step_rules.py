@@ -180,6 +180,50 @@ def test_reduction_ratio_from_the_recording_equals_the_closures():
         assert a["damping"] == b["damping"]
 
 
+def _closure_run(options, penalty=0.0, force_closure=False, monkeypatch=None):
+    """Three Levenberg-Marquardt steps driven by a closure; returns (closure calls, ratios, dampings)."""
+    model, loss_fn, x, y = lm_problem()
+    opt = ngopt.FisherDescent(model, loss_fn, **options)
+    if force_closure:
+        monkeypatch.setattr("ngopt.batch_evaluation.replay_measures_closure_loss", lambda *a: False)
+    calls = []
+
+    def closure():
+        calls.append(1)
+        opt.zero_grad()
+        value = loss_fn(model(x), y) + penalty * sum(p.square().sum() for p in model.parameters())
+        value.backward()
+        return value
+
+    ratios, dampings = [], []
+    for _ in range(3):
+        opt.step(closure)
+        ratios.append(opt.diagnostics()["update"]["reduction_ratio"])
+        dampings.append(opt.param_groups[0]["damping"])
+    return len(calls), ratios, dampings
+
+
+def test_a_closure_whose_loss_the_replay_reproduces_is_not_called_again(monkeypatch):
+    # The recorded loss calls add up to the closure's loss: a forward without gradients on the recorded
+    # batch measures the step's loss change, not the closure's forward and backward, with the same ratio.
+    settings = dict(step_rule="fixed", damping_rule="lm", damping_interval=1, fisher="exact", seed=1)
+    calls, ratios, dampings = _closure_run(settings)
+    assert calls == 3
+    forced_calls, forced_ratios, forced_dampings = _closure_run(settings, force_closure=True, monkeypatch=monkeypatch)
+    assert forced_calls == 6
+    # float64 model: the replay's loss and the closure's differ by summation order only
+    np.testing.assert_allclose(ratios, forced_ratios, rtol=1e-9)
+    assert dampings == forced_dampings
+
+
+def test_a_closure_with_a_term_beside_the_loss_calls_is_evaluated_again():
+    # A penalty in the closure is part of the loss the replay cannot see: the closure measures the change.
+    settings = dict(step_rule="fixed", damping_rule="lm", damping_interval=1, fisher="exact", seed=1)
+    calls, ratios, _ = _closure_run(settings, penalty=1e-2)
+    assert calls == 6
+    assert all(r is not None and np.isfinite(r) for r in ratios)
+
+
 def test_evaluations_leave_batch_norm_statistics_rng_and_gradients_alone():
     # A step under the quadratic rule with Levenberg-Marquardt runs three extra forwards; the
     # model's running statistics, the global RNG and .grad must end as after a plain fixed step.
