@@ -70,9 +70,11 @@ class Whole:
         """``S @ M`` (``S^T @ M`` with ``transpose``) for ``M [d, k]``."""
         return (matrix.T if transpose else matrix) @ operand
 
-    def right(self, operand: torch.Tensor, matrix: torch.Tensor, transpose: bool = False) -> torch.Tensor:
-        """``M @ S`` (``M @ S^T``) for ``M [k, d]``."""
-        return operand @ (matrix.T if transpose else matrix)
+    def right(self, operand: torch.Tensor, matrix: torch.Tensor, transpose: bool = False,
+              out: Optional[torch.Tensor] = None) -> torch.Tensor:
+        """``M @ S`` (``M @ S^T``) for ``M [k, d]``, written into ``out`` when given."""
+        matrix = matrix.T if transpose else matrix
+        return operand @ matrix if out is None else torch.mm(operand, matrix, out=out)
 
     def left_damped(self, factor: torch.Tensor, shift: float, operand: torch.Tensor) -> torch.Tensor:
         """``(S + shift I) @ M`` without forming the damped factor."""
@@ -183,8 +185,8 @@ class BlockDiagonal(Whole):
     def left(self, matrix, operand, transpose=False):
         return self._apply(matrix, operand, transpose)
 
-    def right(self, operand, matrix, transpose=False):
-        """``M @ blockdiag(B)`` for ``M [k, d]``: each block on its slice of columns.
+    def right(self, operand, matrix, transpose=False, out=None):
+        """``M @ blockdiag(B)`` for ``M [k, d]``: each block on its slice of columns (``out`` is not used).
 
         The result is contiguous: it becomes a proposal and a momentum buffer, and a transposed layout
         would make every later elementwise pass over it, and the reshape to the weight's shape, slow.

@@ -18,6 +18,7 @@ from typing import Callable, Dict, List, Optional, Sequence
 import torch
 
 from . import fallback as fallback_rules
+from . import scratch
 from .fallback import with_weight_decay
 from .linalg import flat_dot
 from .blocks.base import LayerCurvature
@@ -128,10 +129,12 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
         group = groups[index]
         weight_grad = with_weight_decay(layer.weight.grad, layer.weight, group["weight_decay"])
         bias_grad = with_weight_decay(layer.bias.grad, layer.bias, group["weight_decay"]) if layer.has_bias else None
-        grad_matrix = layer.gradient_matrix(weight_grad, bias_grad)
+        grad_matrix = _gradient_matrix(block, weight_grad, bias_grad)
         view = tentative_view(block, statistics, inverses)
         if all(key in view for key in block.inverse_keys):
-            proposal = block.precondition(grad_matrix, group["damping"], view)
+            spare = scratch.take(block.scratch, "proposal", grad_matrix) if block.writes_into else None
+            proposal = block.precondition(grad_matrix, group["damping"], view, **({"out": spare} if spare is not None
+                                                                                 else {}))
         else:
             missing.append(block)
             proposal = grad_matrix.clone()  # a proposal is always the step's own tensor: rules may reuse it
@@ -151,6 +154,20 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
         dots = {block: tuple(values[3 * i:3 * i + 3]) for i, block in enumerate(order)}
     missing = [b for b in missing if dots[b][2] > 0.0]
     return StepInputs(groups, per_group, directions, dots, step_index, average=average), missing
+
+
+def _gradient_matrix(block: LayerCurvature, weight_grad: torch.Tensor, bias_grad: Optional[torch.Tensor]):
+    """The block's gradient matrix; a large layer's weight and bias are joined in memory it keeps for it."""
+    layer = block.layer
+    if bias_grad is None or not scratch.worth_keeping(weight_grad):
+        return layer.gradient_matrix(weight_grad, bias_grad)
+    kept = block.scratch.get("gradient_matrix")
+    shape = (layer.out_dim, weight_grad.numel() // layer.out_dim + 1)
+    out = kept if kept is not None and kept.shape == shape and kept.dtype == weight_grad.dtype \
+        and kept.device == weight_grad.device else None
+    matrix = layer.gradient_matrix(weight_grad, bias_grad, out=out)
+    block.scratch["gradient_matrix"] = matrix  # read only within a step: the next one may overwrite it
+    return matrix
 
 
 @dataclass
@@ -216,7 +233,11 @@ class PendingStep:
             block.commit(tensors)
             block.info = dict(info, inversion_step=step_index)
         for block, entries in (self.result.states if self.result is not None else {}).items():
+            replaced = block.state.get("momentum_buffer")
             block.state.update(entries)
+            if block.writes_into and replaced is not None and replaced is not entries.get("momentum_buffer", replaced) \
+                    and scratch.worth_keeping(replaced):
+                block.scratch["proposal"] = replaced  # no longer state: the next proposal's memory
 
     def write_block_updates(self, keep_previous: bool) -> None:
         """``w += s * u`` for every block (``s`` from ``update_scale``, 1 where absent); ``keep_previous``

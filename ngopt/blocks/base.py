@@ -69,6 +69,8 @@ class LayerCurvature:
     projected_keys: Tuple[str, ...] = ()
     # Statistics proportional to the loss's weights (built from output gradients): a loss scale divides them.
     loss_weighted_keys: Tuple[str, ...] = ()
+    # Whether precondition() takes ``out=`` (memory for its result, see ngopt/scratch.py).
+    writes_into = False
 
     def __init__(self, layer: LayerAdapter, state: dict, weight_sharing: str = "expand"):
         if weight_sharing not in WEIGHT_SHARING:
@@ -85,6 +87,8 @@ class LayerCurvature:
         # Partial sums of captures already folded (fold_pending), for blocks whose statistics are sums.
         self._folded = None
         self.plan = None  # budget.Plan: the form chosen for this layer's cost, when one was
+        # Memory reused between steps (ngopt/scratch.py): never state, never checkpointed.
+        self.scratch: dict = {}
 
     # -- capture -------------------------------------------------------------------------
     def add_capture(self, input_rows: torch.Tensor, grad_rows: torch.Tensor, scale: float,
@@ -179,7 +183,11 @@ class LayerCurvature:
 
     # -- the step -----------------------------------------------------------------------
     def precondition(self, grad_matrix: torch.Tensor, damping: float, tensors=None) -> torch.Tensor:
-        """``C^-1 grad`` as a gradient matrix; ``tensors`` (default: the block's state) holds the inverse."""
+        """``C^-1 grad`` as a gradient matrix; ``tensors`` (default: the block's state) holds the inverse.
+
+        Blocks with ``writes_into`` also take ``out``: a contiguous tensor shaped like ``grad_matrix`` that
+        the result may be written into (the result is returned either way).
+        """
         raise NotImplementedError
 
     def damped_product(self, matrix: torch.Tensor, damping: float) -> torch.Tensor:

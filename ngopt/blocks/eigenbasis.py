@@ -89,6 +89,8 @@ class EigenbasisBlock(KroneckerBlock):
         rotated = basis_out.T @ matrix @ basis_in
         return basis_out @ damped_scales_op(rotated) @ basis_in.T
 
+    writes_into = False  # its products run in the eigenbasis
+
     def precondition(self, grad_matrix, damping, tensors=None):
         tensors = self.state if tensors is None else tensors
         return self._in_basis(grad_matrix, tensors, lambda r: r / (tensors["scales"] + damping))

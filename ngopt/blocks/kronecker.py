@@ -117,15 +117,17 @@ class KroneckerBlock(LayerCurvature):
         return {"inverse_in": inv_in.to(device=ref.device, dtype=ref.dtype),
                 "inverse_out": inv_out.to(device=ref.device, dtype=ref.dtype)}, info
 
-    def precondition(self, grad_matrix, damping, tensors=None):
+    writes_into = True
+
+    def precondition(self, grad_matrix, damping, tensors=None, out=None):
         tensors = self.state if tensors is None else tensors
         if self.form_out.block == 1 and self.form_out.dim > 1:
             # A diagonal output factor (a large output layer) scales rows: done in place on the product
             # with the input factor, one parameter-sized tensor fewer than the two products in turn.
-            right = self.form_in.right(grad_matrix, tensors["inverse_in"])
+            right = self.form_in.right(grad_matrix, tensors["inverse_in"], out=out)
             return right.mul_(tensors["inverse_out"].reshape(-1, 1))
         left = self.form_out.left(tensors["inverse_out"], grad_matrix)
-        return self.form_in.right(left, tensors["inverse_in"])
+        return self.form_in.right(left, tensors["inverse_in"], out=out)
 
     def _shifts(self, damping):
         factor_in, factor_out = self.state["factor_in"], self.state["factor_out"]

@@ -49,13 +49,16 @@ class LayerAdapter:
     def params(self):
         return [self.weight] + ([self.bias] if self.has_bias else [])
 
-    def gradient_matrix(self, weight_grad: torch.Tensor, bias_grad: Optional[torch.Tensor]) -> torch.Tensor:
+    def gradient_matrix(self, weight_grad: torch.Tensor, bias_grad: Optional[torch.Tensor],
+                        out: Optional[torch.Tensor] = None) -> torch.Tensor:
+        """``[d_out, d_in (+1)]``; with a bias, a new tensor (written into ``out`` when given, of that shape)."""
         matrix = weight_grad.reshape(self.out_dim, -1)
         if not self.has_bias:
             return matrix
         if bias_grad is None:
             bias_grad = torch.zeros(self.out_dim, dtype=matrix.dtype, device=matrix.device)
-        return torch.cat([matrix, bias_grad.reshape(self.out_dim, 1)], dim=1)
+        parts = [matrix, bias_grad.reshape(self.out_dim, 1)]
+        return torch.cat(parts, dim=1) if out is None else torch.cat(parts, dim=1, out=out)
 
     def split_matrix(self, matrix: torch.Tensor):
         """Inverse of :meth:`gradient_matrix`: ``(weight-shaped, bias-shaped or None)``."""
@@ -87,8 +90,8 @@ class LinearLayer(LayerAdapter):
     def in_dim(self) -> int:
         return (self.weight.shape[0] if self.transposed else self.weight.shape[1]) + int(self.has_bias)
 
-    def gradient_matrix(self, weight_grad, bias_grad):
-        return super().gradient_matrix(weight_grad.T if self.transposed else weight_grad, bias_grad)
+    def gradient_matrix(self, weight_grad, bias_grad, out=None):
+        return super().gradient_matrix(weight_grad.T if self.transposed else weight_grad, bias_grad, out)
 
     def split_matrix(self, matrix):
         if not self.transposed:

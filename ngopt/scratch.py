@@ -1,0 +1,36 @@
+"""Memory a large layer's block reuses from one step to the next.
+
+A tensor of more than a few hundred kilobytes gets fresh pages from the operating system, and the
+first write to each page costs a fault: on this project's 32,000 x 513 output layer a fresh product with
+the input factor took 75 ms where the same product into memory already written took 59 ms, and the
+gradient matrix (weight and bias joined) 18.5 ms fresh against 6.7 ms reused.  So a large block keeps
+its gradient matrix's memory between steps, and takes the momentum buffer a step replaces as the memory
+of the next step's proposal (the buffer is then no longer part of the optimizer's state; as with torch's
+own optimizers, which update their buffers in place, a reference kept to an earlier state tensor does
+not keep its values: copy a ``state_dict()`` to keep it).  The peak is unchanged: both tensors are alive
+during a step anyway.
+"""
+from __future__ import annotations
+
+from typing import Optional
+
+import torch
+
+# Below this many elements (1 MB in float32) the allocator reuses memory by itself.
+MIN_ELEMENTS = 2 ** 18
+
+
+def fits(tensor: Optional[torch.Tensor], like: torch.Tensor) -> bool:
+    """Whether ``tensor`` can receive a result shaped, typed and placed like ``like`` (contiguous)."""
+    return tensor is not None and tensor.shape == like.shape and tensor.dtype == like.dtype \
+        and tensor.device == like.device and tensor.is_contiguous()
+
+
+def take(scratch: dict, key: str, like: torch.Tensor) -> Optional[torch.Tensor]:
+    """The kept tensor under ``key`` if it fits a result like ``like`` (removed from ``scratch``), else None."""
+    tensor = scratch.pop(key, None)
+    return tensor if fits(tensor, like) else None
+
+
+def worth_keeping(tensor: torch.Tensor) -> bool:
+    return tensor.numel() >= MIN_ELEMENTS
