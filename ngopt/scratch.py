@@ -24,16 +24,16 @@ import torch
 MIN_ELEMENTS = 2 ** 22
 
 
-def fits(tensor: Optional[torch.Tensor], like: torch.Tensor) -> bool:
-    """Whether ``tensor`` can receive a result shaped, typed and placed like ``like`` (contiguous)."""
-    return tensor is not None and tensor.shape == like.shape and tensor.dtype == like.dtype \
-        and tensor.device == like.device and tensor.is_contiguous()
+def fits(tensor: Optional[torch.Tensor], shape, dtype: torch.dtype, device: torch.device) -> bool:
+    """Whether ``tensor`` can receive a result of this shape, dtype and device (it must be contiguous)."""
+    return tensor is not None and tensor.shape == torch.Size(shape) and tensor.dtype == dtype \
+        and tensor.device == device and tensor.is_contiguous()
 
 
 def take(scratch: dict, key: str, like: torch.Tensor) -> Optional[torch.Tensor]:
     """The kept tensor under ``key`` if it fits a result like ``like`` (removed from ``scratch``), else None."""
     tensor = scratch.pop(key, None)
-    return tensor if fits(tensor, like) else None
+    return tensor if fits(tensor, like.shape, like.dtype, like.device) else None
 
 
 def worth_keeping(tensor: torch.Tensor) -> bool:

@@ -133,8 +133,8 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
         view = tentative_view(block, statistics, inverses)
         if all(key in view for key in block.inverse_keys):
             spare = scratch.take(block.scratch, "proposal", grad_matrix) if block.writes_into else None
-            proposal = block.precondition(grad_matrix, group["damping"], view, **({"out": spare} if spare is not None
-                                                                                 else {}))
+            memory = {"out": spare} if spare is not None else {}
+            proposal = block.precondition(grad_matrix, group["damping"], view, **memory)
         else:
             missing.append(block)
             proposal = grad_matrix.clone()  # a proposal is always the step's own tensor: rules may reuse it
@@ -163,8 +163,7 @@ def _gradient_matrix(block: LayerCurvature, weight_grad: torch.Tensor, bias_grad
         return layer.gradient_matrix(weight_grad, bias_grad)
     kept = block.scratch.get("gradient_matrix")
     shape = (layer.out_dim, weight_grad.numel() // layer.out_dim + 1)
-    out = kept if kept is not None and kept.shape == shape and kept.dtype == weight_grad.dtype \
-        and kept.device == weight_grad.device else None
+    out = kept if scratch.fits(kept, shape, weight_grad.dtype, weight_grad.device) else None
     matrix = layer.gradient_matrix(weight_grad, bias_grad, out=out)
     block.scratch["gradient_matrix"] = matrix  # read only within a step: the next one may overwrite it
     return matrix

@@ -57,9 +57,13 @@ def test_reused_memory_gives_the_same_weights_and_alternates_between_two_buffers
 
 def test_a_kept_tensor_is_used_only_where_it_fits():
     like = torch.zeros(3, 4)
-    assert scratch.fits(torch.empty(3, 4), like)
-    assert not scratch.fits(torch.empty(4, 3), like)
-    assert not scratch.fits(torch.empty(3, 4, dtype=torch.float64), like)
-    assert not scratch.fits(torch.empty(4, 3).T, like)  # not contiguous
+    assert scratch.fits(torch.empty(3, 4), (3, 4), torch.float32, like.device)
+    assert not scratch.fits(torch.empty(4, 3), (3, 4), torch.float32, like.device)
+    assert not scratch.fits(torch.empty(3, 4, dtype=torch.float64), (3, 4), torch.float32, like.device)
+    assert not scratch.fits(torch.empty(4, 3).T, (3, 4), torch.float32, like.device)  # not contiguous
+    assert not scratch.fits(None, (3, 4), torch.float32, like.device)
     kept = {"proposal": torch.empty(2, 2)}
     assert scratch.take(kept, "proposal", like) is None and kept == {}  # a misfit is dropped, not kept
+    fitting = torch.empty(3, 4)
+    kept = {"proposal": fitting}
+    assert scratch.take(kept, "proposal", like) is fitting and kept == {}
