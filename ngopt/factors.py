@@ -72,9 +72,9 @@ class Whole:
 
     def right(self, operand: torch.Tensor, matrix: torch.Tensor, transpose: bool = False,
               out: Optional[torch.Tensor] = None) -> torch.Tensor:
-        """``M @ S`` (``M @ S^T``) for ``M [k, d]``, written into ``out`` when given."""
+        """``M @ S`` (``M @ S^T``) for ``M [k, d]``, written into ``out`` when given and contiguous."""
         matrix = matrix.T if transpose else matrix
-        return operand @ matrix if out is None else torch.mm(operand, matrix, out=out)
+        return torch.mm(operand, matrix, out=out) if out is not None and out.is_contiguous() else operand @ matrix
 
     def left_damped(self, factor: torch.Tensor, shift: float, operand: torch.Tensor) -> torch.Tensor:
         """``(S + shift I) @ M`` without forming the damped factor."""

@@ -25,13 +25,15 @@ MIN_ELEMENTS = 2 ** 22
 
 
 def fits(tensor: Optional[torch.Tensor], shape, dtype: torch.dtype, device: torch.device) -> bool:
-    """Whether ``tensor`` can receive a result of this shape, dtype and device (it must be contiguous)."""
+    """Whether ``tensor`` has this shape, dtype and device (its layout is for the user to check: a block
+    writes into kept memory only where its result's layout is the kept tensor's)."""
     return tensor is not None and tensor.shape == torch.Size(shape) and tensor.dtype == dtype \
-        and tensor.device == device and tensor.is_contiguous()
+        and tensor.device == device
 
 
 def take(scratch: dict, key: str, like: torch.Tensor) -> Optional[torch.Tensor]:
-    """The kept tensor under ``key`` if it fits a result like ``like`` (removed from ``scratch``), else None."""
+    """The kept tensor under ``key`` if it has ``like``'s shape, dtype and device (removed from ``scratch``),
+    else None."""
     tensor = scratch.pop(key, None)
     return tensor if fits(tensor, like.shape, like.dtype, like.device) else None
 

@@ -163,7 +163,7 @@ def _gradient_matrix(block: LayerCurvature, weight_grad: torch.Tensor, bias_grad
         return layer.gradient_matrix(weight_grad, bias_grad)
     kept = block.scratch.get("gradient_matrix")
     shape = (layer.out_dim, weight_grad.numel() // layer.out_dim + 1)
-    out = kept if scratch.fits(kept, shape, weight_grad.dtype, weight_grad.device) else None
+    out = kept if scratch.fits(kept, shape, weight_grad.dtype, weight_grad.device) and kept.is_contiguous() else None
     matrix = layer.gradient_matrix(weight_grad, bias_grad, out=out)
     block.scratch["gradient_matrix"] = matrix  # read only within a step: the next one may overwrite it
     return matrix

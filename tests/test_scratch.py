@@ -6,11 +6,14 @@ of the momentum buffers alternating between two allocations instead of a new one
 """
 import copy
 
+import numpy as np
 import torch
 from torch import nn
 
 import ngopt
 from ngopt import scratch
+from ngopt.blocks.embedding import on_used_columns
+from ngopt.factors import Whole
 
 
 def _run(model, steps=6):
@@ -60,10 +63,33 @@ def test_a_kept_tensor_is_used_only_where_it_fits():
     assert scratch.fits(torch.empty(3, 4), (3, 4), torch.float32, like.device)
     assert not scratch.fits(torch.empty(4, 3), (3, 4), torch.float32, like.device)
     assert not scratch.fits(torch.empty(3, 4, dtype=torch.float64), (3, 4), torch.float32, like.device)
-    assert not scratch.fits(torch.empty(4, 3).T, (3, 4), torch.float32, like.device)  # not contiguous
     assert not scratch.fits(None, (3, 4), torch.float32, like.device)
     kept = {"proposal": torch.empty(2, 2)}
     assert scratch.take(kept, "proposal", like) is None and kept == {}  # a misfit is dropped, not kept
     fitting = torch.empty(3, 4)
     kept = {"proposal": fitting}
     assert scratch.take(kept, "proposal", like) is fitting and kept == {}
+
+
+def test_kept_memory_in_another_layout_is_not_written_into():
+    # A product into memory of another layout would be computed and then copied: the result is made fresh.
+    operand, matrix = torch.randn(5, 3, dtype=torch.float64), torch.randn(3, 3, dtype=torch.float64)
+    transposed = torch.empty(3, 5, dtype=torch.float64).T
+    result = Whole(3).right(operand, matrix, out=transposed)
+    assert result.data_ptr() != transposed.data_ptr()
+    np.testing.assert_allclose(result.numpy(), operand.numpy() @ matrix.numpy(), rtol=1e-12)
+    contiguous = torch.empty(5, 3, dtype=torch.float64)
+    assert Whole(3).right(operand, matrix, out=contiguous).data_ptr() == contiguous.data_ptr()
+    # An embedding's gradient matrix is the transpose of its weight's gradient: kept memory must match it.
+    gradient = torch.zeros(7, 4, dtype=torch.float64)
+    gradient[2] = 1.0
+    columns = gradient.T
+    scale = lambda used_columns, used: 2.0 * used_columns  # noqa: E731
+    same_layout = torch.full((7, 4), 5.0, dtype=torch.float64).T
+    written = on_used_columns(columns, scale, same_layout)
+    assert written.data_ptr() == same_layout.data_ptr()
+    np.testing.assert_array_equal(written.numpy(), 2.0 * columns.numpy())  # the stale values were zeroed
+    other_layout = torch.full((4, 7), 5.0, dtype=torch.float64)
+    fresh = on_used_columns(columns, scale, other_layout)
+    assert fresh.data_ptr() != other_layout.data_ptr()
+    np.testing.assert_array_equal(fresh.numpy(), 2.0 * columns.numpy())

@@ -64,18 +64,19 @@ def token_square_sums(indices: torch.Tensor, grad_rows: torch.Tensor, vocab: int
     return total.T
 
 
-def on_used_columns(matrix: torch.Tensor, operation) -> torch.Tensor:
+def on_used_columns(matrix: torch.Tensor, operation, out=None) -> torch.Tensor:
     """``operation(columns, used)`` on the columns of ``matrix`` that are not all zero, zeros elsewhere.
 
     An embedding's gradient has a nonzero column only for the tokens of the batch, and every
     preconditioner here maps a zero column to a zero column: working on the used columns alone costs
     ``d^2`` per token seen instead of per token of the vocabulary.  ``used`` is None when every column
-    is worked on.
+    is worked on.  ``out``: memory for the result, used where it is laid out like ``matrix``
+    (ngopt/scratch.py).
     """
     used = matrix.any(dim=0).nonzero().squeeze(1)  # no boolean copy of the matrix, as ne(0) would make
     if used.numel() > matrix.shape[1] // 4:
         return operation(matrix, None)
-    result = torch.zeros_like(matrix)
+    result = out.zero_() if out is not None and out.stride() == matrix.stride() else torch.zeros_like(matrix)
     result[:, used] = operation(matrix[:, used], used)
     return result
 
@@ -148,10 +149,12 @@ class EmbeddingKroneckerBlock(LayerCurvature):
         return {"inverse_in": (1.0 / (factor_in + shift_in)).to(device=ref.device, dtype=ref.dtype),
                 "inverse_out": inv_out.inverse.to(device=ref.device, dtype=ref.dtype)}, info
 
-    def precondition(self, grad_matrix, damping, tensors=None):
+    writes_into = True
+
+    def precondition(self, grad_matrix, damping, tensors=None, out=None):
         tensors = self.state if tensors is None else tensors
         return on_used_columns(grad_matrix, lambda columns, used: (tensors["inverse_out"] @ columns)
-                               * (tensors["inverse_in"] if used is None else tensors["inverse_in"][used]))
+                               * (tensors["inverse_in"] if used is None else tensors["inverse_in"][used]), out)
 
     def _damped_factors(self, damping):
         factor_in, factor_out = self.state["factor_in"], self.state["factor_out"]
@@ -227,14 +230,14 @@ class EmbeddingEigenbasisBlock(EmbeddingKroneckerBlock):
     # The step as for dense layers, in the basis I (x) Q_G.
     damped_product = EigenbasisBlock.damped_product
 
-    def precondition(self, grad_matrix, damping, tensors=None):
+    def precondition(self, grad_matrix, damping, tensors=None, out=None):
         tensors = self.state if tensors is None else tensors
         basis = tensors["basis_out"]
 
         def rotated(columns, used):
             scales = tensors["scales"] if used is None else tensors["scales"][:, used]
             return basis @ ((basis.T @ columns) / (scales + damping))
-        return on_used_columns(grad_matrix, rotated)
+        return on_used_columns(grad_matrix, rotated, out)
 
     def _in_basis(self, matrix, tensors, damped_scales_op):
         basis = tensors["basis_out"]
