@@ -51,7 +51,8 @@ def not_replayable_message(problem: str, step_rule: str, damping_rule: str, rule
 
 
 def loss_change(result, evaluator, closure, loss, no_capture: Callable,
-                damping_of: Callable[[object], float]) -> Optional[Tuple[float, float, float]]:
+                damping_of: Callable[[object], float],
+                all_agree: Callable[[bool], bool] = lambda flag: flag) -> Optional[Tuple[float, float, float]]:
     """``(loss before, loss after, predicted change)`` of the step just written, on the same rows; None
     when there is nothing to measure it on.
 
@@ -59,13 +60,14 @@ def loss_change(result, evaluator, closure, loss, no_capture: Callable,
     the recorded batch's replay gives the same loss (:func:`replay_measures_closure_loss`): a forward
     without gradients then does, instead of the closure's forward and backward.  Without a closure the
     evaluator replays the recorded batch.  The prediction is the rule's own, or the blocks'
-    quadratic model of the applied updates.
+    quadratic model of the applied updates.  ``all_agree(flag)``: whether every data-parallel rank
+    says ``flag`` (a closure's backward under DDP is a collective: all ranks must call it, or none).
     """
     # Before any re-evaluation: a closure's backward overwrites the gradients the model uses.
     predicted = result.predicted_change if result.predicted_change is not None \
         else model_change(result.updates, result.update_scale, damping_of)
-    if evaluator is not None and closure is not None and loss is not None \
-            and replay_measures_closure_loss(evaluator, float(loss)):
+    if closure is not None and loss is not None and all_agree(
+            evaluator is not None and replay_measures_closure_loss(evaluator, float(loss))):
         closure = None  # the replay's forward without gradients measures the same loss as the closure's
     if closure is not None and loss is not None:
         before = float(loss)

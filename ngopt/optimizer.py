@@ -508,10 +508,13 @@ class FisherDescent(torch.optim.Optimizer):
 
     def _finite_everywhere(self, loss) -> bool:
         """Whether the loss is finite on every rank: a skip must be a joint decision."""
-        finite = bool(torch.isfinite(torch.as_tensor(loss)).all())
-        if self.communicator is not None:
-            finite = self.communicator.average_scalars(float(finite))[0] == 1.0
-        return finite
+        return self._all_ranks_agree(bool(torch.isfinite(torch.as_tensor(loss)).all()))
+
+    def _all_ranks_agree(self, flag: bool) -> bool:
+        """``flag`` on every rank (one process: ``flag`` itself)."""
+        if self.communicator is None:
+            return flag
+        return self.communicator.average_scalars(float(flag))[0] == 1.0
 
     def _statistics_sharing(self, blocks, projected: bool = False) -> Optional[Callable]:
         """Averages batch statistics over the ranks (None in one process)."""
@@ -583,7 +586,7 @@ class FisherDescent(torch.optim.Optimizer):
     def _adapt_damping(self, result, evaluator, closure, loss) -> None:
         """Levenberg-Marquardt: the loss change on the same rows against the quadratic model's prediction."""
         measured = loss_change(result, evaluator, closure, loss, self.no_capture,
-                               lambda block: self._block_group(block)["damping"])
+                               lambda block: self._block_group(block)["damping"], self._all_ranks_agree)
         if measured is None:
             return
         before, after, predicted = measured

@@ -183,7 +183,8 @@ def _sampled_resume(rank, world):
     return runs
 
 
-def _adaptive_damping_run(rank, world):
+def _adaptive_damping_run(rank, world, penalty=0.0, calls=None):
+    """LM damping under closures; ``penalty``: a term beside the criterion in this rank's closure."""
     import ngopt.distributed as nd
     model = build_model(torch.float64)
     wrapped = nn.parallel.DistributedDataParallel(model)
@@ -193,8 +194,10 @@ def _adaptive_damping_run(rank, world):
     rows, history = _rank_rows(rank, world), []
     for x, y in batches(torch.float64):
         def closure():
+            if calls is not None:
+                calls.append(1)
             opt.zero_grad()
-            loss = loss_fn(wrapped(x[rows]), y[rows])
+            loss = loss_fn(wrapped(x[rows]), y[rows]) + penalty * sum(p.square().sum() for p in model.parameters())
             loss.backward()
             return loss
         opt.step(closure)
@@ -266,6 +269,11 @@ def job_train(rank, world, out_dir):
     model, history = _adaptive_damping_run(rank, world)
     results["adaptive_damping"] = (weights(model), history)
     sync["adaptive_damping"] = nd.max_parameter_difference(model)
+    # Only rank 0's closure has a term the replay cannot see: every rank must still call its closure again
+    # (a DDP backward is a collective), or the ranks would wait for each other forever.
+    calls = []
+    _adaptive_damping_run(rank, world, penalty=1e-2 if rank == 0 else 0.0, calls=calls)
+    results["disagreeing_closure_calls"] = len(calls)
     results["mismatch_error"] = _mismatched_setup(rank)
     results["resync"] = _resync_run(rank, world)
     model, opt = _ddp_run(rank, world, torch.float32)
@@ -662,6 +670,13 @@ def test_adaptive_damping_stays_equal_on_all_ranks(trained):
     assert history0 == history1  # rank 0's value, copied to the others by a broadcast: equal by construction
     assert len(set(history0)) > 1  # the rule did move damping
     assert ranks[0]["sync"]["adaptive_damping"] <= rounding_bound(torch.float64, STEPS, weights0)
+
+
+def test_ranks_agree_on_calling_the_closure_again(trained):
+    ranks, _ = trained
+    counts = [ranks[r]["disagreeing_closure_calls"] for r in (0, 1)]
+    steps = len(ranks[0]["adaptive_damping"][1])
+    assert counts[0] == counts[1] > steps  # both re-evaluated on the damping steps, none hung
 
 
 def test_resync_restores_rank_zeros_weights(trained):
