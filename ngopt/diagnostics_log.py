@@ -206,17 +206,20 @@ def _decode_nonfinite(value: Any) -> Any:
 
 def flatten_record(record: dict) -> dict:
     """Nested record -> {"layers.fc1.condition": value, ...}; lists are dropped."""
-    flat: dict = {}
+    return dict(_leaves("", record, ".", keep_lists=False))
 
-    def walk(prefix: str, node: Any) -> None:
-        if isinstance(node, dict):
-            for key, child in node.items():
-                walk(f"{prefix}.{key}" if prefix else str(key), child)
-        elif not isinstance(node, list):
-            flat[prefix] = node
 
-    walk("", record)
-    return flat
+def _leaves(prefix: str, node: Any, separator: str, keep_lists: bool) -> Iterable[tuple[str, Any]]:
+    """``(joined key path, value)`` for every non-dict value under ``node`` (lists only with ``keep_lists``).
+
+    A module function, not a recursive closure: the closure would be a reference cycle holding the record
+    until the cyclic garbage collector runs.
+    """
+    if isinstance(node, dict):
+        for key, child in node.items():
+            yield from _leaves(f"{prefix}{separator}{key}" if prefix else str(key), child, separator, keep_lists)
+    elif keep_lists or not isinstance(node, list):
+        yield prefix, node
 
 
 def unflatten_record(flat: dict) -> dict:
@@ -360,16 +363,9 @@ class TensorBoardWriter:
 
     @staticmethod
     def _tags(record: dict) -> Iterable[tuple[str, Any]]:
-        def walk(prefix: str, node: Any):
-            if isinstance(node, dict):
-                for key, child in node.items():
-                    yield from walk(f"{prefix}/{key}" if prefix else str(key), child)
-            else:
-                yield prefix, node
-
         for key, value in record.items():
             if key not in ("step", "wall_time"):
-                yield from walk(key, value)
+                yield from _leaves(key, value, "/", keep_lists=True)  # lists become histograms
 
     def close(self) -> None:
         self.summary_writer.flush()
