@@ -133,6 +133,8 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
         view = tentative_view(block, statistics, inverses)
         if all(key in view for key in block.inverse_keys):
             spare = scratch.take(block.scratch, "proposal", grad_matrix) if block.writes_into else None
+            if spare is not None and _shares_memory(spare, block.state.get("momentum_buffer")):
+                spare = None  # the step still reads the buffer
             memory = {"out": spare} if spare is not None else {}
             proposal = block.precondition(grad_matrix, group["damping"], view, **memory)
         else:
@@ -154,6 +156,10 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
         dots = {block: tuple(values[3 * i:3 * i + 3]) for i, block in enumerate(order)}
     missing = [b for b in missing if dots[b][2] > 0.0]
     return StepInputs(groups, per_group, directions, dots, step_index, average=average), missing
+
+
+def _shares_memory(a: torch.Tensor, b: Optional[torch.Tensor]) -> bool:
+    return b is not None and a.untyped_storage().data_ptr() == b.untyped_storage().data_ptr()
 
 
 def _gradient_matrix(block: LayerCurvature, weight_grad: torch.Tensor, bias_grad: Optional[torch.Tensor]):

@@ -93,3 +93,38 @@ def test_kept_memory_in_another_layout_is_not_written_into():
     fresh = on_used_columns(columns, scale, other_layout)
     assert fresh.data_ptr() != other_layout.data_ptr()
     np.testing.assert_array_equal(fresh.numpy(), 2.0 * columns.numpy())
+
+
+
+def test_kept_memory_is_dropped_on_load_and_never_shared_with_the_state(monkeypatch):
+    # A state_dict() holds the optimizer's tensors themselves (torch's convention); loaded back a step later,
+    # its momentum buffer is the one that step set aside as kept memory. Writing a proposal into memory the
+    # state still reads would corrupt the momentum: kept memory is dropped on load, and never used when it
+    # is the buffer itself.
+    monkeypatch.setattr(scratch, "MIN_ELEMENTS", 2 ** 18)
+    models = [_model(), _model()]
+    torch.manual_seed(1)
+    x, y = torch.randn(8, 16, dtype=torch.float64), torch.randint(0, 510, (8,))
+    opts = [ngopt.FisherDescent(m, nn.CrossEntropyLoss(), stats_interval=2, inverse_interval=2, seed=3,
+                                cost_budget=None) for m in models]
+
+    def step(model, opt):
+        opt.zero_grad()
+        nn.functional.cross_entropy(model(x), y).backward()
+        opt.step()
+
+    for _ in range(3):
+        for model, opt in zip(models, opts):
+            step(model, opt)
+    head = [next(b for b in opt.blocks.values() if b.layer.weight is m[2].weight) for m, opt in zip(models, opts)]
+    assert "proposal" in head[0].scratch
+    opts[0].load_state_dict(opts[0].state_dict())
+    assert all(not block.scratch for block in opts[0].blocks.values())
+    # The guard: kept memory that is the current buffer is not written into (the twin has none kept).
+    head[0].scratch["proposal"] = opts[0].state[models[0][2].weight]["momentum_buffer"]
+    head[1].scratch.clear()
+    for _ in range(2):
+        for model, opt in zip(models, opts):
+            step(model, opt)
+    for ours, theirs in zip(models[0].parameters(), models[1].parameters()):
+        torch.testing.assert_close(ours, theirs, rtol=1e-12, atol=1e-14)

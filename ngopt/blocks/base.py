@@ -172,8 +172,12 @@ class LayerCurvature:
         return type(self)(self.layer, {}, weight_sharing=self.weight_sharing)
 
     def rebind(self, state: dict) -> None:
-        """Use ``state`` as the block's persistent tensors (after ``load_state_dict``)."""
+        """Use ``state`` as the block's persistent tensors (after ``load_state_dict``).
+
+        Kept memory is dropped: a loaded state may hold the very tensor set aside there.
+        """
         self.state = state
+        self.scratch.clear()
 
     def unscaled(self, batch: Tensors, loss_scale: float) -> Tensors:
         """``batch`` with the loss-weighted statistics divided by ``loss_scale`` (a loss scaler's factor)."""
