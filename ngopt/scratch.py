@@ -31,11 +31,20 @@ def fits(tensor: Optional[torch.Tensor], shape, dtype: torch.dtype, device: torc
         and tensor.device == device
 
 
-def take(scratch: dict, key: str, like: torch.Tensor) -> Optional[torch.Tensor]:
-    """The kept tensor under ``key`` if it has ``like``'s shape, dtype and device (removed from ``scratch``),
-    else None."""
+def take(scratch: dict, key: str, like: torch.Tensor, avoid: Optional[torch.Tensor] = None) -> Optional[torch.Tensor]:
+    """The kept tensor under ``key`` (removed from ``scratch``) if it has ``like``'s shape, dtype and device
+    and shares no memory with ``avoid`` (a tensor the step still reads), else None."""
     tensor = scratch.pop(key, None)
-    return tensor if fits(tensor, like.shape, like.dtype, like.device) else None
+    if not fits(tensor, like.shape, like.dtype, like.device):
+        return None
+    shared = avoid is not None and tensor.untyped_storage().data_ptr() == avoid.untyped_storage().data_ptr()
+    return None if shared else tensor
+
+
+def set_aside(scratch: dict, key: str, replaced: Optional[torch.Tensor], new: Optional[torch.Tensor]) -> None:
+    """Keep ``replaced`` under ``key`` when a step has just replaced it by ``new`` and it is large enough."""
+    if replaced is not None and replaced is not new and worth_keeping(replaced):
+        scratch[key] = replaced
 
 
 def worth_keeping(tensor: torch.Tensor) -> bool:

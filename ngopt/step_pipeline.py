@@ -132,9 +132,9 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
         grad_matrix = _gradient_matrix(block, weight_grad, bias_grad)
         view = tentative_view(block, statistics, inverses)
         if all(key in view for key in block.inverse_keys):
-            spare = scratch.take(block.scratch, "proposal", grad_matrix) if block.writes_into else None
-            if spare is not None and _shares_memory(spare, block.state.get("momentum_buffer")):
-                spare = None  # the step still reads the buffer
+            # Memory of a replaced momentum buffer, never the buffer this step still reads.
+            spare = scratch.take(block.scratch, "proposal", grad_matrix, avoid=block.state.get("momentum_buffer")) \
+                if block.writes_into else None
             memory = {"out": spare} if spare is not None else {}
             proposal = block.precondition(grad_matrix, group["damping"], view, **memory)
         else:
@@ -158,10 +158,6 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
     return StepInputs(groups, per_group, directions, dots, step_index, average=average), missing
 
 
-def _shares_memory(a: torch.Tensor, b: Optional[torch.Tensor]) -> bool:
-    return b is not None and a.untyped_storage().data_ptr() == b.untyped_storage().data_ptr()
-
-
 def _gradient_matrix(block: LayerCurvature, weight_grad: torch.Tensor, bias_grad: Optional[torch.Tensor]):
     """The block's gradient matrix; a large layer's weight and bias are joined in memory it keeps for it."""
     layer = block.layer
@@ -169,7 +165,7 @@ def _gradient_matrix(block: LayerCurvature, weight_grad: torch.Tensor, bias_grad
         return layer.gradient_matrix(weight_grad, bias_grad)
     kept = block.scratch.get("gradient_matrix")
     shape = (layer.out_dim, weight_grad.numel() // layer.out_dim + 1)
-    out = kept if scratch.fits(kept, shape, weight_grad.dtype, weight_grad.device) and kept.is_contiguous() else None
+    out = kept if scratch.fits(kept, shape, weight_grad.dtype, weight_grad.device) else None
     matrix = layer.gradient_matrix(weight_grad, bias_grad, out=out)
     block.scratch["gradient_matrix"] = matrix  # read only within a step: the next one may overwrite it
     return matrix
@@ -240,9 +236,8 @@ class PendingStep:
         for block, entries in (self.result.states if self.result is not None else {}).items():
             replaced = block.state.get("momentum_buffer")
             block.state.update(entries)
-            if block.writes_into and replaced is not None and replaced is not entries.get("momentum_buffer", replaced) \
-                    and scratch.worth_keeping(replaced):
-                block.scratch["proposal"] = replaced  # no longer state: the next proposal's memory
+            if block.writes_into:  # a replaced buffer is no longer state: the next proposal's memory
+                scratch.set_aside(block.scratch, "proposal", replaced, block.state.get("momentum_buffer"))
 
     def write_block_updates(self, keep_previous: bool) -> None:
         """``w += s * u`` for every block (``s`` from ``update_scale``, 1 where absent); ``keep_previous``

@@ -189,8 +189,8 @@ class LayerCurvature:
     def precondition(self, grad_matrix: torch.Tensor, damping: float, tensors=None) -> torch.Tensor:
         """``C^-1 grad`` as a gradient matrix; ``tensors`` (default: the block's state) holds the inverse.
 
-        Blocks with ``writes_into`` also take ``out``: a contiguous tensor shaped like ``grad_matrix`` that
-        the result may be written into (the result is returned either way).
+        Blocks with ``writes_into`` also take ``out``: a tensor shaped like ``grad_matrix`` that the result
+        is written into where its layout suits the block's products (the result is returned either way).
         """
         raise NotImplementedError
 
