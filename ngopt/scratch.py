@@ -1,16 +1,16 @@
 """Memory a large layer's block reuses from one step to the next.
 
-A tensor of more than a few hundred kilobytes gets fresh pages from the operating system, and the
-first write to each page costs a fault: on a 32,000 x 513 output layer (one timing on a 2-core Intel
-Xeon) a fresh product with the input factor took 75 ms where the same product into memory already
-written took 59 ms, and the gradient matrix (weight and bias joined) 18.5 ms fresh against 6.7 ms
-reused.  So a large block keeps its gradient matrix's memory between steps, and takes the momentum
-buffer a step replaces as the memory of the next step's proposal (the buffer is then no longer part of the optimizer's state; as with torch's
-own optimizers, which update their buffers in place, a reference kept to an earlier state tensor does
-not keep its values: copy a ``state_dict()`` to keep it).  The kept proposal memory lives through the next
-forward and backward too, so it adds one such tensor per large layer where those set the peak (a
-convolutional network's activations); where the step sets it (a vocabulary's output layer) the peak is
-unchanged, as both tensors are alive during the step anyway.
+A tensor of more than a few hundred kilobytes gets fresh pages from the operating system, and the first
+write to each page costs a fault: on a 32,000 x 513 output layer (one timing on a 2-core Intel Xeon) a
+fresh product with the input factor took 75 ms where the same product into memory already written took
+59 ms, and the gradient matrix (weight and bias joined) 18.5 ms fresh against 6.7 ms reused. So a large
+block keeps its gradient matrix's memory between steps, and takes the momentum buffer a step replaces as
+the memory of the next step's proposal (the buffer is then no longer part of the optimizer's state; as
+with torch's own optimizers, which update their buffers in place, a reference kept to an earlier state
+tensor does not keep its values: copy a ``state_dict()`` to keep it). The kept proposal memory lives
+through the next forward and backward too, so it adds one such tensor per large layer where those set
+the peak (a convolutional network's activations); where the step sets it (a vocabulary's output layer)
+the peak is unchanged, as both tensors are alive during the step anyway.
 """
 from __future__ import annotations
 
