@@ -157,7 +157,7 @@ def make_config(args: argparse.Namespace) -> Config:
     specs = [optimizer_registry.with_natural_gradient_options(spec, ngopt_options)
              if spec.natural_gradient_options is not None else spec
              for spec in resolve_optimizers(split_names(args.optimizers))]
-    specs, skipped = optimizer_registry.runnable(specs)
+    specs, skipped = optimizer_registry.runnable(specs, by_default=args.optimizers is None)
     if not specs:
         raise ValueError("--optimizers: none of the chosen optimizers can run here: "
                          + "; ".join(f"{name}: {reason}" for name, reason in skipped.items()))

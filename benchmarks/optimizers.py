@@ -10,9 +10,10 @@ another. They are
 - ``adamw-cosine``: AdamW (weight decay 0.01) under a linear warm-up and a
   cosine decay fitted to the run's step budget (:mod:`benchmarks.schedules`);
   the grid sets the peak lr;
-- ``muon`` (on request): torch's ``Muon`` on the hidden weight matrices and
-  AdamW on the rest, at one lr (:mod:`benchmarks.muon`); skipped, with the
-  reason, on a torch without ``torch.optim.Muon``.
+- ``muon``: torch's ``Muon`` on the hidden weight matrices and AdamW on the
+  rest, at one lr (:mod:`benchmarks.muon`); skipped, with the reason, on a
+  torch without ``torch.optim.Muon``, and left out of a default run on a CPU
+  without native bfloat16 arithmetic (on request it runs there too).
 
 FisherDescent's headline row, ``fisher-descent``, is not tuned: it is built
 as a user would build it, ``ngopt.FisherDescent(model, loss_fn)``, with only
@@ -38,7 +39,7 @@ import torch
 from torch import nn
 
 from benchmarks import schedules
-from benchmarks.muon import build_muon, muon_available
+from benchmarks.muon import build_muon, muon_available, muon_slow_here
 from benchmarks.selection import select_by_name
 
 HEADLINE = "fisher-descent"  # the method at its defaults, the row every comparison is about
@@ -101,6 +102,8 @@ class OptimizerSpec:
     tuned: bool = True
     schedule: Optional[Schedule] = None
     unavailable: Optional[Callable[[], Optional[str]]] = None  # why the row cannot run here (None: it can)
+    # why a default run leaves the row out here (None: it runs); asked for by name, it runs anyway
+    slow_here: Optional[Callable[[], Optional[str]]] = None
 
     def why_unavailable(self) -> Optional[str]:
         return None if self.unavailable is None else self.unavailable()
@@ -195,7 +198,7 @@ OPTIMIZERS: dict[str, OptimizerSpec] = {
                       "peak lr tuned", PEAK_LR_CENTRE, _adamw, schedule=schedules.warmup_cosine),
         OptimizerSpec("muon", "torch's Muon (match_rms_adamw, Newton-Schulz in bfloat16 as torch runs it) on the "
                       f"hidden weight matrices, AdamW on the rest, weight decay {ADAMW_WEIGHT_DECAY:g}; one lr, tuned",
-                      1e-2, _muon, unavailable=muon_available),
+                      1e-2, _muon, unavailable=muon_available, slow_here=muon_slow_here),
         natural_gradient_row(TUNED, {}, tuned=True),
         natural_gradient_row(f"{HEADLINE}-ekfac", {"structure": "ekfac"}),
         natural_gradient_row(f"{HEADLINE}-diag", {"structure": "diag"}),
@@ -205,10 +208,11 @@ NATURAL_GRADIENT_ROWS = tuple(name for name, spec in OPTIMIZERS.items() if spec.
 BASELINES = ("sgd", "adam", "adamw-cosine", "muon")
 
 # What runs without --optimizers. The other rows are on request: each adds about as much time as a
-# baseline row (fisher-descent-tuned as much as both untuned rows together), except muon: torch's Muon
-# orthogonalizes in bfloat16, whose matrix products a CPU without native bfloat16 support (AVX2 only)
-# runs tens of times slower than float32 ones, so on such a CPU one muon run can take minutes.
-DEFAULT_OPTIMIZERS = (HEADLINE, "sgd", "adam", "adamw-cosine")
+# baseline row (fisher-descent-tuned as much as both untuned rows together). muon runs by default only
+# where it is fast (OptimizerSpec.slow_here): torch's Muon orthogonalizes in bfloat16, whose matrix
+# products a CPU without native bfloat16 support (AVX2 only) runs tens of times slower than float32
+# ones, so there one muon run can take minutes.
+DEFAULT_OPTIMIZERS = (HEADLINE, "sgd", "adam", "adamw-cosine", "muon")
 
 
 def resolve_optimizers(names: Optional[list[str]]) -> list[OptimizerSpec]:
@@ -216,9 +220,17 @@ def resolve_optimizers(names: Optional[list[str]]) -> list[OptimizerSpec]:
     return select_by_name(OPTIMIZERS, list(DEFAULT_OPTIMIZERS) if names is None else names, "optimizers")
 
 
-def runnable(specs: list[OptimizerSpec]) -> tuple[list[OptimizerSpec], dict[str, str]]:
-    """The rows that can run here, and for each other one the reason it cannot (e.g. a torch without Muon)."""
+def runnable(specs: list[OptimizerSpec], by_default: bool = False) -> tuple[list[OptimizerSpec], dict[str, str]]:
+    """The rows that can run here, and for each other one the reason it cannot (e.g. a torch without Muon).
+
+    ``by_default``: the rows are the default set, not named by the user, so a row that would only
+    measure this machine's weakness (``slow_here``) is left out too, with its reason.
+    """
     reasons = {spec.name: spec.why_unavailable() for spec in specs}
+    if by_default:
+        for spec in specs:
+            if reasons[spec.name] is None and spec.slow_here is not None:
+                reasons[spec.name] = spec.slow_here()
     return [spec for spec in specs if reasons[spec.name] is None], \
         {name: reason for name, reason in reasons.items() if reason is not None}
 

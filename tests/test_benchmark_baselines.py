@@ -11,12 +11,14 @@ AdamW). Comparisons of weights run in one process and use tolerances.
 from __future__ import annotations
 
 import copy
+import math
 from dataclasses import replace
 
 import pytest
 import torch
 from torch import nn
 
+from benchmarks import muon as muon_row
 from benchmarks import schedules
 from benchmarks.cli import build_parser, main, make_config
 from benchmarks.composite import CompositeOptimizer
@@ -236,3 +238,26 @@ def test_muon_row_is_skipped_with_its_reason_on_a_torch_without_muon(monkeypatch
     assert main(argv) == 0
     assert "skipping optimizer muon: torch" in capsys.readouterr().out
     assert "skipped: muon (torch" in (tmp_path / "report.md").read_text()
+
+
+@MUON
+def test_a_default_run_leaves_muon_out_only_where_bfloat16_is_emulated(monkeypatch):
+    # torch's Muon orthogonalizes in bfloat16; emulated (AVX2 only) its times measure the emulation
+    for ratio, left_out in [(0.5, False), (1.5, False), (30.0, True)]:
+        monkeypatch.setattr(muon_row, "bfloat16_product_ratio", lambda ratio=ratio: ratio)
+        muon_row.muon_slow_here.cache_clear()
+        default = make_config(build_parser().parse_args([]))
+        assert ("muon" not in [spec.name for spec in default.specs]) == left_out
+        assert ("muon" in default.skipped) == left_out
+        if left_out:
+            assert "30x slower than float32" in default.skipped["muon"]
+        asked = make_config(build_parser().parse_args(["--optimizers", "sgd,muon"]))
+        assert [spec.name for spec in asked.specs] == ["sgd", "muon"] and not asked.skipped  # named: it runs
+    muon_row.muon_slow_here.cache_clear()
+
+
+def test_bfloat16_probe_measures_a_positive_ratio_and_keeps_the_thread_count():
+    threads = torch.get_num_threads()
+    ratio = muon_row.bfloat16_product_ratio(size=32, repeats=2)
+    assert math.isfinite(ratio) and ratio > 0
+    assert torch.get_num_threads() == threads

@@ -290,9 +290,9 @@ def test_curvature_rows_build_their_curvature_untuned_like_the_headline_row(name
 
 
 def test_curvature_rows_run_on_request_and_keep_their_curvature_under_overrides():
-    # the untuned method and the tuned baselines by default; the curvature rows (and muon) are extra
+    # the untuned method and the tuned baselines by default; the curvature rows are extra
     assert [spec.name for spec in resolve_optimizers(None)] == list(DEFAULT_OPTIMIZERS) == [
-        "fisher-descent", "sgd", "adam", "adamw-cosine"]
+        "fisher-descent", "sgd", "adam", "adamw-cosine", "muon"]
     assert [spec.name for spec in resolve_optimizers(["fisher-descent-diag", "sgd"])] == ["fisher-descent-diag", "sgd"]
     tuned = with_natural_gradient_options(OPTIMIZERS["fisher-descent-diag"], {"structure": "kfac", "momentum": 0.0})
     optimizer = tuned.build(nn.Linear(3, 2), nn.MSELoss(), 0.1)

@@ -38,8 +38,8 @@ def every_step(steps: int) -> EvaluationSchedule:
     """Evaluate after every step (the densest schedule: the reference for the adaptive one)."""
     return EvaluationSchedule(1, 1, steps)
 NGOPT_AVAILABLE = natural_gradient_available()[0]
-# every row the verdict weighs: the default rows and muon (on request), each where it can run
-OPTIMIZER_NAMES = [name for name in [*DEFAULT_OPTIMIZERS, "muon"]
+# every row the verdict weighs: the default rows (muon among them), each where it can run
+OPTIMIZER_NAMES = [name for name in DEFAULT_OPTIMIZERS
                    if (NGOPT_AVAILABLE or name != HEADLINE) and OPTIMIZERS[name].why_unavailable() is None]
 API_RUN_FIELDS = {  # the README's results schema
     "optimizer": str, "lr": float, "seed": int, "steps_to_target": (int, type(None)),
