@@ -15,7 +15,9 @@ same batches, in turns, and prints per model: the share of trainable parameters 
 (from ``FisherDescent.curvature_assignment()``), the median step time of each and their ratio, and
 the losses at the start, after the last step, over the last five steps (mean) and on a held-out
 batch.  Language models train through ``labels=`` (the loss computed inside the model), as their own
-training loops do.
+training loops do.  One batch of 8-16 examples is a noisy measure, so ``--seeds 0,1,2`` repeats every
+model from other initial weights and data and adds a summary: on how many seeds fisher-descent ends
+below AdamW by each measure.
 """
 from __future__ import annotations
 
@@ -175,7 +177,7 @@ def train_side_by_side(client: Client, steps: int, seed: int, options: dict) -> 
             evaluated[name] = float(client.loss(model, held_out))
     share, reasons = fallback_share(optimizers["fisher-descent"], models["fisher-descent"])
     step = {name: statistics.median(values[1:]) for name, values in seconds.items()}
-    return {"model": client.name, "parameters": sum(p.numel() for p in base.parameters()),
+    return {"model": client.name, "seed": seed, "parameters": sum(p.numel() for p in base.parameters()),
             "fallback_share": share, "fallback": reasons,
             "first_loss": losses["fisher-descent"][0], "fisher_descent_loss": losses["fisher-descent"][-1],
             "adamw_loss": losses["adamw"][-1],
@@ -189,13 +191,47 @@ def train_side_by_side(client: Client, steps: int, seed: int, options: dict) -> 
             "warnings": sorted({str(w.message)[:160] for w in caught})}
 
 
+MEASURES = (("last batch", "fisher_descent_loss", "adamw_loss"),
+            ("last five", "fisher_descent_last5", "adamw_last5"),
+            ("held-out", "fisher_descent_held_out", "adamw_held_out"))
+
+
+def summary(rows: List[dict]) -> str:
+    """Per model, over its seeds: how often fisher-descent ended below AdamW by each measure."""
+    header = ("| model | seeds | fisher-descent below AdamW: " + " / ".join(name for name, _, _ in MEASURES)
+              + " | median step ratio |")
+    lines = [header, "|---|---|---|---|"]
+    for model in dict.fromkeys(r["model"] for r in rows):  # first-seen order
+        mine = [r for r in rows if r["model"] == model]
+        below = [sum(r[ours] < r[theirs] for r in mine) for _, ours, theirs in MEASURES]
+        lines.append(f"| {model} | {', '.join(str(r['seed']) for r in mine)} | "
+                     + " / ".join(f"{k} of {len(mine)}" for k in below)
+                     + f" | {statistics.median(r['step_ratio'] for r in mine):.2f} |")
+    return "\n".join(lines)
+
+
+def parse_seeds(text: str) -> List[int]:
+    """``"3"``: seeds 0, 1, 2; ``"0,5"``: those seeds."""
+    try:
+        seeds = [int(part) for part in text.split(",")]
+    except ValueError:
+        raise ValueError(f"--seeds takes a count or a comma-separated list of integers, got {text!r}") from None
+    if len(seeds) == 1 and "," not in text:
+        if seeds[0] < 1:
+            raise ValueError(f"--seeds: a count must be at least 1, got {seeds[0]}")
+        return list(range(seeds[0]))
+    return seeds
+
+
 def table(rows: List[dict]) -> str:
     header = ("| model | parameters | on fallback | loss at start | fisher-descent after | AdamW after "
               "| last 5 batches fisher-descent / AdamW | held-out fisher-descent / AdamW "
               "| step ms fisher-descent / AdamW (ratio) |")
     lines = [header, "|" + "---|" * 9]
+    several = len({r["seed"] for r in rows}) > 1
     for r in rows:
-        lines.append(f"| {r['model']} | {r['parameters']:,} | {100 * r['fallback_share']:.2f}% | {r['first_loss']:.3f} | "
+        name = f"{r['model']}, seed {r['seed']}" if several else r["model"]
+        lines.append(f"| {name} | {r['parameters']:,} | {100 * r['fallback_share']:.2f}% | {r['first_loss']:.3f} | "
                      f"{r['fisher_descent_loss']:.3f} | {r['adamw_loss']:.3f} | {r['fisher_descent_last5']:.3f} / "
                      f"{r['adamw_last5']:.3f} | {r['fisher_descent_held_out']:.3f} / "
                      f"{r['adamw_held_out']:.3f} | {r['fisher_descent_step_ms']:.0f} / {r['adamw_step_ms']:.0f} "
@@ -206,7 +242,8 @@ def table(rows: List[dict]) -> str:
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--steps", type=int, default=30, help="training steps per model (default 30)")
-    parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument("--seeds", default="0", help="a count N (seeds 0..N-1) or a comma-separated list "
+                                                     "(default 0)")
     parser.add_argument("--only", nargs="*", default=None, help="substrings of the model names to run")
     parser.add_argument("--threads", type=int, default=None, help="torch threads (default: torch's)")
     parser.add_argument("--json", default=None, help="also write the rows to this file")
@@ -221,11 +258,12 @@ def main(argv=None) -> int:
         return 2
     if args.only:
         chosen = [c for c in chosen if any(s in c.name for s in args.only)]
+    seeds = parse_seeds(args.seeds)
     rows = []
-    for client in chosen:
-        row = train_side_by_side(client, args.steps, args.seed, parse_options(args.option or []))
+    for client, seed in ((client, seed) for client in chosen for seed in seeds):
+        row = train_side_by_side(client, args.steps, seed, parse_options(args.option or []))
         rows.append(row)
-        print(f"{row['model']}: fallback {100 * row['fallback_share']:.2f}%, losses {row['first_loss']:.3f} -> "
+        print(f"{row['model']} (seed {seed}): fallback {100 * row['fallback_share']:.2f}%, losses {row['first_loss']:.3f} -> "
               f"fisher-descent {row['fisher_descent_loss']:.3f} / AdamW {row['adamw_loss']:.3f}, "
               f"step ratio {row['step_ratio']:.2f}",
               flush=True)
@@ -234,9 +272,12 @@ def main(argv=None) -> int:
         for message in row["warnings"]:
             print(f"    warning: {message}")
     print()
-    print(f"torch {torch.__version__}, {args.steps} steps, seed {args.seed}, {torch.get_num_threads()} threads, "
-          f"options {args.option or 'defaults'}")
+    print(f"torch {torch.__version__}, {args.steps} steps, seeds {', '.join(map(str, seeds))}, "
+          f"{torch.get_num_threads()} threads, options {args.option or 'defaults'}")
     print(table(rows))
+    if len(seeds) > 1:
+        print()
+        print(summary(rows))
     if args.json:
         with open(args.json, "w") as handle:
             json.dump(rows, handle, indent=1)
