@@ -220,6 +220,8 @@ def parse_seeds(text: str) -> List[int]:
         if seeds[0] < 1:
             raise ValueError(f"--seeds: a count must be at least 1, got {seeds[0]}")
         return list(range(seeds[0]))
+    if min(seeds) < 0:
+        raise ValueError(f"--seeds: seeds are non-negative integers, got {text!r}")
     return seeds
 
 
@@ -249,6 +251,10 @@ def main(argv=None) -> int:
     parser.add_argument("--json", default=None, help="also write the rows to this file")
     parser.add_argument("--option", action="append", help="a FisherDescent option KEY=VALUE (repeatable)")
     args = parser.parse_args(argv)
+    try:
+        seeds = parse_seeds(args.seeds)
+    except ValueError as error:
+        parser.error(str(error))
     if args.threads:
         torch.set_num_threads(args.threads)
     try:
@@ -258,13 +264,13 @@ def main(argv=None) -> int:
         return 2
     if args.only:
         chosen = [c for c in chosen if any(s in c.name for s in args.only)]
-    seeds = parse_seeds(args.seeds)
     rows = []
     for client, seed in ((client, seed) for client in chosen for seed in seeds):
         row = train_side_by_side(client, args.steps, seed, parse_options(args.option or []))
         rows.append(row)
-        print(f"{row['model']} (seed {seed}): fallback {100 * row['fallback_share']:.2f}%, losses {row['first_loss']:.3f} -> "
-              f"fisher-descent {row['fisher_descent_loss']:.3f} / AdamW {row['adamw_loss']:.3f}, "
+        print(f"{row['model']} (seed {seed}): fallback {100 * row['fallback_share']:.2f}%, "
+              f"losses {row['first_loss']:.3f} -> fisher-descent {row['fisher_descent_loss']:.3f} / "
+              f"AdamW {row['adamw_loss']:.3f}, "
               f"step ratio {row['step_ratio']:.2f}",
               flush=True)
         for name, why in row["fallback"].items():

@@ -65,3 +65,11 @@ def test_seeds_take_a_count_or_a_list_and_refuse_the_rest():
         parse("a,b")
     with pytest.raises(ValueError, match="at least 1"):
         parse("0")
+    with pytest.raises(ValueError, match="non-negative"):
+        parse("1,-2")
+
+
+def test_a_bad_seeds_value_stops_the_script_before_any_model_is_built(capsys):
+    with pytest.raises(SystemExit) as stopped:
+        SCRIPT["main"](["--seeds", "x"])
+    assert stopped.value.code == 2 and "--seeds" in capsys.readouterr().err
