@@ -37,7 +37,7 @@ from torch import nn
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))  # the checkout, not an install
 import ngopt  # noqa: E402
-from benchmarks.cli import parse_options  # noqa: E402
+from benchmarks.cli import parse_options, parse_seeds  # noqa: E402
 
 
 # ----------------------------------------------------------------------------------------- data
@@ -210,21 +210,6 @@ def summary(rows: List[dict]) -> str:
     return "\n".join(lines)
 
 
-def parse_seeds(text: str) -> List[int]:
-    """``"3"``: seeds 0, 1, 2; ``"0,5"``: those seeds."""
-    try:
-        seeds = [int(part) for part in text.split(",")]
-    except ValueError:
-        raise ValueError(f"--seeds takes a count or a comma-separated list of integers, got {text!r}") from None
-    if len(seeds) == 1 and "," not in text:
-        if seeds[0] < 1:
-            raise ValueError(f"--seeds: a count must be at least 1, got {seeds[0]}")
-        return list(range(seeds[0]))
-    if min(seeds) < 0:
-        raise ValueError(f"--seeds: seeds are non-negative integers, got {text!r}")
-    return seeds
-
-
 def table(rows: List[dict]) -> str:
     header = ("| model | parameters | on fallback | loss at start | fisher-descent after | AdamW after "
               "| last 5 batches fisher-descent / AdamW | held-out fisher-descent / AdamW "
@@ -254,7 +239,7 @@ def main(argv=None) -> int:
     try:
         seeds = parse_seeds(args.seeds)
     except ValueError as error:
-        parser.error(str(error))
+        parser.error(f"--seeds: {error}")
     if args.threads:
         torch.set_num_threads(args.threads)
     try:
