@@ -226,15 +226,20 @@ def table(rows: List[dict]) -> str:
     return "\n".join(lines)
 
 
-def main(argv=None) -> int:
+def argument_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--steps", type=int, default=30, help="training steps per model (default 30)")
-    parser.add_argument("--seeds", default="0", help="a count N (seeds 0..N-1) or a comma-separated list "
-                                                     "(default 0)")
+    parser.add_argument("--seeds", default="1", help="a count N (seeds 0..N-1) or a comma-separated list "
+                                                     "(default 1: seed 0)")
     parser.add_argument("--only", nargs="*", default=None, help="substrings of the model names to run")
     parser.add_argument("--threads", type=int, default=None, help="torch threads (default: torch's)")
     parser.add_argument("--json", default=None, help="also write the rows to this file")
     parser.add_argument("--option", action="append", help="a FisherDescent option KEY=VALUE (repeatable)")
+    return parser
+
+
+def main(argv=None) -> int:
+    parser = argument_parser()
     args = parser.parse_args(argv)
     try:
         seeds = parse_seeds(args.seeds)

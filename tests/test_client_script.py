@@ -69,6 +69,10 @@ def test_seeds_take_a_count_or_a_list_and_refuse_the_rest():
         parse("1,1")
 
 
+def test_the_default_is_one_run_from_seed_0():
+    assert SCRIPT["parse_seeds"](SCRIPT["argument_parser"]().get_default("seeds")) == [0]
+
+
 def test_a_bad_seeds_value_stops_the_script_before_any_model_is_built(capsys):
     with pytest.raises(SystemExit) as stopped:
         SCRIPT["main"](["--seeds", "x"])
