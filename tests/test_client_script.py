@@ -77,3 +77,29 @@ def test_a_bad_seeds_value_stops_the_script_before_any_model_is_built(capsys):
     with pytest.raises(SystemExit) as stopped:
         SCRIPT["main"](["--seeds", "x"])
     assert stopped.value.code == 2 and "--seeds" in capsys.readouterr().err
+
+
+def test_the_held_out_loss_is_the_mean_over_its_own_batches():
+    client = small_client()
+    drawn, held_out_values = [], []
+    make_batch, loss = client.batch, client.loss
+
+    def counted_batch(generator):
+        drawn.append(1)
+        return make_batch(generator)
+
+    def recorded_loss(model, inputs):
+        value = loss(model, inputs)
+        if not torch.is_grad_enabled():  # the held-out evaluation runs under no_grad
+            held_out_values.append(float(value))
+        return value
+
+    steps = 4
+    row = SCRIPT["train_side_by_side"](SCRIPT["Client"](client.name, client.build, counted_batch, recorded_loss),
+                                       steps=steps, seed=0, options={})
+    batches = SCRIPT["HELD_OUT_BATCHES"]
+    assert len(drawn) == steps + batches and len(held_out_values) == 2 * batches  # both models, the same batches
+    fisher_descent, adamw = held_out_values[:batches], held_out_values[batches:]
+    assert row["fisher_descent_held_out"] == pytest.approx(sum(fisher_descent) / batches, rel=1e-12)
+    assert row["adamw_held_out"] == pytest.approx(sum(adamw) / batches, rel=1e-12)
+    assert len(set(fisher_descent)) == batches  # distinct batches, not one batch eight times
