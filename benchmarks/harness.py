@@ -18,6 +18,7 @@ benchmark can still write what it measured.
 
 from __future__ import annotations
 
+import dataclasses
 import gc
 import math
 import statistics
@@ -25,10 +26,9 @@ import sys
 from dataclasses import dataclass, field
 from typing import Callable, Optional
 
-import torch
 from tqdm import tqdm
 
-from benchmarks.evaluation import EvaluationSchedule
+from benchmarks.evaluation import EvaluationSchedule, fastest_forward_chunk
 from benchmarks.optimizers import OptimizerSpec
 from benchmarks.tasks import Task
 from benchmarks.training import Attach, RunResult, train_run
@@ -72,17 +72,17 @@ class TaskOutcome:
 WARMUP_STEPS = 3
 
 
-def warm_up(task: Task) -> None:
+def warm_up(task: Task) -> Optional[int]:
     """A few untimed forward/backward passes so one-off costs (data loading, kernel set-up,
-    allocator growth) are not charged to whichever optimizer happens to run first."""
+    allocator growth) are not charged to whichever optimizer happens to run first; returns the
+    task's evaluation forward chunk (:func:`benchmarks.evaluation.fastest_forward_chunk`)."""
     data = task.load_data()
     model, loss_fn = task.build_model(), task.make_loss()
     inputs, targets = data.train_x[:task.batch_size], data.train_y[:task.batch_size]
     for _ in range(WARMUP_STEPS):
         model.zero_grad()
         loss_fn(model(inputs), targets).backward()
-    with torch.no_grad():
-        loss_fn(model(data.train_x), data.train_y)
+    return fastest_forward_chunk(model, loss_fn, data.train_x, data.train_y)
 
 
 def set_aside_live_objects() -> None:
@@ -238,9 +238,9 @@ def benchmark_task(
     stretch of heavy load from other processes falls on all of them alike
     instead of on whichever happened to run then.
     """
-    warm_up(task)
+    chunk = warm_up(task)
     set_aside_live_objects()
-    schedule = EvaluationSchedule.for_steps(steps)
+    schedule = dataclasses.replace(EvaluationSchedule.for_steps(steps), forward_chunk=chunk)
     grids = {spec.name: spec.lr_grid(grid_size) for spec in specs}
     total = planned_runs(specs, grid_size, seeds)
     scheduler = RunScheduler(task, steps, schedule, total, progress, attach_for)

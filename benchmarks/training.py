@@ -204,7 +204,8 @@ def timed_training(task: Task, model, loss_fn, optimizer, data, seed: int, steps
     """The training loop: only the closure and ``optimizer.step`` fall inside the timer."""
     batches = minibatches(len(data.train_x), task.batch_size, seed)
     trace = Trace()
-    trace.record(0, 0.0, evaluate(model, loss_fn, data.train_x, data.train_y), task.target_loss)
+    trace.record(0, 0.0, evaluate(model, loss_fn, data.train_x, data.train_y, schedule.forward_chunk),
+                 task.target_loss)
     elapsed = 0.0
     lowest_batch_loss: Optional[float] = None  # since the last evaluation
     for step in range(1, steps + 1):
@@ -230,7 +231,7 @@ def timed_training(task: Task, model, loss_fn, optimizer, data, seed: int, steps
         if batch_loss is not None:
             lowest_batch_loss = batch_loss if lowest_batch_loss is None else min(lowest_batch_loss, batch_loss)
         if schedule.due(step, trace.near(lowest_batch_loss)):
-            loss = evaluate(model, loss_fn, data.train_x, data.train_y)
+            loss = evaluate(model, loss_fn, data.train_x, data.train_y, schedule.forward_chunk)
             trace.record(step, elapsed, loss, task.target_loss)
             lowest_batch_loss = None
             if trace.diverged:

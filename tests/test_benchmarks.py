@@ -605,3 +605,48 @@ def test_step_overhead_schedule_estimate_counts_every_amortized_part(capsys):
     script["main"](["--width", "8", "--batches", "8", "--steps", "20", "--warmup", "1", "--rounds", "1"])
     out = capsys.readouterr().out
     assert "precond. est." in out and "schedule est." in out
+
+
+def test_an_evaluation_in_chunks_is_the_whole_set_evaluation():
+    from benchmarks.evaluation import EVALUATION_CHUNK, evaluate
+
+    torch.manual_seed(0)
+    model = torch.nn.Sequential(torch.nn.Conv2d(1, 4, 3), torch.nn.BatchNorm2d(4), torch.nn.ReLU(),
+                                torch.nn.Flatten(), torch.nn.Linear(4 * 6 * 6, 5))
+    model(torch.randn(64, 1, 8, 8))  # running statistics away from their initial values
+    inputs, labels = torch.randn(2 * EVALUATION_CHUNK + 37, 1, 8, 8), torch.randint(0, 5, (2 * EVALUATION_CHUNK + 37,))
+    loss_fn = torch.nn.CrossEntropyLoss()
+    whole = evaluate(model, loss_fn, inputs, labels)
+    # The same per-example arithmetic in other batch shapes: float32 rounding only (common practice: 1e-6 relative).
+    assert evaluate(model, loss_fn, inputs, labels, chunk=EVALUATION_CHUNK) == pytest.approx(whole, rel=1e-6)
+    assert model.training  # eval mode only for the evaluation
+
+
+def test_outputs_that_cannot_be_joined_are_evaluated_whole():
+    from benchmarks.evaluation import outputs_in_chunks
+
+    calls = []
+
+    def model(x):
+        calls.append(len(x))
+        return x.sum(dim=1), x.mean(dim=1)
+
+    outputs = outputs_in_chunks(model, torch.ones(10, 3), chunk=4)
+    assert calls == [4, 4, 2, 10] and torch.equal(outputs[0], torch.full((10,), 3.0))
+
+
+@pytest.mark.parametrize("chunked_cost, expected", [(0.5, "chunk"), (0.94, "chunk"), (0.96, None), (2.0, None)])
+def test_chunks_are_used_only_where_they_save_a_twentieth(monkeypatch, chunked_cost, expected):
+    from benchmarks import evaluation
+
+    clock = [0.0]
+    monkeypatch.setattr(evaluation.time, "perf_counter", lambda: clock[0])
+
+    def timed_evaluate(model, loss_fn, inputs, targets, chunk=None):  # a clock that advances by the cost
+        clock[0] += 1.0 if chunk is None else chunked_cost
+
+    monkeypatch.setattr(evaluation, "evaluate", timed_evaluate)
+    inputs = torch.zeros(evaluation.EVALUATION_CHUNK + 1, 2)
+    chosen = evaluation.fastest_forward_chunk(None, None, inputs, None)
+    assert chosen == (evaluation.EVALUATION_CHUNK if expected == "chunk" else None)
+    assert evaluation.fastest_forward_chunk(None, None, inputs[:evaluation.EVALUATION_CHUNK], None) is None
