@@ -14,7 +14,8 @@ copy with ``ngopt.FisherDescent`` at its defaults and a copy with ``torch.optim.
 same batches, in turns, and prints per model: the share of trainable parameters on the fallback rule
 (from ``FisherDescent.curvature_assignment()``), the median step time of each and their ratio, and
 the losses at the start, after the last step, over the last five steps (mean) and on held-out
-data (the mean over ``HELD_OUT_BATCHES`` batches that neither optimizer trained on).  Language models
+data (the mean over ``HELD_OUT_BATCHES`` batches that neither optimizer trained on, in training mode as
+the training batches were: batch norm on each batch's own moments, dropout on).  Language models
 train through ``labels=`` (the loss computed inside the model), as their own training loops do.
 Training batches of 8-16 examples make noisy measures, so ``--seeds 0,1,2`` repeats every model from
 other initial weights and data and adds a summary: on how many seeds fisher-descent ends below AdamW by
@@ -180,7 +181,7 @@ def train_side_by_side(client: Client, steps: int, seed: int, options: dict) -> 
             caught.extend(more)
     evaluated = {}
     for name, model in models.items():
-        with torch.no_grad():  # in training mode, as the training batches were: batch norm on the batch's own moments
+        with torch.no_grad():  # in training mode, as the training batches were
             evaluated[name] = statistics.fmean(float(client.loss(model, inputs)) for inputs in held_out)
     share, reasons = fallback_share(optimizers["fisher-descent"], models["fisher-descent"])
     step = {name: statistics.median(values[1:]) for name, values in seconds.items()}
