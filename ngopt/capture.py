@@ -483,6 +483,15 @@ class CaptureHooks:
         self.records.clear()
         return forwards
 
+    def recorded_loss(self) -> Optional[float]:
+        """The user's loss of the latest forward whose loss calls were recorded, as its backward saw it
+        (``sum_n w_n l_n`` over its calls); None when no forward since the last step recorded one."""
+        for record in reversed(self.records):
+            if record.losses:
+                values = [call.extra.get("weighted_value") for call in record.losses]
+                return None if any(v is None for v in values) else sum(values)
+        return None
+
     def latest_batch(self) -> Optional[ForwardRecord]:
         """The last recorded forward whose inputs were kept (the one its loss belongs to), or None."""
         for record in reversed(self.records):

@@ -44,6 +44,7 @@ from .capture import CaptureHooks, FisherSource
 from .inversion_schedule import INVERSION_SCHEDULES
 from .likelihoods import likelihood_for
 from .loss_scaling import UNSCALED_WITHOUT_SEEN_SCALE, step_loss_scale
+from .loss_trend import LossTrend
 from .batch_evaluation import evaluator_for, loss_change, not_replayable_message
 from .rules import DAMPING_RULES, STEP_RULES
 from .rules.damping import reduction_ratio
@@ -225,6 +226,7 @@ class FisherDescent(torch.optim.Optimizer):
         self._last_update: dict = {}
         self._warned = set()
         self._warned_fallback_share = False
+        self._loss_trend = LossTrend()
 
         source = None if fisher == "empirical" else FisherSource(fisher, fisher_samples, self._generator_for)
         self._capture = CaptureHooks(self.model, self._trainable(), source, loss_fn, on_forward=self._on_forward)
@@ -381,6 +383,13 @@ class FisherDescent(torch.optim.Optimizer):
         # The statistics were kept per unit of the multiplier seen on the backward's root; the loss's
         # true scale is ``scale`` (1 without a scaler, where a seen multiplier is part of the loss).
         relative = scale / (self._capture.loss_scale_seen() or 1.0)
+        # The loss trend's value: the closure's loss, else the recorded forward's at its true scale (taken
+        # before the rescaling below, which covers one record only); a step that recorded none adds nothing.
+        recorded = self._capture.recorded_loss()
+        if loss is not None:
+            self._loss_trend.add(float(loss.detach() if isinstance(loss, torch.Tensor) else loss))
+        elif recorded is not None:
+            self._loss_trend.add(recorded / relative)
         batch = self._capture.latest_batch()
         if batch is not None and relative != 1.0:
             for call in batch.losses:
@@ -393,6 +402,8 @@ class FisherDescent(torch.optim.Optimizer):
             self._last_update["loss"] = float(loss)
         if reason is not None:
             self._skip(reason)
+        if self._loss_trend.rising():
+            self._warn_once("loss_rising", self._loss_trend.message())
         self._steps += 1
         self._new_parameters = False
         self._plan_capture()

@@ -1,0 +1,49 @@
+"""A watch on the training loss: one warning when it climbs above where it started.
+
+On small or noisy batches the KL bound, taken in the blocks' model, can let every step fit its own
+batch: the loss of each new batch then rises instead of falling (README, *Cautions*: the BERT-style
+classifier at batch 8).  Nothing is evaluated for this: the values are the closure's loss, or the loss
+of the forwards the optimizer records anyway (statistics refreshes and rule evaluations).
+"""
+from __future__ import annotations
+
+import math
+import statistics
+from collections import deque
+from typing import Optional
+
+OPENING = 3   # the first values, averaged: where the loss started
+WINDOW = 8    # the latest values, averaged: where it is now
+MARGIN = 0.1  # "above where it started": by more than this share of the start's size,
+SPREAD = 1.0  # and by more than this many standard errors of the difference of the two means (values of
+              # single examples or tiny batches scatter widely: a few high ones are not a trend)
+
+
+class LossTrend:
+    """The first :data:`OPENING` finite loss values and the latest :data:`WINDOW` after them."""
+
+    def __init__(self):
+        self.opening: list = []
+        self.recent: deque = deque(maxlen=WINDOW)
+
+    def add(self, value: Optional[float]) -> None:
+        if value is None or not math.isfinite(value):
+            return
+        if len(self.opening) < OPENING:
+            self.opening.append(value)
+        else:
+            self.recent.append(value)
+
+    def rising(self) -> bool:
+        if len(self.recent) < WINDOW:
+            return False
+        start, now = statistics.fmean(self.opening), statistics.fmean(self.recent)
+        error = math.sqrt(statistics.variance(self.opening) / OPENING + statistics.variance(self.recent) / WINDOW)
+        return now - start > max(MARGIN * abs(start), SPREAD * error)
+
+    def message(self) -> str:
+        start, now = statistics.fmean(self.opening), statistics.fmean(self.recent)
+        return (f"the training loss has risen above where it started: {now:.4g} over the last {WINDOW} recorded "
+                f"values against {start:.4g} over the first {OPENING}. On small or noisy batches the KL bound "
+                "(taken in the blocks' model) can let every step fit its own batch; try a smaller max_step_kl "
+                "(a tenth of it, say). README, Cautions.")
