@@ -18,7 +18,7 @@ import torch
 from ..factors import Whole, factor_form
 from ..linalg import factored_damping, to_cpu64
 from ..spectra import kronecker_summary
-from .base import LayerCurvature, Tensors
+from .base import LayerCurvature
 from .rows import example_chunks, mean_over_positions
 
 
