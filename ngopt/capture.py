@@ -44,7 +44,8 @@ from torch import nn
 
 from .blocks.base import LayerCurvature
 from .diagnostic_keys import PASS_TIME
-from .likelihoods import CRITERIA, LossCall, UnsupportedLoss, criterion_arguments, likelihood_from_arguments
+from .likelihoods import (CRITERIA, LossCall, UnsupportedLoss, criterion_arguments, likelihood_from_arguments,
+                          recorded_total)
 from .output_gradients import batched_output_grads, stream_output_grads
 from .uses import ParamView, UseRecorder, run_eagerly
 from .uses.recorder import output_target, remove_mode
@@ -488,8 +489,7 @@ class CaptureHooks:
         (``sum_n w_n l_n`` over its calls); None when no forward since the last step recorded one."""
         for record in reversed(self.records):
             if record.losses:
-                values = [call.extra.get("weighted_value") for call in record.losses]
-                return None if any(v is None for v in values) else sum(values)
+                return recorded_total(record.losses)
         return None
 
     def latest_batch(self) -> Optional[ForwardRecord]:

@@ -368,6 +368,13 @@ class LossCall:
         self.input = None
 
 
+def recorded_total(calls) -> Optional[float]:
+    """The user's loss as the training backward saw it, ``sum_n w_n l_n`` over ``calls``; None when a call's
+    share is unknown (its backward did not reach it)."""
+    values = [call.extra.get("weighted_value") for call in calls]
+    return None if any(value is None for value in values) else sum(values)
+
+
 # ----------------------------------------------------------------------------------------- recognition
 def _legacy_reduction(size_average, reduce, reduction: str) -> str:
     if size_average is None and reduce is None:

@@ -37,7 +37,7 @@ from torch import nn
 from torch.func import functional_call
 from torch.overrides import TorchFunctionMode
 
-from .likelihoods import LOSS_FUNCTIONS, likelihood_from_arguments
+from .likelihoods import LOSS_FUNCTIONS, likelihood_from_arguments, recorded_total
 from .uses.losses import leaves
 
 
@@ -174,8 +174,7 @@ class BatchEvaluator:
 
     def recorded_loss(self) -> Optional[float]:
         """The user's loss as the training backward saw it, ``sum_n w_n l_n`` (every row)."""
-        values = [c.extra.get("weighted_value") for c in self.calls]
-        return None if any(v is None for v in values) else sum(values)
+        return recorded_total(self.calls)
 
     def loss(self) -> float:
         """The loss at the model's current weights, on the evaluated rows (scaled to the whole batch)."""
