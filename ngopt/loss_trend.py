@@ -26,13 +26,15 @@ class LossTrend:
         self.opening: list = []
         self.recent: deque = deque(maxlen=WINDOW)
 
-    def add(self, value: Optional[float]) -> None:
+    def add(self, value: Optional[float]) -> bool:
+        """Keep a finite value; whether it was kept (only then can :meth:`rising` change)."""
         if value is None or not math.isfinite(value):
-            return
+            return False
         if len(self.opening) < OPENING:
             self.opening.append(value)
         else:
             self.recent.append(value)
+        return True
 
     def rising(self) -> bool:
         if len(self.recent) < WINDOW:

@@ -383,13 +383,8 @@ class FisherDescent(torch.optim.Optimizer):
         # The statistics were kept per unit of the multiplier seen on the backward's root; the loss's
         # true scale is ``scale`` (1 without a scaler, where a seen multiplier is part of the loss).
         relative = scale / (self._capture.loss_scale_seen() or 1.0)
-        # The loss trend's value: the closure's loss, else the recorded forward's at its true scale (taken
-        # before the rescaling below, which covers one record only); a step that recorded none adds nothing.
-        recorded = self._capture.recorded_loss()
-        if loss is not None:
-            self._loss_trend.add(float(loss.detach() if isinstance(loss, torch.Tensor) else loss))
-        elif recorded is not None:
-            self._loss_trend.add(recorded / relative)
+        # Before the rescaling below, which covers one record only.
+        loss_climbed = self._loss_climbed(loss, relative)
         batch = self._capture.latest_batch()
         if batch is not None and relative != 1.0:
             for call in batch.losses:
@@ -402,13 +397,26 @@ class FisherDescent(torch.optim.Optimizer):
             self._last_update["loss"] = float(loss)
         if reason is not None:
             self._skip(reason)
-        if self._loss_trend.rising():
+        if loss_climbed:
             self._warn_once("loss_rising", self._loss_trend.message())
         self._steps += 1
         self._new_parameters = False
         self._plan_capture()
         self._times["step_total"] += time.perf_counter() - started
         return loss
+
+    def _loss_climbed(self, loss, relative: float) -> bool:
+        """Feed the loss trend the closure's loss, else the recorded forward's at its true scale (a step that
+        recorded none adds nothing); whether the loss has now climbed above its start.  Nothing once warned:
+        the check costs tens of microseconds, and the warning is given once."""
+        if "loss_rising" in self._warned:
+            return False
+        if loss is not None:
+            value = float(loss.detach() if isinstance(loss, torch.Tensor) else loss)
+        else:
+            recorded = self._capture.recorded_loss()
+            value = None if recorded is None else recorded / relative
+        return self._loss_trend.add(value) and self._loss_trend.rising()
 
     def _loss_scale(self) -> Optional[float]:
         """The factor the loss was scaled by (1 without a scaler); None when the scaler found an overflow."""
