@@ -19,6 +19,12 @@ SPREAD = 1.0  # and by more than this many standard errors of the difference of 
               # single examples or tiny batches scatter widely: a few high ones are not a trend)
 
 
+def _sample_variance(values, mean: float) -> float:
+    """Unbiased sample variance in plain floats (``statistics.variance`` works in exact fractions:
+    about 0.1 ms a call, noticeable on a 1 ms step)."""
+    return sum((v - mean) ** 2 for v in values) / (len(values) - 1)
+
+
 class LossTrend:
     """The first :data:`OPENING` finite loss values and the latest :data:`WINDOW` after them."""
 
@@ -40,7 +46,8 @@ class LossTrend:
         if len(self.recent) < WINDOW:
             return False
         start, now = statistics.fmean(self.opening), statistics.fmean(self.recent)
-        error = math.sqrt(statistics.variance(self.opening) / OPENING + statistics.variance(self.recent) / WINDOW)
+        error = math.sqrt(_sample_variance(self.opening, start) / OPENING
+                          + _sample_variance(self.recent, now) / WINDOW)
         return now - start > max(MARGIN * abs(start), SPREAD * error)
 
     def message(self) -> str:

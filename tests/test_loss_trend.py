@@ -94,3 +94,23 @@ def test_a_closure_loss_feeds_the_trend():
     with pytest.warns(UserWarning, match="risen above where it started"):
         for _ in range(OPENING + WINDOW):
             opt.step(closure)
+
+
+def test_the_standard_error_is_numpys_sample_variance_over_the_counts():
+    # Welch's standard error of a difference of two means, sqrt(s1^2/n1 + s2^2/n2) with the unbiased
+    # sample variances (ddof=1), computed by numpy; the rule warns exactly when the rise exceeds both
+    # the margin and that error, checked on random series on both sides of the boundary.
+    import numpy as np
+    generator = np.random.default_rng(0)
+    decided = set()
+    for _ in range(300):
+        opening = generator.normal(1.0, generator.uniform(0.01, 1.0), OPENING)
+        recent = generator.normal(1.0 + generator.uniform(0.0, 1.0), generator.uniform(0.01, 1.0), WINDOW)
+        error = math.sqrt(opening.var(ddof=1) / OPENING + recent.var(ddof=1) / WINDOW)
+        rise = recent.mean() - opening.mean()
+        expected = rise > max(MARGIN * abs(opening.mean()), error)
+        if abs(rise - max(MARGIN * abs(opening.mean()), error)) < 1e-9:
+            continue  # too close to the boundary for rounding to decide
+        assert trend_of(list(opening) + list(recent)).rising() == expected
+        decided.add(expected)
+    assert decided == {True, False}  # both outcomes were checked
