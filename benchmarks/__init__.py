@@ -21,7 +21,7 @@ one concept each:
   step time goes
 - :mod:`benchmarks.verdict`: the one-screen verdict per task
 - :mod:`benchmarks.results`: results.json, the CSV of loss curves, atomic file writes
-- :mod:`benchmarks.outputs`: the files rewritten after every finished run
+- :mod:`benchmarks.outputs`: the files rewritten as runs finish
 - :mod:`benchmarks.report` and :mod:`benchmarks.report_format`: console tables and report.md
 - :mod:`benchmarks.plots`: PNG figures
 - :mod:`benchmarks.scaling`: step time against layer width and batch size

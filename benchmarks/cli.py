@@ -268,7 +268,7 @@ def with_targets(config: Config) -> list[Task]:
 
 
 def run_tasks(config: Config, argv: list[str]) -> dict:
-    """Every task through the protocol, writing the files after every finished run.
+    """Every task through the protocol, writing the files as runs finish.
 
     An interruption (Ctrl-C) or an error leaves the files of the finished runs,
     marked with where the benchmark stopped; Ctrl-C then ends with status 130.

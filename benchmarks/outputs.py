@@ -1,14 +1,19 @@
-"""The benchmark's files, rewritten after every finished run so that a stopped benchmark keeps its results.
+"""The benchmark's files, rewritten as runs finish so that a stopped benchmark keeps its results.
 
-After each run: ``results.json``, ``curves.csv`` and ``report.md`` with every
-finished run so far (each file replaced in one step, see
-:func:`benchmarks.results.write_atomically`); after each task, its loss plot.
+``results.json``, ``curves.csv`` and ``report.md`` with every finished run so
+far (each file replaced in one step, see :func:`benchmarks.results.write_atomically`):
+after a run when :data:`WRITE_EVERY` seconds have passed since the last write
+(every file holds every run, so writing after each of a quick run's 154 runs
+cost about 5 s in all), after each task (with its loss plot), and when the
+benchmark ends, is interrupted or fails. Only a process killed outright can
+lose the runs of the last few seconds.
 Until the benchmark ends, ``results["status"]`` says it is unfinished and
 where it stood; when it is interrupted or fails, the status names the reason.
 """
 
 from __future__ import annotations
 
+import time
 from pathlib import Path
 from typing import Optional
 
@@ -16,11 +21,15 @@ from benchmarks import plots, report, results
 from benchmarks.harness import TaskOutcome
 
 RUNNING = "still running when this was written, or killed"
+WRITE_EVERY = 10.0  # seconds between the files' rewrites after single runs
 
 
 class ProgressiveOutputs:
-    def __init__(self, out: Optional[Path], machine: dict, settings: dict, total_runs: int):
+    def __init__(self, out: Optional[Path], machine: dict, settings: dict, total_runs: int,
+                 clock=time.monotonic):
         self.out, self.machine, self.settings, self.total = out, machine, settings, total_runs
+        self.clock = clock
+        self.last_write: Optional[float] = None
         self.outcomes: list[TaskOutcome] = []  # finished tasks
         self.current: Optional[TaskOutcome] = None  # the task in progress
         self.plot_files: dict[str, str] = {}
@@ -59,6 +68,7 @@ class ProgressiveOutputs:
 
     def write(self, reason: Optional[str]) -> dict:
         payload = self.results(reason)
+        self.last_write = self.clock()
         if self.out is not None:
             results.write_json(payload, self.out / "results.json")
             results.write_curves(self.all_outcomes(), self.out / "curves.csv")
@@ -75,7 +85,8 @@ class ProgressiveOutputs:
 
     def run_finished(self, outcome: TaskOutcome) -> None:
         self.current = outcome
-        self.write(RUNNING)
+        if self.last_write is None or self.clock() - self.last_write >= WRITE_EVERY:
+            self.write(RUNNING)
 
     def task_finished(self, outcome: TaskOutcome) -> None:
         self.current = None

@@ -650,3 +650,32 @@ def test_chunks_are_used_only_where_they_save_a_twentieth(monkeypatch, chunked_c
     chosen = evaluation.fastest_forward_chunk(None, None, inputs, None)
     assert chosen == (evaluation.EVALUATION_CHUNK if expected == "chunk" else None)
     assert evaluation.fastest_forward_chunk(None, None, inputs[:evaluation.EVALUATION_CHUNK], None) is None
+
+
+def test_files_are_rewritten_after_a_run_only_once_the_write_interval_has_passed(tmp_path, monkeypatch):
+    # Every file holds every finished run, so rewriting them after each run grows with the square of
+    # the runs; after single runs they wait WRITE_EVERY seconds, after a task and at the end they do not.
+    from benchmarks import outputs as outputs_module
+    from benchmarks.evaluation import EvaluationSchedule
+    from benchmarks.harness import TaskOutcome
+
+    written = []
+    monkeypatch.setattr(outputs_module.results, "write_json", lambda payload, path: written.append(payload))
+    monkeypatch.setattr(outputs_module.results, "write_curves", lambda outcomes, path: None)
+    monkeypatch.setattr(outputs_module.results, "write_text", lambda text, path: None)
+    monkeypatch.setattr(outputs_module.report, "markdown_report", lambda payload, plots: "")
+    now = [100.0]
+    outputs = outputs_module.ProgressiveOutputs(tmp_path, {}, {}, total_runs=4, clock=lambda: now[0])
+    outcome = TaskOutcome(TASKS["ill_conditioned_regression"], 10, EvaluationSchedule.for_steps(10), planned_runs=4)
+    outputs.run_finished(outcome)
+    assert len(written) == 1  # the first run is written at once
+    now[0] += outputs_module.WRITE_EVERY / 2
+    outputs.run_finished(outcome)
+    assert len(written) == 1
+    now[0] += outputs_module.WRITE_EVERY / 2
+    outputs.run_finished(outcome)
+    assert len(written) == 2
+    outputs.task_finished(outcome)  # at once, whatever the clock says
+    assert len(written) == 3
+    outputs.finished()
+    assert len(written) == 4 and written[-1]["status"]["complete"] is True
