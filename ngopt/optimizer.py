@@ -96,7 +96,7 @@ class FisherDescent(torch.optim.Optimizer):
         max_exact_step_kl: ``step_rule='fixed'``: ceiling on the step's KL in the exact Fisher of the
             whole model, measured every ``rule_interval`` steps (None: off; per group; no effect with
             ``rule_interval=0``).  The blocks' model drops every product between blocks and can
-            understate a step's KL many times over on small noisy batches; the ceiling binds only there.
+            understate a step's KL tens of times over; the ceiling binds where it does.
         step_rule: ``'fixed'`` (lr, momentum and the KL bound as given) or ``'quadratic'`` (step size
             and momentum chosen on the exact Fisher of the recorded batch; ``rules/``).
         rule_interval: steps between the step rule's evaluations on the recorded batch: the
