@@ -87,6 +87,7 @@ from torch import nn
 from torch.func import functional_call, hessian, jacrev, vmap
 
 from .likelihoods import criterion_arguments, likelihood_from_arguments
+from .sampling import categorical_draws
 from .step_pipeline import PendingStep, add_projected_statistics, new_inverses, new_statistics
 from .uses.recorder import record_uses
 
@@ -160,7 +161,7 @@ def _reduction_scale(loss_fn, outputs: torch.Tensor) -> float:
 def _sample_targets(loss_fn, outputs: torch.Tensor, generator: torch.Generator) -> torch.Tensor:
     """Targets drawn from the model's predictive distribution p(y | f)."""
     if isinstance(loss_fn, nn.CrossEntropyLoss):
-        return torch.multinomial(torch.softmax(outputs, dim=1), 1, generator=generator).squeeze(1)
+        return categorical_draws(torch.softmax(outputs, dim=1), 1, generator).squeeze(1)
     if isinstance(loss_fn, nn.BCEWithLogitsLoss):
         uniform = torch.rand(outputs.shape, generator=generator, dtype=outputs.dtype)
         return (uniform < torch.sigmoid(outputs)).to(outputs.dtype)

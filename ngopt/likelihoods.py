@@ -44,6 +44,8 @@ import torch
 from torch import nn
 import torch.nn.functional as F
 
+from .sampling import categorical_draws
+
 SUPPORTED_REDUCTIONS = ("mean", "sum", "none")
 
 
@@ -256,7 +258,7 @@ class CrossEntropy(OutputLikelihood):
             # Non-finite logits: hand back non-finite gradients so the step is skipped, not crashed.
             return torch.full((num_samples,) + output.shape, float("nan"), dtype=output.dtype,
                               device=output.device)
-        draws = torch.multinomial(flat, num_samples, replacement=True, generator=generator)  # [terms, S]
+        draws = categorical_draws(flat, num_samples, generator)  # [terms, S]
         # p - e_y for each draw y: the drawn class's entry lowered by one in a copy of p (no one-hot
         # tensor, which for a large vocabulary would be several times the size of the logits).
         grads = flat.unsqueeze(0).expand(num_samples, -1, -1).clone()                        # [S, terms, C]

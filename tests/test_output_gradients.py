@@ -156,14 +156,16 @@ def test_streamed_refresh_gives_the_statistics_of_a_collected_one(structure, wei
 @pytest.mark.parametrize("samples", [1, 3])
 def test_sampled_cross_entropy_gradients_are_softmax_minus_the_drawn_one_hot(shape, samples):
     # The gradient of -log p_y with respect to the logits is p - e_y (common practice); the draws are
-    # torch.multinomial's from the same generator, along the class dimension (dim 1).
+    # ngopt.sampling.categorical_draws' from the same generator, along the class dimension (dim 1); the
+    # draws' distribution is checked in tests/test_sampling.py.
     from ngopt.likelihoods import likelihood_for
+    from ngopt.sampling import categorical_draws
     output = torch.randn(*shape, generator=torch.Generator().manual_seed(1))
     got = likelihood_for(nn.CrossEntropyLoss()).sampled_output_grads(output, torch.Generator().manual_seed(0),
                                                                      samples)
     prob = torch.softmax(output, dim=1)
     flat = prob.movedim(1, -1).reshape(-1, shape[1])
-    draws = torch.multinomial(flat, samples, replacement=True, generator=torch.Generator().manual_seed(0))
+    draws = categorical_draws(flat, samples, torch.Generator().manual_seed(0))
     one_hot = torch.nn.functional.one_hot(draws.T, shape[1]).to(prob.dtype)
     expected = (flat.unsqueeze(0) - one_hot).reshape((samples,) + prob.movedim(1, -1).shape).movedim(-1, 2)
     assert got.shape == (samples,) + tuple(shape)

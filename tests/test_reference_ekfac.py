@@ -17,6 +17,7 @@ import torch
 from torch import nn
 
 import ngopt
+from ngopt.sampling import categorical_draws
 from test_reference_blocks import (EXACT_RTOL, exact_layer_fisher, network_problem, per_class_gradients,
                                    per_example_jacobians, recorded_optimizer, relative_error)
 
@@ -67,7 +68,7 @@ def test_ekfac_scales_against_brute_force_projected_per_example_gradients():
     with torch.no_grad():
         prob = torch.softmax(reference_model(inputs), dim=1)
     generator = torch.Generator().manual_seed(7)  # the optimizer's private generator, same seed
-    drawn = torch.multinomial(prob, 1, generator=generator).squeeze(1)
+    drawn = categorical_draws(prob, 1, generator).squeeze(1)  # the optimizer's sampler (tests/test_sampling.py)
     opt.zero_grad()
     loss_fn(model(inputs), drawn).backward()  # observed labels = the draws; only the curvature matters
     opt.step()

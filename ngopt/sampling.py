@@ -1,0 +1,32 @@
+"""Draws from categorical distributions, for the sampled Fisher's targets.
+
+``torch.multinomial`` draws the same distribution but on the CPU took 7-40x as long as the inverse
+of the cumulative distribution below (2,048 rows of 10, 96 and 1,000 classes: 0.49 / 3.9 / 42 ms
+against 0.07 / 0.14 / 0.97 ms, 2 threads), and a language model's refresh draws one class per token.
+"""
+from __future__ import annotations
+
+import torch
+
+CHUNK_ENTRIES = 1 << 22  # float64 cumulative sums held at once (32 MiB): a large vocabulary in pieces
+
+
+def categorical_draws(prob: torch.Tensor, num_samples: int, generator: torch.Generator) -> torch.Tensor:
+    """``[rows, num_samples]`` class indices, drawn with replacement from each row of ``prob``
+    (``[rows, classes]``, non-negative, summing to 1 up to rounding).
+
+    Inverse transform sampling: class ``k`` is the first whose cumulative probability exceeds
+    ``u * total`` for a uniform ``u`` in [0, 1), so it is drawn with probability ``p_k / total``
+    and a class of probability 0 never is.  The cumulative sums are taken in float64 so that
+    the rounding of a long row (a vocabulary) does not move the small probabilities of its tail.
+    """
+    rows, classes = prob.shape
+    uniforms = torch.rand((rows, num_samples), generator=generator, dtype=torch.float64, device=prob.device)
+    draws = torch.empty((rows, num_samples), dtype=torch.long, device=prob.device)
+    step = max(1, CHUNK_ENTRIES // max(classes, 1))
+    for start in range(0, rows, step):
+        cumulative = prob[start:start + step].to(torch.float64).cumsum(dim=1)
+        values = uniforms[start:start + step] * cumulative[:, -1:]
+        # u < 1, so values < total and the search stays within the row; the clamp only guards rounding
+        torch.searchsorted(cumulative, values, right=True, out=draws[start:start + step])
+    return draws.clamp_(max=classes - 1)
