@@ -18,7 +18,7 @@ from torch import nn
 
 import ngopt
 from ngopt.sampling import categorical_draws
-from test_reference_blocks import (EXACT_RTOL, exact_layer_fisher, network_problem, per_class_gradients,
+from test_reference_blocks import (exact_layer_fisher, network_problem, per_class_gradients,
                                    per_example_jacobians, recorded_optimizer, relative_error)
 
 
