@@ -21,7 +21,7 @@ from torch import nn
 
 import ngopt
 from ngopt.budget import Schedule, choose, forward_backward_flops, kronecker_flops
-from ngopt.factors import BlockDiagonal, Whole, factor_form
+from ngopt.factors import BlockDiagonal, Whole
 
 DTYPE = torch.float64
 

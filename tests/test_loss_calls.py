@@ -19,7 +19,7 @@ from torch import nn
 import torch.nn.functional as F
 
 import ngopt
-from fisher_reference import cross_entropy_fisher, flat_jacobian, loss_input_jacobian
+from fisher_reference import cross_entropy_fisher, loss_input_jacobian
 
 VOCAB, LENGTH, BATCH = 9, 6, 8
 DTYPE = torch.float64

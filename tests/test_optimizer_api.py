@@ -4,7 +4,6 @@ Argument checks (7), warnings, ``repr``, ``param_groups`` with
 ``torch.optim.lr_scheduler`` (2), ``state_dict`` round trips through
 ``torch.save``/``torch.load(weights_only=True)`` and ``step(closure)`` (3).
 """
-import copy
 import importlib
 import io
 import math
