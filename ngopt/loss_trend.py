@@ -2,7 +2,9 @@
 
 On small or noisy batches the KL bound, taken in the blocks' model, can let every step fit its own
 batch: the loss of each new batch then rises instead of falling (README, *Cautions*: the BERT-style
-classifier at batch 8).  Nothing is evaluated for this: the values are the closure's loss, or the loss
+classifier at batch 8).  And once a classifier has fitted its data, its Fisher vanishes and a long step
+can throw the loss far up (README, *Training on after the data are fitted*); the message tells the two
+apart by whether the loss had come near zero first.  Nothing is evaluated for this: the values are the closure's loss, or the loss
 of the forwards the optimizer records anyway (statistics refreshes and rule evaluations).
 """
 from __future__ import annotations
@@ -17,6 +19,7 @@ WINDOW = 8    # the latest values, averaged: where it is now
 MARGIN = 0.1  # "above where it started": by more than this share of the start's size,
 SPREAD = 1.0  # and by more than this many standard errors of the difference of the two means (values of
               # single examples or tiny batches scatter widely: a few high ones are not a trend)
+FITTED = 0.01  # a loss that had come below this share of its start had fitted the data before it climbed
 
 
 def _sample_variance(values, mean: float) -> float:
@@ -31,11 +34,13 @@ class LossTrend:
     def __init__(self):
         self.opening: list = []
         self.recent: deque = deque(maxlen=WINDOW)
+        self.lowest = math.inf
 
     def add(self, value: Optional[float]) -> bool:
         """Keep a finite value; whether it was kept (only then can :meth:`rising` change)."""
         if value is None or not math.isfinite(value):
             return False
+        self.lowest = min(self.lowest, value)
         if len(self.opening) < OPENING:
             self.opening.append(value)
         else:
@@ -50,9 +55,19 @@ class LossTrend:
                           + _sample_variance(self.recent, now) / WINDOW)
         return now - start > max(MARGIN * abs(start), SPREAD * error)
 
+    def after_fitting(self) -> bool:
+        """Whether the loss had come near zero (below :data:`FITTED` of its start) before it climbed."""
+        start = statistics.fmean(self.opening)
+        return start > 0 and self.lowest < FITTED * start
+
     def message(self) -> str:
         start, now = statistics.fmean(self.opening), statistics.fmean(self.recent)
-        return (f"the training loss has risen above where it started: {now:.4g} over the last {WINDOW} recorded "
-                f"values against {start:.4g} over the first {OPENING}. On small or noisy batches the KL bound "
-                "(taken in the blocks' model) can let every step fit its own batch; try a smaller max_step_kl "
-                "(a tenth of it, say). README, Cautions.")
+        text = (f"the training loss has risen above where it started: {now:.4g} over the last {WINDOW} recorded "
+                f"values against {start:.4g} over the first {OPENING}")
+        if self.after_fitting():
+            return (text + f", after it had come down to {self.lowest:.3g}. Near-certain predictions have a "
+                    "vanishing Fisher, so the KL bound allows long steps while damping adapts downwards; raise the "
+                    "lower end of damping_range (to 1e-3, say) or stop training once the data are fitted. "
+                    "README, Cautions.")
+        return (text + ". On small or noisy batches the KL bound (taken in the blocks' model) can let every step "
+                "fit its own batch; try a smaller max_step_kl (a tenth of it, say). README, Cautions.")

@@ -17,7 +17,7 @@ or an inversion the quadratic form mixes the curvatures the buffer was built fro
 Two bounds on the step's KL.  ``max_step_kl`` holds in the blocks' own model on every step.  That
 model drops every product between blocks and rests on statistics of earlier batches, so it can
 understate the step's true KL by one or two orders of magnitude: over the benchmark's built-in and
-held-out tasks the median ratio runs from 0.7 to 42 and the 90th percentile up to 108
+held-out tasks the median ratio runs from 0.7 to 33 and the 90th percentile up to 104
 (``scripts/fisher_length_ratio.py``), and on those tasks the longer steps it allows pay.
 Every ``rule_interval = k`` steps (0: never) the rule measures the proposal's length in the exact
 Fisher of the whole model on the recorded batch (:func:`ngopt.rules.trust.fisher_length_ratio`,
