@@ -2,10 +2,11 @@
 
 On small or noisy batches the KL bound, taken in the blocks' model, can let every step fit its own
 batch: the loss of each new batch then rises instead of falling (README, *Cautions*: the BERT-style
-classifier at batch 8).  And once a classifier has fitted its data, its Fisher vanishes and a long step
-can throw the loss far up (README, *Training on after the data are fitted*); the message tells the two
-apart by whether the loss had come near zero first.  Nothing is evaluated for this: the values are the closure's loss, or the loss
-of the forwards the optimizer records anyway (statistics refreshes and rule evaluations).
+classifier at batch 8).  And once a classifier has fitted its data, its Fisher vanishes and a long
+step can throw the loss far up (README, *Training on after the data are fitted*); the message tells
+the two apart by whether the loss had come near zero first.  Nothing is evaluated for this: the
+values are the closure's loss, or the loss of the forwards the optimizer records anyway (statistics
+refreshes and rule evaluations).
 """
 from __future__ import annotations
 
