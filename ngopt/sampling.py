@@ -23,10 +23,13 @@ def categorical_draws(prob: torch.Tensor, num_samples: int, generator: torch.Gen
     rows, classes = prob.shape
     uniforms = torch.rand((rows, num_samples), generator=generator, dtype=torch.float64, device=prob.device)
     draws = torch.empty((rows, num_samples), dtype=torch.long, device=prob.device)
-    step = max(1, CHUNK_ENTRIES // max(classes, 1))
-    for start in range(0, rows, step):
-        cumulative = prob[start:start + step].to(torch.float64).cumsum(dim=1)
-        values = uniforms[start:start + step] * cumulative[:, -1:]
-        # u < 1, so values < total and the search stays within the row; the clamp only guards rounding
-        torch.searchsorted(cumulative, values, right=True, out=draws[start:start + step])
-    return draws.clamp_(max=classes - 1)
+    rows_per_piece = max(1, CHUNK_ENTRIES // max(classes, 1))
+    for start in range(0, rows, rows_per_piece):
+        piece = slice(start, start + rows_per_piece)
+        cumulative = prob[piece].to(torch.float64).cumsum(dim=1)
+        total = cumulative[:, -1:]
+        # u * total can round up to total itself; kept strictly below it, the search ends within the row
+        # at a class of positive probability
+        values = torch.minimum(uniforms[piece] * total, torch.nextafter(total, torch.zeros_like(total)))
+        torch.searchsorted(cumulative, values, right=True, out=draws[piece])
+    return draws

@@ -59,3 +59,12 @@ def test_shape_dtype_and_the_private_generator(samples):
     assert torch.equal(torch.get_rng_state(), state)  # the global generator is not consumed
     assert first.shape == (6, samples) and first.dtype == torch.long
     assert torch.equal(first, categorical_draws(prob, samples, torch.Generator().manual_seed(9)))
+
+
+def test_a_uniform_that_rounds_up_to_the_total_still_draws_a_class_of_positive_probability(monkeypatch):
+    # The largest uniform below 1 times a row's total can round to the total itself; the search must still
+    # end inside the row, on a class with probability (here the last class has none).
+    largest = 1.0 - 2.0 ** -53
+    monkeypatch.setattr(sampling.torch, "rand", lambda shape, **kwargs: torch.full(shape, largest, dtype=torch.float64))
+    prob = torch.tensor([[0.3, 0.7, 0.0], [0.1, 0.2, 0.7]], dtype=torch.float64)
+    assert categorical_draws(prob, 2, None).tolist() == [[1, 1], [2, 2]]
