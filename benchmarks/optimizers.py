@@ -27,7 +27,10 @@ so that a results table reads as methods side by side. Rows on request:
   of the default moves the grid with it);
 - ``fisher-descent-ekfac``, ``fisher-descent-diag``: the untuned row with
   ``structure="ekfac"`` or ``"diag"``, so that they differ from
-  ``fisher-descent`` in the curvature alone.
+  ``fisher-descent`` in the curvature alone;
+- ``fisher-descent-cosine``: the untuned row with its default lr decayed to 0
+  over the run's step budget (:func:`benchmarks.schedules.cosine`), the schedule
+  a user who knows the length of the run would add.
 """
 
 from __future__ import annotations
@@ -101,6 +104,7 @@ class OptimizerSpec:
     natural_gradient_options: Optional[dict] = None  # what defines a FisherDescent row; None otherwise
     tuned: bool = True
     schedule: Optional[Schedule] = None
+    schedule_words: Optional[str] = None  # the schedule in words, kept in the label under option overrides
     unavailable: Optional[Callable[[], Optional[str]]] = None  # why the row cannot run here (None: it can)
     # why a default run leaves the row out here (None: it runs); asked for by name, it runs anyway
     slow_here: Optional[Callable[[], Optional[str]]] = None
@@ -164,15 +168,18 @@ def listed_options(options: dict) -> str:
     return ", ".join(f"{key}={value!r}" for key, value in options.items())
 
 
-def natural_gradient_label(options: dict, tuned: bool) -> str:
+def natural_gradient_label(options: dict, tuned: bool, schedule: Optional[str] = None) -> str:
     what = "lr tuned over a grid around its default" if tuned else "its defaults, lr not tuned"
+    what += f", {schedule}" if schedule else ""
     return f"FisherDescent ({what}" + (f"; {listed_options(options)})" if options else ")")
 
 
-def natural_gradient_row(name: str, options: dict, tuned: bool = False) -> OptimizerSpec:
-    """A FisherDescent row defined by ``options`` (e.g. its structure)."""
-    return OptimizerSpec(name, natural_gradient_label(options, tuned), None,
-                         natural_gradient_builder(options), dict(options), tuned)
+def natural_gradient_row(name: str, options: dict, tuned: bool = False,
+                         schedule: Optional[Schedule] = None, schedule_words: Optional[str] = None) -> OptimizerSpec:
+    """A FisherDescent row defined by ``options`` (e.g. its structure) and, if given, an lr schedule."""
+    return OptimizerSpec(name, natural_gradient_label(options, tuned, schedule_words), None,
+                         natural_gradient_builder(options), dict(options), tuned, schedule=schedule,
+                         schedule_words=schedule_words)
 
 
 def with_natural_gradient_options(spec: OptimizerSpec, options: dict) -> OptimizerSpec:
@@ -184,7 +191,7 @@ def with_natural_gradient_options(spec: OptimizerSpec, options: dict) -> Optimiz
     if not options:
         return spec
     merged = {**options, **(spec.natural_gradient_options or {})}
-    return replace(spec, label=natural_gradient_label(merged, spec.tuned),
+    return replace(spec, label=natural_gradient_label(merged, spec.tuned, spec.schedule_words),
                    build=natural_gradient_builder(merged), natural_gradient_options=merged)
 
 
@@ -202,6 +209,8 @@ OPTIMIZERS: dict[str, OptimizerSpec] = {
         natural_gradient_row(TUNED, {}, tuned=True),
         natural_gradient_row(f"{HEADLINE}-ekfac", {"structure": "ekfac"}),
         natural_gradient_row(f"{HEADLINE}-diag", {"structure": "diag"}),
+        natural_gradient_row(f"{HEADLINE}-cosine", {}, schedule=schedules.cosine,
+                             schedule_words=schedules.describe_cosine()),
     ]
 }
 NATURAL_GRADIENT_ROWS = tuple(name for name, spec in OPTIMIZERS.items() if spec.natural_gradient_options is not None)

@@ -1,4 +1,5 @@
-"""Tests of the baselines beyond SGD and Adam: AdamW under warm-up and cosine decay, and Muon with AdamW.
+"""Tests of the baselines beyond SGD and Adam: AdamW under warm-up and cosine decay, and Muon with AdamW;
+and of the cosine decay alone, on FisherDescent's row of that name.
 
 References: torch's own schedulers (``LinearLR``, ``CosineAnnealingLR``) for
 the schedule, and torch's own optimizers stepped on their own for the
@@ -82,6 +83,44 @@ def test_adamw_cosine_row_runs_each_step_at_the_scheduled_lr():
     assert run.lr == peak and run.steps_run == steps
     expected = lrs_of(lambda optimizer: schedules.warmup_cosine(optimizer, steps), steps, peak)
     assert seen == pytest.approx(expected, rel=1e-12)
+
+
+def test_cosine_decay_alone_is_the_closed_form_from_the_peak_to_zero():
+    # (1 + cos(pi i / T)) / 2 times the lr on step i of T (the cosine annealing of Loshchilov & Hutter,
+    # SGDR, ICLR 2017, without restarts), by hand; no warm-up: the first step runs at the lr itself
+    steps, peak = 50, 0.3
+    ours = lrs_of(lambda optimizer: schedules.cosine(optimizer, steps), steps, peak)
+    by_hand = [peak * (1 + math.cos(math.pi * index / steps)) / 2 for index in range(steps)]
+    assert ours == pytest.approx(by_hand, rel=1e-9, abs=1e-12)
+    assert ours[0] == peak and 0 < ours[-1] < 1e-3 * peak
+    with pytest.raises(ValueError, match="steps must be a positive integer"):
+        schedules.cosine(torch.optim.SGD([nn.Parameter(torch.zeros(1))], lr=0.1), 0)
+
+
+def test_fisher_descent_cosine_row_is_the_untuned_method_under_the_decay():
+    import ngopt
+    from benchmarks.optimizers import with_natural_gradient_options
+
+    steps, seen = 12, []
+    spec = OPTIMIZERS["fisher-descent-cosine"]
+    assert spec.lr_grid(4) == [None] and "cosine decay" in spec.label
+
+    def recording_build(model, loss_fn, lr):
+        optimizer = spec.build(model, loss_fn, lr)
+        assert isinstance(optimizer, ngopt.FisherDescent)
+        optimizer.register_step_pre_hook(lambda opt, args, kwargs: seen.append(opt.param_groups[0]["lr"]))
+        return optimizer
+
+    run = train_run(TASKS["ill_conditioned_regression"], replace(spec, build=recording_build), None, seed=0,
+                    steps=steps)
+    assert run.steps_run == steps
+    default_lr = OPTIMIZERS["fisher-descent"].build(nn.Linear(2, 1), nn.MSELoss(), None).param_groups[0]["lr"]
+    assert seen == pytest.approx(lrs_of(lambda optimizer: schedules.cosine(optimizer, steps), steps, default_lr),
+                                 rel=1e-12)
+    # options given on the command line keep the schedule and say so
+    overridden = with_natural_gradient_options(spec, {"damping": 0.1})
+    assert overridden.schedule is schedules.cosine and "cosine decay" in overridden.label \
+        and "damping=0.1" in overridden.label
 
 
 def small_model() -> nn.Sequential:

@@ -117,11 +117,11 @@ def test_the_standard_error_is_numpys_sample_variance_over_the_counts():
 
 
 def test_a_climb_after_the_loss_came_near_zero_gets_the_advice_for_fitted_data():
-    # A loss that had fitted its data (below 1% of its start) and then jumped: the damping advice, not the
-    # small-batch one; a loss that never came down gets the small-batch advice.
+    # A loss that had fitted its data (below 1% of its start) and then jumped: the lr-decay advice, not
+    # the small-batch one; a loss that never came down gets the small-batch advice.
     fitted = trend_of([2.3, 2.2, 2.1] + [1e-5] * 5 + [10.0] * WINDOW)
     assert fitted.rising() and fitted.after_fitting()
-    assert "damping_range" in fitted.message() and "1e-05" in fitted.message()
+    assert "CosineAnnealingLR" in fitted.message() and "1e-05" in fitted.message()
     noisy = trend_of([1.1, 1.1, 1.1] + [1.5] * WINDOW)
     assert noisy.rising() and not noisy.after_fitting()
-    assert "max_step_kl" in noisy.message() and "damping_range" not in noisy.message()
+    assert "max_step_kl" in noisy.message() and "CosineAnnealingLR" not in noisy.message()
