@@ -49,7 +49,7 @@ from .likelihoods import (CRITERIA, LossCall, UnsupportedLoss, criterion_argumen
 from .output_gradients import batched_output_grads, stream_output_grads
 from .uses import ParamView, UseRecorder, run_eagerly
 from .uses.recorder import output_target, remove_mode
-from .uses.losses import LossWatch, leaves, sweep_closed_watches
+from .uses.losses import BackwardWatch, LossWatch, leaves, sweep_closed_watches
 
 # model -> weak reference to the capture hooks on it: keeps nothing alive, travels with no copy of a model
 _HOOKED_MODELS: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
@@ -198,6 +198,7 @@ class CaptureHooks:
         self.last_call: Optional[LayerCall] = None
         self._opened_by_hook = False
         self._watch: Optional[LossWatch] = None
+        self._roots: List[torch.Tensor] = []  # the loss values backward() started from since the last step
         self._model = model
         other = _HOOKED_MODELS.get(model)
         if other is not None and other() is not None:
@@ -263,6 +264,11 @@ class CaptureHooks:
         return None
 
     def _model_post_hook(self, model, args, output):
+        if model is self._model and self._current is None and self.armed and model.training \
+                and torch.is_grad_enabled() and not inside_function_transform() and LossWatch.can_push():
+            self._watch = BackwardWatch(self)  # a forward that records nothing: its loss value only
+            self._watch.push()
+            return None
         if model is not self._model or self._current is None or not self._opened_by_hook:
             return None
         record, recorder = self._current, self._recorder
@@ -303,6 +309,16 @@ class CaptureHooks:
         if self.on_forward is not None:
             self.on_forward(record)
         record.release()
+
+    def note_root(self, root) -> None:
+        """Keep the value a training backward started from (one element; other roots are no loss)."""
+        if isinstance(root, torch.Tensor) and root.numel() == 1:
+            self._roots.append(root.detach().reshape(()))
+
+    def take_roots(self) -> List[torch.Tensor]:
+        """The loss values of this step's backward passes, handed over once."""
+        roots, self._roots = self._roots, []
+        return roots
 
     def close_watch(self) -> None:
         """Take the loss watch off the mode stack (the loss of the last forward is complete)."""
@@ -502,6 +518,7 @@ class CaptureHooks:
     def discard(self) -> None:
         """Drop every record and what its passes handed to the blocks already (a skipped step)."""
         self.close_watch()
+        self._roots.clear()
         blocks = {call.block for record in self.records for call in record.calls if call.block is not None}
         for record in self.records:
             record.release()

@@ -41,6 +41,9 @@ UPDATE: Dict[str, Key] = {
                           "momentum)", "param/lr"),
     "cosine": Key("cosine between the gradient and the preconditioned direction", "1"),
     "trust_scale": Key("factor the KL bound applied to the step (1 = not limited)", "1"),
+    "loss_bound_scale": Key("fixed step rule: factor the loss bound applied to the step, which keeps its predicted "
+                            "decrease at most twice the loss's distance to loss_floor (1 = not limited; null "
+                            "when the step did not see its loss, with loss_floor=None and under other rules)", "1"),
     "kl_estimate": Key("KL divergence of the step under the quadratic model (null when not computed)", "nats"),
     "fisher_length_ratio": Key("fixed step rule with rule_interval > 0: the proposal's squared length in the "
                                "exact Fisher of the whole model over the blocks' model's, at the latest check; "

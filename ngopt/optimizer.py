@@ -28,6 +28,7 @@ state untouched and is counted in ``diagnostics()["skipped_steps"]``.
 from __future__ import annotations
 
 import contextlib
+import math
 import time
 import warnings
 from types import SimpleNamespace
@@ -132,6 +133,12 @@ class FisherDescent(torch.optim.Optimizer):
             blocks of this size, an output factor keeps its diagonal); None: no limit.
         pinned_structures: ``{block name: structure}`` fixing the structure of the named blocks
             (names as in ``print(opt)``) whatever the budget says.
+        loss_floor: the lowest value the training loss can take (0 for cross-entropy, squared error
+            and the logistic loss, also when they are summed or averaged).  ``step_rule='fixed'``
+            keeps each step's first-order predicted decrease at most twice the loss's distance to it
+            (``rules/loss_bound.py``), using the loss that ``backward()`` started from (or the
+            closure's).  None: no such bound, for a loss that can go below 0 (a Gaussian
+            log-likelihood with learned variance, say) or whose floor is not known.
     """
 
     # GradScaler hands this optimizer the loss scale and its overflow check (torch.optim's convention),
@@ -149,7 +156,8 @@ class FisherDescent(torch.optim.Optimizer):
                  param_groups=None, seed: Optional[int] = None, weight_sharing: str = "expand",
                  stats_fraction: Optional[float] = None, inverse_schedule: str = "together",
                  cost_budget: Optional[float] = 1.0, max_factor_size: Optional[int] = 4096,
-                 pinned_structures: Optional[dict] = None, interval_warmup: int = 2):
+                 pinned_structures: Optional[dict] = None, interval_warmup: int = 2,
+                 loss_floor: Optional[float] = 0.0):
         check_arguments(step_rule=step_rule)
         lr = RULE_DEFAULTS[step_rule]["lr"] if lr is None else lr
         momentum = RULE_DEFAULTS[step_rule]["momentum"] if momentum is None else momentum
@@ -164,7 +172,8 @@ class FisherDescent(torch.optim.Optimizer):
                         rule_interval=rule_interval, rule_batch_fraction=rule_batch_fraction,
                         stats_fraction=stats_fraction, inverse_schedule=inverse_schedule,
                         cost_budget=cost_budget, max_factor_size=max_factor_size,
-                        pinned_structures=pinned_structures, interval_warmup=interval_warmup)
+                        pinned_structures=pinned_structures, interval_warmup=interval_warmup,
+                        loss_floor=loss_floor)
         if step_rule == "quadratic" and rule_interval == 0:
             raise ValueError("rule_interval must be >= 1 with step_rule='quadratic' (it sets the steps between "
                              "its solves), got 0")
@@ -193,6 +202,7 @@ class FisherDescent(torch.optim.Optimizer):
         self.stats_interval = stats_interval
         self.inverse_interval = inverse_interval
         self.interval_warmup = interval_warmup
+        self.loss_floor = loss_floor
         self.cost_budget, self.max_factor_size = cost_budget, max_factor_size
         self._assignment = CurvatureAssignment(self.model, self, structure, weight_sharing, stats_fraction,
                                                self._seed, cost_budget, max_factor_size, pinned_structures)
@@ -385,6 +395,7 @@ class FisherDescent(torch.optim.Optimizer):
         relative = scale / (self._capture.loss_scale_seen() or 1.0)
         # Before the rescaling below, which covers one record only.
         loss_climbed = self._loss_climbed(loss, relative)
+        loss_gap = self._loss_gap(loss, scale)
         batch = self._capture.latest_batch()
         if batch is not None and relative != 1.0:
             for call in batch.losses:
@@ -392,7 +403,7 @@ class FisherDescent(torch.optim.Optimizer):
         warning = self._capture.check_losses(self.fisher, self.loss_fn)
         if warning:
             self._warn_once("output", warning)
-        reason = self._attempt(loss, step_index, batch, closure, relative)
+        reason = self._attempt(loss, step_index, batch, closure, relative, loss_gap)
         if loss is not None and self._last_update:
             self._last_update["loss"] = float(loss)
         if reason is not None:
@@ -417,6 +428,28 @@ class FisherDescent(torch.optim.Optimizer):
             recorded = self._capture.recorded_loss()
             value = None if recorded is None else recorded / relative
         return self._loss_trend.add(value) and self._loss_trend.rising()
+
+    def _loss_gap(self, loss, scale: float) -> Optional[float]:
+        """The step's loss minus ``loss_floor`` (the mean over ranks), or None: no floor, or the loss was
+        not seen on this step (on every rank).  The loss is the sum of the values this step's backward
+        passes started from, at its true scale (a loss scaler's factor taken out), else the closure's."""
+        roots = self._capture.take_roots()
+        if self.loss_floor is None:
+            return None
+        if roots:
+            value = float(torch.stack([r.to(torch.float64) for r in roots]).sum()) / scale
+        else:
+            value = None if loss is None else float(loss.detach() if isinstance(loss, torch.Tensor) else loss)
+        gap = None if value is None or not math.isfinite(value) else value - self.loss_floor
+        if gap is not None and gap < 0:
+            self._warn_once("loss_floor", f"the training loss ({value:.4g}) is below loss_floor={self.loss_floor:g}: "
+                            "the bound on a step's predicted decrease (rules/loss_bound.py) is off while it is. "
+                            "Pass the loss's true minimum, or loss_floor=None for a loss without a known one.")
+            gap = None
+        if self.communicator is not None:  # one bound for the global batch, the same on every rank
+            total, seen = self.communicator.average_scalars(0.0 if gap is None else gap, float(gap is not None))
+            gap = total if seen == 1.0 else None
+        return gap
 
     def _loss_scale(self) -> Optional[float]:
         """The factor the loss was scaled by (1 without a scaler); None when the scaler found an overflow."""
@@ -458,7 +491,8 @@ class FisherDescent(torch.optim.Optimizer):
         """Whether a rule will evaluate the loss on the batch of step ``step_index``."""
         return self.rules.step.wants_batch(step_index) or self.rules.damping.wants_ratio(step_index)
 
-    def _attempt(self, loss, step_index: int, batch, closure, loss_scale: float = 1.0) -> Optional[str]:
+    def _attempt(self, loss, step_index: int, batch, closure, loss_scale: float = 1.0,
+                 loss_gap: Optional[float] = None) -> Optional[str]:
         """Compute the whole step (``step_pipeline.py``), then write it; return a skip reason instead of writing."""
         if loss is not None and not self._finite_everywhere(loss):
             self._capture.discard()
@@ -495,6 +529,7 @@ class FisherDescent(torch.optim.Optimizer):
                                         pending.inverses, step_index, average)
             if inputs is None:
                 return "nonfinite_update"
+            inputs.loss_gap = loss_gap
             self._refuse_blocks_without_statistics(missing, bool(pending.statistics))
         with self._timed("rules"):
             evaluator = self._evaluator(batch, step_index, closure)

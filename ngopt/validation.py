@@ -61,6 +61,7 @@ CHECKS = {
     "stats_interval": lambda v: _integer("stats_interval", v, low=1),
     "inverse_interval": lambda v: _integer("inverse_interval", v, low=1),
     "interval_warmup": lambda v: _integer("interval_warmup", v, low=0),
+    "loss_floor": lambda v: _real("loss_floor", v, optional=True),
     "fisher_samples": lambda v: _integer("fisher_samples", v, low=1),
     "damping_interval": lambda v: _integer("damping_interval", v, low=1),
     "fisher": lambda v: _choice("fisher", v),

@@ -346,10 +346,14 @@ def test_the_reduction_ratio_is_the_global_batchs():
     with torch.no_grad():
         after = nn.MSELoss()(model(x), y)
     update = opt.diagnostics()["update"]
-    assert len(opt.communicator.averaged) == 1
+    # Two averages: the loss bound's (this rank's loss above the floor of 0, and that it saw one),
+    # then the ratio's.
+    assert len(opt.communicator.averaged) == 2
+    gap, seen = opt.communicator.averaged[0]
+    assert gap == pytest.approx(float(before.detach()), rel=1e-12) and seen == 1.0
     # The rank's own losses, measured here and by the optimizer on the recorded batch: the same
     # float64 forward, so only summation order could differ.
-    mine_before, mine_after = opt.communicator.averaged[0]
+    mine_before, mine_after = opt.communicator.averaged[1]
     assert mine_before == pytest.approx(float(before.detach()), rel=1e-12)
     assert mine_after == pytest.approx(float(after), rel=1e-12)
     global_change = (mine_after + other[1]) / 2 - (mine_before + other[0]) / 2

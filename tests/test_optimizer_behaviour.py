@@ -684,7 +684,7 @@ def test_an_update_that_overflows_only_once_scaled_by_lr_skips_the_step():
     torch.manual_seed(0)
     model = nn.Linear(3, 2)
     x, y = torch.randn(8, 3), 1e4 * torch.randn(8, 2)
-    opt = quiet_optimizer(model, nn.MSELoss(), lr=1e38, momentum=0.0, max_step_kl=None)
+    opt = quiet_optimizer(model, nn.MSELoss(), lr=1e38, momentum=0.0, max_step_kl=None, loss_floor=None)
     before = snapshot(model, opt)
     opt.zero_grad()
     nn.functional.mse_loss(model(x), y).backward()

@@ -73,7 +73,7 @@ def test_damping_follows_the_closed_form_reduction_ratio(objective_scale, lr, di
     damping = 1e-2
     opt = ngopt.FisherDescent(model, criterion, lr=lr, momentum=0.0, damping=damping, fisher="exact",
                               stats_interval=1, inverse_interval=1, stats_memory=0.0, max_step_kl=None,
-                              damping_rule="lm", damping_interval=1, step_rule="fixed")
+                              damping_rule="lm", damping_interval=1, step_rule="fixed", loss_floor=None)
 
     def closure():
         # The loss written out by hand hides the factor from the curvature (it is taken at the model

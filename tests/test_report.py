@@ -104,7 +104,8 @@ def test_csv_log_gives_the_figures_without_spectra(tmp_path):
 def test_ill_conditioned_factor_and_skipped_steps_are_warned(tmp_path):
     # the digits have pixels that are always 0, so A is singular; with a tiny damping the damped
     # block's condition number stays far above 1e8 (numbers from a run, see the summary)
-    log = digits_run(tmp_path, damping=1e-12, probe=False, max_step_kl=None, momentum=0.0, interval_warmup=0)
+    log = digits_run(tmp_path, damping=1e-12, probe=False, max_step_kl=None, momentum=0.0, interval_warmup=0,
+                     loss_floor=None)
     records = [json.loads(line) for line in log.read_text().splitlines()]
     assert min(r["layers"]["0"]["condition"] for r in records[-2:]) > 1e8
     result = write_report(log, tmp_path / "out")

@@ -22,6 +22,8 @@ class StepInputs:
     dots: Dict[object, Tuple[float, float, float]]
     step_index: int
     evaluator: Optional[object] = None               # quadratic_model.BatchEvaluator on solve steps
+    # The loss of the step's batch minus loss_floor, when the step saw that loss (None: no loss bound).
+    loss_gap: Optional[float] = None
     average: Callable[..., tuple] = lambda *values: values   # mean over ranks (identity in one process)
 
 

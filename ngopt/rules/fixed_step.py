@@ -14,7 +14,9 @@ a recursion in dot products the step computes anyway (plus one, ``buf_{t-1}^T g_
 the curvature of the step that added it (the one its proposal was computed with), so across a refresh
 or an inversion the quadratic form mixes the curvatures the buffer was built from.
 
-Two bounds on the step's KL.  ``max_step_kl`` holds in the blocks' own model on every step.  That
+Three bounds on ``nu``: the loss bound (:mod:`ngopt.rules.loss_bound`) keeps the whole step's
+first-order predicted decrease, ``sum_groups lr nu p^T g``, at most twice the distance of the step's
+loss to ``loss_floor``; and two bounds on the step's KL.  ``max_step_kl`` holds in the blocks' own model on every step.  That
 model drops every product between blocks and rests on statistics of earlier batches, so it can
 understate the step's true KL by one or two orders of magnitude: over the benchmark's built-in and
 held-out tasks the median ratio runs from 0.7 to 33 and the 90th percentile up to 104
@@ -40,6 +42,7 @@ from ..fallback import heavy_ball
 from ..linalg import flat_dot
 from ..schedule import rule_evaluation_due
 from .base import StepInputs, StepResult, norms
+from .loss_bound import loss_bound_scale
 from .trust import fisher_length_ratio, kl_trust_scale
 
 
@@ -83,19 +86,33 @@ class FixedStep:
             self.length_ratio = ratio
             self.checks += 1
 
+    def _kl_scales(self, inputs: StepInputs) -> dict:
+        """``nu`` of each param group from its KL bounds."""
+        scales = {}
+        for index, blocks in inputs.blocks_by_group.items():
+            group = inputs.groups[index]
+            dot = sum(inputs.dots[b][0] for b in blocks)
+            nu = kl_trust_scale(dot, group["lr"], group["max_step_kl"])
+            if self.checks:  # the ceiling on the KL in the exact Fisher, through the latest measured ratio
+                nu = min(nu, kl_trust_scale(dot * self.length_ratio, group["lr"], group["max_exact_step_kl"]))
+            scales[index] = nu
+        return scales
+
     def updates(self, inputs: StepInputs) -> StepResult:
         if inputs.evaluator is not None and self.wants_batch(inputs.step_index):
             self._check(inputs)
-        updates, update_scale, scales, scale_of, states = {}, {}, {}, {}, {}
+        scales = self._kl_scales(inputs)
+        # The loss bound acts on the whole step: its first-order predicted decrease, over every group.
+        decrease = sum(inputs.groups[i]["lr"] * scales[i] * inputs.dots[b][0]
+                       for i, blocks in inputs.blocks_by_group.items() for b in blocks)
+        bound = loss_bound_scale(decrease, inputs.loss_gap)
+        updates, update_scale, scale_of, states = {}, {}, {}, {}
         kl = predicted = 0.0
         for index, blocks in inputs.blocks_by_group.items():
             group = inputs.groups[index]
             lr, momentum = group["lr"], group["momentum"]
             dot = sum(inputs.dots[b][0] for b in blocks)
-            nu = kl_trust_scale(dot, lr, group["max_step_kl"])
-            if self.checks:  # the ceiling on the KL in the exact Fisher, through the latest measured ratio
-                nu = min(nu, kl_trust_scale(dot * self.length_ratio, lr, group["max_exact_step_kl"]))
-            scales[index] = nu
+            nu = scales[index] * bound
             step = lr * nu
             kl += 0.5 * step * step * dot * self.length_ratio
             for block in blocks:
@@ -123,6 +140,7 @@ class FixedStep:
                     states[block]["momentum_buffer"] = d
         diagnostics = norms(inputs, scale_of)
         diagnostics.update(trust_scale=min(scales.values()) if scales else 1.0, trust_scale_by_group=scales,
+                           loss_bound_scale=None if inputs.loss_gap is None else bound,
                            kl_estimate=kl, predicted_change=predicted,
                            fisher_length_ratio=self.length_ratio if self.checks else None)
         return StepResult(updates, diagnostics, predicted_change=predicted, states=states, update_scale=update_scale)

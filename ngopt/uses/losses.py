@@ -12,7 +12,10 @@ until the user's ``backward()`` starts (or the next ``step()`` or forward).  It 
   so that a rule can evaluate the loss on the recorded batch at other weights;
 * ``root.backward()``: if ``root`` is a loss multiplied by a constant tensor (what
   ``torch.amp.GradScaler.scale`` does), that factor, which the optimizer needs when the
-  gradients were unscaled before ``step()``.
+  gradients were unscaled before ``step()``; and the root's value, the loss the step's gradient is
+  of (the loss bound, ``rules/loss_bound.py``).
+
+After a forward that records nothing, a lighter watch (:class:`BackwardWatch`) notes only that value.
 
 The watch is pushed only when no other torch function mode is active, so that it
 can never be popped by someone else's context manager; it then removes itself from
@@ -31,6 +34,7 @@ from ..likelihoods import LOSS_FUNCTIONS
 from .recorder import remove_mode, run_eagerly
 
 BACKWARD_FUNCTIONS = (torch.Tensor.backward, torch.autograd.backward, torch.autograd.grad)
+TRAINING_BACKWARDS = (torch.Tensor.backward, torch.autograd.backward)  # those that fill .grad
 
 try:  # the mode stack (torch >= 2.0)
     from torch._C import _get_function_stack_at, _len_torch_function_stack
@@ -111,6 +115,12 @@ def _filled(template, output: Any, values: Dict[int, Any]):
     if isinstance(template, tuple):
         return tuple(_filled(t, output, values) for t in template)
     return template
+
+
+def _root(args, kwargs):
+    """The one tensor a backward call starts from (None for several)."""
+    roots = args[0] if args else kwargs.get("tensors", kwargs.get("outputs"))
+    return roots[0] if isinstance(roots, (list, tuple)) and len(roots) == 1 else roots
 
 
 class LossWatch(TorchFunctionMode):
@@ -223,8 +233,9 @@ class LossWatch(TorchFunctionMode):
             return func(*args, **kwargs)
         if func in BACKWARD_FUNCTIONS:
             self.closed = True  # the loss is complete; the step removes the watch
-            roots = args[0] if args else kwargs.get("tensors", kwargs.get("outputs"))
-            root = roots[0] if isinstance(roots, (list, tuple)) and len(roots) == 1 else roots
+            root = _root(args, kwargs)
+            if func in TRAINING_BACKWARDS:
+                capture.note_root(root)
             entry = self._multipliers.get(id(root)) if isinstance(root, torch.Tensor) else None
             if entry is not None and entry[0] is root:
                 record.root_scale = entry[1]
@@ -246,3 +257,24 @@ class LossWatch(TorchFunctionMode):
             if isinstance(factor, torch.Tensor) and not factor.requires_grad and factor.numel() == 1:
                 self._multipliers[id(result)] = (result, float(factor))
                 return
+
+
+class BackwardWatch(LossWatch):
+    """The watch after a forward that records nothing: it only hands the capture the tensor that
+    ``backward()`` starts from (the loss the step's gradient is of), and passes every other call through."""
+
+    def __init__(self, capture):
+        TorchFunctionMode.__init__(self)
+        self._capture = weakref.ref(capture)
+        self._record = lambda: None
+        self.closed = False
+
+    @run_eagerly
+    def __torch_function__(self, func, types, args=(), kwargs=None):
+        kwargs = kwargs or {}
+        if not self.closed and func in BACKWARD_FUNCTIONS:
+            self.closed = True
+            capture = self.capture
+            if capture is not None and func in TRAINING_BACKWARDS:
+                capture.note_root(_root(args, kwargs))
+        return func(*args, **kwargs)
