@@ -316,7 +316,9 @@ class CaptureHooks:
             self._roots.append(root.detach().reshape(()))
 
     def take_roots(self) -> List[torch.Tensor]:
-        """The loss values of this step's backward passes, handed over once."""
+        """The loss values of this step's backward passes, handed over once; the watch is taken off the
+        mode stack first, so that the step's own operations do not pass through it."""
+        self.close_watch()
         roots, self._roots = self._roots, []
         return roots
 

@@ -67,8 +67,9 @@ class LossTrend:
                 f"values against {start:.4g} over the first {OPENING}")
         if self.after_fitting():
             return (text + f", after it had come down to {self.lowest:.3g}. Near-certain predictions have a "
-                    "vanishing Fisher, so the KL bound allows long steps while damping adapts downwards; decay lr "
-                    "to 0 over the run (torch.optim.lr_scheduler.CosineAnnealingLR with T_max the number of "
-                    "steps) or stop training once the data are fitted. README, Cautions.")
+                    "vanishing Fisher, so the KL bound allows long steps while damping adapts downwards; keep the "
+                    "loss bound on (loss_floor, the loss's minimum), decay lr to 0 over the run "
+                    "(torch.optim.lr_scheduler.CosineAnnealingLR with T_max the number of steps) or stop training "
+                    "once the data are fitted. README, Cautions.")
         return (text + ". On small or noisy batches the KL bound (taken in the blocks' model) can let every step "
                 "fit its own batch; try a smaller max_step_kl (a tenth of it, say). README, Cautions.")

@@ -376,6 +376,7 @@ class FisherDescent(torch.optim.Optimizer):
         if closure is not None:
             with torch.enable_grad():
                 loss = closure()
+        roots = self._capture.take_roots()  # the losses this step's gradient is of; closes the loss watch
         started = time.perf_counter()
         scale = self._loss_scale()
         if scale is None:  # the scaler found Inf/NaN gradients: it skips this step and lowers its scale
@@ -395,7 +396,7 @@ class FisherDescent(torch.optim.Optimizer):
         relative = scale / (self._capture.loss_scale_seen() or 1.0)
         # Before the rescaling below, which covers one record only.
         loss_climbed = self._loss_climbed(loss, relative)
-        loss_gap = self._loss_gap(loss, scale)
+        loss_gap = self._loss_gap(roots, loss, scale)
         batch = self._capture.latest_batch()
         if batch is not None and relative != 1.0:
             for call in batch.losses:
@@ -429,15 +430,16 @@ class FisherDescent(torch.optim.Optimizer):
             value = None if recorded is None else recorded / relative
         return self._loss_trend.add(value) and self._loss_trend.rising()
 
-    def _loss_gap(self, loss, scale: float) -> Optional[float]:
+    def _loss_gap(self, roots: list, loss, scale: float) -> Optional[float]:
         """The step's loss minus ``loss_floor`` (the mean over ranks), or None: no floor, or the loss was
-        not seen on this step (on every rank).  The loss is the sum of the values this step's backward
-        passes started from, at its true scale (a loss scaler's factor taken out), else the closure's."""
-        roots = self._capture.take_roots()
+        not seen on this step (on every rank).  The loss is the sum of ``roots``, the values this step's
+        backward passes started from, at its true scale (a loss scaler's factor taken out), else the
+        closure's."""
         if self.loss_floor is None:
             return None
         if roots:
-            value = float(torch.stack([r.to(torch.float64) for r in roots]).sum()) / scale
+            total = roots[0] if len(roots) == 1 else torch.stack([r.to(torch.float64) for r in roots]).sum()
+            value = float(total) / scale
         else:
             value = None if loss is None else float(loss.detach() if isinstance(loss, torch.Tensor) else loss)
         gap = None if value is None or not math.isfinite(value) else value - self.loss_floor
