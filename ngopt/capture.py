@@ -188,6 +188,7 @@ class CaptureHooks:
         self.want_statistics = True
         self.want_uses = True
         self.want_batch = False
+        self.want_loss_value = True   # the value each backward starts from (the loss bound's input)
         self.armed = True             # False inside no_capture()
         # Time spent inside the user's passes; statistics_in_backward: captures folded during the pass.
         self.seconds = {key: 0.0 for key in PASS_TIME}
@@ -264,8 +265,9 @@ class CaptureHooks:
         return None
 
     def _model_post_hook(self, model, args, output):
-        if model is self._model and self._current is None and self.armed and model.training \
-                and torch.is_grad_enabled() and not inside_function_transform() and LossWatch.can_push():
+        if self.want_loss_value and model is self._model and self._current is None and self.armed \
+                and model.training and torch.is_grad_enabled() and not inside_function_transform() \
+                and LossWatch.can_push():
             self._watch = BackwardWatch(self)  # a forward that records nothing: its loss value only
             self._watch.push()
             return None

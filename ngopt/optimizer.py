@@ -240,6 +240,7 @@ class FisherDescent(torch.optim.Optimizer):
 
         source = None if fisher == "empirical" else FisherSource(fisher, fisher_samples, self._generator_for)
         self._capture = CaptureHooks(self.model, self._trainable(), source, loss_fn, on_forward=self._on_forward)
+        self._capture.want_loss_value = loss_floor is not None  # only the loss bound reads it
         self._plan_capture()
         if isinstance(model, nn.parallel.DistributedDataParallel) and self.attach_data_parallel is not None:
             # Share statistics and inversions over DDP's own group, so that the user's loop needs
@@ -424,7 +425,7 @@ class FisherDescent(torch.optim.Optimizer):
         if "loss_rising" in self._warned:
             return False
         if loss is not None:
-            value = float(loss.detach() if isinstance(loss, torch.Tensor) else loss)
+            value = _as_float(loss)
         else:
             recorded = self._capture.recorded_loss()
             value = None if recorded is None else recorded / relative
@@ -441,7 +442,7 @@ class FisherDescent(torch.optim.Optimizer):
             total = roots[0] if len(roots) == 1 else torch.stack([r.to(torch.float64) for r in roots]).sum()
             value = float(total) / scale
         else:
-            value = None if loss is None else float(loss.detach() if isinstance(loss, torch.Tensor) else loss)
+            value = None if loss is None else _as_float(loss)
         gap = None if value is None or not math.isfinite(value) else value - self.loss_floor
         if gap is not None and gap < 0:
             self._warn_once("loss_floor", f"the training loss ({value:.4g}) is below loss_floor={self.loss_floor:g}: "
@@ -738,6 +739,11 @@ class FisherDescent(torch.optim.Optimizer):
         """
         if self._capture.source is not None:
             self._capture.source.generator_for = self._generator_for if generator_for is None else generator_for
+
+
+def _as_float(loss) -> float:
+    """A closure's loss (a tensor or a number) as a Python float."""
+    return float(loss.detach() if isinstance(loss, torch.Tensor) else loss)
 
 
 def _refuse_sparse_embeddings(model: nn.Module) -> None:

@@ -86,12 +86,11 @@ class FixedStep:
             self.length_ratio = ratio
             self.checks += 1
 
-    def _kl_scales(self, inputs: StepInputs) -> dict:
-        """``nu`` of each param group from its KL bounds."""
+    def _kl_scales(self, inputs: StepInputs, group_dots: dict) -> dict:
+        """``nu`` of each param group from its KL bounds, given its ``p^T g``."""
         scales = {}
-        for index, blocks in inputs.blocks_by_group.items():
+        for index, dot in group_dots.items():
             group = inputs.groups[index]
-            dot = sum(inputs.dots[b][0] for b in blocks)
             nu = kl_trust_scale(dot, group["lr"], group["max_step_kl"])
             if self.checks:  # the ceiling on the KL in the exact Fisher, through the latest measured ratio
                 nu = min(nu, kl_trust_scale(dot * self.length_ratio, group["lr"], group["max_exact_step_kl"]))
@@ -101,17 +100,17 @@ class FixedStep:
     def updates(self, inputs: StepInputs) -> StepResult:
         if inputs.evaluator is not None and self.wants_batch(inputs.step_index):
             self._check(inputs)
-        scales = self._kl_scales(inputs)
+        group_dots = {i: sum(inputs.dots[b][0] for b in blocks) for i, blocks in inputs.blocks_by_group.items()}
+        scales = self._kl_scales(inputs, group_dots)
         # The loss bound acts on the whole step: its first-order predicted decrease, over every group.
-        decrease = sum(inputs.groups[i]["lr"] * scales[i] * inputs.dots[b][0]
-                       for i, blocks in inputs.blocks_by_group.items() for b in blocks)
+        decrease = sum(inputs.groups[i]["lr"] * scales[i] * dot for i, dot in group_dots.items())
         bound = loss_bound_scale(decrease, inputs.loss_gap)
         updates, update_scale, scale_of, states = {}, {}, {}, {}
         kl = predicted = 0.0
         for index, blocks in inputs.blocks_by_group.items():
             group = inputs.groups[index]
             lr, momentum = group["lr"], group["momentum"]
-            dot = sum(inputs.dots[b][0] for b in blocks)
+            dot = group_dots[index]
             nu = scales[index] * bound
             step = lr * nu
             kl += 0.5 * step * step * dot * self.length_ratio

@@ -261,7 +261,10 @@ class LossWatch(TorchFunctionMode):
 
 class BackwardWatch(LossWatch):
     """The watch after a forward that records nothing: it only hands the capture the tensor that
-    ``backward()`` starts from (the loss the step's gradient is of), and passes every other call through."""
+    ``backward()`` starts from (the loss the step's gradient is of), and passes every other call through.
+
+    A ``LossWatch`` so that the mode-stack rules (:meth:`LossWatch.can_push`, :func:`sweep_closed_watches`)
+    treat both alike; it keeps no record."""
 
     def __init__(self, capture):
         TorchFunctionMode.__init__(self)
