@@ -47,16 +47,18 @@ class Whole:
         factor.addmm_(rows.T, rows, alpha=alpha)
 
     def trace(self, factor: torch.Tensor) -> torch.Tensor:
-        return factor.diagonal(dim1=-2, dim2=-1).sum()
+        """The trace, summed in float64 (a 0-d float64 tensor)."""
+        return factor.diagonal(dim1=-2, dim2=-1).sum(dtype=torch.float64)
 
-    def inverse(self, factor64: torch.Tensor, shift: float, want_spectrum: bool,
-                precision: torch.dtype = torch.float64):
+    def inverse(self, factor: torch.Tensor, shift: float, want_spectrum: bool,
+                precision: Optional[torch.dtype] = None):
         """``(inverse of factor + shift I, ascending undamped eigenvalues or None, used the eigen fallback)``.
 
-        ``precision``: the statistics' own dtype (single precision may be inverted in float32, see
-        :mod:`ngopt.linalg`); the inverse comes back in float64.
+        ``factor`` is on the CPU; ``precision``: the statistics' own dtype (by default the factor's; single
+        precision may be inverted in float32, see :mod:`ngopt.linalg`); the inverse comes back in float32
+        where it was computed in float32, else in float64.
         """
-        result = damped_inverse(factor64, shift, want_spectrum, precision)
+        result = damped_inverse(factor, shift, want_spectrum, precision)
         return result.inverse, result.eigenvalues, result.used_fallback
 
     def eigenvalues(self, factor64: torch.Tensor) -> torch.Tensor:
@@ -125,8 +127,9 @@ class BlockDiagonal(Whole):
             mask[self.dim:] = 1.0
         return torch.diag_embed(mask.reshape(self.count, self.block))
 
-    def inverse(self, factor64, shift, want_spectrum, precision=torch.float64):
-        sym = 0.5 * (factor64 + factor64.transpose(1, 2))
+    def inverse(self, factor, shift, want_spectrum, precision=None):
+        precision = factor.dtype if precision is None else precision
+        sym = 0.5 * (factor + factor.transpose(1, 2))
         padded = sym + self._pad_mask(sym)
         dtype = inversion_dtype(largest_eigenvalue_bound(sym), shift, precision)  # the worst block decides
         damped = (padded + shift * torch.eye(self.block, dtype=sym.dtype)).to(dtype)
@@ -134,14 +137,15 @@ class BlockDiagonal(Whole):
         # S^-1 = L^-T L^-1: batched triangular solves run far faster than a batch of cholesky_inverse.
         eye = torch.eye(self.block, dtype=dtype).expand_as(damped)
         lower_inverse = torch.linalg.solve_triangular(chol, eye, upper=False)
-        inverse = (lower_inverse.transpose(1, 2) @ lower_inverse).to(torch.float64)
+        inverse = lower_inverse.transpose(1, 2) @ lower_inverse
         failed = info.nonzero().squeeze(1)
         if failed.numel():
             # Numerically indefinite blocks only: their nearest positive semi-definite matrix, damped.
-            eigenvalues, vectors = torch.linalg.eigh(padded[failed])
+            inverse = inverse.to(torch.float64)
+            eigenvalues, vectors = torch.linalg.eigh(padded[failed].to(torch.float64))
             clipped = eigenvalues.clamp(min=0.0) + shift
             inverse[failed] = (vectors / clipped.unsqueeze(1)) @ vectors.transpose(1, 2)
-        return inverse, self.eigenvalues(sym) if want_spectrum else None, bool(failed.numel())
+        return inverse, self.eigenvalues(sym.to(torch.float64)) if want_spectrum else None, bool(failed.numel())
 
     def eigenvalues(self, factor64):
         """Ascending eigenvalues of the block-diagonal factor itself (the padding left out)."""

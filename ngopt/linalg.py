@@ -14,8 +14,9 @@ smaller of its trace and its largest absolute row sum (both bound its largest ei
 float32 Cholesky inverse is accurate to about ``cond * 6e-8`` relative, so up to
 :data:`SINGLE_PRECISION_CONDITION` the inverse is within about 1e-4 of the float64 one, far below the
 change the damping itself makes.  Float32 Cholesky and inverse ran 1.24x (d = 257) to 1.36x
-(d = 513) faster than float64 on a 2-core CPU (``python scripts/inversion_precision.py``).  Float64
-statistics are always inverted in float64.
+(d = 513) faster than float64 on a 2-core CPU (``python scripts/inversion_precision.py``), and a
+float32 factor on that path is never copied to float64 at all (the copies there and back cost as much
+as the factorization below d = 100).  Float64 statistics are always inverted in float64.
 """
 from __future__ import annotations
 
@@ -61,37 +62,46 @@ class DampedInverse:
 
 def largest_eigenvalue_bound(sym: torch.Tensor) -> float:
     """An upper bound on the largest eigenvalue of each positive semi-definite matrix in ``sym`` (max over a
-    batch): the smaller of its trace and its largest absolute row sum (Gershgorin)."""
-    trace = sym.diagonal(dim1=-2, dim2=-1).sum(-1)
-    rows = sym.abs().sum(-1).amax(-1)
+    batch): the smaller of its trace and its largest absolute row sum (Gershgorin), summed in float64."""
+    trace = sym.diagonal(dim1=-2, dim2=-1).sum(-1, dtype=torch.float64)
+    rows = sym.abs().sum(-1, dtype=torch.float64).amax(-1)
     return float(torch.minimum(trace, rows).max())
 
 
 def damped_inverse(matrix: torch.Tensor, shift: float, want_spectrum: bool = False,
-                   precision: torch.dtype = torch.float64) -> DampedInverse:
-    """Invert ``matrix + shift I`` for a symmetric positive semi-definite ``matrix`` (float64).
+                   precision: Optional[torch.dtype] = None) -> DampedInverse:
+    """Invert ``matrix + shift I`` for a symmetric positive semi-definite ``matrix`` on the CPU.
 
     Cholesky is the fast path.  When the damped matrix is numerically indefinite
-    (Cholesky fails) or the spectrum is wanted, an eigendecomposition is used
+    (Cholesky fails) or the spectrum is wanted, an eigendecomposition in float64 is used
     instead; negative eigenvalues from round-off are clipped to zero before the
     shift, which is the nearest positive semi-definite matrix in Frobenius norm
     (Higham 1988).  A statistic that is symmetric only up to rounding is replaced
     by its symmetric part first (both factorizations would read one triangle only).
-    ``precision`` is the statistics' own dtype: the Cholesky path runs in float32 where
-    :func:`inversion_dtype` allows; the inverse is returned in float64 either way.
+    ``precision`` is the statistics' own dtype (by default ``matrix``'s): the Cholesky path runs in
+    float32 where :func:`inversion_dtype` allows, on single-precision statistics without any float64
+    copy, and the inverse comes back in the precision it was computed in (float32 there, else float64).
     """
-    sym = torch.add(matrix, matrix.T).mul_(0.5)
+    precision = matrix.dtype if precision is None else precision
     if not want_spectrum:
+        sym = torch.add(matrix, matrix.T).mul_(0.5)
         dtype = inversion_dtype(largest_eigenvalue_bound(sym), shift, precision)
-        damped = sym.to(dtype, copy=True)
+        damped = sym if sym.dtype == dtype else sym.to(dtype)  # sym is this call's own tensor
         damped.diagonal().add_(shift)  # in place: no identity matrix is built
         chol, info = torch.linalg.cholesky_ex(damped)
         if int(info) == 0:
-            return DampedInverse(torch.cholesky_inverse(chol).to(torch.float64), None, False)
+            return DampedInverse(torch.cholesky_inverse(chol), None, False)
+    sym = matrix.to(torch.float64)
+    sym = torch.add(sym, sym.T).mul_(0.5)
     eigenvalues, vectors = torch.linalg.eigh(sym)
     clipped = eigenvalues.clamp(min=0.0) + shift
     inverse = (vectors / clipped) @ vectors.T
     return DampedInverse(inverse, eigenvalues if want_spectrum else None, not want_spectrum)
+
+
+def to_cpu(tensor: torch.Tensor) -> torch.Tensor:
+    """The tensor on the CPU in its own dtype (no copy when it is there already)."""
+    return tensor.detach().to(device="cpu")
 
 
 def to_cpu64(tensor: torch.Tensor) -> torch.Tensor:

@@ -86,9 +86,51 @@ def test_single_precision_statistics_are_inverted_in_float32_when_the_damping_ke
     assert inversion_dtype(np.trace(matrix), shift, torch.float32) == torch.float32
     result = damped_inverse(torch.from_numpy(matrix), shift, precision=torch.float32)
     expected = np.linalg.inv(matrix + shift * np.eye(n))
-    assert result.inverse.dtype == torch.float64
+    assert result.inverse.dtype == torch.float32  # returned in the precision it was computed in
     error = np.linalg.norm(result.inverse.numpy() - expected) / np.linalg.norm(expected)
     assert 1e-12 < error < 1e-4  # float32 rounding shows: the fast path ran
+
+
+@pytest.mark.parametrize("n", [9, 65, 257])
+def test_a_float32_factor_is_inverted_without_a_float64_copy_to_the_same_accuracy(n):
+    # The float32 factor itself (no precision argument), against numpy's float64 inverse of the same
+    # float32 numbers: the bound of the test above, 1e-4 relative at cond <= 1e3 (here cond <= 11).
+    matrix = _spd(n, seed=n).astype(np.float32)
+    shift = 0.1 * float(np.trace(matrix.astype(np.float64)))
+    result = damped_inverse(torch.from_numpy(matrix), shift)
+    expected = np.linalg.inv(matrix.astype(np.float64) + shift * np.eye(n))
+    assert result.inverse.dtype == torch.float32 and not result.used_fallback
+    error = np.linalg.norm(result.inverse.numpy() - expected) / np.linalg.norm(expected)
+    assert error < 1e-4
+    via_float64 = damped_inverse(torch.from_numpy(matrix.astype(np.float64)), shift, precision=torch.float32)
+    np.testing.assert_allclose(result.inverse.numpy(), via_float64.inverse.numpy(), rtol=1e-5, atol=1e-7)
+
+
+def test_an_ill_conditioned_float32_factor_is_inverted_in_float64():
+    # At the bottom of the damping range the float32 bound fails (cond up to 1e6): the float32 numbers
+    # are inverted in float64, to float64 accuracy (numpy.linalg.inv of the same numbers).
+    matrix = _spd(40, seed=7).astype(np.float32)
+    shift = 1e-6 * float(np.trace(matrix.astype(np.float64)))
+    result = damped_inverse(torch.from_numpy(matrix), shift)
+    expected = np.linalg.inv(matrix.astype(np.float64) + shift * np.eye(40))
+    assert result.inverse.dtype == torch.float64
+    np.testing.assert_allclose(result.inverse.numpy(), expected, rtol=1e-6, atol=1e-6 * np.abs(expected).max())
+
+
+def test_an_indefinite_float32_factor_takes_the_float64_eigen_fallback():
+    # Round-off negative eigenvalues, shift far below them: Cholesky fails in float32; the fallback
+    # clips the negative eigenvalues (Higham 1988) in float64, as for float64 input.
+    rng = np.random.default_rng(3)
+    vectors, _ = np.linalg.qr(rng.standard_normal((12, 12)))
+    values = np.linspace(-1e-3, 1.0, 12)
+    matrix = ((vectors * values) @ vectors.T).astype(np.float32)
+    shift = 1e-9
+    result = damped_inverse(torch.from_numpy(matrix), shift)
+    assert result.used_fallback and result.inverse.dtype == torch.float64
+    sym = 0.5 * (matrix.astype(np.float64) + matrix.astype(np.float64).T)
+    w, v = np.linalg.eigh(sym)
+    expected = (v / (np.clip(w, 0.0, None) + shift)) @ v.T
+    np.testing.assert_allclose(result.inverse.numpy(), expected, rtol=1e-8, atol=1e-8 * np.abs(expected).max())
 
 
 def test_a_badly_conditioned_single_precision_factor_is_inverted_in_float64():

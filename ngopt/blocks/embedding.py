@@ -29,7 +29,7 @@ from __future__ import annotations
 
 import torch
 
-from ..linalg import damped_inverse, factored_damping, to_cpu64
+from ..linalg import damped_inverse, factored_damping, to_cpu, to_cpu64
 from ..spectra import diagonal_summary, kronecker_summary
 from .base import LayerCurvature
 from .diagonal import DiagonalBlock
@@ -131,17 +131,17 @@ class EmbeddingKroneckerBlock(LayerCurvature):
         return {"factor_in": counts / rows, "factor_out": factor_out / num_forwards}
 
     def _shifts(self, factor_in, factor_out, damping):
-        return factored_damping(float(factor_in.sum()), factor_in.shape[0], float(factor_out.trace()),
-                                factor_out.shape[0], damping)
+        return factored_damping(float(factor_in.sum()), factor_in.shape[0],
+                                float(factor_out.diagonal().sum(dtype=torch.float64)), factor_out.shape[0], damping)
 
     def prepare_inverse(self, statistics, damping, want_spectrum):
         factor_in = to_cpu64(statistics["factor_in"]).clamp(min=0.0)
-        factor_out = to_cpu64(statistics["factor_out"])
+        factor_out = to_cpu(statistics["factor_out"])  # its own precision: see ngopt/linalg.py
         shift_in, shift_out = self._shifts(factor_in, factor_out, damping)
-        inv_out = damped_inverse(factor_out, shift_out, want_spectrum, statistics["factor_out"].dtype)
+        inv_out = damped_inverse(factor_out, shift_out, want_spectrum)
         ref = self.layer.weight
         info = {
-            "in_trace": float(factor_in.sum()), "out_trace": float(factor_out.trace()),
+            "in_trace": float(factor_in.sum()), "out_trace": float(factor_out.diagonal().sum(dtype=torch.float64)),
             "in_damping": shift_in, "out_damping": shift_out,
             "in_eigenvalues": factor_in.sort().values if want_spectrum else None,
             "out_eigenvalues": inv_out.eigenvalues, "used_eig_fallback": inv_out.used_fallback,

@@ -16,7 +16,7 @@ from __future__ import annotations
 import torch
 
 from ..factors import Whole, factor_form
-from ..linalg import factored_damping, to_cpu64
+from ..linalg import factored_damping, to_cpu
 from ..spectra import kronecker_summary
 from .base import LayerCurvature
 from .rows import example_chunks, mean_over_positions
@@ -100,13 +100,12 @@ class KroneckerBlock(LayerCurvature):
         return {"factor_in": factor_in / rows, "factor_out": factor_out / num_forwards}
 
     def prepare_inverse(self, statistics, damping, want_spectrum):
-        factor_in = to_cpu64(statistics["factor_in"])
-        factor_out = to_cpu64(statistics["factor_out"])
+        # In the statistics' own precision: a float32 factor that float32 inverts safely is never copied to float64.
+        factor_in, factor_out = to_cpu(statistics["factor_in"]), to_cpu(statistics["factor_out"])
         trace_in, trace_out = float(self.form_in.trace(factor_in)), float(self.form_out.trace(factor_out))
         shift_in, shift_out = factored_damping(trace_in, self.form_in.dim, trace_out, self.form_out.dim, damping)
-        precision_in, precision_out = statistics["factor_in"].dtype, statistics["factor_out"].dtype
-        inv_in, eig_in, fallback_in = self.form_in.inverse(factor_in, shift_in, want_spectrum, precision_in)
-        inv_out, eig_out, fallback_out = self.form_out.inverse(factor_out, shift_out, want_spectrum, precision_out)
+        inv_in, eig_in, fallback_in = self.form_in.inverse(factor_in, shift_in, want_spectrum)
+        inv_out, eig_out, fallback_out = self.form_out.inverse(factor_out, shift_out, want_spectrum)
         ref = self.layer.weight
         info = {
             "in_trace": trace_in, "out_trace": trace_out,
