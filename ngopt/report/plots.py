@@ -8,8 +8,12 @@ from pathlib import Path
 import numpy as np
 
 from ..diagnostic_keys import STEP_TIME, STEP_TOTAL
+from ..rules.damping import LevenbergMarquardt
 from .series import (CONDITION_WARNING, OUTSIDE_STEP_LABELS, PROBE_ANGLE_WARNING_DEG, STEP_RULE_KEYS, _get, _has_data, _number, layer_names, series)
 
+# The band of rho in which the Levenberg-Marquardt rule keeps lambda.
+_KEPT = (LevenbergMarquardt.RAISE_BELOW, LevenbergMarquardt.LOWER_ABOVE)
+_KEPT_LABEL = rf"${_KEPT[0]:g} \leq \rho \leq {_KEPT[1]:g}$"
 
 
 def _pyplot():
@@ -253,7 +257,7 @@ def plot_loss(records: list, path: Path):
     top.set_title("loss")
     if _has_data(ratio):
         bottom.plot(steps, ratio, marker=".", color="tab:orange", label=r"reduction ratio $\rho$")
-        bottom.axhspan(0.25, 0.75, color="tab:green", alpha=0.15, label=r"$1/4 \leq \rho \leq 3/4$: damping kept")
+        bottom.axhspan(*_KEPT, color="tab:green", alpha=0.15, label=_KEPT_LABEL + ": damping kept")
         bottom.axhline(1.0, color="black", linestyle=":", linewidth=1, label=r"model exact ($\rho = 1$)")
         bottom.legend(fontsize=8)
     else:
@@ -347,7 +351,7 @@ def _step_rule_multipliers(ax, steps, alpha, mu):
 
 
 def _step_rule_ratio(ax, steps, rho):
-    ax.axhspan(0.25, 0.75, color=STEP_RULE_COLOURS["rho"], alpha=0.12, label=r"$1/4 \leq \rho \leq 3/4$")
+    ax.axhspan(*_KEPT, color=STEP_RULE_COLOURS["rho"], alpha=0.12, label=_KEPT_LABEL)
     measured = np.isfinite(rho)  # rho exists only on the steps where the loss change was measured
     ax.plot(steps[measured], rho[measured], color=STEP_RULE_COLOURS["rho"], marker="D", markersize=3,
             linestyle="-", label=r"$\rho$ = actual / predicted")

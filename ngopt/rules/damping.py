@@ -38,11 +38,21 @@ class FixedDamping:
 
 class LevenbergMarquardt(FixedDamping):
     """Martens & Grosse 2015, sec. 6.5: every ``interval`` steps, from the reduction ratio rho,
-    shrink lambda by ``omega = (19/20)^interval`` when ``rho > 3/4`` and grow it by ``1/omega``
-    when ``rho < 1/4``; lambda stays within ``damping_range``.
+    shrink lambda by ``omega = (19/20)^interval`` when ``rho > LOWER_ABOVE`` and grow it by
+    ``1/omega`` when ``rho < RAISE_BELOW``; lambda stays within ``damping_range``.
+
+    The band is narrower than the classic ``(1/4, 3/4)``.  Under the fixed rule's KL bound, which sets
+    the step's length on most steps, lambda only shapes the direction, and rho stayed near 0.7 on a
+    small transformer language model over a whole run, where the classic band left lambda at its
+    start and smaller lambda took 10-13% fewer steps to the target; a lower bar of 0.4 raises lambda
+    again where a smaller one makes the quadratic model worse (a deep regression at batch 32: rho
+    0.59 at lambda = 1e-2, 0.35 at 1e-3, and twice the steps).  Measured on the benchmark's tasks
+    (README *Results*).
     """
 
     name = "lm"
+    RAISE_BELOW = 0.4
+    LOWER_ABOVE = 0.65
 
     def __init__(self, interval: int = 5, damping_range: Tuple[float, float] = (1e-6, 1e2)):
         super().__init__(interval, damping_range)
@@ -55,9 +65,9 @@ class LevenbergMarquardt(FixedDamping):
         if rho is None:
             return damping
         omega = (19.0 / 20.0) ** self.interval
-        if rho > 0.75:
+        if rho > self.LOWER_ABOVE:
             damping *= omega
-        elif rho < 0.25:
+        elif rho < self.RAISE_BELOW:
             damping /= omega
         low, high = self.damping_range
         return min(max(damping, low), high)
