@@ -44,10 +44,10 @@ class LevenbergMarquardt(FixedDamping):
     The band is narrower than the classic ``(1/4, 3/4)``.  Under the fixed rule's KL bound, which sets
     the step's length on most steps, lambda only shapes the direction, and rho stayed near 0.7 on a
     small transformer language model over a whole run, where the classic band left lambda at its
-    start and smaller lambda took 10-13% fewer steps to the target; a lower bar of 0.4 raises lambda
-    again where a smaller one makes the quadratic model worse (a deep regression at batch 32: rho
-    0.59 at lambda = 1e-2, 0.35 at 1e-3, and twice the steps).  Measured on the benchmark's tasks
-    (README *Results*).
+    start, and the narrower band took 7-16% fewer steps to the target (6 seeds); a lower bar of 0.4
+    raises lambda again where a smaller one makes the quadratic model worse (a deep regression at
+    batch 32: rho 0.59 at lambda = 1e-2, 0.35 at 1e-3, and twice the steps).  Measured on the
+    benchmark's tasks (README *Results*).
     """
 
     name = "lm"
