@@ -19,7 +19,7 @@ from typing import Optional, Tuple
 
 import torch
 
-from .linalg import damped_inverse, inversion_dtype, largest_eigenvalue_bound
+from .linalg import damped_inverse, inversion_dtype, largest_eigenvalue_bound, single_or_double
 
 
 class Whole:
@@ -129,6 +129,7 @@ class BlockDiagonal(Whole):
 
     def inverse(self, factor, shift, want_spectrum, precision=None):
         precision = factor.dtype if precision is None else precision
+        factor = single_or_double(factor)
         sym = 0.5 * (factor + factor.transpose(1, 2))
         padded = sym + self._pad_mask(sym)
         dtype = inversion_dtype(largest_eigenvalue_bound(sym), shift, precision)  # the worst block decides

@@ -83,6 +83,7 @@ def damped_inverse(matrix: torch.Tensor, shift: float, want_spectrum: bool = Fal
     copy, and the inverse comes back in the precision it was computed in (float32 there, else float64).
     """
     precision = matrix.dtype if precision is None else precision
+    matrix = single_or_double(matrix)
     if not want_spectrum:
         sym = torch.add(matrix, matrix.T).mul_(0.5)
         dtype = inversion_dtype(largest_eigenvalue_bound(sym), shift, precision)
@@ -97,6 +98,11 @@ def damped_inverse(matrix: torch.Tensor, shift: float, want_spectrum: bool = Fal
     clipped = eigenvalues.clamp(min=0.0) + shift
     inverse = (vectors / clipped) @ vectors.T
     return DampedInverse(inverse, eigenvalues if want_spectrum else None, not want_spectrum)
+
+
+def single_or_double(matrix: torch.Tensor) -> torch.Tensor:
+    """A half-precision statistic in float32 (LAPACK has no half types, and its sums would round again)."""
+    return matrix if matrix.dtype in (torch.float32, torch.float64) else matrix.to(torch.float32)
 
 
 def to_cpu(tensor: torch.Tensor) -> torch.Tensor:

@@ -167,3 +167,17 @@ def test_flat_dot_is_the_sum_of_products_in_every_layout(layout):
     bound = 4 * math.sqrt(products.size) * float(torch.finfo(torch.float32).eps) * float(np.abs(products).sum())
     assert float(flat_dot(a, b)) == pytest.approx(expected, abs=bound)
     assert float(flat_dot(a.double(), b.double())) == pytest.approx(expected, rel=1e-12)
+
+
+@pytest.mark.parametrize("dtype", [torch.bfloat16, torch.float16])
+def test_a_half_precision_factor_is_inverted_in_float32(dtype):
+    # A model kept in half precision keeps its statistics in it; LAPACK has no half types, so the
+    # factor is inverted in float32, to float32 accuracy against numpy's float64 inverse of the same
+    # numbers (cond <= 11 here: the bound of the float32 test above).
+    matrix = torch.from_numpy(_spd(20, seed=11)).to(dtype)
+    values = matrix.double().numpy()
+    shift = 0.1 * float(np.trace(values))
+    result = damped_inverse(matrix, shift)
+    expected = np.linalg.inv(values + shift * np.eye(20))
+    assert result.inverse.dtype == torch.float32 and not result.used_fallback
+    assert np.linalg.norm(result.inverse.numpy() - expected) / np.linalg.norm(expected) < 1e-5
