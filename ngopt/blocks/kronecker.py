@@ -100,7 +100,8 @@ class KroneckerBlock(LayerCurvature):
         return {"factor_in": factor_in / rows, "factor_out": factor_out / num_forwards}
 
     def prepare_inverse(self, statistics, damping, want_spectrum):
-        # In the statistics' own precision: a float32 factor that float32 inverts safely is never copied to float64.
+        # In the statistics' own precision: a float32 factor that float32 inverts safely is never
+        # copied to float64 (ngopt/linalg.py).
         factor_in, factor_out = to_cpu(statistics["factor_in"]), to_cpu(statistics["factor_out"])
         trace_in, trace_out = float(self.form_in.trace(factor_in)), float(self.form_out.trace(factor_out))
         shift_in, shift_out = factored_damping(trace_in, self.form_in.dim, trace_out, self.form_out.dim, damping)
