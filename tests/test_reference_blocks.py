@@ -182,6 +182,33 @@ def test_kronecker_block_preconditions_like_numpy_solve_with_factored_damping():
         np.testing.assert_allclose(moved, -lr * expected, rtol=1e-9, atol=1e-12)
 
 
+
+@pytest.mark.parametrize("damping", [0.05, 1e-6])
+def test_single_precision_block_inverses_match_numpy_at_both_ends_of_the_damping_range(damping):
+    # A float32 network keeps float32 factors; each is inverted in float32 where the damping keeps it well
+    # conditioned, else in float64 (ngopt/linalg.py), and stored in float32.  A float32 Cholesky inverse
+    # is accurate to about cond * 6e-8 relative (Higham, Accuracy and Stability of Numerical Algorithms,
+    # ch. 14; 10x for the constant); a float64 one rounded to float32 to 6e-8.  So the error may grow
+    # with cond, but never beyond 1e-4 (cond <= 1e3 on the float32 path) nor 1e-6 on the float64 path.
+    # Measured: cond 2-5 at damping 0.05, up to 477 at 1e-6 (the bottom of the default damping range),
+    # errors 2e-8 to 1.7e-5.
+    model, inputs, targets, loss_fn = network_problem("mlp", "ce")
+    model, inputs = model.float(), inputs.float()
+    opt = recorded_optimizer(model, loss_fn, inputs, targets, damping=damping)
+    for name, index in (("0", 0), ("2", 2)):
+        state = opt.state[model[index].weight]
+        assert state["factor_in"].dtype == state["inverse_in"].dtype == torch.float32
+        factor_in, factor_out = state["factor_in"].double().numpy(), state["factor_out"].double().numpy()
+        pi = math.sqrt((np.trace(factor_in) / len(factor_in)) / (np.trace(factor_out) / len(factor_out)))
+        shifts = (pi * math.sqrt(damping), math.sqrt(damping) / pi)
+        for key, factor, shift in (("inverse_in", factor_in, shifts[0]), ("inverse_out", factor_out, shifts[1])):
+            damped = 0.5 * (factor + factor.T) + shift * np.eye(len(factor))
+            expected = np.linalg.inv(damped)
+            error = np.linalg.norm(state[key].double().numpy() - expected) / np.linalg.norm(expected)
+            condition = np.linalg.cond(damped)
+            tolerance = min(1e-4, max(1e-6, 10 * condition * 6e-8)) if condition <= 1e3 else 1e-6
+            assert error < tolerance, (name, key, error, condition)
+
 # ----------------------------------------------------------------------------- K-FAC vs exact Fisher
 # Relative Frobenius errors |A (x) G - F| / |F| measured with (the test prints them)
 #   python -m pytest tests/test_reference_blocks.py -k kronecker_block_against_exact -s
