@@ -247,9 +247,7 @@ class CaptureHooks:
     def _model_pre_hook(self, model, args, kwargs):
         self.close_watch()  # a new forward: the previous one's loss has been computed
         sweep_closed_watches()
-        # Identity checks: a deep copy of the model carries these hooks along and must record nothing.
-        if model is not self._model or not self.armed or not model.training or not torch.is_grad_enabled() \
-                or self._current is not None or inside_function_transform():
+        if self._current is not None or not self._training_forward(model):
             return None
         losses = self.want_statistics or self.want_batch
         if not (self.want_uses or losses):
@@ -264,9 +262,14 @@ class CaptureHooks:
         self._opened_by_hook = True
         return None
 
+    def _training_forward(self, model) -> bool:
+        """Whether this forward of ``model`` trains it with capture armed.  Identity check: a deep copy of the
+        model carries these hooks along and must record nothing."""
+        return model is self._model and self.armed and model.training and torch.is_grad_enabled() \
+            and not inside_function_transform()
+
     def _model_post_hook(self, model, args, output):
-        if self.want_loss_value and model is self._model and self._current is None and self.armed \
-                and model.training and torch.is_grad_enabled() and not inside_function_transform() \
+        if self.want_loss_value and self._current is None and self._training_forward(model) \
                 and LossWatch.can_push():
             self._watch = BackwardWatch(self)  # a forward that records nothing: its loss value only
             self._watch.push()
