@@ -76,6 +76,7 @@ def compare(summaries: dict[str, dict], steps: int, width: Optional[int], batch:
     method = summaries.get(HEADLINE)
     if method is None:
         return result
+    result["curvature_free_time"] = curvature_free_ratio(method, summaries.get(result["best_baseline"]))
     for name in BASELINES:
         base = summaries.get(name)
         if base is None:
@@ -89,6 +90,19 @@ def compare(summaries: dict[str, dict], steps: int, width: Optional[int], batch:
         )
         result["step_time"][name] = method["step_seconds_median"] / base["step_seconds_median"]
     return result
+
+
+def curvature_free_ratio(method: dict, best: Optional[dict]) -> Optional[dict]:
+    """fisher-descent's time to target with its curvature work free, over the best baseline's time.
+
+    A lower bound on what cheaper statistics, extra backward passes and inversions can achieve at the
+    steps it took: above 1, only fewer steps or a cheaper rest of the step would put it ahead.  None
+    where fisher-descent did not reach the target or kept no timers.
+    """
+    free = method.get("curvature_free_seconds_to_target")
+    if free is None or best is None:
+        return None
+    return bounded_ratio(free, method["train_seconds"], best["seconds_to_target"], best["train_seconds"])
 
 
 def describe_ratio(entry: Optional[dict]) -> str:

@@ -119,6 +119,13 @@ def median_present(values: list[Optional[float]]) -> Optional[float]:
     return statistics.median(present) if present else None
 
 
+def curvature_free_seconds(run: RunResult) -> Optional[float]:
+    """The run's seconds to target less what its curvature work took of them (None: no target, no timers)."""
+    if run.seconds_to_target is None or run.curvature_seconds_to_target is None:
+        return None
+    return run.seconds_to_target - run.curvature_seconds_to_target
+
+
 def per_step_split(runs: list[RunResult]) -> Optional[dict]:
     """Median over runs of each time-split part divided by that run's step count."""
     splits = [(run.time_split, run.steps_run) for run in runs if run.time_split and run.steps_run]
@@ -142,6 +149,8 @@ def summarize(outcome: OptimizerOutcome) -> dict:
         "runs": len(runs),
         "steps_to_target": median_missing_last([run.steps_to_target for run in runs]),
         "seconds_to_target": median_missing_last([run.seconds_to_target for run in runs]),
+        # With the optimizer's curvature work free (training.CURVATURE_PARTS); None for the baselines.
+        "curvature_free_seconds_to_target": median_missing_last([curvature_free_seconds(run) for run in runs]),
         "target_resolution_max": max((run.target_resolution for run in runs
                                       if run.target_resolution is not None), default=None),
         "final_train_loss": median_missing_last([run.final_train_loss for run in runs]),

@@ -7,6 +7,7 @@ from typing import Optional
 from benchmarks.comparison import FLOP_ESTIMATE_TEXT, describe_ratio, step_time_breakdown
 from benchmarks.optimizers import BASELINES, HEADLINE
 from benchmarks.report_format import contention_warning, format_number, format_table
+from benchmarks.training import CURVATURE_PARTS
 from benchmarks.verdict import HELD_OUT_HEADING, verdict_text
 
 HELD_OUT_NOTE = (f"{HEADLINE}'s defaults are chosen on the built-in tasks and only checked on these: a default "
@@ -64,6 +65,24 @@ def ratio_lines(entry: dict) -> list[str]:
                      f"{comparison['estimate_batch']}]")
         lines.append(line)
     return lines
+
+
+def curvature_free_line(entry: dict) -> Optional[str]:
+    """fisher-descent's time to target with its curvature work free, against the best baseline."""
+    comparison = entry["comparison"]
+    ratio = comparison.get("curvature_free_time")
+    method = entry["summary"].get(HEADLINE)
+    if ratio is None or ratio["relation"] not in ("measured", "at_most"):
+        return None
+    free, whole = method["curvature_free_seconds_to_target"], method["seconds_to_target"]
+    best = comparison["best_baseline"]
+    against = (f"{ratio['ratio']:.2f}× {best}'s time" if ratio["relation"] == "measured" else
+               f"at most {ratio['ratio']:.2f}× {best}'s budget ({best} never reached the target)")
+    verdict = ("cheaper curvature alone could not put it ahead here: only fewer steps or a cheaper rest of "
+               "the step could" if ratio["ratio"] > 1 else "cheaper curvature could put it ahead here")
+    return (f"with its curvature work free ({', '.join(CURVATURE_PARTS)}: {format_number(whole - free)} of its "
+            f"{format_number(whole)} s to target), {HEADLINE} would have taken {format_number(free)} s, "
+            f"{against}; {verdict}")
 
 
 def split_line(entry: dict) -> Optional[str]:
@@ -151,7 +170,7 @@ def task_block(entry: dict, markdown: bool = False, threads: Optional[int] = Non
     headers = [h.format(metric=entry["test_metric"] or "metric") for h in TABLE_HEADERS]
     warning = contention_warning(entry.get("load_average_max"), threads)
     notes = ratio_lines(entry) + [line for line in (
-        step_time_breakdown(entry, "sgd"), split_line(entry), coverage_line(entry), parts_line(entry),
+        step_time_breakdown(entry, "sgd"), curvature_free_line(entry), split_line(entry), coverage_line(entry), parts_line(entry),
         memory_line(entry),
         reference_line(entry), progress_line(entry),
         warning and f"warning: {warning}; the runs were interleaved across optimizers to spread the effect",
@@ -196,6 +215,7 @@ def overview_rows(results: dict, entries: list[dict]) -> list[list[str]]:
             entry["task"], f"{entry['target_loss']:g}",
             *[_time_and_steps(summaries.get(name)) for name in [HEADLINE] + baselines_run(results)],
             best or "-", describe_ratio(comparison["time_to_target"].get(best)).split(" (")[0],
+            describe_ratio(comparison.get("curvature_free_time")).split(" (")[0],
             step_time_text(comparison),
         ])
     return rows
@@ -203,7 +223,7 @@ def overview_rows(results: dict, entries: list[dict]) -> list[list[str]]:
 
 def overview_headers(results: dict) -> list[str]:
     return ["task", "target", f"{HEADLINE} (untuned): time (steps) to target", *baselines_run(results),
-            "best baseline", f"time {HEADLINE}/best", f"step time {HEADLINE}/sgd"]
+            "best baseline", f"time {HEADLINE}/best", f"time {HEADLINE}/best, curvature work free", f"step time {HEADLINE}/sgd"]
 
 
 def overview(results: dict, entries: list[dict], markdown: bool = False) -> str:

@@ -71,6 +71,8 @@ class RunResult:
     rss_growth_bytes: Optional[int] = None  # resident memory after the run minus before it
     target_resolution: Optional[int] = None  # steps between the evaluation that met the target and the one before
     parameter_coverage: Optional[dict] = None  # FisherDescent only: parameters in blocks / under the fallback rule
+    # FisherDescent only: of seconds_to_target, the seconds its curvature work took (CURVATURE_PARTS)
+    curvature_seconds_to_target: Optional[float] = None
 
 
 def load_average() -> Optional[float]:
@@ -130,6 +132,21 @@ def current_rss_bytes() -> Optional[int]:
     return pages * os.sysconf("SC_PAGE_SIZE")
 
 
+# The parts of FisherDescent's own timers that keep its curvature fresh: recording the layers' inputs,
+# the statistics (in step() and inside the extra backward), the extra backward itself and the inversions.
+# What is left of its time is what a step costs with that work free: forward and backward, the
+# preconditioning products, the step and damping rules.
+CURVATURE_PARTS = ("capture", "statistics", "statistics_in_backward", "extra_backward", "inversion")
+
+
+def curvature_seconds(optimizer: torch.optim.Optimizer) -> Optional[float]:
+    """The cumulative seconds of :data:`CURVATURE_PARTS` so far; None for an optimizer without those timers."""
+    if not hasattr(optimizer, "diagnostics"):
+        return None
+    times = optimizer.diagnostics().get("time", {})
+    return sum(float(times.get(key, 0.0)) for key in CURVATURE_PARTS) if times else None
+
+
 def time_split(optimizer: torch.optim.Optimizer, train_seconds: float) -> tuple[Optional[dict], Optional[int]]:
     """The optimizer's own time accounting, if it keeps one, completed to the measured total.
 
@@ -164,6 +181,7 @@ class Trace:
     curve_losses: list[Optional[float]] = field(default_factory=list)
     steps_to_target: Optional[int] = None
     seconds_to_target: Optional[float] = None
+    curvature_seconds_to_target: Optional[float] = None
     target_resolution: Optional[int] = None
     diverged: bool = False
     near_below: float = math.inf  # losses below this count as near the target (set from the first one)
@@ -233,6 +251,8 @@ def timed_training(task: Task, model, loss_fn, optimizer, data, seed: int, steps
         if schedule.due(step, trace.near(lowest_batch_loss)):
             loss = evaluate(model, loss_fn, data.train_x, data.train_y, schedule.forward_chunk)
             trace.record(step, elapsed, loss, task.target_loss)
+            if trace.steps_to_target == step:
+                trace.curvature_seconds_to_target = curvature_seconds(optimizer)
             lowest_batch_loss = None
             if trace.diverged:
                 break
@@ -283,6 +303,7 @@ def train_run(
         target_loss=task.target_loss,
         steps_to_target=trace.steps_to_target,
         seconds_to_target=trace.seconds_to_target,
+        curvature_seconds_to_target=trace.curvature_seconds_to_target,
         final_train_loss=None if trace.diverged else trace.curve_losses[-1],
         final_test_metric=metric,
         step_seconds_median=statistics.median(trace.step_seconds),

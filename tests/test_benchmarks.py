@@ -679,3 +679,53 @@ def test_files_are_rewritten_after_a_run_only_once_the_write_interval_has_passed
     assert len(written) == 3
     outputs.finished()
     assert len(written) == 4 and written[-1]["status"]["complete"] is True
+
+
+def test_curvature_seconds_to_target_are_the_curvature_timers_when_the_target_fell():
+    # The run's own timers at the evaluation that met the target: a share of its seconds to target,
+    # and nothing for an optimizer without them.
+    if not NGOPT_AVAILABLE:
+        pytest.skip("ngopt.FisherDescent does not import")
+    from benchmarks.harness import curvature_free_seconds
+    from benchmarks.training import CURVATURE_PARTS
+
+    task = replace(TASKS["digits_mlp"], target_loss=0.3)
+    natural = train_run(task, OPTIMIZERS[HEADLINE], None, seed=0, steps=30, schedule=every_step(30))
+    assert natural.steps_to_target is not None
+    assert 0 < natural.curvature_seconds_to_target < natural.seconds_to_target
+    # the timers only grow: at the target they are at most the whole run's
+    whole = sum(natural.time_split[key] for key in CURVATURE_PARTS)
+    assert natural.curvature_seconds_to_target <= whole * (1 + 1e-12)
+    assert curvature_free_seconds(natural) == pytest.approx(natural.seconds_to_target
+                                                            - natural.curvature_seconds_to_target)
+    plain = train_run(task, OPTIMIZERS["sgd"], 0.3, seed=0, steps=30, schedule=every_step(30))
+    assert plain.steps_to_target is not None and plain.curvature_seconds_to_target is None
+    assert curvature_free_seconds(plain) is None
+
+
+def test_curvature_free_ratio_and_its_line_say_whether_cheaper_curvature_could_lead():
+    from benchmarks.comparison import compare
+    from benchmarks.report import curvature_free_line, overview_headers, overview_rows
+
+    def entry(free):
+        method = dict(summary_of(2.0, tuned=False), curvature_free_seconds_to_target=free, train_seconds=5.0)
+        summaries = {HEADLINE: method, "sgd": dict(summary_of(1.0), train_seconds=3.0),
+                     "adam": dict(summary_of(None, reached=0), train_seconds=3.0)}
+        for summary in summaries.values():
+            summary.update(steps_to_target=10, step_seconds_median=0.01)
+        return {"task": "t", "target_loss": 0.1, "summary": summaries,
+                "comparison": compare(summaries, 100, None, 32)}
+
+    slow, fast = entry(1.5), entry(0.8)
+    assert slow["comparison"]["curvature_free_time"] == {"ratio": 1.5, "relation": "measured"}
+    assert "would have taken 1.5 s, 1.50× sgd's time" in curvature_free_line(slow)
+    assert "0.5 of its 2 s to target" in curvature_free_line(slow)
+    assert "could not put it ahead" in curvature_free_line(slow)
+    assert "0.80× sgd's time; cheaper curvature could put it ahead" in curvature_free_line(fast)
+    results = {"settings": {"optimizers": [HEADLINE, "sgd", "adam"]}}
+    headers = overview_headers(results)
+    row = overview_rows(results, [slow])[0]
+    assert row[headers.index(f"time {HEADLINE}/best")] == "2.00"
+    assert row[headers.index(f"time {HEADLINE}/best, curvature work free")] == "1.50"
+    unreached = entry(None)
+    assert unreached["comparison"]["curvature_free_time"] is None and curvature_free_line(unreached) is None
