@@ -168,8 +168,8 @@ def task_block(entry: dict, markdown: bool = False, threads: Optional[int] = Non
     headers = [h.format(metric=entry["test_metric"] or "metric") for h in TABLE_HEADERS]
     warning = contention_warning(entry.get("load_average_max"), threads)
     notes = ratio_lines(entry) + [line for line in (
-        step_time_breakdown(entry, "sgd"), curvature_free_line(entry), split_line(entry), coverage_line(entry), parts_line(entry),
-        memory_line(entry),
+        step_time_breakdown(entry, "sgd"), curvature_free_line(entry), split_line(entry), coverage_line(entry),
+        parts_line(entry), memory_line(entry),
         reference_line(entry), progress_line(entry),
         warning and f"warning: {warning}; the runs were interleaved across optimizers to spread the effect",
     ) if line]
@@ -221,7 +221,8 @@ def overview_rows(results: dict, entries: list[dict]) -> list[list[str]]:
 
 def overview_headers(results: dict) -> list[str]:
     return ["task", "target", f"{HEADLINE} (untuned): time (steps) to target", *baselines_run(results),
-            "best baseline", f"time {HEADLINE}/best", f"time {HEADLINE}/best, curvature work free", f"step time {HEADLINE}/sgd"]
+            "best baseline", f"time {HEADLINE}/best", f"time {HEADLINE}/best, curvature work free",
+            f"step time {HEADLINE}/sgd"]
 
 
 def overview(results: dict, entries: list[dict], markdown: bool = False) -> str:
