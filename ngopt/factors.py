@@ -19,7 +19,7 @@ from typing import Optional, Tuple
 
 import torch
 
-from .linalg import damped_inverse, inversion_dtype, largest_eigenvalue_bound, single_or_double
+from .linalg import damped_inverse, inversion_dtype, inversion_input, largest_eigenvalue_bound
 
 
 class Whole:
@@ -128,8 +128,7 @@ class BlockDiagonal(Whole):
         return torch.diag_embed(mask.reshape(self.count, self.block))
 
     def inverse(self, factor, shift, want_spectrum, precision=None):
-        precision = factor.dtype if precision is None else precision
-        factor = single_or_double(factor)
+        factor, precision = inversion_input(factor, precision)
         sym = 0.5 * (factor + factor.transpose(1, 2))
         padded = sym + self._pad_mask(sym)
         dtype = inversion_dtype(largest_eigenvalue_bound(sym), shift, precision)  # the worst block decides

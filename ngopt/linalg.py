@@ -82,8 +82,7 @@ def damped_inverse(matrix: torch.Tensor, shift: float, want_spectrum: bool = Fal
     float32 where :func:`inversion_dtype` allows, on single-precision statistics without any float64
     copy, and the inverse comes back in the precision it was computed in (float32 there, else float64).
     """
-    precision = matrix.dtype if precision is None else precision
-    matrix = single_or_double(matrix)
+    matrix, precision = inversion_input(matrix, precision)
     if not want_spectrum:
         sym = torch.add(matrix, matrix.T).mul_(0.5)
         dtype = inversion_dtype(largest_eigenvalue_bound(sym), shift, precision)
@@ -100,9 +99,13 @@ def damped_inverse(matrix: torch.Tensor, shift: float, want_spectrum: bool = Fal
     return DampedInverse(inverse, eigenvalues if want_spectrum else None, not want_spectrum)
 
 
-def single_or_double(matrix: torch.Tensor) -> torch.Tensor:
-    """A half-precision statistic in float32 (LAPACK has no half types, and its sums would round again)."""
-    return matrix if matrix.dtype in (torch.float32, torch.float64) else matrix.to(torch.float32)
+def inversion_input(matrix: torch.Tensor, precision: Optional[torch.dtype]):
+    """``(matrix, precision)`` as an inversion takes them: a half-precision statistic in float32 (LAPACK has
+    no half types, and its sums would round again); the statistics' precision, by default the matrix's."""
+    precision = matrix.dtype if precision is None else precision
+    if matrix.dtype not in (torch.float32, torch.float64):
+        matrix = matrix.to(torch.float32)
+    return matrix, precision
 
 
 def to_cpu(tensor: torch.Tensor) -> torch.Tensor:

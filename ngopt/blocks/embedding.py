@@ -130,18 +130,24 @@ class EmbeddingKroneckerBlock(LayerCurvature):
             factor_out.addmm_(g.T, g, alpha=scale)
         return {"factor_in": counts / rows, "factor_out": factor_out / num_forwards}
 
-    def _shifts(self, factor_in, factor_out, damping):
-        return factored_damping(float(factor_in.sum()), factor_in.shape[0],
-                                float(factor_out.diagonal().sum(dtype=torch.float64)), factor_out.shape[0], damping)
+    @staticmethod
+    def _traces(factor_in, factor_out):
+        """The two factors' traces (the input factor is its diagonal), the output's summed in float64."""
+        return float(factor_in.sum()), float(factor_out.diagonal().sum(dtype=torch.float64))
+
+    def _shifts(self, factor_in, factor_out, damping, traces=None):
+        trace_in, trace_out = self._traces(factor_in, factor_out) if traces is None else traces
+        return factored_damping(trace_in, factor_in.shape[0], trace_out, factor_out.shape[0], damping)
 
     def prepare_inverse(self, statistics, damping, want_spectrum):
         factor_in = to_cpu64(statistics["factor_in"]).clamp(min=0.0)
         factor_out = to_cpu(statistics["factor_out"])  # its own precision: see ngopt/linalg.py
-        shift_in, shift_out = self._shifts(factor_in, factor_out, damping)
+        traces = self._traces(factor_in, factor_out)
+        shift_in, shift_out = self._shifts(factor_in, factor_out, damping, traces)
         inv_out = damped_inverse(factor_out, shift_out, want_spectrum)
         ref = self.layer.weight
         info = {
-            "in_trace": float(factor_in.sum()), "out_trace": float(factor_out.diagonal().sum(dtype=torch.float64)),
+            "in_trace": traces[0], "out_trace": traces[1],
             "in_damping": shift_in, "out_damping": shift_out,
             "in_eigenvalues": factor_in.sort().values if want_spectrum else None,
             "out_eigenvalues": inv_out.eigenvalues, "used_eig_fallback": inv_out.used_fallback,
