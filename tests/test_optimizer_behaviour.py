@@ -579,6 +579,33 @@ def test_non_finite_gradient_skips_the_step(fisher, structure, poison):
     assert_same_snapshot(snapshot(model, opt), snapshot(twin, twin_opt))
 
 
+@pytest.mark.parametrize("statistics_step", [True, False], ids=["statistics-step", "plain-step"])
+def test_a_non_finite_gradient_outside_every_block_skips_the_step_with_its_cause(statistics_step):
+    # The gradients get no check of their own: the check of the fallback rule's changes catches a NaN in a
+    # parameter without a curvature block (here PReLU's slope), and the skip is still put down to the gradient.
+    torch.manual_seed(0)
+    model = nn.Sequential(nn.Linear(3, 5), nn.PReLU(), nn.Linear(5, 2)).to(DTYPE)
+    opt = quiet_optimizer(model, nn.MSELoss(), stats_interval=1 if statistics_step else 50, inverse_interval=1,
+                          momentum=0.5, fallback="adam")
+    batches = [regression_batch(8, seed=s) for s in range(12)]
+    for batch in batches[:2]:
+        step_with_micro_batches(model, opt, [batch])
+    for batch in batches[2:11]:  # the first steps refresh often: on to one that records nothing
+        if opt.statistics_due() == statistics_step:
+            break
+        step_with_micro_batches(model, opt, [batch])
+    assert opt.statistics_due() == statistics_step
+    before = snapshot(model, opt)
+    opt.zero_grad()
+    nn.MSELoss()(model(batches[11][0]), batches[11][1]).backward()
+    model[1].weight.grad.fill_(float("nan"))
+    with pytest.warns(UserWarning, match="skipped"):
+        opt.step()
+    assert_same_snapshot(snapshot(model, opt), before)
+    assert opt.diagnostics()["skip_reasons"] == {**opt.diagnostics()["skip_reasons"], "nonfinite_gradient": 1}
+    assert opt.diagnostics()["skipped_steps"] == 1
+
+
 @pytest.mark.parametrize("fisher", FISHERS)
 def test_non_finite_closure_loss_skips_the_step(fisher):
     model, opt = _poisoned_setup(fisher, "kfac")
