@@ -117,6 +117,24 @@ def to_cpu64(tensor: torch.Tensor) -> torch.Tensor:
     return tensor.detach().to(device="cpu", dtype=torch.float64)
 
 
+# Up to this many entries, one product of the stacked pair beats three dot products (the fixed cost of
+# each call dominates); above it the copy into the stack costs more than the calls it saves.
+PAIR_PRODUCT_MAX_NUMEL = 8192
+
+
+def pair_gram(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
+    """The 2x2 Gram matrix ``[[<a, a>, <a, b>], [<b, a>, <b, b>]]`` of two tensors of one shape, in their dtype.
+
+    A small pair is stacked and multiplied by its transpose, one product for all three sums (the
+    fixed cost of three calls outweighs a small layer's arithmetic); a large one takes three dot products.
+    """
+    if a.numel() <= PAIR_PRODUCT_MAX_NUMEL:
+        pair = torch.stack((a, b)).view(2, -1)
+        return pair @ pair.T
+    cross = flat_dot(a, b)
+    return torch.stack((flat_dot(a, a), cross, cross, flat_dot(b, b))).view(2, 2)
+
+
 def flat_dot(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
     """``sum(a * b)`` over all entries of two tensors of one shape, as a 0-d tensor of their dtype.
 

@@ -20,7 +20,7 @@ import torch
 from . import fallback as fallback_rules
 from . import scratch
 from .fallback import with_weight_decay
-from .linalg import flat_dot
+from .linalg import pair_gram
 from .blocks.base import LayerCurvature
 from .rules.base import StepInputs, StepResult
 
@@ -146,14 +146,12 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
     if directions:
         # One reduction for all the scalars the step needs: <p, g>, |p|^2, |g|^2 per block.
         order = list(directions)
-        scalars = []
-        for g, d in (directions[b] for b in order):
-            scalars += [flat_dot(d, g), flat_dot(d, d), flat_dot(g, g)]
-        sums = torch.stack(scalars).double().cpu()
+        grams = torch.stack([pair_gram(d, g) for g, d in (directions[b] for b in order)])
+        sums = grams.to(device="cpu", dtype=torch.float64)
         if not bool(torch.isfinite(sums).all()):
             return None, []
-        values = sums.tolist()
-        dots = {block: tuple(values[3 * i:3 * i + 3]) for i, block in enumerate(order)}
+        # [[<p, p>, <p, g>], [<g, p>, <g, g>]] per block
+        dots = {block: (gram[0][1], gram[0][0], gram[1][1]) for block, gram in zip(order, sums.tolist())}
     missing = [b for b in missing if dots[b][2] > 0.0]
     return StepInputs(groups, per_group, directions, dots, step_index, average=average), missing
 

@@ -169,6 +169,30 @@ def test_flat_dot_is_the_sum_of_products_in_every_layout(layout):
     assert float(flat_dot(a.double(), b.double())) == pytest.approx(expected, rel=1e-12)
 
 
+@pytest.mark.parametrize("layout", ["contiguous", "transposed", "strided"])
+@pytest.mark.parametrize("shape", [(40, 30), (100, 101)], ids=["stacked-product", "three-dots"])
+def test_pair_gram_is_the_dense_gram_matrix(shape, layout):
+    # Reference: numpy's Gram matrix of the two flattened tensors in float64; float32 sums within
+    # 4 sqrt(n) eps32 sum|x y| of it (the usual probabilistic bound on a sum's rounding; common practice).
+    # Both paths (stacked product below PAIR_PRODUCT_MAX_NUMEL entries, three dot products above).
+    from ngopt.linalg import PAIR_PRODUCT_MAX_NUMEL, pair_gram
+    assert (shape[0] * shape[1] <= PAIR_PRODUCT_MAX_NUMEL) == (shape == (40, 30))
+    generator = torch.Generator().manual_seed(1)
+    a = torch.randn(*shape, generator=generator)
+    b = torch.randn(*shape, generator=generator) + 0.5 * a
+    if layout == "transposed":      # an embedding's gradient matrix and its proposal: transposed views
+        a, b = a.T.contiguous().T, b.T.contiguous().T
+    elif layout == "strided":
+        a, b = a.repeat(1, 2)[:, ::2], b.repeat(1, 2)[:, ::2]
+    flat = np.stack([a.double().numpy().ravel(), b.double().numpy().ravel()])
+    expected = flat @ flat.T
+    bounds = 4 * math.sqrt(flat.shape[1]) * float(torch.finfo(torch.float32).eps) * (np.abs(flat) @ np.abs(flat).T)
+    gram = pair_gram(a, b)
+    assert gram.shape == (2, 2) and gram.dtype == torch.float32
+    assert np.all(np.abs(gram.double().numpy() - expected) <= bounds)
+    np.testing.assert_allclose(pair_gram(a.double(), b.double()).numpy(), expected, rtol=1e-12)
+
+
 @pytest.mark.parametrize("dtype", [torch.bfloat16, torch.float16])
 def test_a_half_precision_factor_is_inverted_in_float32(dtype):
     # A model kept in half precision keeps its statistics in it; LAPACK has no half types, so the
