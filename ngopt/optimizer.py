@@ -46,6 +46,7 @@ from .inversion_schedule import INVERSION_SCHEDULES
 from .likelihoods import likelihood_for
 from .loss_scaling import UNSCALED_WITHOUT_SEEN_SCALE, step_loss_scale
 from .loss_trend import LossTrend
+from .packing import BlockPacker
 from .batch_evaluation import evaluator_for, loss_change, not_replayable_message
 from .rules import DAMPING_RULES, STEP_RULES
 from .rules.damping import reduction_ratio
@@ -226,6 +227,8 @@ class FisherDescent(torch.optim.Optimizer):
         self.loss_fn = loss_fn
         self.rules = SimpleNamespace(step=STEP_RULES[step_rule](rule_interval),
                                      damping=DAMPING_RULES[damping_rule](damping_interval, damping_range))
+        # Small Kronecker blocks computed together (ngopt/packing.py), for a step rule that takes them.
+        self._packer = BlockPacker() if getattr(self.rules.step, "packs_blocks", False) else None
         self.track_spectra = False
         # Set by ngopt.distributed to share statistics and inversions across ranks; None = one process.
         self.communicator = None
@@ -538,7 +541,7 @@ class FisherDescent(torch.optim.Optimizer):
         with self._timed("precondition"):
             average = self.communicator.average_scalars if self.communicator is not None else (lambda *v: v)
             inputs, missing = proposals(blocks, self.param_groups, self.group_index, pending.statistics,
-                                        pending.inverses, step_index, average)
+                                        pending.inverses, step_index, average, packer=self._packer)
             if inputs is None:
                 return "nonfinite_update"
             inputs.loss_gap = loss_gap

@@ -21,6 +21,7 @@ from . import fallback as fallback_rules
 from . import scratch
 from .fallback import with_weight_decay
 from .linalg import pair_gram
+from .packing import BlockPacker
 from .blocks.base import LayerCurvature
 from .rules.base import StepInputs, StepResult
 
@@ -112,48 +113,65 @@ def add_projected_statistics(blocks: Sequence[LayerCurvature], statistics: dict,
 
 def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Callable[[torch.Tensor], int],
               statistics: dict, inverses: dict, step_index: int,
-              average: Callable = lambda *values: values) -> "tuple[Optional[StepInputs], list]":
+              average: Callable = lambda *values: values,
+              packer: Optional[BlockPacker] = None) -> "tuple[Optional[StepInputs], list]":
     """Every block's gradient matrix ``g`` (plus weight decay) and proposal ``p = C^-1 g``, with their dots.
 
-    Each proposal is a new tensor that nothing else holds, so a step rule may write into it.
+    Each proposal is a tensor that nothing else holds this step, so a step rule may write into it.  With
+    a ``packer``, small plain Kronecker blocks are computed together (:mod:`ngopt.packing`): their
+    gradient matrices and proposals are then regions of the packs' stacks, listed in ``inputs.packs``.
 
     Returns ``(inputs, missing)``: ``missing`` are the blocks with a nonzero gradient and still no
     curvature to precondition it; ``inputs`` is None if a dot product is non-finite.
     """
-    directions, per_group, missing = {}, {}, []
+    prepared, per_group, missing = {}, {}, []
     for block in blocks:
         layer = block.layer
         if layer.weight.grad is None:
             continue
         index = group_index(layer.weight)
-        group = groups[index]
-        weight_grad = with_weight_decay(layer.weight.grad, layer.weight, group["weight_decay"])
-        bias_grad = with_weight_decay(layer.bias.grad, layer.bias, group["weight_decay"]) if layer.has_bias else None
+        decay = groups[index]["weight_decay"]
+        weight_grad = with_weight_decay(layer.weight.grad, layer.weight, decay)
+        bias_grad = with_weight_decay(layer.bias.grad, layer.bias, decay) if layer.has_bias else None
+        prepared[block] = (index, weight_grad, bias_grad, tentative_view(block, statistics, inverses))
+        per_group.setdefault(index, []).append(block)
+    ready = {block: (index, weight_grad) for block, (index, weight_grad, _, view) in prepared.items()
+             if all(key in view for key in block.inverse_keys)}
+    directions, grams, packs = {}, {}, []
+    for pack in packer.packs(ready) if packer is not None else []:
+        members = [(block, prepared[block]) for block in pack.blocks]
+        pack.fill_gradients([g for block, (_, w, b, _) in members for g in [w] + ([b] if block.layer.has_bias else [])])
+        stack = pack.precondition([(view["inverse_out"], view["inverse_in"]) for _, (*_, view) in members])
+        directions.update(zip(pack.blocks, zip(pack.gradient_regions, pack.regions[stack])))
+        grams.update(zip(pack.blocks, pack.grams(stack)))
+        packs.append((pack, stack))
+    for block, (index, weight_grad, bias_grad, view) in prepared.items():
+        if block in directions:
+            continue
         grad_matrix = _gradient_matrix(block, weight_grad, bias_grad)
-        view = tentative_view(block, statistics, inverses)
-        if all(key in view for key in block.inverse_keys):
+        if block in ready:
             # Memory of a replaced momentum buffer, never the buffer this step still reads.
             spare = scratch.take(block.scratch, "proposal", grad_matrix, avoid=block.state.get("momentum_buffer")) \
                 if block.writes_into else None
             memory = {"out": spare} if spare is not None else {}
-            proposal = block.precondition(grad_matrix, group["damping"], view, **memory)
+            proposal = block.precondition(grad_matrix, groups[index]["damping"], view, **memory)
         else:
             missing.append(block)
             proposal = grad_matrix.clone()  # a proposal is always the step's own tensor: rules may reuse it
         directions[block] = (grad_matrix, proposal)
-        per_group.setdefault(index, []).append(block)
+        grams[block] = pair_gram(proposal, grad_matrix)
+    order = list(prepared)  # the blocks' own order
+    directions = {block: directions[block] for block in order}
     dots = {}
-    if directions:
-        # One reduction for all the scalars the step needs: <p, g>, |p|^2, |g|^2 per block.
-        order = list(directions)
-        grams = torch.stack([pair_gram(d, g) for g, d in (directions[b] for b in order)])
-        sums = grams.to(device="cpu", dtype=torch.float64)
+    if order:
+        # One transfer for all the scalars the step needs: <p, g>, |p|^2, |g|^2 per block.
+        sums = torch.stack([grams[block] for block in order]).to(device="cpu", dtype=torch.float64)
         if not bool(torch.isfinite(sums).all()):
             return None, []
         # [[<p, p>, <p, g>], [<g, p>, <g, g>]] per block
         dots = {block: (gram[0][1], gram[0][0], gram[1][1]) for block, gram in zip(order, sums.tolist())}
     missing = [b for b in missing if dots[b][2] > 0.0]
-    return StepInputs(groups, per_group, directions, dots, step_index, average=average), missing
+    return StepInputs(groups, per_group, directions, dots, step_index, average=average, packs=packs), missing
 
 
 def _gradient_matrix(block: LayerCurvature, weight_grad: torch.Tensor, bias_grad: Optional[torch.Tensor]):
@@ -218,10 +236,17 @@ class PendingStep:
     fallback: List[FallbackChange] = field(default_factory=list)
 
     def finite(self) -> bool:
-        """One check of every update the step would write (block updates times their factors)."""
-        updates = self.result.updates
-        written = list(updates.values()) + [t for part in self.fallback for t in part.tensors()]
-        factors = [abs(self.result.update_scale.get(block, 1.0)) for block in updates]
+        """One check of every update the step would write (block updates times their factors; a pack's
+        whole stack for its blocks)."""
+        scale = self.result.update_scale
+        packed = {block for pack, _ in self.result.packs for block in pack.blocks}
+        written = [pack.stacks[index] for pack, index in self.result.packs]
+        factors = [abs(scale.get(pack.blocks[0], 1.0)) for pack, _ in self.result.packs]
+        for block, update in self.result.updates.items():
+            if block not in packed:
+                written.append(update)
+                factors.append(abs(scale.get(block, 1.0)))
+        written += [t for part in self.fallback for t in part.tensors()]
         factors += [1.0] * (len(written) - len(factors))
         return all_finite(written, factors) and finite_numbers(self.result.diagnostics)
 
@@ -241,15 +266,23 @@ class PendingStep:
         """``w += s * u`` for every block (``s`` from ``update_scale``, 1 where absent); ``keep_previous``
         keeps ``u`` as the next step's momentum direction (the quadratic rule)."""
         by_scale: Dict[float, tuple] = {}  # one fused add per distinct factor (one per param group at most)
+        packed = set()
+        for pack, index in self.result.packs:  # a pack's places in its stack, parameter-shaped, kept with it
+            params, parts = by_scale.setdefault(self.result.update_scale.get(pack.blocks[0], 1.0), ([], []))
+            params += pack.params
+            parts += pack.update_places[index]
+            packed.update(pack.blocks)
         for block, update in self.result.updates.items():
+            if keep_previous:
+                block.state["previous_update"] = update
+            if block in packed:
+                continue
             params, parts = by_scale.setdefault(self.result.update_scale.get(block, 1.0), ([], []))
             weight_part, bias_part = block.layer.split_matrix(update)
             for param, part in ((block.layer.weight, weight_part), (block.layer.bias, bias_part)):
                 if part is not None and param.grad is not None:
                     params.append(param)
                     parts.append(part)
-            if keep_previous:
-                block.state["previous_update"] = update
         for scale, (params, parts) in by_scale.items():
             if params:
                 torch._foreach_add_(params, parts, alpha=scale)

@@ -25,6 +25,9 @@ class StepInputs:
     # The loss of the step's batch minus loss_floor, when the step saw that loss (None: no loss bound).
     loss_gap: Optional[float] = None
     average: Callable[..., tuple] = lambda *values: values   # mean over ranks (identity in one process)
+    # (pack, stack index) of the small blocks computed together (ngopt/packing.py): their gradient matrices
+    # and proposals are regions of the pack's gradient stack and of its proposal stack at that index.
+    packs: list = field(default_factory=list)
 
 
 @dataclass
@@ -39,6 +42,9 @@ class StepResult:
     # tensor it keeps anyway (the fixed rule's -lr * momentum buffer) hands over that tensor, so no
     # parameter-sized copy of it is made.
     update_scale: Dict[object, float] = field(default_factory=dict)
+    # (pack, stack index) whose stack holds the updates of all the pack's blocks (one factor for all of
+    # them): checked and written as whole stacks.
+    packs: list = field(default_factory=list)
 
 
 def group_of(inputs: StepInputs) -> Dict[object, dict]:

@@ -59,8 +59,38 @@ def _buffer_gradient_dots(blocks, buffers, inputs: StepInputs) -> list:
     return values
 
 
+def _momentum(blocks: list, inputs: StepInputs, momentum: float, nu: float):
+    """``(new buffers, buf^T g, packs used)``, the buffers and dots in ``blocks`` order: the new momentum
+    buffers ``momentum * buf + nu * p`` written into the proposals, and each block's previous buffer
+    times its gradient matrix.  A pack of small blocks (``ngopt/packing.py``) takes a few calls on its
+    stacks; the other blocks one fused call per operation over all of them."""
+    new, cross, used, members = {}, {}, [], set(blocks)
+    for pack, index in inputs.packs:
+        if pack.blocks[0] not in members:  # another param group's pack
+            continue
+        old = pack.buffers(index, [b.state.get("momentum_buffer") for b in pack.blocks]) if momentum else None
+        dots = (old * pack.gradients).sum((1, 2)).double().tolist() if old is not None else [0.0] * len(pack.blocks)
+        stack = pack.stacks[index]
+        if nu != 1.0:
+            stack.mul_(nu)
+        if old is not None:
+            stack.add_(old, alpha=momentum)
+        new.update(zip(pack.blocks, pack.regions[index]))
+        cross.update(zip(pack.blocks, dots))
+        used.append((pack, index))
+    rest = [block for block in blocks if block not in new]
+    if rest:
+        buffers = [block.state.get("momentum_buffer") for block in rest]
+        # The proposals are this step's own tensors (step_pipeline.proposals): the new buffers reuse them.
+        proposals = [inputs.directions[block][1] for block in rest]
+        new.update(zip(rest, heavy_ball(buffers, proposals, momentum, scale=nu, reuse_directions=True)))
+        cross.update(zip(rest, _buffer_gradient_dots(rest, buffers, inputs) if momentum else [0.0] * len(rest)))
+    return [new[block] for block in blocks], [cross[block] for block in blocks], used
+
+
 class FixedStep:
     name = "fixed"
+    packs_blocks = True            # small blocks may come as packs (ngopt/packing.py): _momentum works on them
     needs_batch = False            # evaluates nothing on the recorded batch
     keeps_previous_update = False  # heavy-ball momentum lives in its own buffer
 
@@ -105,7 +135,7 @@ class FixedStep:
         # The loss bound acts on the whole step: its first-order predicted decrease, over every group.
         decrease = sum(inputs.groups[i]["lr"] * scales[i] * dot for i, dot in group_dots.items())
         bound = loss_bound_scale(decrease, inputs.loss_gap)
-        updates, update_scale, scale_of, states = {}, {}, {}, {}
+        updates, update_scale, scale_of, states, used_packs = {}, {}, {}, {}, []
         kl = predicted = 0.0
         for index, blocks in inputs.blocks_by_group.items():
             group = inputs.groups[index]
@@ -116,15 +146,11 @@ class FixedStep:
             kl += 0.5 * step * step * dot * self.length_ratio
             for block in blocks:
                 scale_of[block] = nu
-            proposals = [inputs.directions[block][1] for block in blocks]
-            # One fused call per operation over the group's blocks (small layers are per-call overhead).
-            buffers = [block.state.get("momentum_buffer") for block in blocks]
-            # The proposals are this step's own tensors (step_pipeline.proposals): the new buffers reuse them.
-            directions = heavy_ball(buffers, proposals, momentum, scale=nu, reuse_directions=True)
+            directions, cross, packs = _momentum(blocks, inputs, momentum, nu)
+            used_packs += packs
             # w -= lr * buf: the new buffer itself with its factor, not a scaled copy of it.
             updates.update(zip(blocks, directions))
             update_scale.update((block, -lr) for block in blocks)
-            cross = _buffer_gradient_dots(blocks, buffers, inputs) if momentum else [0.0] * len(blocks)
             for block, buffer_dot in zip(blocks, cross):
                 previous = float(block.state["buffer_curvature"]) if momentum and "buffer_curvature" in block.state \
                     else 0.0
@@ -142,7 +168,8 @@ class FixedStep:
                            loss_bound_scale=None if inputs.loss_gap is None else bound,
                            kl_estimate=kl, predicted_change=predicted,
                            fisher_length_ratio=self.length_ratio if self.checks else None)
-        return StepResult(updates, diagnostics, predicted_change=predicted, states=states, update_scale=update_scale)
+        return StepResult(updates, diagnostics, predicted_change=predicted, states=states, update_scale=update_scale,
+                          packs=used_packs)
 
     def state_dict(self) -> dict:
         return {"length_ratio": self.length_ratio, "checks": self.checks}
