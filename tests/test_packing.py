@@ -169,3 +169,14 @@ def test_a_pack_computes_each_blocks_own_products():
     for k, block in enumerate(blocks):
         outside[k, :block.layer.out_dim, :block.layer.in_dim] = 0
     assert not outside.any()
+
+
+def test_the_timing_script_times_both_paths_on_the_same_steps():
+    # scripts/packed_step_time.py: the packed variant reports its packs, the per-block one none.
+    import runpy
+    from pathlib import Path
+    script = runpy.run_path(str(Path(__file__).resolve().parents[1] / "scripts" / "packed_step_time.py"),
+                            run_name="packed_step_time")
+    times = script["step_times"]("friedman1_deep_mlp", 20)
+    assert times["packed"][2] == [7] and times["per-block"][2] == []
+    assert all(mean > 0 and median > 0 for mean, median, _ in times.values())
