@@ -3,7 +3,7 @@
 Packing (``ngopt/packing.py``) changes no result, only how many calls a step makes, so it has no
 public switch; this script turns it off through the optimizer's private ``_packer``. Each variant
 trains its own copy of a task's network (same initial weights, same random minibatches) in rounds
-of 20 steps that take turns, so the machine's drift falls alike on both. It prints the mean step
+of 20 steps that take turns (``scripts/setting_step_time.py``), so the machine's drift falls alike on both. It prints the mean step
 (every refresh, inversion and damping check included) and the median step, with the ratios::
 
     python scripts/packed_step_time.py --tasks friedman1_deep_mlp,breast_cancer_mlp --threads 1
@@ -14,17 +14,17 @@ import argparse
 import os
 import statistics
 import sys
-import time
 import warnings
 
 import torch
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))  # the checkout, not an install
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))  # the scripts beside it
 import ngopt  # noqa: E402
 from benchmarks.held_out import HELD_OUT_TASKS  # noqa: E402
 from benchmarks.tasks import TASKS  # noqa: E402
+from setting_step_time import take_turns  # noqa: E402
 
-ROUND = 20
 WARM_UP = 5  # the first steps of each variant: allocations, the first inversions
 
 
@@ -42,16 +42,7 @@ def step_times(task_name: str, steps: int) -> dict:
         if variant == "per-block":
             opt._packer = None
         runs[variant] = (model, loss_fn, opt, [])
-    generator = torch.Generator().manual_seed(0)
-    for _ in range(max(1, steps // ROUND)):
-        for model, loss_fn, opt, times in runs.values():
-            for _ in range(ROUND):
-                rows = torch.randint(0, len(data.train_x), (task.batch_size,), generator=generator)
-                started = time.perf_counter()
-                opt.zero_grad()
-                loss_fn(model(data.train_x[rows]), data.train_y[rows]).backward()
-                opt.step()
-                times.append(time.perf_counter() - started)
+    take_turns(task, data, runs, steps)
     result = {}
     for variant, (_, _, opt, times) in runs.items():
         packs = [len(p.blocks) for p in opt._packer._packs] if opt._packer is not None else []

@@ -37,6 +37,13 @@ def mean_step_ms(task_name: str, settings: dict, steps: int) -> dict:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             runs[name] = (model, loss_fn, ngopt.FisherDescent(model, loss_fn, **options), [])
+    take_turns(task, data, runs, steps)
+    return {name: 1e3 * statistics.mean(run[3][5:]) for name, run in runs.items()}  # first steps: warm-up
+
+
+def take_turns(task, data, runs: dict, steps: int) -> None:
+    """Train every ``(model, loss_fn, optimizer, times)`` of ``runs`` on the same random minibatches, in
+    rounds of :data:`ROUND` steps that take turns; each step's seconds are appended to its ``times``."""
     generator = torch.Generator().manual_seed(0)
     for _ in range(max(1, steps // ROUND)):
         for model, loss_fn, opt, times in runs.values():
@@ -47,7 +54,6 @@ def mean_step_ms(task_name: str, settings: dict, steps: int) -> dict:
                 loss_fn(model(data.train_x[rows]), data.train_y[rows]).backward()
                 opt.step()
                 times.append(time.perf_counter() - started)
-    return {name: 1e3 * statistics.mean(run[3][5:]) for name, run in runs.items()}  # first steps: warm-up
 
 
 def main(argv=None) -> int:
