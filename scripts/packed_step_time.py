@@ -3,8 +3,9 @@
 Packing (``ngopt/packing.py``) changes no result, only how many calls a step makes, so it has no
 public switch; this script turns it off through the optimizer's private ``_packer``. Each variant
 trains its own copy of a task's network (same initial weights, same random minibatches) in rounds
-of 20 steps that take turns (``scripts/setting_step_time.py``), so the machine's drift falls alike on both. It prints the mean step
-(every refresh, inversion and damping check included) and the median step, with the ratios::
+of 20 steps that take turns (``scripts/setting_step_time.py``), so the machine's drift falls alike
+on both. It prints the mean step (every refresh, inversion and damping check included) and the
+median step, with the ratios::
 
     python scripts/packed_step_time.py --tasks friedman1_deep_mlp,breast_cancer_mlp --threads 1
 """
