@@ -70,6 +70,8 @@ def _streamable(targets) -> bool:
 
 def _device_rng_states(model: nn.Module) -> dict:
     """The generators' states of the accelerators the model lives on (dropout there draws from them)."""
+    if not torch.cuda.is_initialized():  # no tensor can be on a GPU yet: no walk over the parameters
+        return {}
     devices = {p.device.index or 0 for p in model.parameters() if p.device.type == "cuda"}
     return {index: torch.cuda.get_rng_state(index) for index in devices}
 
