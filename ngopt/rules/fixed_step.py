@@ -151,18 +151,20 @@ class FixedStep:
             # w -= lr * buf: the new buffer itself with its factor, not a scaled copy of it.
             updates.update(zip(blocks, directions))
             update_scale.update((block, -lr) for block in blocks)
+            curvatures = []
             for block, buffer_dot in zip(blocks, cross):
                 previous = float(block.state["buffer_curvature"]) if momentum and "buffer_curvature" in block.state \
                     else 0.0
                 curvature = momentum ** 2 * previous + 2 * momentum * nu * buffer_dot + nu ** 2 * inputs.dots[block][0]
                 predicted += -lr * (momentum * buffer_dot + nu * inputs.dots[block][0]) + 0.5 * lr * lr * curvature
-                if momentum:
-                    states[block] = {"buffer_curvature": torch.tensor(curvature, dtype=torch.float64)}
+                curvatures.append(curvature)
             if momentum:
                 # Kept only if the step is written; a non-finite buffer makes its update non-finite
                 # (lr is finite), so the optimizer's check of the updates covers the buffers too.
-                for block, d in zip(blocks, directions):
-                    states[block]["momentum_buffer"] = d
+                # The group's curvatures as views of one tensor: one call, not one per block.
+                kept = torch.tensor(curvatures, dtype=torch.float64).unbind()
+                for block, d, curvature in zip(blocks, directions, kept):
+                    states[block] = {"buffer_curvature": curvature, "momentum_buffer": d}
         diagnostics = norms(inputs, scale_of)
         diagnostics.update(trust_scale=min(scales.values()) if scales else 1.0, trust_scale_by_group=scales,
                            loss_bound_scale=None if inputs.loss_gap is None else bound,
