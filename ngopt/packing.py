@@ -75,24 +75,35 @@ def _padded(blocks) -> int:
 class BlockPack:
     """The stacks of one pack of blocks and the views of each block's region in them."""
 
-    def __init__(self, blocks: list, group: int, like: torch.Tensor):
-        self.blocks, self.group = blocks, group
+    def __init__(self, blocks: list, like: torch.Tensor):
+        self.blocks = blocks
         self.out_dim = max(b.layer.out_dim for b in blocks)
         self.in_dim = max(b.layer.in_dim for b in blocks)
         self.gradients = self._zeros(like, self.out_dim, self.in_dim)
         self.gradient_regions = self._regions(self.gradients)
-        every = [p for b in blocks for p in b.layer.params()]
         self._gradient_places = self._places(self.gradient_regions)
-        self.stacks = [self._zeros(like, self.out_dim, self.in_dim) for _ in range(2)]
-        self.regions = [self._regions(stack) for stack in self.stacks]
+        every = [p for b in blocks for p in b.layer.params()]
         # A parameter without a gradient (a bias the user froze) is not written, as on the per-block path.
-        written = [p.grad is not None for p in every]
-        self.params = [p for p, w in zip(every, written) if w]
-        self.update_places = [[place for place, w in zip(self._places(regions), written) if w]
-                              for regions in self.regions]
+        self._written = [p.grad is not None for p in every]
+        self.params = [p for p, w in zip(every, self._written) if w]
+        self.stacks, self.regions, self.update_places = [], [], []
+        for _ in range(2):
+            self._add_stack(like)
         self._inverse_key: Optional[tuple] = None
         self._inverses: list = []
         self.inverse_out = self.inverse_in = None
+
+    def _add_stack(self, like: torch.Tensor, index: Optional[int] = None) -> None:
+        """A zero proposal stack with its regions and parameter-shaped places, appended or at ``index``."""
+        stack = self._zeros(like, self.out_dim, self.in_dim)
+        regions = self._regions(stack)
+        places = [place for place, w in zip(self._places(regions), self._written) if w]
+        if index is None:
+            self.stacks.append(stack)
+            self.regions.append(regions)
+            self.update_places.append(places)
+        else:
+            self.stacks[index], self.regions[index], self.update_places[index] = stack, regions, places
 
     def _zeros(self, like: torch.Tensor, rows: int, columns: int) -> torch.Tensor:
         return torch.zeros(len(self.blocks), rows, columns, dtype=like.dtype, device=like.device)
@@ -101,7 +112,7 @@ class BlockPack:
         return [stack[k, :b.layer.out_dim, :b.layer.in_dim] for k, b in enumerate(self.blocks)]
 
     def _places(self, regions: List[torch.Tensor]) -> List[torch.Tensor]:
-        """Each weight's and bias's place in the regions, parameter-shaped (in :attr:`params` order)."""
+        """Each weight's and bias's place in the regions, parameter-shaped, in the layers' parameter order."""
         places = []
         for block, region in zip(self.blocks, regions):
             weight, bias = block.layer.split_matrix(region)
@@ -127,7 +138,9 @@ class BlockPack:
             held = {id(r) for r in regions}
             if not any(id(b.state.get("momentum_buffer")) in held for b in self.blocks):
                 return index
-        raise RuntimeError("both proposal stacks hold momentum buffers")  # a step writes one stack at a time
+        # Both hold some (a state put together by hand): a new stack; the buffers keep the old one alive.
+        self._add_stack(self.gradients, index=0)
+        return 0
 
     def precondition(self, inverses: List[Tuple[torch.Tensor, torch.Tensor]]) -> int:
         """``P = G^-1 g A^-1`` of every block into the free proposal stack; returns its index.
@@ -197,7 +210,7 @@ class BlockPacker:
             for block in eligible:
                 group, grad = ready[block]
                 kinds.setdefault((group, grad.dtype, grad.device), []).append(block)
-            made = [BlockPack(blocks, kind[0], ready[blocks[0]][1]) for kind, members in kinds.items()
+            made = [BlockPack(blocks, ready[blocks[0]][1]) for members in kinds.values()
                     for blocks in packs_by_shape(members)]
             self._packs = [pack for pack in made if pack.places_are_views()]
         return self._packs

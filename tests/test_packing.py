@@ -152,7 +152,7 @@ def test_a_pack_computes_each_blocks_own_products():
     model, opt = _setup(True)
     _train(model, opt, _batches(4))
     blocks = [opt.blocks[name] for name in ("conv", "first", "second")]
-    pack = BlockPack(blocks, 0, model.first.weight)
+    pack = BlockPack(blocks, model.first.weight)
     grads = [g for b in blocks for g in (b.layer.weight.grad, b.layer.bias.grad)]
     pack.fill_gradients(grads)
     index = pack.precondition([(b.state["inverse_out"], b.state["inverse_in"]) for b in blocks])
@@ -180,3 +180,22 @@ def test_the_timing_script_times_both_paths_on_the_same_steps():
     times = script["step_times"]("friedman1_deep_mlp", 20)
     assert times["packed"][2] == [7] and times["per-block"][2] == []
     assert all(mean > 0 and median > 0 for mean, median, _ in times.values())
+
+
+def test_a_state_with_buffers_in_both_stacks_gets_a_new_stack_and_keeps_its_buffers():
+    # Not reachable through step() (a step writes one stack for all its blocks); a state put together
+    # by hand must still not be overwritten.
+    model, opt = _setup(True)
+    _train(model, opt, _batches(3))
+    blocks = [opt.blocks[name] for name in ("conv", "first", "second")]
+    pack = BlockPack(blocks, model.first.weight)
+    for stack in pack.stacks:
+        stack.normal_()
+    blocks[0].state["momentum_buffer"] = pack.regions[0][0]
+    blocks[1].state["momentum_buffer"] = pack.regions[1][1]
+    kept = [blocks[0].state["momentum_buffer"].clone(), blocks[1].state["momentum_buffer"].clone()]
+    old_stack = pack.stacks[0]
+    index = pack.precondition([(b.state["inverse_out"], b.state["inverse_in"]) for b in blocks])
+    assert index == 0 and pack.stacks[0] is not old_stack
+    assert torch.equal(blocks[0].state["momentum_buffer"], kept[0])
+    assert torch.equal(blocks[1].state["momentum_buffer"], kept[1])
