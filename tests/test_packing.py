@@ -66,6 +66,18 @@ def _train(model, opt, batches):
         opt.step()
 
 
+def _reloaded(model, opt):
+    """A new model and optimizer (packing on) from a checkpoint of these, written and read back."""
+    saved = io.BytesIO()
+    torch.save({"model": model.state_dict(), "opt": opt.state_dict()}, saved)
+    saved.seek(0)
+    restored = torch.load(saved, weights_only=False)
+    model, opt = _setup(True)
+    model.load_state_dict(restored["model"])
+    opt.load_state_dict(restored["opt"])
+    return model, opt
+
+
 def _assert_same(model, opt, reference, reference_opt):
     for (name, p), q in zip(model.named_parameters(), reference.parameters()):
         torch.testing.assert_close(p, q, rtol=1e-10, atol=1e-12, msg=name)
@@ -102,13 +114,7 @@ def test_a_loaded_state_and_a_skipped_step_keep_the_packed_path_exact():
     batches = _batches(16)
     _train(model, opt, batches[:7])
     _train(reference, reference_opt, batches[:7])
-    saved = io.BytesIO()
-    torch.save({"model": model.state_dict(), "opt": opt.state_dict()}, saved)
-    saved.seek(0)
-    restored = torch.load(saved, weights_only=False)
-    model, opt = _setup(True)
-    model.load_state_dict(restored["model"])
-    opt.load_state_dict(restored["opt"])
+    model, opt = _reloaded(model, opt)
     _train(model, opt, batches[7:10])
     _train(reference, reference_opt, batches[7:10])
     for net, optimizer in ((model, opt), (reference, reference_opt)):
@@ -199,3 +205,17 @@ def test_a_state_with_buffers_in_both_stacks_gets_a_new_stack_and_keeps_its_buff
     assert index == 0 and pack.stacks[0] is not old_stack
     assert torch.equal(blocks[0].state["momentum_buffer"], kept[0])
     assert torch.equal(blocks[1].state["momentum_buffer"], kept[1])
+
+
+def test_a_resumed_packed_run_continues_exactly_as_the_uninterrupted_one():
+    # API behaviour 3, with packs: the loaded buffers are gathered into a stack once, with the same values
+    # the uninterrupted run reads from its other stack (same process, same threads: equal, not close).
+    batches = _batches(10)
+    model, opt = _setup(True)
+    _train(model, opt, batches)
+    resumed, resumed_opt = _setup(True)
+    _train(resumed, resumed_opt, batches[:5])
+    resumed, resumed_opt = _reloaded(resumed, resumed_opt)
+    _train(resumed, resumed_opt, batches[5:])
+    assert resumed_opt._packer._packs and all(torch.equal(p, q) for p, q in zip(model.parameters(),
+                                                                                   resumed.parameters()))
