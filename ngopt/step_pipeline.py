@@ -137,14 +137,17 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
         per_group.setdefault(index, []).append(block)
     ready = {block: (index, weight_grad) for block, (index, weight_grad, _, view) in prepared.items()
              if all(key in view for key in block.inverse_keys)}
-    directions, grams, packs = {}, {}, []
+    directions, packs = {}, []
+    grams, gram_order = [], []  # [B, 2, 2] Gram matrices of (p, g), and their blocks in order
     for pack in packer.packs(ready) if packer is not None else []:
         members = [(block, prepared[block]) for block in pack.blocks]
         pack.fill_gradients([g for block, (_, w, b, _) in members for g in [w] + ([b] if block.layer.has_bias else [])])
         stack = pack.precondition([(view["inverse_out"], view["inverse_in"]) for _, (*_, view) in members])
         directions.update(zip(pack.blocks, zip(pack.gradient_regions, pack.regions[stack])))
-        grams.update(zip(pack.blocks, pack.grams(stack)))
+        grams.append(pack.grams(stack))
+        gram_order += pack.blocks
         packs.append((pack, stack))
+    own_grams = []
     for block, (index, weight_grad, bias_grad, view) in prepared.items():
         if block in directions:
             continue
@@ -159,17 +162,20 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
             missing.append(block)
             proposal = grad_matrix.clone()  # a proposal is always the step's own tensor: rules may reuse it
         directions[block] = (grad_matrix, proposal)
-        grams[block] = pair_gram(proposal, grad_matrix)
-    order = list(prepared)  # the blocks' own order
-    directions = {block: directions[block] for block in order}
+        own_grams.append(pair_gram(proposal, grad_matrix))
+        gram_order.append(block)
+    if own_grams:
+        grams.append(torch.stack(own_grams))
+    directions = {block: directions[block] for block in prepared}  # the blocks' own order
     dots = {}
-    if order:
+    if grams:
         # One transfer for all the scalars the step needs: <p, g>, |p|^2, |g|^2 per block.
-        sums = torch.stack([grams[block] for block in order]).to(device="cpu", dtype=torch.float64)
+        sums = torch.cat(grams).to(device="cpu", dtype=torch.float64)
         if not bool(torch.isfinite(sums).all()):
             return None, []
         # [[<p, p>, <p, g>], [<g, p>, <g, g>]] per block
-        dots = {block: (gram[0][1], gram[0][0], gram[1][1]) for block, gram in zip(order, sums.tolist())}
+        found = {block: (gram[0][1], gram[0][0], gram[1][1]) for block, gram in zip(gram_order, sums.tolist())}
+        dots = {block: found[block] for block in directions}
     missing = [b for b in missing if dots[b][2] > 0.0]
     return StepInputs(groups, per_group, directions, dots, step_index, average=average, packs=packs), missing
 
