@@ -245,7 +245,7 @@ class PendingStep:
         """One check of every update the step would write (block updates times their factors; a pack's
         whole stack for its blocks)."""
         scale = self.result.update_scale
-        packed = {block for pack, _ in self.result.packs for block in pack.blocks}
+        packed = self._packed_blocks()
         written = [pack.stacks[index] for pack, index in self.result.packs]
         factors = [abs(scale.get(pack.blocks[0], 1.0)) for pack, _ in self.result.packs]
         for block, update in self.result.updates.items():
@@ -255,6 +255,10 @@ class PendingStep:
         written += [t for part in self.fallback for t in part.tensors()]
         factors += [1.0] * (len(written) - len(factors))
         return all_finite(written, factors) and finite_numbers(self.result.diagnostics)
+
+    def _packed_blocks(self) -> set:
+        """The blocks whose updates are regions of a pack's stack (checked and written as whole stacks)."""
+        return {block for pack, _ in self.result.packs for block in pack.blocks}
 
     def write_curvature(self, step_index: int) -> None:
         for block, tensors in self.statistics.items():
@@ -272,12 +276,11 @@ class PendingStep:
         """``w += s * u`` for every block (``s`` from ``update_scale``, 1 where absent); ``keep_previous``
         keeps ``u`` as the next step's momentum direction (the quadratic rule)."""
         by_scale: Dict[float, tuple] = {}  # one fused add per distinct factor (one per param group at most)
-        packed = set()
         for pack, index in self.result.packs:  # a pack's places in its stack, parameter-shaped, kept with it
             params, parts = by_scale.setdefault(self.result.update_scale.get(pack.blocks[0], 1.0), ([], []))
             params += pack.params
             parts += pack.update_places[index]
-            packed.update(pack.blocks)
+        packed = self._packed_blocks()
         for block, update in self.result.updates.items():
             if keep_previous:
                 block.state["previous_update"] = update

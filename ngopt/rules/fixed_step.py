@@ -70,11 +70,7 @@ def _momentum(blocks: list, inputs: StepInputs, momentum: float, nu: float):
             continue
         old = pack.buffers(index, [b.state.get("momentum_buffer") for b in pack.blocks]) if momentum else None
         dots = (old * pack.gradients).sum((1, 2)).double().tolist() if old is not None else [0.0] * len(pack.blocks)
-        stack = pack.stacks[index]
-        if nu != 1.0:
-            stack.mul_(nu)
-        if old is not None:
-            stack.add_(old, alpha=momentum)
+        heavy_ball([old], [pack.stacks[index]], momentum, scale=nu, reuse_directions=True)  # into the stack
         new.update(zip(pack.blocks, pack.regions[index]))
         cross.update(zip(pack.blocks, dots))
         used.append((pack, index))
