@@ -28,13 +28,17 @@ from .rules.base import StepInputs, StepResult
 
 def all_finite(tensors: Sequence[torch.Tensor], factors: Optional[List[float]] = None) -> bool:
     """Whether every entry of every tensor (times its factor, when given) is finite: one fused reduction
-    and one host sync."""
+    and one host sync per device (a model on a GPU still keeps a few CPU tensors, e.g. the Adam
+    fallback's step counter)."""
     if not tensors:
         return True
     norms = torch._foreach_norm(list(tensors))
     if factors is not None:
         norms = torch._foreach_mul(norms, factors)
-    return bool(torch.isfinite(torch.stack(norms)).all())
+    by_device: Dict[torch.device, List[torch.Tensor]] = {}
+    for norm in norms:
+        by_device.setdefault(norm.device, []).append(norm)
+    return all(bool(torch.isfinite(torch.stack(group)).all()) for group in by_device.values())
 
 
 def finite_numbers(values: dict) -> bool:

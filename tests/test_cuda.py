@@ -43,7 +43,7 @@ def train(model, opt, x, y, steps):
         loss = F.cross_entropy(model(x), y)
         loss.backward()
         opt.step()
-        losses.append(float(loss))
+        losses.append(float(loss.detach()))
     return losses
 
 
@@ -137,3 +137,38 @@ def test_data_parallel_with_one_process_on_the_device():
             assert losses[-1] < losses[0]
         finally:
             dist.destroy_process_group()
+
+
+class WithFreeParameters(nn.Module):
+    """A classifier with a parameter outside every block (an extra input row joined by ``cat``, as a class
+    token is): it takes the fallback rule."""
+
+    def __init__(self):
+        super().__init__()
+        self.extra_row = nn.Parameter(torch.zeros(1, 1, 1, 6))
+        self.body = classifier(12)
+
+    def forward(self, x):
+        rows = torch.cat([x[:, :, :5], self.extra_row.expand(x.shape[0], -1, -1, -1)], dim=2)
+        return self.body(rows)
+
+
+@pytest.mark.parametrize("fallback", ["adam", "sgd"])
+def test_parameters_on_the_fallback_rule_train_on_the_device(fallback):
+    model = WithFreeParameters().to(DEVICE)
+    x, y = images(seed=13)
+    opt = ngopt.FisherDescent(model, stats_interval=2, inverse_interval=4, fallback=fallback)
+    extra_row = model.extra_row.detach().clone()
+    losses = train(model, opt, x, y, 20)
+    assert {name for name, entry in opt.curvature_assignment().items() if entry.fallback} == {"extra_row"}
+    assert losses[-1] < 0.6 * losses[0] and opt.diagnostics()["skipped_steps"] == 0
+    assert not torch.equal(model.extra_row, extra_row)
+
+
+def test_the_finiteness_check_reads_tensors_on_the_cpu_and_the_device_together():
+    from ngopt.step_pipeline import all_finite
+    cpu, gpu = torch.ones(3), torch.ones(4, device=DEVICE)
+    assert all_finite([cpu, gpu, torch.ones((), dtype=torch.float64)])
+    assert not all_finite([cpu, gpu.clone().fill_(float("nan"))])
+    assert not all_finite([torch.tensor([1.0, float("inf")]), gpu])
+    assert not all_finite([cpu, gpu], [1.0, float("inf")])  # a factor that overflows the product
