@@ -20,7 +20,7 @@ import torch
 from . import fallback as fallback_rules
 from . import scratch
 from .fallback import with_weight_decay
-from .linalg import pair_gram
+from .linalg import inversion_threads, pair_gram
 from .packing import BlockPacker
 from .blocks.base import LayerCurvature
 from .rules.base import StepInputs, StepResult
@@ -78,10 +78,13 @@ def new_inverses(jobs: list, invert: Optional[Callable] = None, track_spectra: b
 
     ``invert(jobs)`` shares the inversions over ranks (data-parallel); else each block inverts its own.
     """
-    if invert is not None:
-        inverses = invert(jobs)
-    else:
-        inverses = {block: block.prepare_inverse(stats, damping, track_spectra) for block, stats, damping in jobs}
+    largest = max((t.shape[-1] for _, stats, _ in jobs for t in stats.values() if torch.is_tensor(t) and t.dim() > 1),
+                  default=1)
+    with inversion_threads(largest):
+        if invert is not None:
+            inverses = invert(jobs)
+        else:
+            inverses = {block: block.prepare_inverse(stats, damping, track_spectra) for block, stats, damping in jobs}
     if not all_finite([t for new, _ in inverses.values() for t in new.values()]):
         return None
     return inverses

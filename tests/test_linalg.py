@@ -205,3 +205,59 @@ def test_a_half_precision_factor_is_inverted_in_float32(dtype):
     expected = np.linalg.inv(values + shift * np.eye(20))
     assert result.inverse.dtype == torch.float32 and not result.used_fallback
     assert np.linalg.norm(result.inverse.numpy() - expected) / np.linalg.norm(expected) < 1e-5
+
+
+def test_inversions_run_on_a_thread_count_fitted_to_the_factor_size_and_restore_it():
+    # common practice: a factorization of a few hundred rows gains nothing from many threads
+    from ngopt import linalg
+    before = torch.get_num_threads()
+    torch.set_num_threads(4)
+    try:
+        for dim, expected in ((33, 1), (129, 1), (257, 2), (513, 4), (100_000, 4)):
+            with linalg.inversion_threads(dim):
+                assert torch.get_num_threads() == expected, dim
+            assert torch.get_num_threads() == 4
+        with pytest.raises(RuntimeError, match="inside"):
+            with linalg.inversion_threads(33):
+                raise RuntimeError("inside")
+        assert torch.get_num_threads() == 4  # restored after an error too
+    finally:
+        torch.set_num_threads(before)
+
+
+def test_the_inversion_phase_runs_under_the_fitted_thread_count():
+    from ngopt.step_pipeline import new_inverses
+    seen = []
+
+    class Block:
+        def prepare_inverse(self, statistics, damping, want_spectrum):
+            seen.append(torch.get_num_threads())
+            return {"inverse": torch.eye(2)}, {}
+
+    before = torch.get_num_threads()
+    torch.set_num_threads(4)
+    try:
+        jobs = [(Block(), {"factor_in": torch.eye(33), "factor_out": torch.eye(300)}, 1e-3),
+                (Block(), {"factor_in": torch.eye(9), "scale": 1.0}, 1e-3)]
+        assert new_inverses(jobs) is not None
+        assert seen == [2, 2] and torch.get_num_threads() == 4  # the largest factor, 300 rows, sets it
+    finally:
+        torch.set_num_threads(before)
+
+
+def test_the_thread_timing_script_marks_the_count_it_picks(capsys):
+    import runpy
+    from pathlib import Path
+    script = runpy.run_path(str(Path(__file__).resolve().parents[1] / "scripts" / "inversion_threads.py"),
+                            run_name="inversion_threads")
+    before = torch.get_num_threads()
+    torch.set_num_threads(2)  # ngopt picks 1 thread for 9 rows, 2 for 300 (at most the process's count)
+    try:
+        assert script["main"](["--dims", "9", "300", "--threads", "1", "2", "--budget", "1e3"]) == 0
+    finally:
+        torch.set_num_threads(before)
+    rows = [line for line in capsys.readouterr().out.splitlines() if line.startswith("| 9 |") or
+            line.startswith("| 300 |")]
+    assert rows[0].split("|")[2].strip().endswith("*") and rows[1].split("|")[3].strip().endswith("*")
+    with pytest.raises(SystemExit):
+        script["main"](["--threads", "0"])
