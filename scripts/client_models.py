@@ -151,9 +151,20 @@ def fallback_share(opt: ngopt.FisherDescent, model: nn.Module) -> tuple:
     return count / sum(numel.values()), fallback
 
 
-def train_side_by_side(client: Client, steps: int, seed: int, options: dict) -> dict:
+def on_device(inputs: dict, device: torch.device) -> dict:
+    return {key: value.to(device) for key, value in inputs.items()}
+
+
+def synchronize(device: torch.device) -> None:
+    """Wait for the device's queued work, so a step's time is its own (a no-op on the CPU)."""
+    if device.type == "cuda":
+        torch.cuda.synchronize(device)
+
+
+def train_side_by_side(client: Client, steps: int, seed: int, options: dict,
+                       device: torch.device = torch.device("cpu")) -> dict:
     torch.manual_seed(seed)
-    base = client.build()
+    base = client.build().to(device)
     base.train()
     models = {"fisher-descent": base, "adamw": copy.deepcopy(base)}
     with warnings.catch_warnings(record=True) as caught:
@@ -161,14 +172,16 @@ def train_side_by_side(client: Client, steps: int, seed: int, options: dict) -> 
         optimizers = {"fisher-descent": ngopt.FisherDescent(models["fisher-descent"], **options),
                       "adamw": torch.optim.AdamW(models["adamw"].parameters(), lr=1e-3)}
     generator = torch.Generator().manual_seed(seed + 1)
-    batches = [client.batch(generator) for _ in range(steps)]
+    # drawn on the CPU, so every device trains on the same batches
+    batches = [on_device(client.batch(generator), device) for _ in range(steps)]
     held_out_generator = torch.Generator().manual_seed(seed + 2)
-    held_out = [client.batch(held_out_generator) for _ in range(HELD_OUT_BATCHES)]
+    held_out = [on_device(client.batch(held_out_generator), device) for _ in range(HELD_OUT_BATCHES)]
     losses = {name: [] for name in models}
     seconds = {name: [] for name in models}
     for step, inputs in enumerate(batches):
         for name in models:  # in turns: the machine's speed drifts alike for both
             model, opt = models[name], optimizers[name]
+            synchronize(device)
             started = time.perf_counter()
             with warnings.catch_warnings(record=True) as more:
                 warnings.simplefilter("always")
@@ -176,6 +189,7 @@ def train_side_by_side(client: Client, steps: int, seed: int, options: dict) -> 
                 loss = client.loss(model, inputs)
                 loss.backward()
                 opt.step()
+            synchronize(device)
             seconds[name].append(time.perf_counter() - started)
             losses[name].append(float(loss.detach()))
             caught.extend(more)
@@ -241,6 +255,7 @@ def argument_parser() -> argparse.ArgumentParser:
                                                      "(default 1: seed 0)")
     parser.add_argument("--only", nargs="*", default=None, help="substrings of the model names to run")
     parser.add_argument("--threads", type=int, default=None, help="torch threads (default: torch's)")
+    parser.add_argument("--device", default="cpu", help="where the models train, e.g. cuda (default cpu)")
     parser.add_argument("--json", default=None, help="also write the rows to this file")
     parser.add_argument("--option", action="append", help="a FisherDescent option KEY=VALUE (repeatable)")
     return parser
@@ -256,6 +271,12 @@ def main(argv=None) -> int:
     if args.threads:
         torch.set_num_threads(args.threads)
     try:
+        device = torch.device(args.device)
+    except RuntimeError as error:
+        parser.error(f"--device: {error}")
+    if device.type == "cuda" and not torch.cuda.is_available():
+        parser.error("--device: cuda asked for, but torch sees no CUDA device")
+    try:
         chosen = clients()
     except ImportError as error:
         print(f"needs transformers and timm ({error}); see this script's docstring", file=sys.stderr)
@@ -264,7 +285,7 @@ def main(argv=None) -> int:
         chosen = [c for c in chosen if any(s in c.name for s in args.only)]
     rows = []
     for client, seed in ((client, seed) for client in chosen for seed in seeds):
-        row = train_side_by_side(client, args.steps, seed, parse_options(args.option or []))
+        row = train_side_by_side(client, args.steps, seed, parse_options(args.option or []), device)
         rows.append(row)
         print(f"{row['model']} (seed {seed}): fallback {100 * row['fallback_share']:.2f}%, "
               f"losses {row['first_loss']:.3f} -> fisher-descent {row['fisher_descent_loss']:.3f} / "
@@ -276,8 +297,9 @@ def main(argv=None) -> int:
         for message in row["warnings"]:
             print(f"    warning: {message}")
     print()
+    where = torch.cuda.get_device_name(device) if device.type == "cuda" else f"{torch.get_num_threads()} threads"
     print(f"torch {torch.__version__}, {args.steps} steps, seeds {', '.join(map(str, seeds))}, "
-          f"{torch.get_num_threads()} threads, options {args.option or 'defaults'}")
+          f"{where}, options {args.option or 'defaults'}")
     print(table(rows))
     if len(seeds) > 1:
         print()

@@ -103,3 +103,19 @@ def test_the_held_out_loss_is_the_mean_over_its_own_batches():
     assert row["fisher_descent_held_out"] == pytest.approx(sum(fisher_descent) / batches, rel=1e-12)
     assert row["adamw_held_out"] == pytest.approx(sum(adamw) / batches, rel=1e-12)
     assert len(set(fisher_descent)) == batches  # distinct batches, not one batch eight times
+
+
+def test_a_bad_device_stops_the_script_before_any_model_is_built(capsys):
+    with pytest.raises(SystemExit) as stopped:
+        SCRIPT["main"](["--device", "nowhere"])
+    assert stopped.value.code == 2 and "--device" in capsys.readouterr().err
+
+
+@pytest.mark.skipif(not torch.cuda.is_available(), reason="no CUDA device")
+def test_side_by_side_on_the_device_trains_on_the_cpus_batches():
+    client = small_client()
+    on_cpu = SCRIPT["train_side_by_side"](client, steps=6, seed=0, options={})
+    on_gpu = SCRIPT["train_side_by_side"](client, steps=6, seed=0, options={}, device=torch.device("cuda"))
+    # the same weights and batches: the first loss agrees to float32 rounding (common practice)
+    assert on_gpu["first_loss"] == pytest.approx(on_cpu["first_loss"], rel=1e-5)
+    assert on_gpu["skipped"] == 0 and on_gpu["fisher_descent_loss"] < on_gpu["first_loss"]
