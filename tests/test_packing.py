@@ -36,9 +36,9 @@ class SmallNet(nn.Module):
         return self.out(torch.tanh(self.second(torch.tanh(self.first(h)))))
 
 
-def _setup(packed: bool, frozen_bias: bool = False, groups: bool = False):
+def _setup(packed: bool, frozen_bias: bool = False, groups: bool = False, device: str = "cpu"):
     torch.manual_seed(0)
-    model = SmallNet(frozen_bias).to(DTYPE)
+    model = SmallNet(frozen_bias).to(DTYPE).to(device)
     param_groups = None
     if groups:  # two groups with different lr and weight decay: a pack of three, and one block on its own
         param_groups = [{"params": [p for layer in (model.conv, model.first, model.second)
@@ -60,7 +60,9 @@ def _batches(count, rows=16):
 
 
 def _train(model, opt, batches):
+    device = next(model.parameters()).device
     for x, y in batches:
+        x, y = x.to(device), y.to(device)
         opt.zero_grad()
         nn.CrossEntropyLoss()(model(x), y).backward()
         opt.step()
@@ -80,11 +82,11 @@ def _reloaded(model, opt):
 
 def _assert_same(model, opt, reference, reference_opt):
     for (name, p), q in zip(model.named_parameters(), reference.parameters()):
-        torch.testing.assert_close(p, q, rtol=1e-10, atol=1e-12, msg=name)
+        torch.testing.assert_close(p.cpu(), q.cpu(), rtol=1e-10, atol=1e-12, msg=name)
     for block in opt.blocks.values():
         other = reference_opt.blocks[block.layer.name]
         for key in ("momentum_buffer", "inverse_in", "inverse_out", "factor_in", "factor_out"):
-            torch.testing.assert_close(block.state[key], other.state[key], rtol=1e-10, atol=1e-12,
+            torch.testing.assert_close(block.state[key].cpu(), other.state[key].cpu(), rtol=1e-10, atol=1e-12,
                                        msg=f"{block.layer.name} {key}")
 
 
@@ -103,6 +105,19 @@ def test_packed_steps_match_the_per_block_steps(frozen_bias, groups):
     assert any(block.state["momentum_buffer"]._base is not None for block in opt.blocks.values())
     if frozen_bias:
         assert torch.equal(model.second.bias, reference.second.bias)  # never written, packed or not
+    _assert_same(model, opt, reference, reference_opt)
+
+
+@pytest.mark.skipif(not torch.cuda.is_available(), reason="no CUDA device")
+def test_packed_steps_on_the_device_match_the_per_block_steps_on_the_cpu():
+    # float64 on both: the device's kernels sum in other orders, well inside the same 1e-10
+    model, opt = _setup(True, device="cuda")
+    reference, reference_opt = _setup(False)
+    batches = _batches(20)
+    _train(model, opt, batches)
+    _train(reference, reference_opt, batches)
+    assert opt._packer._packs and model.first.weight.device.type == "cuda"
+    assert all(block.state["momentum_buffer"].device.type == "cuda" for block in opt.blocks.values())
     _assert_same(model, opt, reference, reference_opt)
 
 
