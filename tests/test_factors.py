@@ -88,6 +88,18 @@ def test_an_indefinite_block_takes_its_nearest_positive_semi_definite_matrix():
     np.testing.assert_allclose(inverse[1].numpy(), np.linalg.inv(good + 0.1 * np.eye(3)), rtol=1e-12, atol=1e-14)
 
 
+def test_a_block_with_an_exactly_zero_pivot_is_repaired_too():
+    # diag(-0.1, 1, 2) shifted by 0.1 has an exact zero pivot: Cholesky stops there, and the batched
+    # inverse must not read that factor (it refuses a zero diagonal); the repair clips -0.1 to 0 (Higham 1988).
+    form = BlockDiagonal(6, 3)
+    good = np.diag([1.0, 2.0, 3.0])
+    factor = torch.tensor(np.stack([good, np.diag([-0.1, 1.0, 2.0])]))
+    inverse, _, fallback = form.inverse(factor, 0.1, want_spectrum=False)
+    assert fallback
+    np.testing.assert_allclose(inverse[1].numpy(), np.diag([1 / 0.1, 1 / 1.1, 1 / 2.1]), rtol=1e-12)
+    np.testing.assert_allclose(inverse[0].numpy(), np.linalg.inv(good + 0.1 * np.eye(3)), rtol=1e-12, atol=1e-14)
+
+
 def single_layer_problem(d_in=9, d_out=4, rows=64, seed=2):
     generator = torch.Generator().manual_seed(seed)
     x = torch.randn(rows, d_in, generator=generator, dtype=DTYPE) @ torch.randn(d_in, d_in, generator=generator,
