@@ -79,8 +79,9 @@ def inversion_threads(largest_dim: int) -> Iterator[None]:
 
     A factorization of a few hundred rows gains nothing from more threads and can lose badly to waking
     them: on a 16-core machine beside a GPU, at torch's default of one thread per core, a 257-row float64
-    Cholesky inverse took 96 ms against 1.3 on one thread, while from about 500 rows on more threads pay
-    (513 rows: 3.7 ms on 8 threads, 6.9 on one; ``python scripts/inversion_threads.py --cuda``).  The count
+    Cholesky inverse took 95-96 ms against 0.7-1.3 on one thread (two runs), while from about 500 rows on
+    more threads pay (513 rows: 2.9-3.7 ms on 8 threads, 6.4-6.9 on one;
+    ``python scripts/inversion_threads.py --cuda``).  The count
     is the process's (``torch.set_num_threads``): other Python threads running torch CPU work at the same
     moment see it too.
     """

@@ -19,7 +19,8 @@ the training batches were: batch norm on each batch's own moments, dropout on). 
 train through ``labels=`` (the loss computed inside the model), as their own training loops do.
 Training batches of 8-16 examples make noisy measures, so ``--seeds 0,1,2`` repeats every model from
 other initial weights and data and adds a summary: on how many seeds fisher-descent ends below AdamW by
-each measure.
+each measure.  ``--device cuda`` trains both copies on a GPU, from the same batches (drawn on the CPU),
+with each step timed after the device has finished it.
 """
 from __future__ import annotations
 
