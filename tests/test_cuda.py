@@ -1,5 +1,6 @@
-"""On a CUDA device: training, a checkpoint round trip, autocast with loss scaling, the sampled Fisher's
-generator, and data parallelism with one process.  Skipped where no CUDA device is present.
+"""On a CUDA device: training (parameters on either fallback rule too), a checkpoint round trip, autocast
+with loss scaling, the sampled Fisher's generator, data parallelism with one process, and the finiteness
+check over CPU and device tensors together.  Skipped where no CUDA device is present.
 
 References: the same model trained on the CPU in float64 (the curvature of one linear layer with
 squared error is exact, Martens & Grosse 2015, so the CUDA step must land where the CPU step does, to
