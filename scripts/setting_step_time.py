@@ -1,4 +1,5 @@
-"""Mean step time of FisherDescent under several settings, side by side on the built-in tasks' networks.
+"""Mean step time of FisherDescent under several settings, side by side on the benchmark's networks
+(built-in and held-out tasks).
 
 Each setting trains its own copy of a task's network (same initial weights, same random minibatches)
 in rounds of 20 steps that take turns, so the machine's drift falls alike on all; the mean step
@@ -22,13 +23,14 @@ import torch
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))  # the checkout, not an install
 import ngopt  # noqa: E402
 from benchmarks.cli import parse_options  # noqa: E402
+from benchmarks.held_out import HELD_OUT_TASKS  # noqa: E402
 from benchmarks.tasks import TASKS  # noqa: E402
 
 ROUND = 20
 
 
 def mean_step_ms(task_name: str, settings: dict, steps: int) -> dict:
-    task = TASKS[task_name]
+    task = {**TASKS, **HELD_OUT_TASKS}[task_name]
     data = task.load_data()
     runs = {}
     for name, options in settings.items():

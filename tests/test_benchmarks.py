@@ -729,3 +729,12 @@ def test_curvature_free_ratio_and_its_line_say_whether_cheaper_curvature_could_l
     assert row[headers.index(f"time {HEADLINE}/best, curvature work free")] == "1.50"
     unreached = entry(None)
     assert unreached["comparison"]["curvature_free_time"] is None and curvature_free_line(unreached) is None
+
+
+def test_setting_step_time_times_every_setting_on_built_in_and_held_out_tasks():
+    import runpy
+    script = runpy.run_path(str(REPOSITORY / "scripts" / "setting_step_time.py"), run_name="setting_step_time")
+    settings = {"defaults": {}, "rarer": {"stats_interval": 10, "inverse_interval": 20}}
+    for task in ("ill_conditioned_regression", "friedman1_deep_mlp"):  # built-in, held-out
+        means = script["mean_step_ms"](task, settings, 20)
+        assert set(means) == {"defaults", "rarer"} and all(value > 0 for value in means.values())
