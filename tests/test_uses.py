@@ -144,6 +144,36 @@ def test_a_packed_weight_applied_in_slices_is_one_block_with_the_exact_diagonal(
     torch.testing.assert_close(opt.blocks["packed"].state["fisher_diagonal"], expected, rtol=1e-9, atol=1e-15)
 
 
+def test_a_view_kept_from_before_the_forward_is_a_use_of_its_parameter():
+    # A module that keeps W[:4] from its construction: the view was made outside the recording (as every
+    # slice of a parameter is under torch before 2.3), so it is found through its base; the block is the
+    # one that slicing inside the forward gives (the exact diagonal, checked against torch.func above).
+    class Kept(nn.Module):
+        def __init__(self, keep: bool):
+            super().__init__()
+            self.packed = nn.Parameter(torch.randn(8, 5, dtype=DTYPE) / 3)
+            self.out = nn.Linear(4, 3).to(DTYPE)
+            self.keep = keep
+            if keep:
+                self.top = self.packed[:4]  # a plain attribute: a view, not a parameter
+
+        def forward(self, x):
+            top = self.top if self.keep else self.packed[:4]
+            return self.out(torch.tanh(F.linear(x, top)))
+
+    x, y = batch()
+    diagonals = []
+    for keep in (True, False):
+        torch.manual_seed(3)
+        model = Kept(keep)
+        opt = ngopt.FisherDescent(model, **exact_settings(structure="diag", lr=0.0))
+        train(model, opt, x, y, steps=2)
+        assert opt.curvature_assignment()["packed"].block == "packed"
+        diagonals.append(opt.blocks["packed"].state["fisher_diagonal"])
+    assert diagonals[0][4:].abs().max() == 0  # rows 4..7 are never applied
+    torch.testing.assert_close(diagonals[0], diagonals[1], rtol=1e-12, atol=0)
+
+
 @pytest.mark.parametrize("layout", ["sequence-first", "flattened"])
 def test_examples_are_found_in_sequence_first_and_flattened_rows(layout):
     # The exact diagonal sums each example's positions before squaring, so it is right only if the

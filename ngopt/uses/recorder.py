@@ -118,7 +118,23 @@ class UseRecorder(TorchFunctionMode):
         entry = self.views.get(id(tensor))
         if entry is not None and entry[0] is tensor:
             return entry[1]
-        return None
+        return self._view_made_elsewhere(tensor)
+
+    def _view_made_elsewhere(self, tensor: torch.Tensor) -> Optional[ParamView]:
+        """A view of a parameter this mode did not see made: one taken before the forward (kept by a
+        module), or a slice of a parameter, which torch before 2.3 does not pass through the mode."""
+        base = tensor._base
+        if base is None or not tensor.requires_grad:
+            return None
+        source = self.params.get(id(base))
+        if source is None or source.param is not base:
+            return None
+        found = view_from_storage(tensor, source)
+        if found is None:
+            return None
+        found = simplified(found)
+        self.views[id(tensor)] = (tensor, found)
+        return found
 
     def record(self, use, output: torch.Tensor) -> torch.Tensor:
         """Hand one use to the capture; returns what the network goes on with."""
