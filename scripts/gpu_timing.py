@@ -9,6 +9,11 @@ for ``--steps`` steps each on the device, synchronizing around every step, and p
 
     python scripts/gpu_timing.py                    # all tasks, 60 timed steps each
     python scripts/gpu_timing.py --tasks digits_mlp --steps 30 --option inverse_schedule=staggered
+    python scripts/gpu_timing.py --parts            # also where fisher-descent's timed steps went
+
+``--parts`` adds, per task, fisher-descent's own time split over the timed steps (``diagnostics()["time"]``,
+milliseconds per step; host-side times, so on a GPU a part that waits for the device also carries the
+device work queued before it).
 """
 from __future__ import annotations
 
@@ -42,21 +47,41 @@ def problems(names):
         yield name, task.build_model, task.make_loss, split.train_x, split.train_y, task.batch_size
 
 
+def synchronize(device: torch.device) -> None:
+    if device.type == "cuda":
+        torch.cuda.synchronize(device)
+
+
 def timed(model, opt, loss_fn, x, y, batch, steps, warmup, device):
+    """``(mean step s, slowest step s, peak device bytes or None on the CPU, time split or None)`` over the
+    ``steps`` steps after ``warmup``; the split (fisher-descent only) is ms per timed step by part."""
     times = []
-    torch.cuda.reset_peak_memory_stats(device)
+    if device.type == "cuda":
+        torch.cuda.reset_peak_memory_stats(device)
+    before = None
     for step in range(warmup + steps):
+        if step == warmup and isinstance(opt, ngopt.FisherDescent):
+            before = dict(opt.diagnostics()["time"])
         start = (step * batch) % max(1, x.shape[0] - batch)
         inputs, targets = x[start:start + batch], y[start:start + batch]
-        torch.cuda.synchronize(device)
+        synchronize(device)
         began = time.perf_counter()
         opt.zero_grad()
         loss_fn(model(inputs), targets).backward()
         opt.step()
-        torch.cuda.synchronize(device)
+        synchronize(device)
         if step >= warmup:
             times.append(time.perf_counter() - began)
-    return statistics.mean(times), max(times), torch.cuda.max_memory_allocated(device)
+    split = None
+    if before is not None:
+        after = opt.diagnostics()["time"]
+        split = {part: 1e3 * (after[part] - before.get(part, 0.0)) / steps for part in after}
+    peak = torch.cuda.max_memory_allocated(device) if device.type == "cuda" else None
+    return statistics.mean(times), max(times), peak, split
+
+
+def split_line(name: str, split: dict) -> str:
+    return f"  {name}, fisher-descent ms per step: " + ", ".join(f"{part} {ms:.2f}" for part, ms in split.items())
 
 
 def main(argv=None) -> int:
@@ -66,6 +91,7 @@ def main(argv=None) -> int:
     parser.add_argument("--steps", type=int, default=60)
     parser.add_argument("--warmup", type=int, default=5)
     parser.add_argument("--option", action="append", help="a FisherDescent option KEY=VALUE (repeatable)")
+    parser.add_argument("--parts", action="store_true", help="also print fisher-descent's time split per task")
     args = parser.parse_args(argv)
     if not torch.cuda.is_available():
         print("no CUDA device: this script times ngopt on a GPU", file=sys.stderr)
@@ -75,6 +101,7 @@ def main(argv=None) -> int:
           f"{args.warmup}, options {args.option or 'defaults'}")
     print("| task | AdamW ms | fisher-descent ms | ratio | its slowest ms | AdamW MB | fisher-descent MB |")
     print("|---|---|---|---|---|---|---|")
+    splits = []
     for name, build, make_loss, x, y, batch in problems(args.tasks):
         torch.manual_seed(0)
         base = build().to(device)
@@ -86,9 +113,13 @@ def main(argv=None) -> int:
             opt = torch.optim.AdamW(model.parameters(), lr=1e-3) if which == "adamw" else \
                 ngopt.FisherDescent(model, loss_fn, **parse_options(args.option or []))
             results[which] = timed(model, opt, loss_fn, x, y, batch, args.steps, args.warmup, device)
-        (a_mean, _, a_mem), (n_mean, n_slow, n_mem) = results["adamw"], results["fisher-descent"]
+        (a_mean, _, a_mem, _), (n_mean, n_slow, n_mem, split) = results["adamw"], results["fisher-descent"]
         print(f"| {name} | {1e3 * a_mean:.2f} | {1e3 * n_mean:.2f} | {n_mean / a_mean:.2f} | {1e3 * n_slow:.1f} | "
               f"{a_mem / 2 ** 20:.0f} | {n_mem / 2 ** 20:.0f} |", flush=True)
+        splits.append(split_line(name, split))
+    if args.parts:
+        print()
+        print("\n".join(splits))
     return 0
 
 

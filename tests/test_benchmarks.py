@@ -738,3 +738,26 @@ def test_setting_step_time_times_every_setting_on_built_in_and_held_out_tasks():
     for task in ("ill_conditioned_regression", "friedman1_deep_mlp"):  # built-in, held-out
         means = script["mean_step_ms"](task, settings, 20)
         assert set(means) == {"defaults", "rarer"} and all(value > 0 for value in means.values())
+
+
+def test_gpu_timing_splits_fisher_descents_timed_steps_and_refuses_without_a_gpu(capsys):
+    # scripts/gpu_timing.py runs only with CUDA; its timing core runs on any device.
+    import runpy
+    import ngopt
+    script = runpy.run_path(str(REPOSITORY / "scripts" / "gpu_timing.py"), run_name="gpu_timing")
+    task = TASKS["ill_conditioned_regression"]
+    data = task.load_data()
+    torch.manual_seed(0)
+    model, loss_fn = task.build_model(), task.make_loss()
+    opt = ngopt.FisherDescent(model, loss_fn)
+    mean, slowest, peak, split = script["timed"](model, opt, loss_fn, data.train_x, data.train_y, task.batch_size,
+                                                 steps=10, warmup=3, device=torch.device("cpu"))
+    assert 0 < mean <= slowest and peak is None
+    # the split covers the timed steps only: its parts add up to no more than the measured mean step
+    assert split["step_total"] > 0 and split["step_total"] <= 1e3 * mean * 1.01
+    assert "inversion" in script["split_line"]("t", split)
+    adam = torch.optim.AdamW(model.parameters(), lr=1e-3)
+    assert script["timed"](model, adam, loss_fn, data.train_x, data.train_y, task.batch_size, steps=2, warmup=1,
+                           device=torch.device("cpu"))[3] is None
+    if not torch.cuda.is_available():
+        assert script["main"]([]) == 2 and "no CUDA device" in capsys.readouterr().err
