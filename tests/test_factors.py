@@ -309,3 +309,21 @@ def test_block_diagonal_single_precision_inverse_matches_float64_within_float32_
     native, _, _ = form.inverse(factor.float(), shift, want_spectrum=False)  # float32 statistics themselves
     assert native.dtype == torch.float32
     assert float((native.double() - double).norm() / double.norm()) < 1e-5
+
+
+def test_block_diagonal_inverse_of_rank_deficient_blocks_at_the_bottom_of_the_damping_range():
+    # Ten rows over blocks of 16: every block is singular, so the shift alone (1e-3, the factored shift
+    # sqrt(lambda) at lambda = 1e-6) keeps them invertible, at condition numbers near 5e4. In float64 the
+    # Cholesky inverse is then within about cond * 1e-16 of numpy's LU inverse (Higham, Accuracy and Stability
+    # of Numerical Algorithms, 2nd ed., ch. 10 and 14): 1e-8 relative leaves room.
+    form = BlockDiagonal(40, 16)
+    rows = random_rows(10, 40)
+    factor = form.zeros(rows)
+    form.add_moment(factor, rows)
+    shift = 1e-3
+    inverse, _, fallback = form.inverse(factor, shift, want_spectrum=False)
+    assert not fallback and inverse.dtype == torch.float64
+    blocks = diagonal_blocks(rows.numpy().T @ rows.numpy(), form.block)
+    assert max(np.linalg.cond(b + shift * np.eye(len(b))) for b in blocks) > 1e4
+    expected = scipy.linalg.block_diag(*[np.linalg.inv(b + shift * np.eye(len(b))) for b in blocks])
+    np.testing.assert_allclose(form.dense(inverse).numpy(), expected, rtol=1e-8, atol=1e-8 * np.abs(expected).max())
