@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import math
 from collections import ChainMap
+from contextlib import nullcontext
 from dataclasses import dataclass, field
 from typing import Callable, Dict, List, Optional, Sequence
 
@@ -78,9 +79,10 @@ def new_inverses(jobs: list, invert: Optional[Callable] = None, track_spectra: b
 
     ``invert(jobs)`` shares the inversions over ranks (data-parallel); else each block inverts its own.
     """
-    largest = max((t.shape[-1] for _, stats, _ in jobs for t in stats.values() if torch.is_tensor(t) and t.dim() > 1),
-                  default=1)
-    with inversion_threads(largest):
+    # Most steps invert nothing: the thread count is then left alone.
+    threads = inversion_threads(max((t.shape[-1] for _, stats, _ in jobs for t in stats.values()
+                                     if torch.is_tensor(t) and t.dim() > 1), default=1)) if jobs else nullcontext()
+    with threads:
         if invert is not None:
             inverses = invert(jobs)
         else:

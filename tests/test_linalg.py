@@ -261,3 +261,18 @@ def test_the_thread_timing_script_marks_the_count_it_picks(capsys):
     assert rows[0].split("|")[2].strip().endswith("*") and rows[1].split("|")[3].strip().endswith("*")
     with pytest.raises(SystemExit):
         script["main"](["--threads", "0"])
+
+
+def test_a_step_that_inverts_nothing_leaves_the_thread_count_alone(monkeypatch):
+    # Most steps have no inversion job: no change of the process's thread count on them.
+    from ngopt.step_pipeline import new_inverses
+    before = torch.get_num_threads()
+    torch.set_num_threads(4)  # above what an empty phase would pick (1), on any machine
+    calls = []
+    try:
+        with monkeypatch.context() as patched:
+            patched.setattr(torch, "set_num_threads", lambda n: calls.append(n))
+            assert new_inverses([]) == {}
+    finally:
+        torch.set_num_threads(before)
+    assert calls == []
