@@ -31,6 +31,7 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 import ngopt  # noqa: E402
 from benchmarks.tasks import TASKS  # noqa: E402
 from benchmarks.cli import parse_options  # noqa: E402
+from scripts.client_models import synchronize  # noqa: E402
 from scripts.large_layers import ResNet18  # noqa: E402
 
 
@@ -45,11 +46,6 @@ def problems(names):
         task = TASKS[name]
         split = task.load_data()
         yield name, task.build_model, task.make_loss, split.train_x, split.train_y, task.batch_size
-
-
-def synchronize(device: torch.device) -> None:
-    if device.type == "cuda":
-        torch.cuda.synchronize(device)
 
 
 def timed(model, opt, loss_fn, x, y, batch, steps, warmup, device):
