@@ -8,6 +8,7 @@ import gc
 import json
 import shlex
 import sys
+import time
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Optional
@@ -278,6 +279,10 @@ def run_tasks(config: Config, argv: list[str]) -> dict:
         attach_for = diagnostics_attacher(config.out / "diagnostics", config.diagnostics_every)
     settings = settings_of(config, argv)
     settings["load_average_start"] = load_average()
+    started = time.perf_counter()
+
+    def note_wall_time() -> None:  # everything since the start: set-up, training, evaluation, files
+        settings["wall_seconds"] = round(time.perf_counter() - started, 1)
     total = len(config.tasks) * planned_runs(config.specs, config.grid_size, config.seeds)
     outputs = ProgressiveOutputs(config.out, machine_info(), settings, total)
     try:
@@ -289,15 +294,18 @@ def run_tasks(config: Config, argv: list[str]) -> dict:
             print("\n" + report.task_block(results.task_entry(outcome), threads=config.threads) + "\n",
                   flush=True)
     except KeyboardInterrupt:
+        note_wall_time()
         outputs.stopped("interrupted by Ctrl-C / SIGINT")
         print(report.console_summary(outputs.results(), with_tasks=False), flush=True)
         print(closing_message(config, outputs, interrupted=True), flush=True)
         raise
     except Exception as error:
+        note_wall_time()
         outputs.stopped(f"error: {type(error).__name__}: {error}")
         print(closing_message(config, outputs, interrupted=True), flush=True)
         raise
     settings["load_average_end"] = load_average()
+    note_wall_time()
     results_dict = outputs.finished()
     print(report.console_summary(results_dict, with_tasks=False), flush=True)
     if config.out is not None and config.profile and HEADLINE in {spec.name for spec in config.specs}:

@@ -259,6 +259,7 @@ def console_summary(results: dict, with_tasks: bool = True) -> str:
                       + HELD_OUT_NOTE)
     if results["tasks"]:
         blocks.append(verdict_text(results))
+    blocks += wall_time_lines(results)
     note = stop_note(results)
     if note:
         blocks.append(note)
@@ -277,6 +278,7 @@ def settings_lines(results: dict) -> list[str]:
         f"{machine['python']}, commit {machine.get('git_commit')}",
         f"- load average (1 min) at start and end: {settings.get('load_average_start')} / "
         f"{settings.get('load_average_end')} (other processes on the machine inflate wall-clock times)",
+        *("- " + line for line in wall_time_lines(results)),
         "- optimizers: " + "; ".join(f"{name} = {label}" for name, label in
                                      settings["optimizer_labels"].items())
         + "".join(f"; skipped: {name} ({reason})" for name, reason in
@@ -295,6 +297,25 @@ def settings_lines(results: dict) -> list[str]:
     if any(entry["comparison"]["step_time_flop_estimate"] is not None for entry in results["tasks"]):
         lines.append(f"- step-time ratios: {FLOP_ESTIMATE_TEXT}")
     return lines
+
+
+def format_duration(seconds: float) -> str:
+    """``"6 min 17 s"``; under a minute ``"42.4 s"``."""
+    if seconds < 59.95:
+        return f"{seconds:.1f} s"
+    minutes, rest = divmod(round(seconds), 60)
+    return f"{minutes} min {rest} s"
+
+
+def wall_time_lines(results: dict) -> list[str]:
+    """How long the whole benchmark ran and how much of it the timed training steps took."""
+    wall = results["settings"].get("wall_seconds")
+    if wall is None:
+        return []
+    training = sum(run.get("train_seconds") or 0.0 for entry in results["tasks"] for run in entry["runs"])
+    return [f"the benchmark ran {format_duration(wall)} of wall-clock time in all, of which the timed training steps "
+            f"of all runs took {format_duration(training)}; the rest is the evaluations of the training loss, "
+            "building the models and data, and writing the files"]
 
 
 def markdown_report(results: dict, plot_files: dict[str, str]) -> str:

@@ -27,6 +27,7 @@ from benchmarks.comparison import bounded_ratio, step_time_flop_estimate
 from benchmarks.evaluation import EvaluationSchedule
 from benchmarks.optimizers import (BASELINES, DEFAULT_OPTIMIZERS, HEADLINE, OPTIMIZERS,
                                    natural_gradient_available, resolve_optimizers)
+from benchmarks.report import format_duration
 from benchmarks.task_sets import resolve_tasks
 from benchmarks.tasks import TASKS
 from benchmarks.training import minibatches, train_run
@@ -122,6 +123,25 @@ def test_time_split_of_natural_gradient_adds_up(smoke_run):
                 assert parts == pytest.approx(split["train_seconds"], rel=1e-9)
                 assert split["train_seconds"] == pytest.approx(run["train_seconds"])
                 assert split["rest"] > 0  # the model's own forward and backward take time
+
+
+def test_whole_benchmark_wall_time_is_recorded_and_reported(smoke_run):
+    out, results = smoke_run
+    wall = results["settings"]["wall_seconds"]
+    training = sum(run["train_seconds"] for task in results["tasks"] for run in task["runs"])
+    # The wall clock covers every run's timed steps and more (evaluations, set-up); rounded to 0.1 s.
+    assert wall >= training - 0.05 and wall > 0
+    report = (out / "report.md").read_text()
+    assert f"- the benchmark ran {format_duration(wall)} of wall-clock time in all" in report
+    assert format_duration(training) in report
+
+
+def test_format_duration():
+    assert format_duration(42.44) == "42.4 s"
+    assert format_duration(0.04) == "0.0 s"
+    assert format_duration(59.96) == "1 min 0 s"
+    assert format_duration(377.25) == "6 min 17 s"
+    assert format_duration(60) == "1 min 0 s"
 
 
 def test_files_written(smoke_run):
@@ -484,6 +504,7 @@ def test_an_interrupted_benchmark_keeps_its_finished_runs(tmp_path, monkeypatch)
     assert curve_runs == {("sgd", grids["sgd"][0]), ("adam", grids["adam"][0])}
     report = (tmp_path / "report.md").read_text()
     assert "This benchmark is unfinished (interrupted" in report and "2 of 6 runs finished" in report
+    assert results["settings"]["wall_seconds"] > 0 and "- the benchmark ran " in report  # up to the stop
     assert (tmp_path / "loss_digits_mlp.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert not list(tmp_path.glob(".*partial"))  # no temporary file left behind
 
