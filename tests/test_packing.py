@@ -145,6 +145,27 @@ def test_a_loaded_state_and_a_skipped_step_keep_the_packed_path_exact():
     _assert_same(model, opt, reference, reference_opt)
 
 
+@pytest.mark.parametrize("packed", [True, False], ids=["packed", "per-block"])
+@pytest.mark.parametrize("value", [float("nan"), float("inf")])
+def test_a_non_finite_gradient_gives_no_proposals(packed, value):
+    # The proposals' dot products are the first place a non-finite gradient shows on a step without
+    # statistics: proposals() returns None there, before any rule computes with them.
+    from ngopt.step_pipeline import proposals
+
+    model, opt = _setup(packed)
+    _train(model, opt, _batches(4))
+    blocks = list(opt.blocks.values())
+
+    def propose():
+        return proposals(blocks, opt.param_groups, opt.group_index, {}, {}, opt.steps_taken, packer=opt._packer)
+
+    inputs, missing = propose()
+    assert inputs is not None and missing == [] and len(inputs.dots) == len(blocks)
+    assert bool(inputs.packs) == packed
+    model.second.weight.grad[1, 2] = value
+    assert propose() == (None, [])
+
+
 class _Layer:
     def __init__(self, out_dim, in_dim):
         self.out_dim, self.in_dim = out_dim, in_dim
