@@ -28,18 +28,26 @@ from .rules.base import StepInputs, StepResult
 
 
 def all_finite(tensors: Sequence[torch.Tensor], factors: Optional[List[float]] = None) -> bool:
-    """Whether every entry of every tensor (times its factor, when given) is finite: one fused reduction
-    and one host sync per device (a model on a GPU still keeps a few CPU tensors, e.g. the Adam
-    fallback's step counter)."""
+    """Whether every entry of every tensor (times its factor, when given, in the tensor's dtype) is finite:
+    one fused reduction and one host sync per device (a model on a GPU still keeps a few CPU tensors, e.g.
+    the Adam fallback's step counter).
+
+    Each tensor's norm, computed in its dtype, bounds every entry; the norms come to the host as floats, and
+    ``norm * factor`` must stay within the dtype's largest finite value (NaN and Inf fail the comparison).
+    """
     if not tensors:
         return True
-    norms = torch._foreach_norm(list(tensors))
-    if factors is not None:
-        norms = torch._foreach_mul(norms, factors)
-    by_device: Dict[torch.device, List[torch.Tensor]] = {}
-    for norm in norms:
-        by_device.setdefault(norm.device, []).append(norm)
-    return all(bool(torch.isfinite(torch.stack(group)).all()) for group in by_device.values())
+    tensors = list(tensors)
+    norms = torch._foreach_norm(tensors)
+    factors = [1.0] * len(tensors) if factors is None else factors
+    by_device: Dict[torch.device, List[int]] = {}
+    for index, norm in enumerate(norms):
+        by_device.setdefault(norm.device, []).append(index)
+    for indices in by_device.values():
+        values = torch.stack([norms[i] for i in indices]).tolist()
+        if not all(value * abs(factors[i]) <= torch.finfo(tensors[i].dtype).max for value, i in zip(values, indices)):
+            return False
+    return True
 
 
 def finite_numbers(values: dict) -> bool:
