@@ -30,27 +30,36 @@ ROUND = 20
 
 
 def mean_step_ms(task_name: str, settings: dict, steps: int) -> dict:
+    makers = {name: (lambda model, loss_fn, options=options: ngopt.FisherDescent(model, loss_fn, **options))
+              for name, options in settings.items()}
+    return side_by_side(task_name, makers, steps)[0]
+
+
+def side_by_side(task_name: str, makers: dict, steps: int) -> tuple:
+    """``({name: mean step in ms}, {name: trained model})`` for ``makers = {name: make(model, loss_fn) ->
+    optimizer}``, each on its own copy of the task's network (same initial weights) in turns."""
     task = {**TASKS, **HELD_OUT_TASKS}[task_name]
     data = task.load_data()
     runs = {}
-    for name, options in settings.items():
+    for name, make in makers.items():
         torch.manual_seed(0)
         model, loss_fn = task.build_model(), task.make_loss()
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            runs[name] = (model, loss_fn, ngopt.FisherDescent(model, loss_fn, **options), [])
+            runs[name] = (model, loss_fn, make(model, loss_fn), [])
     take_turns(task, data, runs, steps)
-    return {name: 1e3 * statistics.mean(run[3][5:]) for name, run in runs.items()}  # first steps: warm-up
+    means = {name: 1e3 * statistics.mean(run[3][5:]) for name, run in runs.items()}  # first steps: warm-up
+    return means, {name: run[0] for name, run in runs.items()}
 
 
 def take_turns(task, data, runs: dict, steps: int) -> None:
     """Train every ``(model, loss_fn, optimizer, times)`` of ``runs`` on the same random minibatches, in
     rounds of :data:`ROUND` steps that take turns; each step's seconds are appended to its ``times``."""
-    generator = torch.Generator().manual_seed(0)
+    generators = {name: torch.Generator().manual_seed(0) for name in runs}  # one each: the same minibatches
     for _ in range(max(1, steps // ROUND)):
-        for model, loss_fn, opt, times in runs.values():
+        for name, (model, loss_fn, opt, times) in runs.items():
             for _ in range(ROUND):
-                rows = torch.randint(0, len(data.train_x), (task.batch_size,), generator=generator)
+                rows = torch.randint(0, len(data.train_x), (task.batch_size,), generator=generators[name])
                 started = time.perf_counter()
                 opt.zero_grad()
                 loss_fn(model(data.train_x[rows]), data.train_y[rows]).backward()

@@ -761,6 +761,47 @@ def test_setting_step_time_times_every_setting_on_built_in_and_held_out_tasks():
         assert set(means) == {"defaults", "rarer"} and all(value > 0 for value in means.values())
 
 
+def test_settings_compared_side_by_side_see_the_same_minibatches():
+    # Two runs of the same setting must end with equal weights: same start, same batches, same arithmetic.
+    import runpy
+    script = runpy.run_path(str(REPOSITORY / "scripts" / "setting_step_time.py"), run_name="setting_step_time")
+    import ngopt
+    task = TASKS["ill_conditioned_regression"]
+    runs = {}
+    for name in ("one", "two"):
+        torch.manual_seed(0)
+        model, loss_fn = task.build_model(), task.make_loss()
+        runs[name] = (model, loss_fn, ngopt.FisherDescent(model, loss_fn, seed=0), [])
+    script["take_turns"](task, task.load_data(), runs, 40)
+    assert all(len(run[3]) == 40 for run in runs.values())
+    for p, q in zip(runs["one"][0].parameters(), runs["two"][0].parameters()):
+        assert torch.equal(p, q)
+
+
+def _git_checkout() -> bool:
+    try:
+        return subprocess.run(["git", "-C", str(REPOSITORY), "rev-parse", "HEAD"], capture_output=True).returncode == 0
+    except OSError:
+        return False
+
+
+@pytest.mark.skipif(not _git_checkout(), reason="not a git checkout with git installed")
+def test_revision_step_time_compares_a_revision_with_the_checkout(capsys):
+    import runpy
+    script = runpy.run_path(str(REPOSITORY / "scripts" / "revision_step_time.py"), run_name="revision_step_time")
+    assert script["main"](["--base", "HEAD", "--tasks", "ill_conditioned_regression", "--steps", "20",
+                           "--threads", "1"]) == 0
+    line = capsys.readouterr().out.strip().splitlines()[-1]
+    assert line.startswith("ill_conditioned_regression: HEAD ") and " | ratio " in line and "weights equal: " in line
+    assert "ngopt_at_revision" not in sys.modules  # nothing of the revision stays behind
+    with pytest.raises(SystemExit) as refused:  # a revision that does not exist: status 2, as argparse
+        script["main"](["--base", "no-such-revision-anywhere", "--tasks", "ill_conditioned_regression"])
+    assert refused.value.code == 2
+    with pytest.raises(SystemExit) as refused:
+        script["main"](["--tasks", "no_such_task"])
+    assert refused.value.code == 2
+
+
 def test_gpu_timing_splits_fisher_descents_timed_steps_and_refuses_without_a_gpu(capsys):
     # scripts/gpu_timing.py runs only with CUDA; its timing core runs on any device.
     import runpy
