@@ -157,9 +157,8 @@ class FixedStep:
             if momentum:
                 # Kept only if the step is written; a non-finite buffer makes its update non-finite
                 # (lr is finite), so the optimizer's check of the updates covers the buffers too.
-                # The group's curvatures as views of one tensor: one call, not one per block.
-                kept = torch.tensor(curvatures, dtype=torch.float64).unbind()
-                for block, d, curvature in zip(blocks, directions, kept):
+                # The curvatures stay Python floats (a tensor for them cost a call per group and step).
+                for block, d, curvature in zip(blocks, directions, curvatures):
                     states[block] = {"buffer_curvature": curvature, "momentum_buffer": d}
         diagnostics = norms(inputs, scale_of)
         diagnostics.update(trust_scale=min(scales.values()) if scales else 1.0, trust_scale_by_group=scales,
