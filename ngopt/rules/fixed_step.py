@@ -53,7 +53,7 @@ def _buffer_gradient_dots(blocks, buffers, inputs: StepInputs) -> list:
     if present:
         # No parameter-sized product or float64 copy: a large layer would pay both on every step.
         dots = torch.stack([flat_dot(buffers[i], inputs.directions[blocks[i]][0])
-                            for i in present]).double().tolist()
+                            for i in present]).tolist()
         for i, value in zip(present, dots):
             values[i] = value
     return values
@@ -69,7 +69,7 @@ def _momentum(blocks: list, inputs: StepInputs, momentum: float, nu: float):
         if pack.blocks[0] not in members:  # another param group's pack
             continue
         old = pack.buffers(index, [b.state.get("momentum_buffer") for b in pack.blocks]) if momentum else None
-        dots = (old * pack.gradients).sum((1, 2)).double().tolist() if old is not None else [0.0] * len(pack.blocks)
+        dots = (old * pack.gradients).sum((1, 2)).tolist() if old is not None else [0.0] * len(pack.blocks)
         heavy_ball([old], [pack.stacks[index]], momentum, scale=nu, reuse_directions=True)  # into the stack
         new.update(zip(pack.blocks, pack.regions[index]))
         cross.update(zip(pack.blocks, dots))
