@@ -33,21 +33,34 @@ def all_finite(tensors: Sequence[torch.Tensor], factors: Optional[List[float]] =
     the Adam fallback's step counter).
 
     Each tensor's norm, computed in its dtype, bounds every entry; the norms come to the host as floats, and
-    ``norm * factor`` must stay within the dtype's largest finite value (NaN and Inf fail the comparison).
+    each must stay within the dtype's largest finite value over ``|factor|`` (NaN and Inf fail the comparison).
     """
     if not tensors:
         return True
     tensors = list(tensors)
     norms = torch._foreach_norm(tensors)
-    factors = [1.0] * len(tensors) if factors is None else factors
+    limits = [_norm_limit(t.dtype, 1.0 if factors is None else factors[i]) for i, t in enumerate(tensors)]
     by_device: Dict[torch.device, List[int]] = {}
     for index, norm in enumerate(norms):
         by_device.setdefault(norm.device, []).append(index)
     for indices in by_device.values():
         values = torch.stack([norms[i] for i in indices]).tolist()
-        if not all(value * abs(factors[i]) <= torch.finfo(tensors[i].dtype).max for value, i in zip(values, indices)):
+        if not all(value <= limits[i] for value, i in zip(values, indices)):
             return False
     return True
+
+
+_LARGEST: Dict[torch.dtype, float] = {}  # torch.finfo(dtype).max, looked up once per dtype
+
+
+def _norm_limit(dtype: torch.dtype, factor: float) -> float:
+    """The largest norm whose entries times ``factor`` stay finite in ``dtype`` (-1 for a non-finite factor:
+    nothing passes).  A factor of zero keeps the dtype's own limit: a non-finite norm still fails."""
+    if dtype not in _LARGEST:
+        _LARGEST[dtype] = torch.finfo(dtype).max
+    if not math.isfinite(factor):
+        return -1.0
+    return _LARGEST[dtype] / abs(factor) if factor else _LARGEST[dtype]
 
 
 def finite_numbers(values: dict) -> bool:
