@@ -38,8 +38,11 @@ REVISION_PACKAGE = "ngopt_at_revision"
 
 def import_revision(revision: str, folder: str):
     """The ``ngopt`` package of ``revision``, extracted into ``folder`` and imported as :data:`REVISION_PACKAGE`."""
-    archive = subprocess.run(["git", "-C", REPOSITORY, "archive", "--format=tar", revision, "ngopt"],
-                             capture_output=True, check=False)
+    try:
+        archive = subprocess.run(["git", "-C", REPOSITORY, "archive", "--format=tar", revision, "ngopt"],
+                                 capture_output=True, check=False)
+    except OSError as error:  # no git on the PATH
+        raise ValueError(f"--base {revision!r}: git could not run ({error})") from error
     if archive.returncode != 0:
         raise ValueError(f"--base {revision!r}: git archive failed: {archive.stderr.decode().strip()}")
     with tarfile.open(fileobj=io.BytesIO(archive.stdout)) as tar:
@@ -86,12 +89,14 @@ def main(argv=None) -> int:
             parser.error(str(error))
         print(f"{args.steps} steps per version, {args.threads} threads, load average {os.getloadavg()[0]:.1f}; "
               f"ratio: the checkout's mean step over {args.base}'s")
-        for task_name in args.tasks.split(","):
-            means, same = compare(task_name, {args.base: base, "checkout": ngopt}, args.steps)
-            old, new = means[args.base], means["checkout"]
-            print(f"{task_name}: {args.base} {old:.3f} ms | checkout {new:.3f} ms | ratio {new / old:.3f} | "
-                  f"weights equal: {'yes' if same else 'no'}", flush=True)
-        forget_revision()
+        try:
+            for task_name in args.tasks.split(","):
+                means, same = compare(task_name, {args.base: base, "checkout": ngopt}, args.steps)
+                old, new = means[args.base], means["checkout"]
+                print(f"{task_name}: {args.base} {old:.3f} ms | checkout {new:.3f} ms | ratio {new / old:.3f} | "
+                      f"weights equal: {'yes' if same else 'no'}", flush=True)
+        finally:
+            forget_revision()
     return 0
 
 
