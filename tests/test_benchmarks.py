@@ -802,6 +802,20 @@ def test_revision_step_time_compares_a_revision_with_the_checkout(capsys):
     assert refused.value.code == 2
 
 
+def test_revision_step_time_without_git_is_a_clear_refusal(monkeypatch, capsys):
+    import runpy
+    import types
+    script = runpy.run_path(str(REPOSITORY / "scripts" / "revision_step_time.py"), run_name="revision_step_time")
+
+    def no_git(*args, **kwargs):
+        raise FileNotFoundError(2, "No such file or directory", "git")
+
+    monkeypatch.setitem(script["import_revision"].__globals__, "subprocess", types.SimpleNamespace(run=no_git))
+    with pytest.raises(SystemExit) as refused:
+        script["main"](["--tasks", "ill_conditioned_regression", "--steps", "20"])
+    assert refused.value.code == 2 and "git could not run" in capsys.readouterr().err
+
+
 def test_gpu_timing_splits_fisher_descents_timed_steps_and_refuses_without_a_gpu(capsys):
     # scripts/gpu_timing.py runs only with CUDA; its timing core runs on any device.
     import runpy
