@@ -81,5 +81,6 @@ def machine_info() -> dict:
                        "high-water mark (getrusage ru_maxrss) when the run ended, which only grows "
                        "over a benchmark and so bounds, not isolates, one run's peak; rss_growth_bytes: "
                        "resident memory after a run (its model and optimizer deleted, gc run) minus "
-                       "before it, which is near zero unless something keeps memory from that run",
+                       "before it, which is near zero unless something keeps memory from that run; null "
+                       "for runs that trained in turns with others (their memory overlaps)",
     }

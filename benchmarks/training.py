@@ -31,7 +31,6 @@ from pathlib import Path
 from typing import Callable, Iterator, Optional
 
 import torch
-from torch.optim.lr_scheduler import LRScheduler
 
 from benchmarks.coverage import parameter_coverage
 from benchmarks.evaluation import EvaluationSchedule, evaluate, near_target, near_threshold, test_metric
@@ -216,19 +215,68 @@ def batch_loss_of(returned) -> Optional[float]:
     return None
 
 
-def timed_training(task: Task, model, loss_fn, optimizer, data, seed: int, steps: int,
-                   schedule: EvaluationSchedule, on_step: Optional[Callable[[], None]],
-                   lr_schedule: Optional[LRScheduler] = None) -> Trace:
-    """The training loop: only the closure and ``optimizer.step`` fall inside the timer."""
-    batches = minibatches(len(data.train_x), task.batch_size, seed)
-    trace = Trace()
-    trace.record(0, 0.0, evaluate(model, loss_fn, data.train_x, data.train_y, schedule.forward_chunk),
-                 task.target_loss)
-    elapsed = 0.0
-    lowest_batch_loss: Optional[float] = None  # since the last evaluation
-    for step in range(1, steps + 1):
-        index = next(batches)
-        inputs, targets = data.train_x[index], data.train_y[index]
+class TrainingRun:
+    """One run that trains a stretch of steps at a time, so that several runs can take turns.
+
+    Everything a run draws from torch's global generator (the initial weights, and dropout or other
+    random layers while it trains) comes from its own saved generator state, restored for each
+    stretch: runs that take turns train exactly as they would one after the other.  Only the
+    closure and ``optimizer.step`` fall inside the timer; the evaluations happen between steps.
+    """
+
+    def __init__(self, task: Task, spec: OptimizerSpec, lr: Optional[float], seed: int, steps: int,
+                 schedule: Optional[EvaluationSchedule] = None, on_step: Optional[Callable[[], None]] = None,
+                 attach: Optional[Attach] = None):
+        self.task, self.spec, self.seed, self.steps = task, spec, seed, steps
+        self.schedule = schedule or EvaluationSchedule.for_steps(steps)
+        self.on_step = on_step
+        self.data = task.load_data()
+        self.load, self.rss_before = load_average(), current_rss_bytes()
+        torch.manual_seed(seed)
+        self.model = task.build_model()
+        self.loss_fn = task.make_loss()
+        self.optimizer = spec.build(self.model, self.loss_fn, lr)
+        self.lr = float(self.optimizer.param_groups[0]["lr"]) if lr is None else lr
+        self.lr_schedule = spec.schedule(self.optimizer, steps) if spec.schedule is not None else None
+        self.detach = attach(self.optimizer) if attach is not None else None
+        self.batches = minibatches(len(self.data.train_x), task.batch_size, seed)
+        self.trace = Trace()
+        self.trace.record(0, 0.0, self._evaluate(), task.target_loss)
+        self.step = 0
+        self.elapsed = 0.0
+        self.lowest_batch_loss: Optional[float] = None  # since the last evaluation
+        self.random_state = torch.get_rng_state()
+
+    @property
+    def done(self) -> bool:
+        return self.step >= self.steps or self.trace.diverged
+
+    def _evaluate(self) -> float:
+        return evaluate(self.model, self.loss_fn, self.data.train_x, self.data.train_y, self.schedule.forward_chunk)
+
+    def advance(self, stretch: Optional[int] = None) -> bool:
+        """Train up to ``stretch`` more steps (all that are left: None); returns whether the run is done."""
+        others = torch.get_rng_state()
+        torch.set_rng_state(self.random_state)
+        try:
+            last = self.steps if stretch is None else min(self.steps, self.step + stretch)
+            while self.step < last and not self.trace.diverged:
+                self._train_step()
+        except BaseException:
+            if self.detach is not None:
+                self.detach()
+                self.detach = None
+            raise
+        finally:
+            self.random_state = torch.get_rng_state()
+            torch.set_rng_state(others)
+        return self.done
+
+    def _train_step(self) -> None:
+        self.step += 1
+        index = next(self.batches)
+        inputs, targets = self.data.train_x[index], self.data.train_y[index]
+        model, loss_fn, optimizer = self.model, self.loss_fn, self.optimizer
 
         def closure():
             optimizer.zero_grad()
@@ -238,25 +286,75 @@ def timed_training(task: Task, model, loss_fn, optimizer, data, seed: int, steps
 
         start = time.perf_counter()
         returned = optimizer.step(closure)
-        if lr_schedule is not None:
-            lr_schedule.step()
+        if self.lr_schedule is not None:
+            self.lr_schedule.step()
         seconds = time.perf_counter() - start
+        trace = self.trace
         trace.step_seconds.append(seconds)
-        elapsed += seconds
-        if on_step is not None:
-            on_step()
+        self.elapsed += seconds
+        if self.on_step is not None:
+            self.on_step()
         batch_loss = batch_loss_of(returned)
         if batch_loss is not None:
-            lowest_batch_loss = batch_loss if lowest_batch_loss is None else min(lowest_batch_loss, batch_loss)
-        if schedule.due(step, trace.near(lowest_batch_loss)):
-            loss = evaluate(model, loss_fn, data.train_x, data.train_y, schedule.forward_chunk)
-            trace.record(step, elapsed, loss, task.target_loss)
-            if trace.steps_to_target == step:
+            self.lowest_batch_loss = batch_loss if self.lowest_batch_loss is None \
+                else min(self.lowest_batch_loss, batch_loss)
+        if self.schedule.due(self.step, trace.near(self.lowest_batch_loss)):
+            trace.record(self.step, self.elapsed, self._evaluate(), self.task.target_loss)
+            if trace.steps_to_target == self.step:
                 trace.curvature_seconds_to_target = curvature_seconds(optimizer)
-            lowest_batch_loss = None
-            if trace.diverged:
-                break
-    return trace
+            self.lowest_batch_loss = None
+
+    def finish(self, measure_memory: bool = True) -> RunResult:
+        """The run's result; its model and optimizer are released.  ``measure_memory``: whether the
+        resident memory after the run, less before it, is this run's (not while other runs live)."""
+        task, trace, optimizer = self.task, self.trace, self.optimizer
+        try:
+            coverage = parameter_coverage(optimizer, self.model)  # blocks are assigned by the training forwards
+        finally:
+            if self.detach is not None:
+                self.detach()
+                self.detach = None
+        train_seconds = sum(trace.step_seconds)
+        split, skipped = time_split(optimizer, train_seconds)
+        state_bytes = tensor_bytes(optimizer.state_dict())
+        metric = None if trace.diverged else test_metric(task.metric, self.model, self.loss_fn, self.data.test_x,
+                                                         self.data.test_y)
+        metric = None if metric is None else _finite_or_none(metric)
+        del optimizer
+        self.model = self.optimizer = self.lr_schedule = None  # what stays resident after this is held elsewhere
+        growth = None
+        if measure_memory:
+            gc.collect()
+            rss_after = current_rss_bytes()
+            growth = None if self.rss_before is None or rss_after is None else rss_after - self.rss_before
+        return RunResult(
+            task=task.name,
+            optimizer=self.spec.name,
+            lr=self.lr,
+            seed=self.seed,
+            target_loss=task.target_loss,
+            steps_to_target=trace.steps_to_target,
+            seconds_to_target=trace.seconds_to_target,
+            curvature_seconds_to_target=trace.curvature_seconds_to_target,
+            final_train_loss=None if trace.diverged else trace.curve_losses[-1],
+            final_test_metric=metric,
+            step_seconds_median=statistics.median(trace.step_seconds),
+            step_seconds_mean=statistics.fmean(trace.step_seconds),
+            steps_run=len(trace.step_seconds),
+            train_seconds=train_seconds,
+            diverged=trace.diverged,
+            curve_steps=trace.curve_steps,
+            curve_seconds=trace.curve_seconds,
+            curve_losses=trace.curve_losses,
+            time_split=split,
+            skipped_steps=skipped,
+            optimizer_state_bytes=state_bytes,
+            process_peak_rss_bytes=peak_rss_bytes(),
+            load_average=self.load,
+            rss_growth_bytes=growth,
+            target_resolution=trace.target_resolution,
+            parameter_coverage=coverage,
+        )
 
 
 def train_run(
@@ -270,56 +368,19 @@ def train_run(
     attach: Optional[Attach] = None,
 ) -> RunResult:
     """Train ``task`` with ``spec`` at ``lr`` for ``steps`` steps from the weights of ``seed``."""
-    schedule = schedule or EvaluationSchedule.for_steps(steps)
-    data = task.load_data()
-    load, rss_before = load_average(), current_rss_bytes()
-    torch.manual_seed(seed)
-    model = task.build_model()
-    loss_fn = task.make_loss()
-    optimizer = spec.build(model, loss_fn, lr)
-    lr = float(optimizer.param_groups[0]["lr"]) if lr is None else lr
-    lr_schedule = spec.schedule(optimizer, steps) if spec.schedule is not None else None
-    detach = attach(optimizer) if attach is not None else None
-    try:
-        trace = timed_training(task, model, loss_fn, optimizer, data, seed, steps, schedule, on_step, lr_schedule)
-        coverage = parameter_coverage(optimizer, model)  # blocks are assigned by the training forwards
-    finally:
-        if detach is not None:
-            detach()
+    run = TrainingRun(task, spec, lr, seed, steps, schedule, on_step, attach)
+    run.advance()
+    return run.finish()
 
-    train_seconds = sum(trace.step_seconds)
-    split, skipped = time_split(optimizer, train_seconds)
-    state_bytes = tensor_bytes(optimizer.state_dict())
-    metric = None if trace.diverged else test_metric(task.metric, model, loss_fn, data.test_x, data.test_y)
-    metric = None if metric is None else _finite_or_none(metric)
-    del optimizer, model  # what stays resident after this is held elsewhere
-    gc.collect()
-    rss_after = current_rss_bytes()
-    return RunResult(
-        task=task.name,
-        optimizer=spec.name,
-        lr=lr,
-        seed=seed,
-        target_loss=task.target_loss,
-        steps_to_target=trace.steps_to_target,
-        seconds_to_target=trace.seconds_to_target,
-        curvature_seconds_to_target=trace.curvature_seconds_to_target,
-        final_train_loss=None if trace.diverged else trace.curve_losses[-1],
-        final_test_metric=metric,
-        step_seconds_median=statistics.median(trace.step_seconds),
-        step_seconds_mean=statistics.fmean(trace.step_seconds),
-        steps_run=len(trace.step_seconds),
-        train_seconds=train_seconds,
-        diverged=trace.diverged,
-        curve_steps=trace.curve_steps,
-        curve_seconds=trace.curve_seconds,
-        curve_losses=trace.curve_losses,
-        time_split=split,
-        skipped_steps=skipped,
-        optimizer_state_bytes=state_bytes,
-        process_peak_rss_bytes=peak_rss_bytes(),
-        load_average=load,
-        rss_growth_bytes=None if rss_before is None or rss_after is None else rss_after - rss_before,
-        target_resolution=trace.target_resolution,
-        parameter_coverage=coverage,
-    )
+
+def train_runs_in_turns(runs: list[TrainingRun], stretch: int) -> list[RunResult]:
+    """Train ``runs`` in turns, ``stretch`` steps each, until every one is done; their results, in order.
+
+    On a shared machine the speed of the same step moves by tens of percent within seconds (a second
+    core shared with other work, memory contention): runs one after the other can each land in a
+    different spell, runs that take turns share them, so their times stay comparable.
+    """
+    pending = list(runs)
+    while pending:
+        pending = [run for run in pending if not run.advance(stretch)]
+    return [run.finish(measure_memory=len(runs) == 1) for run in runs]

@@ -30,7 +30,7 @@ from benchmarks.optimizers import (BASELINES, DEFAULT_OPTIMIZERS, HEADLINE, OPTI
 from benchmarks.report import format_duration
 from benchmarks.task_sets import resolve_tasks
 from benchmarks.tasks import TASKS
-from benchmarks.training import minibatches, train_run
+from benchmarks.training import TrainingRun, minibatches, train_run, train_runs_in_turns
 
 REPOSITORY = Path(__file__).resolve().parent.parent
 
@@ -227,6 +227,49 @@ def test_same_seed_gives_the_same_losses(optimizer):
     assert first.curve_losses == second.curve_losses
     assert first.final_test_metric == second.final_test_metric
     assert first.curve_losses != other.curve_losses  # the seed does change the run
+
+
+def dropout_mlp_task():
+    """The digits MLP with dropout: its training draws from torch's global generator at every step."""
+    base = TASKS["digits_mlp"]
+    return replace(base, name="digits_dropout_mlp", build_model=lambda: torch.nn.Sequential(
+        torch.nn.Linear(64, 32), torch.nn.Tanh(), torch.nn.Dropout(0.3), torch.nn.Linear(32, 10)))
+
+
+def test_runs_in_turns_train_as_they_would_one_after_the_other():
+    # Every run restores its own global-generator state for each of its turns, so dropout draws the same
+    # masks as alone: the same losses up to float rounding (same process, same threads: common practice
+    # allows 1e-6 relative for summation order in the library's kernels).
+    task = dropout_mlp_task()
+    jobs = [(OPTIMIZERS["sgd"], 0.3, 0), (OPTIMIZERS[HEADLINE], None, 1), (OPTIMIZERS["adam"], 0.01, 0)]
+    alone = [train_run(task, spec, lr, seed, steps=12, schedule=every_step(12)) for spec, lr, seed in jobs]
+    turns = train_runs_in_turns([TrainingRun(task, spec, lr, seed, 12, every_step(12)) for spec, lr, seed in jobs],
+                                stretch=5)
+    for one, other in zip(alone, turns):
+        assert (other.optimizer, other.lr, other.seed, other.steps_run) == (one.optimizer, one.lr, one.seed, 12)
+        assert other.curve_steps == one.curve_steps
+        assert other.curve_losses == pytest.approx(one.curve_losses, rel=1e-6)
+        assert other.rss_growth_bytes is None and one.rss_growth_bytes is not None  # others live beside it
+    assert alone[0].curve_losses != pytest.approx(alone[2].curve_losses, rel=1e-3)  # the optimizer matters
+
+
+def test_runs_take_turns_a_stretch_of_steps_at_a_time_until_each_is_done():
+    order = []
+    task = TASKS["digits_mlp"]
+    runs = [TrainingRun(task, OPTIMIZERS["sgd"], 0.1, 0, steps, every_step(steps),
+                        on_step=lambda name=name: order.append(name))
+            for name, steps in (("a", 5), ("b", 3))]
+    results = train_runs_in_turns(runs, stretch=2)
+    assert "".join(order) == "aabbaaba"
+    assert [result.steps_run for result in results] == [5, 3]
+
+
+def test_a_diverged_run_stops_while_the_others_go_on():
+    task = TASKS["digits_mlp"]
+    runs = [TrainingRun(task, OPTIMIZERS["sgd"], lr, 0, 20, every_step(20)) for lr in (1e6, 0.1)]
+    diverged, healthy = train_runs_in_turns(runs, stretch=3)
+    assert diverged.diverged and diverged.steps_run < 20
+    assert not healthy.diverged and healthy.steps_run == 20
 
 
 def test_data_order_is_a_fixed_permutation_per_epoch():
@@ -475,59 +518,58 @@ def test_fisher_descent_row_is_built_without_an_lr_unless_one_is_given(monkeypat
 
 
 def test_an_interrupted_benchmark_keeps_its_finished_runs(tmp_path, monkeypatch):
-    from benchmarks import harness
+    from benchmarks.training import TrainingRun
 
-    train, calls = harness.train_run, []
+    advance = TrainingRun.advance
 
-    def ctrl_c_on_the_third_run(*args, **kwargs):
-        calls.append(args)
-        if len(calls) == 3:
+    def ctrl_c_in_the_repeat_seed(self, stretch=None):
+        if self.seed == 1:  # the second group: the chosen lrs on the second seed
             raise KeyboardInterrupt
-        return train(*args, **kwargs)
+        return advance(self, stretch)
 
-    monkeypatch.setattr(harness, "train_run", ctrl_c_on_the_third_run)
+    monkeypatch.setattr(TrainingRun, "advance", ctrl_c_in_the_repeat_seed)
     argv = ["--tasks", "digits_mlp", "--optimizers", "sgd,adam", "--steps", "3", "--grid", "2", "--seeds", "2",
             "--out", str(tmp_path), "--no-progress"]
     assert main(argv) == 130  # the shell's status after SIGINT
     results = json.loads((tmp_path / "results.json").read_text())
     status = results["status"]
     assert status["complete"] is False and "interrupted" in status["reason"]
-    assert status["finished_runs"] == 2 and status["planned_runs"] == 2 * (2 + 1)
-    assert "in task digits_mlp, after 2 of its 6 runs" in status["at"]
+    assert status["finished_runs"] == 4 and status["planned_runs"] == 2 * (2 + 1)
+    assert "in task digits_mlp, after 4 of its 6 runs" in status["at"]
     entry = results["tasks"][0]
     assert entry["complete"] is False
     grids = {name: OPTIMIZERS[name].lr_grid(2) for name in ("sgd", "adam")}
-    assert [(run["method"], run["lr"]) for run in entry["runs"]] == [("sgd", grids["sgd"][0]),
-                                                                      ("adam", grids["adam"][0])]
+    tuned = {(name, lr) for name, grid in grids.items() for lr in grid}
+    assert {(run["method"], run["lr"]) for run in entry["runs"]} == tuned
+    assert all(run["seed"] == 0 for run in entry["runs"])
     with (tmp_path / "curves.csv").open(newline="") as handle:
         curve_runs = {(row["optimizer"], float(row["lr"])) for row in csv.DictReader(handle)}
-    assert curve_runs == {("sgd", grids["sgd"][0]), ("adam", grids["adam"][0])}
+    assert curve_runs == tuned
     report = (tmp_path / "report.md").read_text()
-    assert "This benchmark is unfinished (interrupted" in report and "2 of 6 runs finished" in report
+    assert "This benchmark is unfinished (interrupted" in report and "4 of 6 runs finished" in report
     assert results["settings"]["wall_seconds"] > 0 and "- the benchmark ran " in report  # up to the stop
     assert (tmp_path / "loss_digits_mlp.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert not list(tmp_path.glob(".*partial"))  # no temporary file left behind
 
 
 def test_a_crashed_benchmark_keeps_its_finished_runs_and_names_the_error(tmp_path, monkeypatch):
-    from benchmarks import harness
+    from benchmarks.training import TrainingRun
 
-    train, calls = harness.train_run, []
+    advance = TrainingRun.advance
 
-    def fail_on_the_second_run(*args, **kwargs):
-        calls.append(args)
-        if len(calls) == 2:
+    def fail_in_the_repeat_seed(self, stretch=None):
+        if self.seed == 1:
             raise RuntimeError("out of memory in the model")
-        return train(*args, **kwargs)
+        return advance(self, stretch)
 
-    monkeypatch.setattr(harness, "train_run", fail_on_the_second_run)
-    argv = ["--tasks", "digits_mlp", "--optimizers", "sgd", "--steps", "3", "--grid", "2", "--seeds", "1",
+    monkeypatch.setattr(TrainingRun, "advance", fail_in_the_repeat_seed)
+    argv = ["--tasks", "digits_mlp", "--optimizers", "sgd", "--steps", "3", "--grid", "2", "--seeds", "2",
             "--out", str(tmp_path), "--no-progress"]
     with pytest.raises(RuntimeError, match="out of memory"):
         main(argv)
     results = json.loads((tmp_path / "results.json").read_text())
     assert results["status"]["reason"] == "error: RuntimeError: out of memory in the model"
-    assert len(results["tasks"][0]["runs"]) == 1
+    assert len(results["tasks"][0]["runs"]) == 2  # the two lrs of the first seed
 
 
 def test_files_are_replaced_whole_or_not_at_all(tmp_path):
@@ -776,6 +818,24 @@ def test_settings_compared_side_by_side_see_the_same_minibatches():
     assert all(len(run[3]) == 40 for run in runs.values())
     for p, q in zip(runs["one"][0].parameters(), runs["two"][0].parameters()):
         assert torch.equal(p, q)
+
+
+def test_turn_taking_script_prints_both_ways_and_the_ratio_ranges(capsys):
+    import runpy
+    script = runpy.run_path(str(REPOSITORY / "scripts" / "turn_taking.py"), run_name="turn_taking")
+    assert script["main"](["--task", "digits_mlp", "--optimizers", "fisher-descent,sgd:0.1", "--rounds", "2",
+                           "--steps", "4", "--turn", "2", "--threads", "1"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert len(lines) == 2 * 2 + 2
+    assert lines[0].startswith("round 1, one after the other: median step fisher-descent ")
+    assert lines[1].startswith("round 1, in turns: median step fisher-descent ")
+    for line in lines[-2:]:
+        way, _, span = line.partition(": ")
+        assert way in ("one after the other", "in turns") and span.startswith("fisher-descent/sgd ")
+        low, high = (float(value) for value in span.split(" ")[1].split("-"))
+        assert 0 < low <= high
+    with pytest.raises(SystemExit, match="unknown optimizer 'sgdd'"):
+        script["parse_optimizers"]("sgdd:0.1")
 
 
 def _git_checkout() -> bool:
