@@ -262,15 +262,16 @@ class TrainingRun:
             last = self.steps if stretch is None else min(self.steps, self.step + stretch)
             while self.step < last and not self.trace.diverged:
                 self._train_step()
-        except BaseException:
-            if self.detach is not None:
-                self.detach()
-                self.detach = None
-            raise
         finally:
             self.random_state = torch.get_rng_state()
             torch.set_rng_state(others)
         return self.done
+
+    def close(self) -> None:
+        """Detach what ``attach`` hung on the optimizer (done by :meth:`finish`; call it for a run given up)."""
+        if self.detach is not None:
+            detach, self.detach = self.detach, None
+            detach()
 
     def _train_step(self) -> None:
         self.step += 1
@@ -311,9 +312,7 @@ class TrainingRun:
         try:
             coverage = parameter_coverage(optimizer, self.model)  # blocks are assigned by the training forwards
         finally:
-            if self.detach is not None:
-                self.detach()
-                self.detach = None
+            self.close()
         train_seconds = sum(trace.step_seconds)
         split, skipped = time_split(optimizer, train_seconds)
         state_bytes = tensor_bytes(optimizer.state_dict())
@@ -369,8 +368,7 @@ def train_run(
 ) -> RunResult:
     """Train ``task`` with ``spec`` at ``lr`` for ``steps`` steps from the weights of ``seed``."""
     run = TrainingRun(task, spec, lr, seed, steps, schedule, on_step, attach)
-    run.advance()
-    return run.finish()
+    return train_runs_in_turns([run], stretch=max(1, steps))[0]
 
 
 def train_runs_in_turns(runs: list[TrainingRun], stretch: int) -> list[RunResult]:
@@ -381,6 +379,11 @@ def train_runs_in_turns(runs: list[TrainingRun], stretch: int) -> list[RunResult
     different spell, runs that take turns share them, so their times stay comparable.
     """
     pending = list(runs)
-    while pending:
-        pending = [run for run in pending if not run.advance(stretch)]
-    return [run.finish(measure_memory=len(runs) == 1) for run in runs]
+    try:
+        while pending:
+            pending = [run for run in pending if not run.advance(stretch)]
+        return [run.finish(measure_memory=len(runs) == 1) for run in runs]
+    except BaseException:
+        for run in runs:
+            run.close()  # an interrupted or failed group leaves no logger attached
+        raise

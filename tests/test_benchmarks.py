@@ -264,6 +264,25 @@ def test_runs_take_turns_a_stretch_of_steps_at_a_time_until_each_is_done():
     assert [result.steps_run for result in results] == [5, 3]
 
 
+def test_a_failing_run_leaves_no_logger_attached_to_any_run_of_its_group(monkeypatch):
+    task, detached = TASKS["digits_mlp"], []
+    train_step = TrainingRun._train_step
+
+    def fail_on_seed_one(self):
+        if self.seed == 1:
+            raise RuntimeError("the model failed")
+        train_step(self)
+
+    monkeypatch.setattr(TrainingRun, "_train_step", fail_on_seed_one)
+    runs = [TrainingRun(task, OPTIMIZERS["sgd"], 0.1, seed, 6, every_step(6),
+                        attach=lambda optimizer, seed=seed: lambda: detached.append(seed)) for seed in (0, 1)]
+    with pytest.raises(RuntimeError, match="the model failed"):
+        train_runs_in_turns(runs, stretch=2)
+    assert sorted(detached) == [0, 1]  # each once
+    runs[0].close()
+    assert sorted(detached) == [0, 1]
+
+
 def test_a_diverged_run_stops_while_the_others_go_on():
     task = TASKS["digits_mlp"]
     runs = [TrainingRun(task, OPTIMIZERS["sgd"], lr, 0, 20, every_step(20)) for lr in (1e6, 0.1)]
