@@ -38,7 +38,7 @@ from tqdm import tqdm
 from benchmarks.evaluation import EvaluationSchedule, fastest_forward_chunk
 from benchmarks.optimizers import OptimizerSpec
 from benchmarks.tasks import Task
-from benchmarks.training import Attach, RunResult, TrainingRun, train_runs_in_turns
+from benchmarks.training import Attach, RunResult, TrainingRun, current_rss_bytes, train_runs_in_turns
 
 # attach_for(task, spec, lr, seed) -> Attach or None
 AttachFactory = Callable[[Task, OptimizerSpec, Optional[float], int], Optional[Attach]]
@@ -70,6 +70,9 @@ class TaskOutcome:
     finished_runs: int = 0
     planned_runs: int = 0
     last_run: Optional[RunResult] = None  # the run that finished last
+    # Resident memory after each finished group of runs in turns (models and optimizers deleted, gc run)
+    # less before it, summed over the groups; None where it could not be read.
+    rss_growth_bytes: Optional[int] = None
 
     @property
     def complete(self) -> bool:
@@ -204,6 +207,7 @@ class RunScheduler:
         self.progress, self.attach_for = progress, attach_for
         self.done = 0
         self.last: Optional[RunResult] = None
+        self.rss_growth: Optional[int] = None  # see TaskOutcome.rss_growth_bytes
 
     def run_in_turns(self, jobs: list[tuple[OptimizerSpec, Optional[float], int]],
                      on_result: Callable[[tuple, RunResult], None]) -> None:
@@ -214,10 +218,16 @@ class RunScheduler:
         first, last = self.done + 1, self.done + len(jobs)
         description = f"{self.task.name} runs {first}-{last}/{self.total} in turns"
         # disable=None: tqdm draws only on a terminal, so a redirected log gets no refresh lines
+        before = current_rss_bytes()
         with tqdm(total=self.steps * len(jobs), desc=description, unit="step", leave=False, dynamic_ncols=True,
                   disable=None if self.progress else True, mininterval=0.5) as bar:
             runs = [self._start(spec, lr, seed, bar.update) for spec, lr, seed in jobs]
             results = train_runs_in_turns(runs, TURN_STEPS)
+        del runs
+        gc.collect()
+        after = current_rss_bytes()
+        if before is not None and after is not None:
+            self.rss_growth = (self.rss_growth or 0) + after - before
         for job, result in zip(jobs, results):
             self.done += 1
             self.last = result
@@ -241,7 +251,7 @@ def outcome_so_far(task: Task, steps: int, schedule: EvaluationSchedule, specs: 
                    grids: dict, tuning: dict, repeats: dict, scheduler: RunScheduler) -> TaskOutcome:
     """The task's outcome from the runs finished so far (every optimizer with at least one run)."""
     result = TaskOutcome(task, steps, schedule, finished_runs=scheduler.done, planned_runs=scheduler.total,
-                         last_run=scheduler.last)
+                         last_run=scheduler.last, rss_growth_bytes=scheduler.rss_growth)
     for spec in specs:
         runs = tuning[spec.name]
         if not runs:

@@ -82,5 +82,6 @@ def machine_info() -> dict:
                        "over a benchmark and so bounds, not isolates, one run's peak; rss_growth_bytes: "
                        "resident memory after a run (its model and optimizer deleted, gc run) minus "
                        "before it, which is near zero unless something keeps memory from that run; null "
-                       "for runs that trained in turns with others (their memory overlaps)",
+                       "for runs that trained in turns with others (their memory overlaps): the task's "
+                       "rss_growth_bytes then sums the same over its groups of runs in turns",
     }

@@ -123,7 +123,8 @@ def parts_line(entry: dict) -> Optional[str]:
 
 
 def memory_line(entry: dict) -> str:
-    """Optimizer state size, resident memory left behind per run, and the process peak."""
+    """Optimizer state size, resident memory left behind (per run alone, or by the task's runs in turns), and the
+    process peak."""
     state = ", ".join(f"{name} {summary['optimizer_state_bytes'] / 1024:.1f} KiB"
                       for name, summary in entry["summary"].items())
     growth = ", ".join(f"{name} {summary['rss_growth_bytes'] / 2**20:+.0f} MiB"
@@ -133,6 +134,9 @@ def memory_line(entry: dict) -> str:
     line = f"optimizer state: {state}; process peak RSS so far {peak / 2**20:.0f} MiB"
     if growth:
         line += f"; resident memory left behind per run (median): {growth}"
+    if entry.get("rss_growth_bytes") is not None:
+        line += (f"; resident memory left behind by the task's {entry['finished_runs']} runs in turns: "
+                 f"{entry['rss_growth_bytes'] / 2**20:+.0f} MiB")
     return line
 
 

@@ -91,6 +91,7 @@ def task_entry(outcome: TaskOutcome) -> dict:
         "complete": outcome.complete,
         "finished_runs": outcome.finished_runs,
         "planned_runs": outcome.planned_runs,
+        "rss_growth_bytes": outcome.rss_growth_bytes,  # left behind by the task's groups of runs in turns
         "load_average_max": max((run["load_average"] for run in runs if run["load_average"] is not None),
                                 default=None),
         "runs": runs,

@@ -64,6 +64,19 @@ def smoke_run(tmp_path_factory):
     return out, json.loads((out / "results.json").read_text())
 
 
+def test_memory_left_behind_is_measured_per_task_for_runs_in_turns(smoke_run):
+    out, results = smoke_run
+    report = (out / "report.md").read_text()
+    for task in results["tasks"]:
+        assert all(run["rss_growth_bytes"] is None for run in task["runs"])  # their memory overlapped
+        growth = task["rss_growth_bytes"]
+        if growth is None:  # a platform without /proc
+            continue
+        assert isinstance(growth, int)
+        assert f"resident memory left behind by the task's {task['finished_runs']} runs in turns: " \
+               f"{growth / 2**20:+.0f} MiB" in report
+
+
 def test_results_json_follows_the_api_schema(smoke_run):
     _, results = smoke_run
     assert isinstance(results["machine"], dict) and results["machine"]["torch_threads"] >= 1
