@@ -1,4 +1,4 @@
-"""One timed training run: a task, an optimizer, a learning rate and a seed.
+"""Timed training runs: a task, an optimizer, a learning rate and a seed each, alone or in turns.
 
 What is timed is the training step alone: the closure (zero_grad, forward,
 loss, backward) and ``optimizer.step``, each step between two
