@@ -28,6 +28,7 @@ from __future__ import annotations
 import dataclasses
 import gc
 import math
+import os
 import statistics
 import sys
 from dataclasses import dataclass, field
@@ -86,6 +87,30 @@ WARMUP_STEPS = 3
 # digits MLP, 17 runs in turns of 21 steps, that step took 0.8 ms more than the others for
 # fisher-descent (1.8% of its mean step) and 0.05-0.1 ms more for SGD (0.4-0.8%).
 TURN_STEPS = 20
+# A group of runs in turns holds every run's model, gradients and optimizer state at once.  A run is
+# reckoned at this many times its model's parameter bytes (weights, gradients, and optimizer state up
+# to fisher-descent's momentum, factors and inverses, which its cost budget keeps within the layers'
+# sizes), and a group may fill this share of the machine's memory; larger groups are split, in order.
+BYTES_PER_PARAMETER_BYTE = 8
+GROUP_MEMORY_SHARE = 0.25
+
+
+def physical_memory_bytes() -> Optional[int]:
+    """The machine's memory (None where the system does not say)."""
+    try:
+        return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):
+        return None
+
+
+def runs_that_fit(task: Task) -> Optional[int]:
+    """How many of ``task``'s runs one group in turns may hold (None: no limit known)."""
+    memory = physical_memory_bytes()
+    if memory is None:
+        return None
+    model = task.build_model()
+    per_run = BYTES_PER_PARAMETER_BYTE * sum(p.numel() * p.element_size() for p in model.parameters())
+    return max(1, int(GROUP_MEMORY_SHARE * memory // max(per_run, 1)))
 
 
 def warm_up(task: Task) -> Optional[int]:
@@ -208,13 +233,19 @@ class RunScheduler:
         self.done = 0
         self.last: Optional[RunResult] = None
         self.rss_growth: Optional[int] = None  # see TaskOutcome.rss_growth_bytes
+        self.group_limit = runs_that_fit(task)
 
     def run_in_turns(self, jobs: list[tuple[OptimizerSpec, Optional[float], int]],
                      on_result: Callable[[tuple, RunResult], None]) -> None:
-        """Train every ``(spec, lr, seed)`` of ``jobs`` in turns of :data:`TURN_STEPS` steps; each
-        result goes to ``on_result(job, result)`` in the order of ``jobs``."""
+        """Train every ``(spec, lr, seed)`` of ``jobs`` in turns of :data:`TURN_STEPS` steps, in groups of
+        at most ``group_limit`` runs; each result goes to ``on_result(job, result)`` in the order of ``jobs``."""
         if not jobs:
             return
+        size = len(jobs) if self.group_limit is None else max(1, self.group_limit)
+        for start in range(0, len(jobs), size):
+            self._run_group(jobs[start:start + size], on_result)
+
+    def _run_group(self, jobs, on_result) -> None:
         first, last = self.done + 1, self.done + len(jobs)
         description = f"{self.task.name} runs {first}-{last}/{self.total} in turns"
         # disable=None: tqdm draws only on a terminal, so a redirected log gets no refresh lines

@@ -296,6 +296,37 @@ def test_a_failing_run_leaves_no_logger_attached_to_any_run_of_its_group(monkeyp
     assert sorted(detached) == [0, 1]
 
 
+def test_a_group_in_turns_holds_as_many_runs_as_a_quarter_of_the_memory_fits(monkeypatch):
+    from benchmarks import harness
+    task = TASKS["digits_mlp"]
+    per_run = harness.BYTES_PER_PARAMETER_BYTE * sum(p.numel() * p.element_size()
+                                                     for p in task.build_model().parameters())
+    monkeypatch.setattr(harness, "physical_memory_bytes", lambda: int(3 * per_run / harness.GROUP_MEMORY_SHARE))
+    assert harness.runs_that_fit(task) == 3
+    monkeypatch.setattr(harness, "physical_memory_bytes", lambda: 1)
+    assert harness.runs_that_fit(task) == 1  # never fewer than one
+    monkeypatch.setattr(harness, "physical_memory_bytes", lambda: None)
+    assert harness.runs_that_fit(task) is None
+
+
+def test_runs_one_at_a_time_where_memory_is_short_give_the_same_results(tmp_path, monkeypatch):
+    from benchmarks import harness
+    argv = ["--tasks", "digits_mlp", "--optimizers", "sgd,adam", "--steps", "6", "--grid", "2", "--seeds", "2",
+            "--no-progress", "--out"]
+    assert main(argv + [str(tmp_path / "turns")]) == 0
+    monkeypatch.setattr(harness, "physical_memory_bytes", lambda: 1)  # groups of one run
+    assert main(argv + [str(tmp_path / "alone")]) == 0
+    turns, alone = ([(run["method"], run["lr"], run["seed"], run["steps_to_target"], run["final_train_loss"],
+                      run["rss_growth_bytes"])
+                     for run in json.loads((tmp_path / way / "results.json").read_text())["tasks"][0]["runs"]]
+                    for way in ("turns", "alone"))
+    assert [run[:4] for run in turns] == [run[:4] for run in alone] and len(turns) == 6
+    assert [run[4] for run in turns] == pytest.approx([run[4] for run in alone], rel=1e-6)
+    assert all(run[5] is None for run in turns)  # runs in turns: memory overlaps
+    if harness.current_rss_bytes() is not None:
+        assert all(isinstance(run[5], int) for run in alone)  # alone: each run's own
+
+
 def test_a_diverged_run_stops_while_the_others_go_on():
     task = TASKS["digits_mlp"]
     runs = [TrainingRun(task, OPTIMIZERS["sgd"], lr, 0, 20, every_step(20)) for lr in (1e6, 0.1)]
