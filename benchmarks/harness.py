@@ -28,7 +28,6 @@ from __future__ import annotations
 import dataclasses
 import gc
 import math
-import os
 import statistics
 import sys
 from dataclasses import dataclass, field
@@ -37,6 +36,7 @@ from typing import Callable, Optional
 from tqdm import tqdm
 
 from benchmarks.evaluation import EvaluationSchedule, fastest_forward_chunk
+from benchmarks.machine import memory_bytes
 from benchmarks.optimizers import OptimizerSpec
 from benchmarks.tasks import Task
 from benchmarks.training import Attach, RunResult, TrainingRun, current_rss_bytes, train_runs_in_turns
@@ -95,17 +95,9 @@ BYTES_PER_PARAMETER_BYTE = 8
 GROUP_MEMORY_SHARE = 0.25
 
 
-def physical_memory_bytes() -> Optional[int]:
-    """The machine's memory (None where the system does not say)."""
-    try:
-        return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
-    except (ValueError, OSError, AttributeError):
-        return None
-
-
 def runs_that_fit(task: Task) -> Optional[int]:
     """How many of ``task``'s runs one group in turns may hold (None: no limit known)."""
-    memory = physical_memory_bytes()
+    memory = memory_bytes()
     if memory is None:
         return None
     model = task.build_model()

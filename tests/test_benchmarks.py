@@ -301,11 +301,11 @@ def test_a_group_in_turns_holds_as_many_runs_as_a_quarter_of_the_memory_fits(mon
     task = TASKS["digits_mlp"]
     per_run = harness.BYTES_PER_PARAMETER_BYTE * sum(p.numel() * p.element_size()
                                                      for p in task.build_model().parameters())
-    monkeypatch.setattr(harness, "physical_memory_bytes", lambda: int(3 * per_run / harness.GROUP_MEMORY_SHARE))
+    monkeypatch.setattr(harness, "memory_bytes", lambda: int(3 * per_run / harness.GROUP_MEMORY_SHARE))
     assert harness.runs_that_fit(task) == 3
-    monkeypatch.setattr(harness, "physical_memory_bytes", lambda: 1)
+    monkeypatch.setattr(harness, "memory_bytes", lambda: 1)
     assert harness.runs_that_fit(task) == 1  # never fewer than one
-    monkeypatch.setattr(harness, "physical_memory_bytes", lambda: None)
+    monkeypatch.setattr(harness, "memory_bytes", lambda: None)
     assert harness.runs_that_fit(task) is None
 
 
@@ -314,7 +314,7 @@ def test_runs_one_at_a_time_where_memory_is_short_give_the_same_results(tmp_path
     argv = ["--tasks", "digits_mlp", "--optimizers", "sgd,adam", "--steps", "6", "--grid", "2", "--seeds", "2",
             "--no-progress", "--out"]
     assert main(argv + [str(tmp_path / "turns")]) == 0
-    monkeypatch.setattr(harness, "physical_memory_bytes", lambda: 1)  # groups of one run
+    monkeypatch.setattr(harness, "memory_bytes", lambda: 1)  # groups of one run
     assert main(argv + [str(tmp_path / "alone")]) == 0
     turns, alone = ([(run["method"], run["lr"], run["seed"], run["steps_to_target"], run["final_train_loss"],
                       run["rss_growth_bytes"])
