@@ -22,6 +22,7 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__)))) 
 from benchmarks.harness import TURN_STEPS  # noqa: E402
 from benchmarks.held_out import HELD_OUT_TASKS  # noqa: E402
 from benchmarks.optimizers import OPTIMIZERS  # noqa: E402
+from benchmarks.tasks import TASKS  # noqa: E402
 from benchmarks.training import TrainingRun, train_run, train_runs_in_turns  # noqa: E402
 
 
@@ -46,8 +47,6 @@ def median_step_ms(task, jobs, steps: int, turn: int | None) -> list[float]:
 
 
 def main(argv=None) -> int:
-    from benchmarks.tasks import TASKS
-
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--task", default="corpus_transformer")
     parser.add_argument("--optimizers", default="fisher-descent,sgd:0.0949,adam:0.01",
