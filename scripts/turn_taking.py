@@ -57,6 +57,9 @@ def main(argv=None) -> int:
                         help=f"steps per turn (default {TURN_STEPS}, the harness's)")
     parser.add_argument("--threads", type=int, default=2)
     args = parser.parse_args(argv)
+    for name in ("rounds", "steps", "turn", "threads"):
+        if getattr(args, name) < 1:
+            parser.error(f"--{name} must be at least 1, got {getattr(args, name)}")
     torch.set_num_threads(args.threads)
     task = {**TASKS, **HELD_OUT_TASKS}[args.task]
     jobs = parse_optimizers(args.optimizers)

@@ -899,6 +899,9 @@ def test_turn_taking_script_prints_both_ways_and_the_ratio_ranges(capsys):
         assert 0 < low <= high
     with pytest.raises(SystemExit, match="unknown optimizer 'sgdd'"):
         script["parse_optimizers"]("sgdd:0.1")
+    with pytest.raises(SystemExit):
+        script["main"](["--task", "digits_mlp", "--rounds", "0"])
+    assert "--rounds must be at least 1, got 0" in capsys.readouterr().err
 
 
 def _git_checkout() -> bool:
