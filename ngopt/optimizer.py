@@ -168,7 +168,7 @@ class FisherDescent(torch.optim.Optimizer):
     def __init__(self, model: nn.Module, loss_fn=None, *, lr: Optional[float] = None,
                  momentum: Optional[float] = None, weight_decay: float = 0.0, damping: float = 1e-2,
                  fisher: str = "sampled", structure: str = "kfac", stats_interval: int = 5,
-                 inverse_interval: int = 10, stats_memory: float = 0.8, max_step_kl: Optional[float] = 1e-2,
+                 inverse_interval: int = 10, stats_memory: float = 0.7, max_step_kl: Optional[float] = 1e-2,
                  max_exact_step_kl: Optional[float] = 5e-2,
                  damping_rule: str = "lm", damping_interval: int = 5, step_rule: str = "fixed",
                  rule_interval: Optional[int] = None, rule_batch_fraction: float = 0.25, fallback: str = "adam",
