@@ -19,8 +19,8 @@ first-order predicted decrease, ``sum_groups lr nu p^T g``, at most twice the di
 loss to ``loss_floor``; and two bounds on the step's KL.  ``max_step_kl`` holds in the blocks' own
 model on every step.  That model drops every product between blocks and rests on statistics of
 earlier batches, so it can understate the step's true KL by one or two orders of magnitude: over the
-benchmark's built-in and held-out tasks the median ratio runs from 0.5 to 32 and the 90th percentile
-up to 183 (``scripts/fisher_length_ratio.py``), and on those tasks the longer steps it allows pay.
+benchmark's built-in and held-out tasks the median ratio runs from 0.7 to 26 and the 90th percentile
+up to 83 (``scripts/fisher_length_ratio.py``), and on those tasks the longer steps it allows pay.
 Every ``rule_interval = k`` steps (0: never) the rule measures the proposal's length in the exact
 Fisher of the whole model on the recorded batch (:func:`ngopt.rules.trust.fisher_length_ratio`,
 one forward-mode pass on ``rule_batch_fraction`` of the rows), and up to the next check it also keeps
