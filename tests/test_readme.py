@@ -49,3 +49,32 @@ def test_readme_snippet_runs(index, tmp_path, monkeypatch):
         if dist.is_available() and dist.is_initialized():
             dist.destroy_process_group()
     assert os.getcwd() == str(tmp_path)
+
+
+def option_rows():
+    """``{option: default cell}`` of the README's options table."""
+    text = README.read_text(encoding="utf-8")
+    table = text.split("### Options", 1)[1].split("\n\n", 2)[1]
+    return dict(re.findall(r"^\| `(\w+)` \| (.*?) \|", table, flags=re.M))
+
+
+def test_the_options_table_lists_every_keyword_with_its_default():
+    # The table is what users read for defaults: a changed default must change it too.
+    import ast
+    import inspect
+
+    from ngopt import FisherDescent
+
+    rows = option_rows()
+    parameters = inspect.signature(FisherDescent.__init__).parameters
+    keywords = [name for name in parameters if name != "self"]
+    assert sorted(rows) == sorted(keywords)
+    checked = 0
+    for name in keywords:
+        default, cell = parameters[name].default, rows[name]
+        if default is inspect.Parameter.empty or (default is None and not cell.startswith("`None`")):
+            continue  # required, or None resolved to a documented value (lr by step rule, ...)
+        literal = cell.split(":", 1)[0] if default is None else cell
+        assert ast.literal_eval(literal.replace("`", "")) == default, (name, cell, default)
+        checked += 1
+    assert checked >= 20
