@@ -105,6 +105,10 @@ def build_parser() -> argparse.ArgumentParser:
                         help="pass one keyword to FisherDescent in every fisher-descent row and task alike, e.g. "
                              "--ngopt-option structure=ekfac or --ngopt-option lr=0.1 (repeatable; values "
                              "are Python literals; keys go to FisherDescent unchecked)")
+    parser.add_argument("--variant", action="append", nargs="+", default=[], metavar="NAME KEY=VALUE",
+                        help="an extra untuned FisherDescent row NAME with these keywords (on top of any "
+                             "--ngopt-option), trained in turns beside the others, e.g. --variant memory-0.8 "
+                             "stats_memory=0.8 (repeatable): settings compared side by side in one run")
     parser.add_argument("--no-progress", action="store_true",
                         help="no progress output (by default a bar per run on a terminal, one line per "
                              "finished run when stderr is redirected)")
@@ -146,6 +150,22 @@ def parse_options(items: list[str]) -> dict:
     return options
 
 
+def variant_rows(variants: list[list[str]], taken: set[str]) -> list[OptimizerSpec]:
+    """``--variant NAME KEY=VALUE ...``: untuned FisherDescent rows with those keywords."""
+    rows = []
+    for items in variants:
+        name, pairs = items[0], items[1:]
+        if "=" in name or "," in name or not name.strip():
+            raise ValueError(f"--variant takes a row name, then KEY=VALUE pairs, got {' '.join(items)!r}")
+        if name in taken:
+            raise ValueError(f"--variant {name}: the name is taken by another row; choose another")
+        if not pairs:
+            raise ValueError(f"--variant {name}: give at least one KEY=VALUE (the plain row is {HEADLINE})")
+        taken.add(name)
+        rows.append(optimizer_registry.natural_gradient_row(name, parse_options(pairs)))
+    return rows
+
+
 def make_config(args: argparse.Namespace) -> Config:
     """Check and resolve the options; every problem is a ValueError naming the option."""
     if args.task_file is not None and args.tasks is not None:
@@ -155,9 +175,11 @@ def make_config(args: argparse.Namespace) -> Config:
     tasks = [load_task_file(args.task_file)] if args.task_file is not None else \
         resolve_tasks(split_names(args.tasks))
     ngopt_options = parse_options(args.ngopt_option)
+    chosen = resolve_optimizers(split_names(args.optimizers))
+    variants = variant_rows(args.variant, set(optimizer_registry.OPTIMIZERS) | {spec.name for spec in chosen})
     specs = [optimizer_registry.with_natural_gradient_options(spec, ngopt_options)
              if spec.natural_gradient_options is not None else spec
-             for spec in resolve_optimizers(split_names(args.optimizers))]
+             for spec in chosen + variants]
     specs, skipped = optimizer_registry.runnable(specs, by_default=args.optimizers is None)
     if not specs:
         raise ValueError("--optimizers: none of the chosen optimizers can run here: "
@@ -234,7 +256,7 @@ def check_ready(config: Config) -> None:
             natural_gradient_settings(spec)
             spec.lr_grid(config.grid_size)  # fisher-descent-tuned reads its grid centre from the library
         except (TypeError, ValueError) as error:
-            raise ValueError(f"--ngopt-option: FisherDescent ({spec.name}) rejects "
+            raise ValueError(f"--ngopt-option/--variant: FisherDescent ({spec.name}) rejects "
                              f"{spec.natural_gradient_options}: {error}")
     if config.task_file is not None and natural:
         check_task_model(config.tasks[0], natural[0])

@@ -28,6 +28,7 @@ from benchmarks.evaluation import EvaluationSchedule
 from benchmarks.optimizers import (BASELINES, DEFAULT_OPTIMIZERS, HEADLINE, OPTIMIZERS,
                                    natural_gradient_available, resolve_optimizers)
 from benchmarks.report import format_duration
+from benchmarks.results import SCHEMA_OPTIMIZER_NAMES
 from benchmarks.task_sets import resolve_tasks
 from benchmarks.tasks import TASKS
 from benchmarks.training import TrainingRun, minibatches, train_run, train_runs_in_turns
@@ -533,6 +534,68 @@ def test_ngopt_options_reach_every_natural_gradient_row_and_keep_its_curvature()
     assert specs["fisher-descent"].natural_gradient_options["damping"] == 0.001
     assert specs["fisher-descent-ekfac"].natural_gradient_options == {"damping": 0.001, "structure": "ekfac"}
     assert specs["sgd"].natural_gradient_options is None
+
+
+def test_variants_are_untuned_fisher_descent_rows_with_their_own_options_on_top():
+    from benchmarks.cli import build_parser, make_config
+    args = build_parser().parse_args(["--optimizers", "fisher-descent,sgd", "--ngopt-option", "damping=0.02",
+                                      "--ngopt-option", "stats_memory=0.9", "--variant", "memory-0.8",
+                                      "stats_memory=0.8", "--variant", "no-bound", "max_step_kl=None"])
+    specs = {spec.name: spec for spec in make_config(args).specs}
+    assert list(specs) == ["fisher-descent", "sgd", "memory-0.8", "no-bound"]
+    assert specs["memory-0.8"].natural_gradient_options == {"damping": 0.02, "stats_memory": 0.8}
+    assert specs["no-bound"].natural_gradient_options == {"damping": 0.02, "stats_memory": 0.9,
+                                                          "max_step_kl": None}
+    assert specs["memory-0.8"].lr_grid(4) == [None]  # untuned: one run per seed at the default lr
+    if NGOPT_AVAILABLE:
+        optimizer = specs["memory-0.8"].build(torch.nn.Linear(3, 2), torch.nn.MSELoss(), None)
+        assert optimizer.stats_memory == 0.8 and optimizer.param_groups[0]["damping"] == 0.02
+
+
+@pytest.mark.parametrize("variant, words", [
+    (["sgd", "stats_memory=0.8"], "taken"),
+    (["fisher-descent-ekfac", "damping=0.1"], "taken"),
+    (["memory"], "at least one KEY=VALUE"),
+    (["stats_memory=0.8"], "row name"),
+    (["memory", "0.8"], "KEY=VALUE"),
+])
+def test_a_malformed_variant_is_a_usage_error_naming_the_option(variant, words):
+    from benchmarks.cli import build_parser, make_config
+    args = build_parser().parse_args(["--variant", *variant])
+    with pytest.raises(ValueError, match=words):
+        make_config(args)
+    twice = build_parser().parse_args(["--variant", "a", "damping=0.1", "--variant", "a", "damping=0.2"])
+    with pytest.raises(ValueError, match="taken"):
+        make_config(twice)
+
+
+@pytest.mark.skipif(not NGOPT_AVAILABLE, reason="ngopt.FisherDescent does not import")
+def test_a_variant_with_the_default_settings_trains_as_the_headline_row(tmp_path):
+    # The variant's row runs in turns with the headline's, from the same seed: with every keyword at its
+    # default it must take the same steps (same process and thread count, so rel 1e-6 is generous).
+    import inspect
+
+    import ngopt
+    default = inspect.signature(ngopt.FisherDescent.__init__).parameters["stats_memory"].default
+    argv = ["--tasks", "digits_mlp", "--optimizers", "fisher-descent", "--variant", "same",
+            f"stats_memory={default}", "--variant", "fresh", "stats_memory=0.0", "--steps", "12",
+            "--seeds", "1", "--out", str(tmp_path), "--no-progress"]
+    assert main(argv) == 0
+    runs = {run["optimizer"]: run for run in json.loads((tmp_path / "results.json").read_text())["tasks"][0]["runs"]}
+    headline = runs[SCHEMA_OPTIMIZER_NAMES[HEADLINE]]  # results.json's name for the headline row
+    assert set(runs) == {SCHEMA_OPTIMIZER_NAMES[HEADLINE], "same", "fresh"}
+    assert runs["same"]["steps_run"] == headline["steps_run"] == 12
+    assert runs["same"]["final_train_loss"] == pytest.approx(headline["final_train_loss"], rel=1e-6)
+    assert runs["fresh"]["final_train_loss"] != pytest.approx(headline["final_train_loss"], rel=1e-6)
+    with pytest.raises(ValueError, match="bad"):
+        main_raises(["--tasks", "digits_mlp", "--variant", "bad", "stats_memory=2", "--steps", "2", "--seeds", "1",
+                     "--no-progress"])
+
+
+def main_raises(argv):
+    """``make_config`` then ``check_ready``, as ``main`` runs them, raising what main reports."""
+    from benchmarks.cli import build_parser, check_ready, make_config
+    check_ready(make_config(build_parser().parse_args(argv)))
 
 
 def test_adaptive_evaluation_finds_the_target_step_within_its_stated_resolution():
