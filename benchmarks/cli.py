@@ -6,6 +6,7 @@ import argparse
 import ast
 import gc
 import json
+import re
 import shlex
 import sys
 import time
@@ -25,6 +26,7 @@ from benchmarks.optimizers import GRID_SPACING_DECADES, HEADLINE, OptimizerSpec,
 from benchmarks.outputs import ProgressiveOutputs
 from benchmarks.pilot import propose_target
 from benchmarks.profiling import write_profile
+from benchmarks.results import SCHEMA_OPTIMIZER_NAMES
 from benchmarks.task_file import load_task_file
 from benchmarks.task_sets import DEFAULT_TASKS, TASK_SETS, resolve_tasks
 from benchmarks.tasks import ON_REQUEST_TASKS, Task
@@ -155,8 +157,9 @@ def variant_rows(variants: list[list[str]], taken: set[str]) -> list[OptimizerSp
     rows = []
     for items in variants:
         name, pairs = items[0], items[1:]
-        if "=" in name or "," in name or not name.strip():
-            raise ValueError(f"--variant takes a row name, then KEY=VALUE pairs, got {' '.join(items)!r}")
+        if not re.fullmatch(r"[\w.+-]+", name):
+            raise ValueError(f"--variant takes a row name (letters, digits, _ . + -), then KEY=VALUE pairs, "
+                             f"got {' '.join(items)!r}")
         if name in taken:
             raise ValueError(f"--variant {name}: the name is taken by another row; choose another")
         if not pairs:
@@ -176,7 +179,8 @@ def make_config(args: argparse.Namespace) -> Config:
         resolve_tasks(split_names(args.tasks))
     ngopt_options = parse_options(args.ngopt_option)
     chosen = resolve_optimizers(split_names(args.optimizers))
-    variants = variant_rows(args.variant, set(optimizer_registry.OPTIMIZERS) | {spec.name for spec in chosen})
+    taken = set(optimizer_registry.OPTIMIZERS) | set(SCHEMA_OPTIMIZER_NAMES.values()) | {spec.name for spec in chosen}
+    variants = variant_rows(args.variant, taken)
     specs = [optimizer_registry.with_natural_gradient_options(spec, ngopt_options)
              if spec.natural_gradient_options is not None else spec
              for spec in chosen + variants]

@@ -558,6 +558,8 @@ def test_variants_are_untuned_fisher_descent_rows_with_their_own_options_on_top(
     (["memory"], "at least one KEY=VALUE"),
     (["stats_memory=0.8"], "row name"),
     (["memory", "0.8"], "KEY=VALUE"),
+    (["ngopt", "damping=0.1"], "taken"),  # results.json's name of the headline row
+    (["a b", "damping=0.1"], "row name"),
 ])
 def test_a_malformed_variant_is_a_usage_error_naming_the_option(variant, words):
     from benchmarks.cli import build_parser, make_config
