@@ -566,9 +566,17 @@ def test_a_malformed_variant_is_a_usage_error_naming_the_option(variant, words):
     args = build_parser().parse_args(["--variant", *variant])
     with pytest.raises(ValueError, match=words):
         make_config(args)
+
+
+@pytest.mark.skipif(not NGOPT_AVAILABLE, reason="ngopt.FisherDescent does not import")
+def test_a_variant_named_twice_or_with_a_rejected_keyword_stops_before_any_run():
+    from benchmarks.cli import build_parser, check_ready, make_config
     twice = build_parser().parse_args(["--variant", "a", "damping=0.1", "--variant", "a", "damping=0.2"])
     with pytest.raises(ValueError, match="taken"):
         make_config(twice)
+    rejected = build_parser().parse_args(["--tasks", "digits_mlp", "--variant", "bad", "stats_memory=2"])
+    with pytest.raises(ValueError, match=r"FisherDescent \(bad\) rejects"):
+        check_ready(make_config(rejected))  # as main() runs them, before any training
 
 
 @pytest.mark.skipif(not NGOPT_AVAILABLE, reason="ngopt.FisherDescent does not import")
@@ -589,15 +597,6 @@ def test_a_variant_with_the_default_settings_trains_as_the_headline_row(tmp_path
     assert runs["same"]["steps_run"] == headline["steps_run"] == 12
     assert runs["same"]["final_train_loss"] == pytest.approx(headline["final_train_loss"], rel=1e-6)
     assert runs["fresh"]["final_train_loss"] != pytest.approx(headline["final_train_loss"], rel=1e-6)
-    with pytest.raises(ValueError, match="bad"):
-        main_raises(["--tasks", "digits_mlp", "--variant", "bad", "stats_memory=2", "--steps", "2", "--seeds", "1",
-                     "--no-progress"])
-
-
-def main_raises(argv):
-    """``make_config`` then ``check_ready``, as ``main`` runs them, raising what main reports."""
-    from benchmarks.cli import build_parser, check_ready, make_config
-    check_ready(make_config(build_parser().parse_args(argv)))
 
 
 def test_adaptive_evaluation_finds_the_target_step_within_its_stated_resolution():
