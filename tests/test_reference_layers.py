@@ -565,6 +565,21 @@ def test_norm_blocks_equal_the_exact_fisher_restricted_to_channel_pairs(problem)
     assert omitted > 1e-3  # the cross-channel entries are not zero: the check above is not vacuous
 
 
+def test_batch_norm_moments_hold_in_float32_far_from_zero():
+    # The block reads x_hat from the batch's own moments.  With inputs of mean 1e3 and unit spread,
+    # E[x^2] - E[x]^2 in float32 would lose the variance (float32 spacing near 1e6 is 0.06); the two-pass
+    # moments (Chan, Golub & LeVeque, Am. Stat. 1983) keep the float32 block within 1e-3 of the float64 one.
+    torch.manual_seed(53)
+    model = nn.Sequential(nn.BatchNorm2d(3), nn.Tanh(), nn.Flatten(), nn.Linear(3 * 16, 3))
+    randomize_affine(model[0])
+    inputs, targets = 1e3 + torch.randn(16, 3, 4, 4, dtype=torch.float64), targets_for("ce", 16)
+    curvature = {}
+    for dtype in (torch.float32, torch.float64):
+        opt = recorded_optimizer(copy.deepcopy(model).to(dtype), nn.CrossEntropyLoss(), inputs.to(dtype), targets)
+        curvature[dtype] = opt.blocks["0"].dense_curvature().double()
+    assert relative_error(curvature[torch.float32], curvature[torch.float64]) <= 1e-3
+
+
 def test_norm_pair_block_preconditions_like_numpy_solve():
     # numpy.linalg.solve((B + lambda I), vec(grad)) on the dense block-diagonal matrix; damped_product inverse.
     model, path, inputs, channels = NORM_PROBLEMS["batchnorm2d"]()

