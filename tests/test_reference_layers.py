@@ -580,6 +580,26 @@ def test_batch_norm_moments_hold_in_float32_far_from_zero():
     assert relative_error(curvature[torch.float32], curvature[torch.float64]) <= 1e-3
 
 
+def test_channel_moments_equal_numpy_and_the_timing_script_runs(capsys):
+    # numpy.mean / numpy.var (ddof=0, the biased variance batch norm normalizes by) over every dim but 1.
+    import runpy
+    from pathlib import Path
+
+    from ngopt.uses.normalization import channel_moments
+    x = 1e3 + torch.randn(6, 4, 3, 5, dtype=torch.float64, generator=torch.Generator().manual_seed(54))
+    mean, variance = channel_moments(x)
+    np.testing.assert_allclose(mean.numpy(), x.numpy().mean(axis=(0, 2, 3)), rtol=1e-12)
+    np.testing.assert_allclose(variance.numpy(), x.numpy().var(axis=(0, 2, 3)), rtol=1e-9)
+    script = runpy.run_path(str(Path(__file__).resolve().parents[1] / "scripts" / "batch_norm_moments.py"),
+                            run_name="batch_norm_moments")
+    assert script["main"](["--shapes", "4,3,2,2", "5,6", "--repeats", "2"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert [line.split(":")[0] for line in lines] == ["[4, 3, 2, 2]", "[5, 6]"]
+    assert all("variances agree to" in line for line in lines)
+    assert script["main"](["--repeats", "1"]) == 0  # the residual CNN's shapes, and their sum per forward
+    assert capsys.readouterr().out.splitlines()[-1].startswith("residual CNN, 5 batch norms per recorded forward")
+
+
 def test_norm_pair_block_preconditions_like_numpy_solve():
     # numpy.linalg.solve((B + lambda I), vec(grad)) on the dense block-diagonal matrix; damped_product inverse.
     model, path, inputs, channels = NORM_PROBLEMS["batchnorm2d"]()
