@@ -5,7 +5,8 @@ import numpy as np
 import pytest
 import torch
 
-from ngopt.linalg import damped_inverse, factored_damping, inversion_dtype
+from ngopt.linalg import (SINGLE_PRECISION_CONDITION, damped_inverse, factored_damping, inversion_dtype,
+                          largest_eigenvalue_bound)
 
 
 def _spd(n, seed, rank=None):
@@ -77,8 +78,10 @@ def test_factored_damping_balances_the_factors_and_multiplies_to_lambda():
 
 
 # Single-precision statistics.  Cholesky in float32 has a backward error of order n * 6e-8 and the
-# inverse a relative error of order cond * 6e-8 (Higham, ch. 10 and 14); with cond <= 1e3 that is
-# ~1e-4 at worst, so 1e-4 relative (in the Frobenius norm) is the bound asserted.
+# inverse a relative error of order cond * 6e-8 (Higham, Accuracy and Stability of Numerical
+# Algorithms, 2nd ed., ch. 10 and 14): ~6e-7 at the cond <= 11 of the two tests below, where 1e-4
+# relative (in the Frobenius norm) is asserted, and ~6e-4 at the float32 path's limit, cond <= 1e4,
+# where 1e-3 is.
 @pytest.mark.parametrize("n", [40, 300])
 def test_single_precision_statistics_are_inverted_in_float32_when_the_damping_keeps_them_well_conditioned(n):
     matrix = _spd(n, seed=n)
@@ -104,6 +107,40 @@ def test_a_float32_factor_is_inverted_without_a_float64_copy_to_the_same_accurac
     assert error < 1e-4
     via_float64 = damped_inverse(torch.from_numpy(matrix.astype(np.float64)), shift, precision=torch.float32)
     np.testing.assert_allclose(result.inverse.numpy(), via_float64.inverse.numpy(), rtol=1e-5, atol=1e-7)
+
+
+def _spread_spectrum(n: int, decades: float, seed: int) -> np.ndarray:
+    """A symmetric matrix with eigenvalues 1 ... 10^-decades, geometrically spaced, in a random basis."""
+    vectors, _ = np.linalg.qr(np.random.default_rng(seed).standard_normal((n, n)))
+    return (vectors * np.logspace(0.0, -decades, n)) @ vectors.T
+
+
+@pytest.mark.parametrize("n", [64, 300])
+def test_a_float32_factor_at_the_float32_paths_condition_limit_is_inverted_in_float32_within_its_bound(n):
+    # Spectrum 1 ... 1e-6 and a shift that puts the condition bound just inside 1e4: the largest
+    # eigenvalue is 1 and the trace about 0.07 n, so the row-sum bound decides and the true condition
+    # number is within a few times the bound.  Error against numpy's float64 inverse of the same
+    # float32 numbers: 1e-3 relative (the estimate above, ~6e-4, with room).
+    matrix = _spread_spectrum(n, 6.0, seed=n).astype(np.float32)
+    bound = largest_eigenvalue_bound(torch.from_numpy(matrix))
+    shift = bound / (0.9 * SINGLE_PRECISION_CONDITION - 1.0)
+    true_condition = (1.0 + shift) / shift
+    assert 0.1 * SINGLE_PRECISION_CONDITION < true_condition <= SINGLE_PRECISION_CONDITION
+    result = damped_inverse(torch.from_numpy(matrix), shift)
+    assert result.inverse.dtype == torch.float32 and not result.used_fallback
+    expected = np.linalg.inv(matrix.astype(np.float64) + shift * np.eye(n))
+    error = np.linalg.norm(result.inverse.numpy() - expected) / np.linalg.norm(expected)
+    assert 1e-9 < error < 1e-3  # float32 rounding shows: the fast path ran
+
+
+def test_a_float32_factor_just_past_the_condition_limit_is_inverted_in_float64():
+    matrix = _spread_spectrum(64, 6.0, seed=2).astype(np.float32)
+    bound = largest_eigenvalue_bound(torch.from_numpy(matrix))
+    shift = bound / (2.0 * SINGLE_PRECISION_CONDITION - 1.0)  # the bound: 2e4
+    result = damped_inverse(torch.from_numpy(matrix), shift)
+    expected = np.linalg.inv(matrix.astype(np.float64) + shift * np.eye(64))
+    assert result.inverse.dtype == torch.float64
+    np.testing.assert_allclose(result.inverse.numpy(), expected, rtol=1e-8, atol=1e-8 * np.abs(expected).max())
 
 
 def test_an_ill_conditioned_float32_factor_is_inverted_in_float64():
