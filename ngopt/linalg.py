@@ -16,10 +16,12 @@ of Numerical Algorithms, 2nd ed., ch. 10 and 14), so up to :data:`SINGLE_PRECISI
 the inverse is within about 6e-4 of the float64 one; measured on Gram matrices of uncentred,
 rank-deficient rows at that bound, within 7e-5 up to d = 2049 (``python scripts/inversion_precision.py
 --condition 10000 --rank-deficient``).  Either is far below what the approximation already leaves out
-(a Monte Carlo Fisher from one batch, a running average that moves by a third at each refresh).  A bound of
-1e3 kept the benchmark CNN's 513-row input factor of its last layer in float64 at most inversions (its
-bound: median 1.1e3, at most 1.3e3 over 40 steps).  Float32 Cholesky and inverse ran 1.4x (d = 257) to 1.9x
-(d = 513) faster than float64 on a 2-core AMD EPYC (the same script), and a float32 factor on that path is
+(a Monte Carlo Fisher from one batch, a running average that takes 0.3 of each refresh's new
+statistics).  A bound of 1e3 sent the benchmark CNN's 513-row input factor of its last layer to float64
+at 7 of its 12 inversions in the first 40 steps (bound median 1.04e3, at most 1.28e3; ``python
+scripts/factor_conditions.py --task digits_cnn --steps 40 --limit 1000``).  Float32 Cholesky and inverse
+ran 1.4x (d = 257) to 2.1x (d = 2049) faster than float64 on a 2-core AMD EPYC
+(``python scripts/inversion_precision.py``), and a float32 factor on that path is
 never copied to float64 at all (the copies there and back cost as much as the factorization below
 d = 100).  Float64 statistics are always inverted in float64.
 """

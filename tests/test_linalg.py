@@ -109,6 +109,22 @@ def test_a_float32_factor_is_inverted_without_a_float64_copy_to_the_same_accurac
     np.testing.assert_allclose(result.inverse.numpy(), via_float64.inverse.numpy(), rtol=1e-5, atol=1e-7)
 
 
+def test_the_largest_eigenvalue_bound_bounds_numpys_largest_eigenvalue_and_is_exact_for_a_diagonal():
+    # Gershgorin: every eigenvalue lies within max_i sum_j |a_ij|; for a positive semi-definite matrix the
+    # trace, the sum of the eigenvalues, bounds the largest too (Horn & Johnson, Matrix Analysis, 2nd ed.,
+    # thm. 6.1.1 and sec. 1.2).  The bound is the smaller of the two.
+    for seed, rank in [(0, None), (1, 3), (2, 1)]:
+        matrix = _spd(30, seed=seed, rank=rank)
+        largest = np.linalg.eigvalsh(matrix)[-1]
+        bound = largest_eigenvalue_bound(torch.from_numpy(matrix))
+        assert largest * (1 - 1e-12) <= bound <= min(np.trace(matrix), np.abs(matrix).sum(1).max()) * (1 + 1e-12)
+    diagonal = np.diag([0.5, 3.0, 2.0])
+    assert largest_eigenvalue_bound(torch.from_numpy(diagonal)) == pytest.approx(3.0, rel=1e-15)
+    # A batch of matrices: the largest over the batch.
+    batch = torch.from_numpy(np.stack([diagonal, 2 * diagonal]))
+    assert largest_eigenvalue_bound(batch) == pytest.approx(6.0, rel=1e-15)
+
+
 def _spread_spectrum(n: int, decades: float, seed: int) -> np.ndarray:
     """A symmetric matrix with eigenvalues 1 ... 10^-decades, geometrically spaced, in a random basis."""
     vectors, _ = np.linalg.qr(np.random.default_rng(seed).standard_normal((n, n)))
