@@ -24,12 +24,10 @@ import torch
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))  # the checkout, not an install
 import ngopt  # noqa: E402
-from benchmarks.held_out import HELD_OUT_TASKS  # noqa: E402
-from benchmarks.tasks import TASKS  # noqa: E402
+from benchmarks.task_sets import ALL_TASKS  # noqa: E402
 from benchmarks.training import minibatches  # noqa: E402
 from ngopt.linalg import SINGLE_PRECISION_CONDITION, largest_eigenvalue_bound  # noqa: E402
 
-ALL_TASKS = {**TASKS, **HELD_OUT_TASKS}
 SIDES = (("in", "factor_in", "in_damping"), ("out", "factor_out", "out_damping"))
 
 

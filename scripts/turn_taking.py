@@ -20,9 +20,8 @@ import torch
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))  # the checkout, not an install
 from benchmarks.harness import TURN_STEPS  # noqa: E402
-from benchmarks.held_out import HELD_OUT_TASKS  # noqa: E402
 from benchmarks.optimizers import OPTIMIZERS  # noqa: E402
-from benchmarks.tasks import TASKS  # noqa: E402
+from benchmarks.task_sets import ALL_TASKS  # noqa: E402
 from benchmarks.training import TrainingRun, train_run, train_runs_in_turns  # noqa: E402
 
 
@@ -61,7 +60,7 @@ def main(argv=None) -> int:
         if getattr(args, name) < 1:
             parser.error(f"--{name} must be at least 1, got {getattr(args, name)}")
     torch.set_num_threads(args.threads)
-    task = {**TASKS, **HELD_OUT_TASKS}[args.task]
+    task = ALL_TASKS[args.task]
     jobs = parse_optimizers(args.optimizers)
     names = [name for name, _ in jobs]
     ratios = {way: {name: [] for name in names[1:]} for way in ("one after the other", "in turns")}
