@@ -30,7 +30,7 @@ from __future__ import annotations
 import math
 from contextlib import contextmanager
 from dataclasses import dataclass
-from typing import Iterator, Optional
+from typing import Dict, Iterator, List, Optional, Sequence, Tuple
 
 import torch
 
@@ -127,12 +127,78 @@ def damped_inverse(matrix: torch.Tensor, shift: float, want_spectrum: bool = Fal
         chol, info = torch.linalg.cholesky_ex(damped)
         if int(info) == 0:
             return DampedInverse(torch.cholesky_inverse(chol), None, False)
+    return _eigen_inverse(matrix, shift, want_spectrum)
+
+
+def _eigen_inverse(matrix: torch.Tensor, shift: float, want_spectrum: bool) -> DampedInverse:
+    """The damped inverse of the nearest positive semi-definite matrix, from an eigendecomposition in float64."""
     sym = matrix.to(torch.float64)
     sym = torch.add(sym, sym.T).mul_(0.5)
     eigenvalues, vectors = torch.linalg.eigh(sym)
     clipped = eigenvalues.clamp(min=0.0) + shift
     inverse = (vectors / clipped) @ vectors.T
     return DampedInverse(inverse, eigenvalues if want_spectrum else None, not want_spectrum)
+
+
+def damped_inverses(requests: Sequence[Tuple[torch.Tensor, float, Optional[torch.dtype]]]) -> List[DampedInverse]:
+    """:func:`damped_inverse` (no spectrum) of every ``(matrix, shift, precision)`` in ``requests``, in order.
+
+    Factors of one size and statistics precision are symmetrized and bounded together, and those that
+    then invert in the same dtype go through one batched Cholesky and one batched inverse: on factors of
+    a few dozen rows the dozen calls around each factorization cost more than LAPACK itself (a small
+    transformer's 26 factors of 32-65 rows: 1.7 against 1.0 ms on a 2-core AMD EPYC, ``python
+    scripts/batched_inversion_time.py``).  Each factor gets the dtype, the inverse (up to rounding) and
+    the fallback that :func:`damped_inverse` would give it alone; a factor whose Cholesky fails takes
+    the eigendecomposition path alone, and the others of its batch are not affected.
+    """
+    prepared = []
+    for matrix, shift, precision in requests:
+        matrix, precision = inversion_input(matrix, precision)
+        prepared.append((matrix, precision, float(shift)))
+    groups: Dict[tuple, List[int]] = {}
+    for index, (matrix, precision, _) in enumerate(prepared):
+        key = (tuple(matrix.shape), matrix.dtype, precision, matrix.device)
+        groups.setdefault(key, []).append(index)
+    results: List[Optional[DampedInverse]] = [None] * len(prepared)
+    for indices in groups.values():
+        if len(indices) == 1:  # alone: no stacked copy
+            matrix, precision, shift = prepared[indices[0]]
+            results[indices[0]] = damped_inverse(matrix, shift, False, precision)
+            continue
+        _invert_group(prepared, indices, results)
+    return results
+
+
+def _invert_group(prepared: list, indices: List[int], results: list) -> None:
+    """Fill ``results`` for ``indices``: factors of one shape, dtype and precision."""
+    stack = torch.stack([prepared[i][0] for i in indices])
+    sym = torch.add(stack, stack.mT).mul_(0.5)
+    traces = sym.diagonal(dim1=-2, dim2=-1).sum(-1, dtype=torch.float64)
+    rows = sym.abs().sum(-1, dtype=torch.float64).amax(-1)
+    bounds = torch.minimum(traces, rows).tolist()  # one host sync for the whole group
+    precision = prepared[indices[0]][1]
+    by_dtype: Dict[torch.dtype, List[int]] = {}
+    for position, index in enumerate(indices):
+        dtype = inversion_dtype(bounds[position], prepared[index][2], precision)
+        by_dtype.setdefault(dtype, []).append(position)
+    for dtype, positions in by_dtype.items():
+        members = sym if len(positions) == len(indices) else sym[positions]
+        damped = members if members.dtype == dtype else members.to(dtype)  # sym and its rows are this call's own
+        shifts = torch.tensor([prepared[indices[p]][2] for p in positions], dtype=dtype)
+        damped.diagonal(dim1=-2, dim2=-1).add_(shifts.unsqueeze(-1))
+        chol, info = torch.linalg.cholesky_ex(damped)
+        failed = {k for k, code in enumerate(info.tolist()) if code != 0}
+        for k in failed:
+            chol[k] = torch.eye(chol.shape[-1], dtype=dtype, device=chol.device)  # a zero pivot would stop cholesky_inverse
+        # Each inverse is copied out of the batch: a view would keep (and save) the whole batch's storage.
+        inverses = torch.cholesky_inverse(chol).unbind(0)
+        for k, position in enumerate(positions):
+            index = indices[position]
+            if k in failed:
+                matrix, _, shift = prepared[index]
+                results[index] = _eigen_inverse(matrix, shift, False)
+            else:
+                results[index] = DampedInverse(inverses[k].clone(), None, False)
 
 
 def inversion_input(matrix: torch.Tensor, precision: Optional[torch.dtype]):

@@ -21,7 +21,7 @@ import torch
 from . import fallback as fallback_rules
 from . import scratch
 from .fallback import with_weight_decay
-from .linalg import inversion_threads, pair_gram
+from .linalg import damped_inverses, inversion_threads, pair_gram
 from .packing import BlockPacker
 from .blocks.base import LayerCurvature
 from .rules.base import StepInputs, StepResult
@@ -104,13 +104,31 @@ def new_inverses(jobs: list, invert: Optional[Callable] = None, track_spectra: b
     threads = inversion_threads(max((t.shape[-1] for _, stats, _ in jobs for t in stats.values()
                                      if torch.is_tensor(t) and t.dim() > 1), default=1)) if jobs else nullcontext()
     with threads:
-        if invert is not None:
-            inverses = invert(jobs)
-        else:
-            inverses = {block: block.prepare_inverse(stats, damping, track_spectra) for block, stats, damping in jobs}
+        inverses = invert(jobs) if invert is not None else invert_blocks(jobs, track_spectra)
     if not all_finite([t for new, _ in inverses.values() for t in new.values()]):
         return None
     return inverses
+
+
+def invert_blocks(jobs: list, track_spectra: bool = False) -> dict:
+    """``{block: block.prepare_inverse(statistics, damping, track_spectra)}`` for ``jobs``, in one process.
+
+    Without spectra, the blocks that split their work into an :class:`~ngopt.blocks.base.InversionPlan`
+    have all their factors inverted in one :func:`~ngopt.linalg.damped_inverses` call (equal sizes
+    batched together); the others invert their own.
+    """
+    plans = {} if track_spectra else {block: block.inversion_plan(stats, damping) for block, stats, damping in jobs}
+    planned = [(block, plan) for block, plan in plans.items() if plan is not None]
+    results = damped_inverses([request for _, plan in planned for request in plan.requests])
+    inverses, start = {}, 0
+    for block, plan in planned:
+        stop = start + len(plan.requests)
+        inverses[block] = plan.finish(results[start:stop])
+        start = stop
+    for block, stats, damping in jobs:
+        if block not in inverses:
+            inverses[block] = block.prepare_inverse(stats, damping, track_spectra)
+    return {block: inverses[block] for block, _, _ in jobs}
 
 
 def add_projected_statistics(blocks: Sequence[LayerCurvature], statistics: dict, inverses: dict, forwards: dict,

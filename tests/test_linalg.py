@@ -283,6 +283,9 @@ def test_the_inversion_phase_runs_under_the_fitted_thread_count():
     seen = []
 
     class Block:
+        def inversion_plan(self, statistics, damping):
+            return None
+
         def prepare_inverse(self, statistics, damping, want_spectrum):
             seen.append(torch.get_num_threads())
             return {"inverse": torch.eye(2)}, {}

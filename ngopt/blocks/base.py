@@ -20,7 +20,8 @@ carries them.
 from __future__ import annotations
 
 from collections.abc import MutableMapping
-from typing import Dict, List, Optional, Tuple
+from dataclasses import dataclass
+from typing import Callable, Dict, List, Optional, Tuple
 
 import torch
 
@@ -28,6 +29,16 @@ from .layers import LayerAdapter
 from .rows import join_positions
 
 Tensors = Dict[str, torch.Tensor]
+
+
+@dataclass
+class InversionPlan:
+    """A block's factors to invert, ``[(matrix on the CPU, shift, statistics precision or None)]``, and
+    ``finish``, which turns their :class:`ngopt.linalg.DampedInverse` results, in the same order, into what
+    ``prepare_inverse`` returns."""
+
+    requests: List[Tuple[torch.Tensor, float, Optional[torch.dtype]]]
+    finish: Callable[[list], Tuple[Tensors, dict]]
 
 
 class PrefixedState(MutableMapping):
@@ -163,6 +174,12 @@ class LayerCurvature:
                         want_spectrum: bool) -> Tuple[Tensors, dict]:
         """New inverse tensors and the diagnostics that came with them (traces, damping, spectra)."""
         raise NotImplementedError
+
+    def inversion_plan(self, statistics: Tensors, damping: float) -> Optional["InversionPlan"]:
+        """The same work as ``prepare_inverse(statistics, damping, False)`` split in two, so that the
+        optimizer can invert the factors of many blocks together (:func:`ngopt.linalg.damped_inverses`);
+        None where the block inverts in its own way (the default)."""
+        return None
 
     def commit(self, tensors: Tensors) -> None:
         self.state.update(tensors)

@@ -56,6 +56,9 @@ class EigenbasisBlock(KroneckerBlock):
         info["used_eig_fallback"] = False
         return result, info
 
+    def inversion_plan(self, statistics, damping):
+        return None  # eigendecompositions, not damped inverses
+
     # -- the scales -----------------------------------------------------------------------
     def projected_batch_statistics(self, view, num_forwards):
         if not self.pending:

@@ -18,7 +18,7 @@ import torch
 from ..factors import Whole, factor_form
 from ..linalg import factored_damping, to_cpu
 from ..spectra import kronecker_summary
-from .base import LayerCurvature
+from .base import InversionPlan, LayerCurvature
 from .rows import example_chunks, mean_over_positions
 
 
@@ -100,22 +100,38 @@ class KroneckerBlock(LayerCurvature):
         return {"factor_in": factor_in / rows, "factor_out": factor_out / num_forwards}
 
     def prepare_inverse(self, statistics, damping, want_spectrum):
-        # In the statistics' own precision: a float32 factor that float32 inverts safely is never
-        # copied to float64 (ngopt/linalg.py).
-        factor_in, factor_out = to_cpu(statistics["factor_in"]), to_cpu(statistics["factor_out"])
-        trace_in, trace_out = float(self.form_in.trace(factor_in)), float(self.form_out.trace(factor_out))
-        shift_in, shift_out = factored_damping(trace_in, self.form_in.dim, trace_out, self.form_out.dim, damping)
+        factor_in, shift_in, factor_out, shift_out, info = self._damped_split(statistics, damping)
         inv_in, eig_in, fallback_in = self.form_in.inverse(factor_in, shift_in, want_spectrum)
         inv_out, eig_out, fallback_out = self.form_out.inverse(factor_out, shift_out, want_spectrum)
+        info.update(in_eigenvalues=eig_in, out_eigenvalues=eig_out, used_eig_fallback=fallback_in or fallback_out)
+        return self._on_device(inv_in, inv_out), info
+
+    def inversion_plan(self, statistics, damping):
+        if type(self.form_in) is not Whole or type(self.form_out) is not Whole:
+            return None  # a block-diagonal factor is already one batched inversion of its own
+        factor_in, shift_in, factor_out, shift_out, info = self._damped_split(statistics, damping)
+
+        def finish(results):
+            inverse_in, inverse_out = results
+            info.update(in_eigenvalues=None, out_eigenvalues=None,
+                        used_eig_fallback=inverse_in.used_fallback or inverse_out.used_fallback)
+            return self._on_device(inverse_in.inverse, inverse_out.inverse), info
+
+        return InversionPlan([(factor_in, shift_in, None), (factor_out, shift_out, None)], finish)
+
+    def _damped_split(self, statistics, damping):
+        """The factors on the CPU in their own precision (a float32 factor that float32 inverts safely is
+        never copied to float64, ngopt/linalg.py), their shifts, and the diagnostics of the split."""
+        factor_in, factor_out = to_cpu(statistics["factor_in"]), to_cpu(statistics["factor_out"])
+        traces = torch.stack([self.form_in.trace(factor_in), self.form_out.trace(factor_out)]).tolist()  # one sync
+        shift_in, shift_out = factored_damping(traces[0], self.form_in.dim, traces[1], self.form_out.dim, damping)
+        info = {"in_trace": traces[0], "out_trace": traces[1], "in_damping": shift_in, "out_damping": shift_out}
+        return factor_in, shift_in, factor_out, shift_out, info
+
+    def _on_device(self, inverse_in, inverse_out):
         ref = self.layer.weight
-        info = {
-            "in_trace": trace_in, "out_trace": trace_out,
-            "in_damping": shift_in, "out_damping": shift_out,
-            "in_eigenvalues": eig_in, "out_eigenvalues": eig_out,
-            "used_eig_fallback": fallback_in or fallback_out,
-        }
-        return {"inverse_in": inv_in.to(device=ref.device, dtype=ref.dtype),
-                "inverse_out": inv_out.to(device=ref.device, dtype=ref.dtype)}, info
+        return {"inverse_in": inverse_in.to(device=ref.device, dtype=ref.dtype),
+                "inverse_out": inverse_out.to(device=ref.device, dtype=ref.dtype)}
 
     writes_into = True
 

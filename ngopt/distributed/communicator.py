@@ -11,6 +11,7 @@ import torch.distributed as dist
 from ..blocks.base import LayerCurvature
 from ..optimizer import FisherDescent
 from ..schedule import damping_due, resync_due
+from ..step_pipeline import invert_blocks
 from .collectives import CurvatureSyncError, _as_timedelta, _communication_device, _complete, _first_rank
 from .costs import _has_own_inverse, assign_owners, cheaper_inverse_collective, inverse_exchange_bytes, inversion_cost
 from .data_parallel import sync_parameters
@@ -130,7 +131,7 @@ class CurvatureCommunicator:
         sharding = self.shard_inversions and self.world_size > 1
         shared = [job for job in jobs if sharding and _has_own_inverse(job[0])]
         local = [job for job in jobs if not (sharding and _has_own_inverse(job[0]))]
-        results = {block: block.prepare_inverse(stats, damping, want) for block, stats, damping in local}
+        results = invert_blocks(local, want)
         self.totals["inversions_here"] += len(results)
         if not shared:
             return results
