@@ -111,7 +111,7 @@ def new_inverses(jobs: list, invert: Optional[Callable] = None, track_spectra: b
 
 
 def invert_blocks(jobs: list, track_spectra: bool = False) -> dict:
-    """``{block: block.prepare_inverse(statistics, damping, track_spectra)}`` for ``jobs``, in one process.
+    """``{block: block.prepare_inverse(statistics, damping, track_spectra)}`` for ``jobs``, inverted in this process.
 
     Without spectra, the blocks that split their work into an :class:`~ngopt.blocks.base.InversionPlan`
     have all their factors inverted in one :func:`~ngopt.linalg.damped_inverses` call (equal sizes
