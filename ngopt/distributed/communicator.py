@@ -138,9 +138,7 @@ class CurvatureCommunicator:
         owners = assign_owners([inversion_cost(block, stats) for block, stats, _ in shared], self.world_size)
         mine, error = {}, None
         try:
-            for (block, stats, damping), owner in zip(shared, owners):
-                if owner == self.rank:
-                    mine[block] = block.prepare_inverse(stats, damping, want)
+            mine = invert_blocks([job for job, owner in zip(shared, owners) if owner == self.rank], want)
         except Exception as exc:  # sent to the peers so that they fail too instead of waiting
             error = exc
         self.totals["inversions_here"] += len(mine)
