@@ -184,7 +184,7 @@ def _invert_group(prepared: list, indices: List[int], results: list) -> None:
     for dtype, positions in by_dtype.items():
         members = sym if len(positions) == len(indices) else sym[positions]
         damped = members if members.dtype == dtype else members.to(dtype)  # sym and its rows are this call's own
-        shifts = torch.tensor([prepared[indices[p]][2] for p in positions], dtype=dtype)
+        shifts = torch.tensor([prepared[indices[p]][2] for p in positions], dtype=dtype, device=damped.device)
         damped.diagonal(dim1=-2, dim2=-1).add_(shifts.unsqueeze(-1))
         chol, info = torch.linalg.cholesky_ex(damped)
         failed = {k for k, code in enumerate(info.tolist()) if code != 0}
