@@ -140,14 +140,23 @@ def _eigen_inverse(matrix: torch.Tensor, shift: float, want_spectrum: bool) -> D
     return DampedInverse(inverse, eigenvalues if want_spectrum else None, not want_spectrum)
 
 
+# Factors batched together are at most this many rows (above it LAPACK's own work is the inversion and a
+# batch saves nothing: 256-row factors took 0.96-1.00x the one-by-one time), and one batch holds at most
+# this many entries (32 MB in float32), so that a model with many wide layers of one size never holds a
+# second copy of all their factors at once.
+BATCHED_MAX_ROWS = 256
+BATCHED_MAX_ENTRIES = 8 * 2 ** 20
+
+
 def damped_inverses(requests: Sequence[Tuple[torch.Tensor, float, Optional[torch.dtype]]]) -> List[DampedInverse]:
     """:func:`damped_inverse` (no spectrum) of every ``(matrix, shift, precision)`` in ``requests``, in order.
 
-    Factors of one size and statistics precision are symmetrized and bounded together, and those that
-    then invert in the same dtype go through one batched Cholesky and one batched inverse: on factors of
-    a few dozen rows the dozen calls around each factorization cost more than LAPACK itself (a small
-    transformer's 26 factors of 32-65 rows: 1.7 against 1.0 ms on a 2-core AMD EPYC, ``python
-    scripts/batched_inversion_time.py``).  Each factor gets the dtype, the inverse (up to rounding) and
+    Factors of one size (at most :data:`BATCHED_MAX_ROWS` rows; larger ones go alone) and statistics
+    precision are symmetrized and bounded together, in batches of at most :data:`BATCHED_MAX_ENTRIES`
+    entries, and those that then invert in the same dtype go through one batched Cholesky and one batched
+    inverse: on factors of a few dozen rows the dozen calls around each factorization cost more than LAPACK
+    itself (a small transformer's 28 factors of 32-65 rows: 1.8 against 2.7 ms on a 2-core AMD EPYC,
+    ``python scripts/batched_inversion_time.py``).  Each factor gets the dtype, the inverse (up to rounding) and
     the fallback that :func:`damped_inverse` would give it alone; a factor whose Cholesky fails takes
     the eigendecomposition path alone, and the others of its batch are not affected.
     """
@@ -157,15 +166,19 @@ def damped_inverses(requests: Sequence[Tuple[torch.Tensor, float, Optional[torch
         prepared.append((matrix, precision, float(shift)))
     groups: Dict[tuple, List[int]] = {}
     for index, (matrix, precision, _) in enumerate(prepared):
-        key = (tuple(matrix.shape), matrix.dtype, precision, matrix.device)
+        alone = matrix.shape[-1] > BATCHED_MAX_ROWS
+        key = (index,) if alone else (tuple(matrix.shape), matrix.dtype, precision, matrix.device)
         groups.setdefault(key, []).append(index)
     results: List[Optional[DampedInverse]] = [None] * len(prepared)
     for indices in groups.values():
-        if len(indices) == 1:  # alone: no stacked copy
-            matrix, precision, shift = prepared[indices[0]]
-            results[indices[0]] = damped_inverse(matrix, shift, False, precision)
-            continue
-        _invert_group(prepared, indices, results)
+        size = max(1, BATCHED_MAX_ENTRIES // prepared[indices[0]][0].numel())
+        for start in range(0, len(indices), size):
+            batch = indices[start:start + size]
+            if len(batch) == 1:  # alone: no stacked copy
+                matrix, precision, shift = prepared[batch[0]]
+                results[batch[0]] = damped_inverse(matrix, shift, False, precision)
+            else:
+                _invert_group(prepared, batch, results)
     return results
 
 

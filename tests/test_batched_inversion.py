@@ -96,6 +96,28 @@ def test_a_factor_whose_cholesky_fails_takes_the_eigen_path_alone_and_its_batch_
         assert _relative_error(results[index].inverse, matrices[index], shift) < 1e-8
 
 
+def test_large_factors_go_alone_and_batches_are_bounded_in_size(monkeypatch):
+    # Above BATCHED_MAX_ROWS a factor is inverted alone (a batch saves nothing there and would hold a second
+    # copy of many large factors); a group is split into batches of at most BATCHED_MAX_ENTRIES entries.
+    import ngopt.linalg as linalg
+    batches = []
+    real = linalg._invert_group
+
+    def spy(prepared, indices, results):
+        batches.append([prepared[i][0].shape[0] for i in indices])
+        return real(prepared, indices, results)
+
+    monkeypatch.setattr(linalg, "_invert_group", spy)
+    monkeypatch.setattr(linalg, "BATCHED_MAX_ROWS", 10)
+    monkeypatch.setattr(linalg, "BATCHED_MAX_ENTRIES", 2 * 8 * 8)
+    matrices = [_spread_spectrum(12, 2.0, seed=s) for s in range(2)] + [_spread_spectrum(8, 2.0, seed=s)
+                                                                          for s in range(2, 7)]
+    results = damped_inverses([(torch.from_numpy(m), 1e-3, None) for m in matrices])
+    assert batches == [[8, 8], [8, 8]]  # the 12-row factors alone, the fifth 8-row factor alone
+    for matrix, result in zip(matrices, results):
+        assert _relative_error(result.inverse, matrix, 1e-3) < 1e-8
+
+
 def test_a_half_precision_factor_joins_float32_statistics_of_its_size():
     # LAPACK has no half types: a bfloat16 statistic is inverted as float32 numbers, as alone.
     matrix = _spread_spectrum(8, 2.0, seed=1)
