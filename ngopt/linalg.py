@@ -74,9 +74,25 @@ class DampedInverse:
 def largest_eigenvalue_bound(sym: torch.Tensor) -> float:
     """An upper bound on the largest eigenvalue of each positive semi-definite matrix in ``sym`` (max over a
     batch): the smaller of its trace and its largest absolute row sum (Gershgorin), summed in float64."""
+    return float(eigenvalue_bounds(sym).max())
+
+
+def eigenvalue_bounds(sym: torch.Tensor) -> torch.Tensor:
+    """The bound of :func:`largest_eigenvalue_bound` for each matrix of ``sym`` (``[...]``, float64)."""
     trace = sym.diagonal(dim1=-2, dim2=-1).sum(-1, dtype=torch.float64)
     rows = sym.abs().sum(-1, dtype=torch.float64).amax(-1)
-    return float(torch.minimum(trace, rows).max())
+    return torch.minimum(trace, rows)
+
+
+def batched_cholesky_inverse(damped: torch.Tensor) -> Tuple[torch.Tensor, List[int]]:
+    """``(inverses, failed)`` for a batch ``[n, d, d]`` of damped matrices: one batched Cholesky and one batched
+    inverse; ``failed`` lists the positions whose Cholesky failed (numerically indefinite), whose entries in
+    ``inverses`` mean nothing: the caller gives them its fallback."""
+    chol, info = torch.linalg.cholesky_ex(damped)
+    failed = [k for k, code in enumerate(info.tolist()) if code != 0]
+    for k in failed:  # a zero pivot would stop cholesky_inverse
+        chol[k] = torch.eye(chol.shape[-1], dtype=chol.dtype, device=chol.device)
+    return torch.cholesky_inverse(chol), failed
 
 
 @contextmanager
@@ -186,9 +202,7 @@ def _invert_group(prepared: list, indices: List[int], results: list) -> None:
     """Fill ``results`` for ``indices``: factors of one shape, dtype and precision."""
     stack = torch.stack([prepared[i][0] for i in indices])
     sym = torch.add(stack, stack.mT).mul_(0.5)
-    traces = sym.diagonal(dim1=-2, dim2=-1).sum(-1, dtype=torch.float64)
-    rows = sym.abs().sum(-1, dtype=torch.float64).amax(-1)
-    bounds = torch.minimum(traces, rows).tolist()  # one host sync for the whole group
+    bounds = eigenvalue_bounds(sym).tolist()  # one host sync for the whole group
     precision = prepared[indices[0]][1]
     by_dtype: Dict[torch.dtype, List[int]] = {}
     for position, index in enumerate(indices):
@@ -199,12 +213,9 @@ def _invert_group(prepared: list, indices: List[int], results: list) -> None:
         damped = members if members.dtype == dtype else members.to(dtype)  # sym and its rows are this call's own
         shifts = torch.tensor([prepared[indices[p]][2] for p in positions], dtype=dtype, device=damped.device)
         damped.diagonal(dim1=-2, dim2=-1).add_(shifts.unsqueeze(-1))
-        chol, info = torch.linalg.cholesky_ex(damped)
-        failed = {k for k, code in enumerate(info.tolist()) if code != 0}
-        for k in failed:
-            chol[k] = torch.eye(chol.shape[-1], dtype=dtype, device=chol.device)  # a zero pivot would stop cholesky_inverse
+        batch, failed = batched_cholesky_inverse(damped)
         # Each inverse is copied out of the batch: a view would keep (and save) the whole batch's storage.
-        inverses = torch.cholesky_inverse(chol).unbind(0)
+        inverses = batch.unbind(0)
         for k, position in enumerate(positions):
             index = indices[position]
             if k in failed:
