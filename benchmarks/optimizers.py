@@ -25,9 +25,9 @@ so that a results table reads as methods side by side. Rows on request:
 - ``fisher-descent-tuned``: FisherDescent with an lr grid like the baselines',
   centred at the library's own default lr (read from the library, so a change
   of the default moves the grid with it);
-- ``fisher-descent-ekfac``, ``fisher-descent-diag``: the untuned row with
-  ``structure="ekfac"`` or ``"diag"``, so that they differ from
-  ``fisher-descent`` in the curvature alone;
+- ``fisher-descent-ekfac``, ``fisher-descent-ekfac-gradient``, ``fisher-descent-diag``:
+  the untuned row with ``structure="ekfac"``, ``"ekfac-gradient"`` or ``"diag"``, so
+  that they differ from ``fisher-descent`` in the curvature alone;
 - ``fisher-descent-cosine``: the untuned row with its default lr decayed to 0
   over the run's step budget (:func:`benchmarks.schedules.cosine`), the schedule
   a user who knows the length of the run would add.
@@ -208,6 +208,7 @@ OPTIMIZERS: dict[str, OptimizerSpec] = {
                       1e-2, _muon, unavailable=muon_available, slow_here=muon_slow_here),
         natural_gradient_row(TUNED, {}, tuned=True),
         natural_gradient_row(f"{HEADLINE}-ekfac", {"structure": "ekfac"}),
+        natural_gradient_row(f"{HEADLINE}-ekfac-gradient", {"structure": "ekfac-gradient"}),
         natural_gradient_row(f"{HEADLINE}-diag", {"structure": "diag"}),
         natural_gradient_row(f"{HEADLINE}-cosine", {}, schedule=schedules.cosine,
                              schedule_words=schedules.describe_cosine()),

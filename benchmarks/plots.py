@@ -14,7 +14,8 @@ from benchmarks.optimizers import HEADLINE  # noqa: E402
 from benchmarks.results import write_atomically  # noqa: E402
 from benchmarks.scaling import step_key  # noqa: E402
 
-COLOURS = {HEADLINE: "#8e2c48", f"{HEADLINE}-ekfac": "#4b3f8e", f"{HEADLINE}-diag": "#c0607a", "sgd": "#3f7f5f",
+COLOURS = {HEADLINE: "#8e2c48", f"{HEADLINE}-ekfac": "#4b3f8e", f"{HEADLINE}-ekfac-gradient": "#2a8a86",
+           f"{HEADLINE}-diag": "#c0607a", "sgd": "#3f7f5f",
            "adam": "#d08c1c", "adamw-cosine": "#2f6fa8", "muon": "#7a7a2a"}
 FALLBACK_COLOUR = "#555555"
 

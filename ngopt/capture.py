@@ -509,6 +509,11 @@ class CaptureHooks:
         self.records.clear()
         return forwards
 
+    def term_count(self) -> Optional[float]:
+        """``1 / mean w_n`` of the latest recorded forward's loss, per unit of a seen loss scale (the
+        batch's term count for a mean, 1 for a sum); None when no forward since the last step was recorded."""
+        return self._empirical_scale(self.records[-1]) if self.records else None
+
     def recorded_loss(self) -> Optional[float]:
         """The user's loss of the latest forward whose loss calls were recorded, as its backward saw it
         (``sum_n w_n l_n`` over its calls); None when no forward since the last step recorded one."""

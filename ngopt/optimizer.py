@@ -51,8 +51,8 @@ from .batch_evaluation import evaluator_for, loss_change, not_replayable_message
 from .rules import DAMPING_RULES, STEP_RULES
 from .rules.damping import reduction_ratio
 from .spectra import block_summary
-from .step_pipeline import (PendingStep, add_projected_statistics, all_finite, fallback_changes, new_inverses,
-                            new_statistics, proposals)
+from .step_pipeline import (PendingStep, add_gradient_scales, add_projected_statistics, all_finite,
+                            fallback_changes, new_inverses, new_statistics, proposals)
 from .validation import check_arguments
 
 DEFAULT_FALLBACK_LR_SCALE = {"sgd": 1.0, "adam": 1e-2}
@@ -103,7 +103,8 @@ class FisherDescent(torch.optim.Optimizer):
         weight_decay: L2 term added to the gradient before preconditioning (per group).
         damping: Tikhonov damping ``lambda`` added to the curvature (per group).
         fisher: ``'sampled'``, ``'exact'`` or ``'empirical'``.
-        structure: ``'kfac'``, ``'ekfac'`` or ``'diag'``.
+        structure: ``'kfac'``, ``'ekfac'``, ``'ekfac-gradient'`` (EKFAC's eigenbases with scales that
+            follow every step's gradient, ``blocks/gradient_scales.py``) or ``'diag'``.
         stats_interval: steps between curvature-statistics refreshes.
         inverse_interval: steps between inversions of the factors.
         interval_warmup: the gaps between refreshes and between inversions start at one step and
@@ -113,6 +114,8 @@ class FisherDescent(torch.optim.Optimizer):
             (each block on its own step of the interval, the cost spread evenly; see
             ``inversion_schedule.py``).
         stats_memory: weight of the old statistics in the running average.
+        scale_memory: ``structure='ekfac-gradient'``: weight of the old scales in their running
+            average over steps (each step adds the squared gradient in the eigenbasis).
         max_step_kl: bound on the step's KL divergence in the curvature blocks' own model (None: off).
         max_exact_step_kl: ``step_rule='fixed'``: ceiling on the step's KL in the exact Fisher of the
             whole model, measured every ``rule_interval`` steps (None: off; per group; no effect with
@@ -177,7 +180,7 @@ class FisherDescent(torch.optim.Optimizer):
                  stats_fraction: Optional[float] = None, inverse_schedule: str = "together",
                  cost_budget: Optional[float] = 1.0, max_factor_size: Optional[int] = 4096,
                  pinned_structures: Optional[dict] = None, interval_warmup: int = 2,
-                 loss_floor: Optional[float] = 0.0):
+                 loss_floor: Optional[float] = 0.0, scale_memory: float = 0.9):
         check_arguments(step_rule=step_rule)
         lr = RULE_DEFAULTS[step_rule]["lr"] if lr is None else lr
         momentum = RULE_DEFAULTS[step_rule]["momentum"] if momentum is None else momentum
@@ -193,7 +196,7 @@ class FisherDescent(torch.optim.Optimizer):
                         stats_fraction=stats_fraction, inverse_schedule=inverse_schedule,
                         cost_budget=cost_budget, max_factor_size=max_factor_size,
                         pinned_structures=pinned_structures, interval_warmup=interval_warmup,
-                        loss_floor=loss_floor)
+                        loss_floor=loss_floor, scale_memory=scale_memory)
         if step_rule == "quadratic" and rule_interval == 0:
             raise ValueError("rule_interval must be >= 1 with step_rule='quadratic' (it sets the steps between "
                              "its solves), got 0")
@@ -235,6 +238,10 @@ class FisherDescent(torch.optim.Optimizer):
 
         self.fisher = fisher
         self.stats_memory = stats_memory
+        self.scale_memory = scale_memory
+        # 1 / mean w_n of the latest recorded loss (its term count for a mean), at its true scale: the
+        # blocks whose scales follow the gradient weigh its square by it (blocks/gradient_scales.py).
+        self._term_count: Optional[float] = None
         self.damping_rule = damping_rule
         self.damping_range = tuple(float(x) for x in damping_range)
         self.damping_interval = damping_interval
@@ -360,7 +367,9 @@ class FisherDescent(torch.optim.Optimizer):
                  f"stats_interval={self.stats_interval}, inverse_interval={self.inverse_interval}, "
                  f"interval_warmup={self.interval_warmup}, "
                  f"inverse_schedule={self.inverse_schedule!r}, "
-                 f"stats_memory={self.stats_memory}, step_rule={self.step_rule!r}, "
+                 f"stats_memory={self.stats_memory}, "
+                 + (f"scale_memory={self.scale_memory}, " if self._follows_gradient() else "")
+                 + f"step_rule={self.step_rule!r}, "
                  f"damping_rule={self.damping_rule!r})"]
         for i, group in enumerate(self.param_groups):
             settings = ", ".join(f"{k}={group[k]}" for k in ("lr", "momentum", "weight_decay", "damping",
@@ -417,6 +426,9 @@ class FisherDescent(torch.optim.Optimizer):
         # The statistics were kept per unit of the multiplier seen on the backward's root; the loss's
         # true scale is ``scale`` (1 without a scaler, where a seen multiplier is part of the loss).
         relative = scale / (self._capture.loss_scale_seen() or 1.0)
+        seen_terms = self._capture.term_count()  # per unit of the seen scale, before the rescaling below
+        if seen_terms is not None:
+            self._term_count = seen_terms * relative
         # Before the rescaling below, which covers one record only.
         loss_climbed = self._loss_climbed(loss, relative)
         loss_gap = self._loss_gap(roots, loss, scale)
@@ -556,15 +568,23 @@ class FisherDescent(torch.optim.Optimizer):
         finally:
             for block in blocks:
                 block.clear_pending()
+        refreshed, rotated = bool(pending.statistics), None
+        if self._follows_gradient():
+            with self._timed("statistics"):
+                rotated = add_gradient_scales(blocks, pending.statistics, pending.inverses, self._gradient_terms(),
+                                              self.scale_memory)
+            if rotated is None:
+                return "nonfinite_statistics"
 
         with self._timed("precondition"):
             average = self.communicator.average_scalars if self.communicator is not None else (lambda *v: v)
             inputs, missing = proposals(blocks, self.param_groups, self.group_index, pending.statistics,
-                                        pending.inverses, step_index, average, packer=self._packer)
+                                        pending.inverses, step_index, average, packer=self._packer,
+                                        rotated=rotated)
             if inputs is None:
                 return "nonfinite_update"
             inputs.loss_gap = loss_gap
-            self._refuse_blocks_without_statistics(missing, bool(pending.statistics))
+            self._refuse_blocks_without_statistics(missing, refreshed)
         with self._timed("rules"):
             evaluator = self._evaluator(batch, step_index, closure)
             inputs.evaluator = evaluator if self.rules.step.wants_batch(step_index) else None
@@ -584,6 +604,16 @@ class FisherDescent(torch.optim.Optimizer):
             with self._timed("rules"):
                 self._adapt_damping(pending.result, evaluator, closure, loss)
         return None
+
+    def _follows_gradient(self) -> bool:
+        """Whether a block updates its scales from every step's gradient."""
+        return any(block.follows_gradient for block in self.blocks.values())
+
+    def _gradient_terms(self) -> float:
+        """The term count of the loss whose gradient ``.grad`` holds: over every rank's batch when the
+        gradients are averaged over ranks (DDP, ``ngopt.distributed.average_gradients``)."""
+        terms = 1.0 if self._term_count is None else self._term_count  # None only before any record
+        return terms * (self.communicator.world_size if self.communicator is not None else 1)
 
     def _timed(self, part: str) -> "_PartTimer":
         """A ``with`` block that adds the seconds spent inside to ``diagnostics()["time"][part]``."""
@@ -714,6 +744,7 @@ class FisherDescent(torch.optim.Optimizer):
             "generator_state": None if self._generator is None else self._generator.get_state(),
             "generator_device": None if self._generator is None else str(self._generator.device),
             "step_rule": self.rules.step.state_dict(), "damping_rule": self.rules.damping.state_dict(),
+            "term_count": self._term_count,
         }
         state["natural_gradient"]["subsample_generator_state"] = self._assignment.subsample_generator.get_state()
         return state
@@ -734,6 +765,7 @@ class FisherDescent(torch.optim.Optimizer):
                 self._generator.set_state(extra["generator_state"].to(torch.uint8).cpu())
             self.rules.step.load_state_dict(extra.get("step_rule", {}))
             self.rules.damping.load_state_dict(extra.get("damping_rule", {}))
+            self._term_count = extra.get("term_count")
             if extra.get("subsample_generator_state") is not None:
                 self._assignment.subsample_generator.set_state(
                     extra["subsample_generator_state"].to(torch.uint8).cpu())

@@ -1,6 +1,7 @@
 """One step's curvature work, computed in full before anything is written.
 
-    recorded forwards -> statistics -> inverses -> projected statistics (EKFAC) -> proposals
+    recorded forwards -> statistics -> inverses -> projected statistics (EKFAC) -> gradient scales
+        -> proposals
         -> step rule (rules/) -> fallback changes -> one finiteness check -> write
 
 Each stage is a function of explicit arguments that returns new tensors and writes nothing; the
@@ -159,15 +160,47 @@ def add_projected_statistics(blocks: Sequence[LayerCurvature], statistics: dict,
     return True
 
 
+def add_gradient_scales(blocks: Sequence[LayerCurvature], statistics: dict, inverses: dict, term_count: float,
+                        memory: float) -> Optional[dict]:
+    """Third phase, every step, for blocks whose scales follow the gradient (``follows_gradient``).
+
+    ``term_count``: ``1 / mean w_n`` of the loss (the batch's term count for a mean) over the whole
+    batch the gradient averages.  Adds the new tensors to ``statistics`` and returns ``{block: the
+    gradient in its basis}`` for :func:`proposals`; None if a new tensor is non-finite.
+    """
+    new, rotated = {}, {}
+    for block in blocks:
+        layer = block.layer
+        rebased = block in inverses
+        if not block.follows_gradient or (layer.weight.grad is None and not rebased):
+            continue
+        view = tentative_view(block, statistics, inverses)
+        if not all(key in view for key in ("basis_in", "basis_out")):
+            continue  # no basis yet: proposals() names the block
+        if layer.weight.grad is not None:
+            grad_matrix = layer.gradient_matrix(layer.weight.grad, layer.bias.grad if layer.has_bias else None)
+            rotated[block] = block.rotated(view, grad_matrix)
+        new[block] = block.gradient_scales(view, rotated.get(block), term_count, memory, rebased)
+    if not all_finite([t for tensors in new.values() for t in tensors.values()]):
+        return None
+    for block, tensors in new.items():
+        if tensors:
+            statistics.setdefault(block, {}).update(tensors)
+    return rotated
+
+
 def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Callable[[torch.Tensor], int],
               statistics: dict, inverses: dict, step_index: int,
               average: Callable = lambda *values: values,
-              packer: Optional[BlockPacker] = None) -> "tuple[Optional[StepInputs], list]":
+              packer: Optional[BlockPacker] = None,
+              rotated: Optional[dict] = None) -> "tuple[Optional[StepInputs], list]":
     """Every block's gradient matrix ``g`` (plus weight decay) and proposal ``p = C^-1 g``, with their dots.
 
     Each proposal is a tensor that nothing else holds this step, so a step rule may write into it.  With
     a ``packer``, small plain Kronecker blocks are computed together (:mod:`ngopt.packing`): their
     gradient matrices and proposals are then regions of the packs' stacks, listed in ``inputs.packs``.
+    ``rotated``: the gradients that :func:`add_gradient_scales` put in their blocks' bases (used where
+    no weight decay changes them).
 
     Returns ``(inputs, missing)``: ``missing`` are the blocks with a nonzero gradient and still no
     curvature to precondition it; ``inputs`` is None if a dot product is non-finite.
@@ -205,6 +238,8 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
             spare = scratch.take(block.scratch, "proposal", grad_matrix, avoid=block.state.get("momentum_buffer")) \
                 if block.writes_into else None
             memory = {"out": spare} if spare is not None else {}
+            if rotated and block in rotated and not groups[index]["weight_decay"]:
+                memory["rotated"] = rotated[block]
             proposal = block.precondition(grad_matrix, groups[index]["damping"], view, **memory)
         else:
             missing.append(block)

@@ -55,6 +55,7 @@ CHECKS = {
     "weight_decay": lambda v: _real("weight_decay", v, low=0.0),
     "damping": lambda v: _real("damping", v, low=0.0, low_open=True),
     "stats_memory": lambda v: _real("stats_memory", v, low=0.0, high=1.0, high_open=True),
+    "scale_memory": lambda v: _real("scale_memory", v, low=0.0, high=1.0, high_open=True),
     "max_step_kl": lambda v: _real("max_step_kl", v, low=0.0, low_open=True, optional=True),
     "max_exact_step_kl": lambda v: _real("max_exact_step_kl", v, low=0.0, low_open=True, optional=True),
     "fallback_lr_scale": lambda v: _real("fallback_lr_scale", v, low=0.0, optional=True),

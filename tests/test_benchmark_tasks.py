@@ -276,7 +276,7 @@ def test_resnet_shapes_and_batch_norm():
     assert all(int(norm.num_batches_tracked) == 1 for norm in norms)
 
 
-CURVATURE_ROWS = ["fisher-descent", "fisher-descent-diag", "fisher-descent-ekfac"]
+CURVATURE_ROWS = ["fisher-descent", "fisher-descent-diag", "fisher-descent-ekfac", "fisher-descent-ekfac-gradient"]
 
 
 @pytest.mark.parametrize("name", CURVATURE_ROWS)
@@ -285,7 +285,8 @@ def test_curvature_rows_build_their_curvature_untuned_like_the_headline_row(name
     optimizer = spec.build(nn.Linear(3, 2), nn.MSELoss(), None)
     assert isinstance(optimizer, ngopt.FisherDescent)
     assert optimizer.structure == {"fisher-descent": "kfac", "fisher-descent-diag": "diag",
-                                   "fisher-descent-ekfac": "ekfac"}[name]
+                                   "fisher-descent-ekfac": "ekfac",
+                                   "fisher-descent-ekfac-gradient": "ekfac-gradient"}[name]
     assert spec.lr_grid(3) == OPTIMIZERS["fisher-descent"].lr_grid(3) == [None]  # no lr grid: the library default
 
 

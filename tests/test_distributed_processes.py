@@ -252,6 +252,7 @@ def job_train(rank, world, out_dir):
         "ddp_exact_f64_replicated": dict(dtype=torch.float64, shard=False),
         "ddp_diag_f64": dict(dtype=torch.float64, structure="diag"),
         "ddp_ekfac_f64": dict(dtype=torch.float64, structure="ekfac"),
+        "ddp_ekfac_gradient_f64": dict(dtype=torch.float64, structure="ekfac-gradient"),
         "ddp_quadratic_lm_f64": dict(dtype=torch.float64, **QUADRATIC_RULES),
     }
     diagnostics = {}
@@ -534,6 +535,15 @@ def test_ekfac_matches_one_process(trained):
     reference = single_process(torch.float64, structure="ekfac")
     for rank in ranks:
         assert_same_weights(rank["ddp_ekfac_f64"], reference, **F64)
+
+
+def test_gradient_scaled_ekfac_matches_one_process(trained):
+    # Each rank's loss averages its half of the batch (12 terms) and DDP averages the gradients: the
+    # gradient is the whole batch's, and its term count is 2 x 12, the one process's 24.
+    ranks, _ = trained
+    reference = single_process(torch.float64, structure="ekfac-gradient")
+    for rank in ranks:
+        assert_same_weights(rank["ddp_ekfac_gradient_f64"], reference, **F64)
 
 
 # ---------------------------------------------------------------------------------------- replicas: rounding only

@@ -82,6 +82,8 @@ class LayerCurvature:
     loss_weighted_keys: Tuple[str, ...] = ()
     # Whether precondition() takes ``out=`` (memory for its result, see ngopt/scratch.py).
     writes_into = False
+    # Whether the block updates its scales from every step's gradient (gradient_scales()).
+    follows_gradient = False
 
     def __init__(self, layer: LayerAdapter, state: dict, weight_sharing: str = "expand"):
         if weight_sharing not in WEIGHT_SHARING:
@@ -169,6 +171,17 @@ class LayerCurvature:
         if not self.has_statistics:
             return {key: value.clone() for key, value in batch.items()}
         return {key: self.state[key].mul(ema).add_(batch[key], alpha=1.0 - ema) for key in batch}
+
+    def rotated(self, view, grad_matrix: torch.Tensor) -> torch.Tensor:
+        """``grad_matrix`` in the basis of ``view`` (blocks with ``follows_gradient``)."""
+        raise NotImplementedError
+
+    def gradient_scales(self, view, rotated: Optional[torch.Tensor], term_count: float, memory: float,
+                        rebased: bool) -> Tensors:
+        """New tensors from this step's gradient in the block's basis (blocks with ``follows_gradient``;
+        ``rotated`` None: no gradient this step); ``rebased``: the basis in ``view`` is new this step.
+        :meth:`precondition` then takes ``rotated=`` to skip rotating the same gradient again."""
+        raise NotImplementedError
 
     def prepare_inverse(self, statistics: Tensors, damping: float,
                         want_spectrum: bool) -> Tuple[Tensors, dict]:

@@ -23,7 +23,6 @@ from __future__ import annotations
 
 import torch
 
-from ..linalg import to_cpu64
 from ..spectra import diagonal_summary, kronecker_summary
 from .diagonal import per_example_square_sum
 from .kronecker import KroneckerBlock
@@ -42,11 +41,16 @@ class EigenbasisBlock(KroneckerBlock):
         return shapes
 
     # -- the basis ------------------------------------------------------------------------
+    # Precision of the eigendecompositions; None: the factors' own, at least float32.
+    decomposition_dtype = torch.float64
+
     def prepare_inverse(self, statistics, damping, want_spectrum):
         ref = self.layer.weight
         result, info = {}, {}
         for side in ("in", "out"):
-            factor = to_cpu64(statistics[f"factor_{side}"])
+            factor = statistics[f"factor_{side}"].detach()
+            dtype = self.decomposition_dtype or torch.promote_types(factor.dtype, torch.float32)
+            factor = factor.to(device="cpu", dtype=dtype)
             eigenvalues, basis = torch.linalg.eigh(0.5 * (factor + factor.T))
             result[f"basis_{side}"] = basis.to(device=ref.device, dtype=ref.dtype)
             result[f"eigen_{side}"] = eigenvalues.clamp(min=0.0).to(device=ref.device, dtype=ref.dtype)

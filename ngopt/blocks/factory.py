@@ -7,6 +7,7 @@ from .base import LayerCurvature
 from .diagonal import DiagonalBlock
 from .eigenbasis import EigenbasisBlock
 from .embedding import EmbeddingDiagonalBlock, EmbeddingEigenbasisBlock, EmbeddingKroneckerBlock
+from .gradient_scales import GradientScaledEigenbasisBlock
 from .grouped import GroupedDiagonalBlock, GroupedEigenbasisBlock, GroupedKroneckerBlock
 from .kronecker import KroneckerBlock
 from .layers import LayerAdapter
@@ -15,18 +16,23 @@ from .tied import TiedDiagonalBlock, TiedKroneckerBlock, layout_relation
 
 # Blocks built from the generic rows a = inputs, g = output gradients (linear maps, convolutions).
 STRUCTURES: Dict[str, Type[LayerCurvature]] = {
-    "kfac": KroneckerBlock, "ekfac": EigenbasisBlock, "diag": DiagonalBlock,
+    "kfac": KroneckerBlock, "ekfac": EigenbasisBlock, "ekfac-gradient": GradientScaledEigenbasisBlock,
+    "diag": DiagonalBlock,
 }
 # Layer kinds whose curvature has a structure of its own: {layer kind: {structure: block class}}.
-# Norm layers: "kfac" and "ekfac" both give the exact per-channel 2x2 blocks (blocks/norm.py).
-_NORM_BLOCKS = {"kfac": NormPairBlock, "ekfac": NormPairBlock, "diag": NormDiagonalBlock}
+# Norm layers: "kfac" and both "ekfac" give the exact per-channel 2x2 blocks (blocks/norm.py).
+_NORM_BLOCKS = {"kfac": NormPairBlock, "ekfac": NormPairBlock, "ekfac-gradient": NormPairBlock,
+                "diag": NormDiagonalBlock}
 # An elementwise scale or shift by a parameter: the exact diagonal whatever the structure.
-_DIAGONAL_BLOCKS = {"kfac": NormDiagonalBlock, "ekfac": NormDiagonalBlock, "diag": NormDiagonalBlock}
+_DIAGONAL_BLOCKS = dict.fromkeys(STRUCTURES, NormDiagonalBlock)
 # Grouped convolutions: a block-diagonal output factor, one input factor shared by the groups (blocks/grouped.py).
-_GROUPED_BLOCKS = {"kfac": GroupedKroneckerBlock, "ekfac": GroupedEigenbasisBlock, "diag": GroupedDiagonalBlock}
+# Embeddings and grouped convolutions keep EKFAC's sampled scales under "ekfac-gradient": their
+# bases are not the plain Kronecker pair the gradient-scale update is written for.
+_GROUPED_BLOCKS = {"kfac": GroupedKroneckerBlock, "ekfac": GroupedEigenbasisBlock,
+                   "ekfac-gradient": GroupedEigenbasisBlock, "diag": GroupedDiagonalBlock}
 LAYER_BLOCKS: Dict[str, Dict[str, Type[LayerCurvature]]] = {
     "embedding": {"kfac": EmbeddingKroneckerBlock, "ekfac": EmbeddingEigenbasisBlock,
-                  "diag": EmbeddingDiagonalBlock},
+                  "ekfac-gradient": EmbeddingEigenbasisBlock, "diag": EmbeddingDiagonalBlock},
     "layer_norm": _NORM_BLOCKS,
     "batch_norm": _NORM_BLOCKS,
     "grouped_conv1d": _GROUPED_BLOCKS,

@@ -1,0 +1,83 @@
+"""EKFAC's eigenbasis with scales that follow the mini-batch gradient (``structure="ekfac-gradient"``).
+
+The eigenbases ``Q_A``, ``Q_G`` of the Kronecker factors are kept and refreshed as for EKFAC
+(George et al., NeurIPS 2018), but the diagonal scales in the basis ``Q = Q_A (x) Q_G`` are a
+running average, updated on every step, of the squared gradient seen in that basis:
+
+    S <- m S + (1 - m) N (Q_G^T V Q_A)^2        (elementwise),
+
+with ``V`` the step's gradient matrix and ``N = 1 / mean_n w_n`` the loss's term count
+(``w_n = dL/dl_n``: the batch size for a mean over examples, 1 for a sum).  For a loss
+``L = sum_n w_n l_n`` with equal weights ``w``, ``E[(Q^T V)^2] = w^2 sum_n E[(Q^T g_n)^2] + (Q^T E[V])^2``,
+so ``N (Q^T V)^2`` estimates the diagonal of ``Q^T F Q`` for ``F = w sum_n g_n g_n^T``, the loss's
+own (empirical) Fisher, plus the squared mean gradient: a gradient that is large against its own
+noise takes shorter steps, as in Adam.  Vyas et al. (ICLR 2025) run Adam's second moment in such a
+Kronecker eigenbasis; here the bases come from the sampled Fisher's factors, the scales feed the
+damped inverse ``(S + lambda)^-1`` as EKFAC's do, and no second pass over the rows in the basis
+is needed at a refresh.
+
+When the basis changes, the scales are carried over: the new scales are the exact diagonal of the
+old curvature ``Q_old S Q_old^T`` in the new basis, ``(R_G o R_G) S (R_A o R_A)^T`` with
+``R = Q_new^T Q_old`` (``o``: elementwise).  The first basis starts from K-FAC's scales
+``L_G L_A^T``.
+"""
+from __future__ import annotations
+
+import torch
+
+from .eigenbasis import EigenbasisBlock
+from .kronecker import KroneckerBlock
+
+
+def carried_scales(scales: torch.Tensor, old_in: torch.Tensor, old_out: torch.Tensor, new_in: torch.Tensor,
+                   new_out: torch.Tensor) -> torch.Tensor:
+    """The diagonal of ``(Q_in_old (x) Q_out_old) diag(scales) (...)^T`` in the basis ``Q_in_new (x) Q_out_new``.
+
+    ``scales`` is ``[d_out, d_in]`` (entry ``[o, i]`` belongs to the pair of eigenvectors ``o``, ``i``).
+    """
+    rotate_in = (new_in.T @ old_in).square_()
+    rotate_out = (new_out.T @ old_out).square_()
+    return rotate_out @ scales @ rotate_in.T
+
+
+class GradientScaledEigenbasisBlock(EigenbasisBlock):
+    structure = "ekfac-gradient"
+    inverse_keys = ("basis_in", "basis_out", "scales")
+    projected_keys = ()  # the scales come from the gradient: no second pass over the rows
+    loss_weighted_keys = ("factor_out",)
+    follows_gradient = True
+    # The eigenvalues only start the first scales (the gradient sets them after): float32 factors are
+    # decomposed in float32, twice as fast as in float64, its rounding far below the damping.
+    decomposition_dtype = None
+
+    def statistic_shapes(self):
+        return KroneckerBlock.statistic_shapes(self)
+
+    def rotated(self, view, grad_matrix: torch.Tensor) -> torch.Tensor:
+        """``Q_G^T V Q_A``: a gradient matrix in the eigenbasis of ``view``."""
+        basis_in, basis_out = view["basis_in"], view["basis_out"]
+        return basis_out.T @ grad_matrix.to(basis_out.dtype) @ basis_in
+
+    def gradient_scales(self, view, rotated, term_count: float, memory: float, rebased: bool) -> dict:
+        """``{"scales": m S + (1 - m) N R^2}`` for the gradient ``R`` in the eigenbasis (a new tensor), ``S``
+        carried into the basis when ``rebased``; ``rotated`` None (no gradient): the carried scales alone."""
+        scales = self._scales_in_basis(view, rebased)
+        if rotated is None:
+            return {"scales": scales} if rebased else {}
+        return {"scales": scales.mul(memory).addcmul_(rotated, rotated, value=(1.0 - memory) * term_count)}
+
+    def _scales_in_basis(self, view, rebased: bool) -> torch.Tensor:
+        """The committed scales in the basis of ``view``; K-FAC's ``L_G L_A^T`` for the first basis."""
+        if not rebased:
+            return view["scales"]
+        if all(key in self.state for key in self.inverse_keys):
+            return carried_scales(self.state["scales"], self.state["basis_in"], self.state["basis_out"],
+                                  view["basis_in"], view["basis_out"])
+        return torch.outer(view["eigen_out"], view["eigen_in"])
+
+    def precondition(self, grad_matrix, damping, tensors=None, rotated=None):
+        """As EKFAC's; ``rotated``: ``grad_matrix`` in the eigenbasis already (from the scales' update)."""
+        tensors = self.state if tensors is None else tensors
+        if rotated is None:
+            rotated = self.rotated(tensors, grad_matrix)
+        return tensors["basis_out"] @ (rotated / (tensors["scales"] + damping)) @ tensors["basis_in"].T
