@@ -326,6 +326,15 @@ class FisherDescent(torch.optim.Optimizer):
             if self._assignment.seen_forward and not self._warned_fallback_share:
                 self._warned_fallback_share = True
                 self._assignment.warn_fallback_share(self._trainable())
+                self._warn_if_no_block_follows_the_gradient()
+
+    def _warn_if_no_block_follows_the_gradient(self) -> None:
+        """``structure='ekfac-gradient'`` where no block can take it: the run silently is plain EKFAC."""
+        if self.structure == "ekfac-gradient" and self.blocks and not self._follows_gradient():
+            self._warn_once("no_gradient_scales", "structure='ekfac-gradient': no block takes its scales from the "
+                            "gradient (only linear maps and ungrouped convolutions in whole Kronecker factors "
+                            "do; embeddings and grouped convolutions keep EKFAC's sampled scales, norm layers "
+                            "their exact blocks, large layers the budget's form): this run is structure='ekfac'")
 
     def assign_curvature(self, *args, **kwargs) -> Dict[str, ParameterCurvature]:
         """Assign the curvature blocks now, from one forward of the model on ``args``/``kwargs``.

@@ -54,7 +54,7 @@ def test_carried_scales_are_the_old_curvatures_diagonal_in_the_new_basis():
 
 
 
-@pytest.mark.parametrize("case", ["mse-mean", "mse-sum", "ce-mean-ignored", "ce-mean-halved-twice"])
+@pytest.mark.parametrize("case", ["mse-mean", "mse-sum", "mse-mean-times-4", "ce-mean-ignored", "ce-mean-halved-twice"])
 def test_one_step_scales_are_the_term_count_times_the_squared_gradient_in_the_basis(case):
     # scale_memory=0: the scales after a step are N (Q_G^T V Q_A)^2 exactly, for the gradient matrix V
     # [weight | bias] the user's backward left, N counted by hand.
@@ -65,7 +65,7 @@ def test_one_step_scales_are_the_term_count_times_the_squared_gradient_in_the_ba
     if case.startswith("mse"):
         y = torch.randn(batch, d_out, dtype=torch.float64)
         loss_fn = nn.MSELoss(reduction=case.split("-")[1])
-        count = batch * d_out if case == "mse-mean" else 1
+        count = {"mse-mean": batch * d_out, "mse-sum": 1, "mse-mean-times-4": batch * d_out / 4}[case]
     else:
         y = torch.randint(0, d_out, (batch,))
         y[[1, 4, 5]] = -100  # ignored: no term, no count
@@ -78,6 +78,8 @@ def test_one_step_scales_are_the_term_count_times_the_squared_gradient_in_the_ba
     if case == "ce-mean-halved-twice":
         for _ in range(2):
             (loss_fn(layer(x), y) / 2).backward()
+    elif case == "mse-mean-times-4":  # the loss is 4 L: w_n = 4 / (B d_out), seen as a multiplier on the root
+        (4.0 * loss_fn(layer(x), y)).backward()
     else:
         loss_fn(layer(x), y).backward()
     opt.step()
@@ -228,3 +230,16 @@ def test_scale_memory_is_checked_and_a_pinned_block_follows_the_gradient():
     assert type(opt.blocks["2"]) is GradientScaledEigenbasisBlock
     assert opt.blocks["0"].structure == "kfac"
     assert "scale_memory" in repr(opt)
+
+
+def test_a_model_where_no_block_can_follow_the_gradient_is_told_so():
+    # An embedding and a norm layer only: "ekfac-gradient" would silently be plain EKFAC.
+    model = nn.Sequential(nn.Embedding(10, 4), nn.LayerNorm(4))
+    opt = ngopt.FisherDescent(model, nn.MSELoss(), structure="ekfac-gradient", seed=0)
+    with pytest.warns(UserWarning, match="no block takes its scales from the gradient"):
+        model(torch.randint(0, 10, (6, 3)))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        mixed = Mixed()
+        ngopt.FisherDescent(mixed, nn.CrossEntropyLoss(), structure="ekfac-gradient").assign_curvature(
+            torch.randint(0, 11, (2, 5)))

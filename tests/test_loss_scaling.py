@@ -52,12 +52,14 @@ def plain_steps(model, opt, x, y, steps):
 
 @pytest.mark.parametrize("unscale_first", [False, True], ids=["scaler-step", "unscale-clip-step"])
 @pytest.mark.parametrize("fisher", ["sampled", "exact", "empirical"])
-def test_a_scaled_loss_trains_like_the_unscaled_one(fisher, unscale_first):
+@pytest.mark.parametrize("structure", ["kfac", "ekfac-gradient"])  # the latter: the term count at the true scale
+def test_a_scaled_loss_trains_like_the_unscaled_one(fisher, unscale_first, structure):
     model, twin = classifier(), classifier()
     x, y = data()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the empirical Fisher's note
-        opt, twin_opt = optimizer(model, fisher=fisher), optimizer(twin, fisher=fisher)
+        opt = optimizer(model, fisher=fisher, structure=structure)
+        twin_opt = optimizer(twin, fisher=fisher, structure=structure)
     scaler = GradScaler("cpu", init_scale=1024.0, growth_interval=1000)
     with warnings.catch_warnings():
         warnings.simplefilter("error", UserWarning)  # in particular: the loss scale is never missed
