@@ -238,6 +238,7 @@ def test_a_model_where_no_block_can_follow_the_gradient_is_told_so():
     opt = ngopt.FisherDescent(model, nn.MSELoss(), structure="ekfac-gradient", seed=0)
     with pytest.warns(UserWarning, match="no block takes its scales from the gradient"):
         model(torch.randint(0, 10, (6, 3)))
+    assert not opt._follows_gradient() and len(opt.blocks) == 2
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         mixed = Mixed()
