@@ -52,8 +52,8 @@ key                                meaning                                      
 ``log_seconds``                    time spent by this logger before this record, cumulative           s
 ``layers.<name>.block``            layer kind of the curvature block (``linear``, ``conv1d``,         --
                                    ``conv2d``, ``embedding``, ``layer_norm``, ``batch_norm``)
-``layers.<name>.structure``        curvature kind (``kfac``, ``ekfac``, ``diag``; ``channel_pairs``   --
-                                   for norm layers)
+``layers.<name>.structure``        curvature kind (``kfac``, ``ekfac``, ``ekfac-gradient``, ``diag``; --
+                                   ``channel_pairs`` for norm layers)
 ``layers.<name>.in_dim``           size of the input factor A (bias column included)                  rows
 ``layers.<name>.out_dim``          size of the output-gradient factor G                               rows
 ``layers.<name>.condition``        condition number of the damped block (EKFAC: of the damped scales) 1
@@ -77,8 +77,8 @@ key                                meaning                                      
 ``layers.<name>.diag_mean``        mean entry of the diagonal Fisher (``structure='diag'``)           curvature
 ``layers.<name>.diag_values``      all diagonal entries, ascending (JSONL / TensorBoard only)         curvature
 ``layers.<name>.scale_min``        smallest EKFAC scale, the curvature in the Kronecker eigenbasis    curvature
-``layers.<name>.scale_max``        largest EKFAC scale (``structure='ekfac'``)                        curvature
-``layers.<name>.scale_mean``       mean EKFAC scale (``structure='ekfac'``)                           curvature
+``layers.<name>.scale_max``        largest EKFAC scale (``structure='ekfac'``, ``'ekfac-gradient'``)  curvature
+``layers.<name>.scale_mean``       mean EKFAC scale (``structure='ekfac'``, ``'ekfac-gradient'``)     curvature
 ``layers.<name>.scale_values``     all EKFAC scales, ascending (JSONL / TensorBoard only)             curvature
 ``layers.<name>.pair_eig_min``     smallest eigenvalue of the per-channel (gamma, beta) Fisher blocks curvature
                                    of a norm layer
@@ -96,7 +96,8 @@ output gradients g; their units are those of a^2 and g^2. pi is the factored
 damping split pi = sqrt((tr A / dim A) / (tr G / dim G)).  With
 ``structure='ekfac'`` the factors give only the eigenbasis: the ``in_``/``out_``
 eigenvalue keys still describe A and G, their ``_damping`` keys are the split
-K-FAC would use, and the damping lambda is added to the scales instead.  For an
+K-FAC would use, and the damping lambda is added to the scales instead; the same
+for ``structure='ekfac-gradient'``, whose scales follow the gradient.  For an
 embedding, A is the diagonal of token frequencies (its eigenvalues are those
 frequencies).
 """
