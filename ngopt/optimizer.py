@@ -435,7 +435,8 @@ class FisherDescent(torch.optim.Optimizer):
         # The statistics were kept per unit of the multiplier seen on the backward's root; the loss's
         # true scale is ``scale`` (1 without a scaler, where a seen multiplier is part of the loss).
         relative = scale / (self._capture.loss_scale_seen() or 1.0)
-        seen_terms = self._capture.term_count()  # per unit of the seen scale, before the rescaling below
+        # Per unit of the seen scale, before the rescaling below; read only where a block uses it.
+        seen_terms = self._capture.term_count() if self._follows_gradient() else None
         if seen_terms is not None:
             self._term_count = seen_terms * relative
         # Before the rescaling below, which covers one record only.

@@ -48,7 +48,7 @@ def train(model, opt, x, y, steps):
     return losses
 
 
-@pytest.mark.parametrize("structure", ["kfac", "ekfac", "diag"])
+@pytest.mark.parametrize("structure", ["kfac", "ekfac", "ekfac-gradient", "diag"])
 def test_a_model_on_the_device_trains_and_keeps_its_state_there(structure):
     model = classifier().to(DEVICE)
     x, y = images()

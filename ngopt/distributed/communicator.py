@@ -268,7 +268,7 @@ class CurvatureCommunicator:
 def _setup_fingerprint(opt) -> int:
     """A 62-bit hash of what must match across ranks: blocks, sizes, schedule, step count."""
     parts = [opt.fisher, opt.structure, opt.stats_interval, opt.inverse_interval, opt.interval_warmup,
-             opt.steps_taken]
+             opt.scale_memory, opt.steps_taken]
     parts += [(name, b.structure, b.layer.in_dim, b.layer.out_dim) for name, b in opt.blocks.items()]
     digest = hashlib.blake2b(repr(parts).encode(), digest_size=8).digest()
     return int.from_bytes(digest, "little") >> 2
