@@ -114,7 +114,7 @@ class FisherDescent(torch.optim.Optimizer):
             (each block on its own step of the interval, the cost spread evenly; see
             ``inversion_schedule.py``).
         stats_memory: weight of the old statistics in the running average.
-        scale_memory: ``structure='ekfac-gradient'``: weight of the old scales in their running
+        scale_memory: ``structure='ekfac-gradient'``: weight of the old gradient moment in its running
             average over steps (each step adds the squared gradient in the eigenbasis).
         max_step_kl: bound on the step's KL divergence in the curvature blocks' own model (None: off).
         max_exact_step_kl: ``step_rule='fixed'``: ceiling on the step's KL in the exact Fisher of the

@@ -56,8 +56,9 @@ def test_carried_scales_are_the_old_curvatures_diagonal_in_the_new_basis():
 
 @pytest.mark.parametrize("case", ["mse-mean", "mse-sum", "mse-mean-times-4", "ce-mean-ignored", "ce-mean-halved-twice"])
 def test_one_step_scales_are_the_term_count_times_the_squared_gradient_in_the_basis(case):
-    # scale_memory=0: the scales after a step are N (Q_G^T V Q_A)^2 exactly, for the gradient matrix V
-    # [weight | bias] the user's backward left, N counted by hand.
+    # scale_memory=0: the gradient moment after a step is N (Q_G^T V Q_A)^2 exactly, for the gradient matrix
+    # V [weight | bias] the user's backward left, N counted by hand; the scales are max(moment, L_G L_A^T)
+    # with the eigenvalues L of the factors from numpy.
     torch.manual_seed(0)
     batch, d_in, d_out = 12, 4, 3
     layer = nn.Linear(d_in, d_out).double()
@@ -88,13 +89,18 @@ def test_one_step_scales_are_the_term_count_times_the_squared_gradient_in_the_ba
     state = block.state
     gradient = torch.cat([layer.weight.grad, layer.bias.grad[:, None]], dim=1).numpy()
     rotated = state["basis_out"].numpy().T @ gradient @ state["basis_in"].numpy()
-    np.testing.assert_allclose(state["scales"].numpy(), count * rotated ** 2, rtol=1e-10,
-                               atol=1e-14 * count * (rotated ** 2).max())
+    moment = count * rotated ** 2
+    np.testing.assert_allclose(state["gradient_moment"].numpy(), moment, rtol=1e-10, atol=1e-14 * moment.max())
+    # The scales: the moment, never below K-FAC's own, the products of the factors' eigenvalues.
+    kfac_scales = np.outer(np.linalg.eigvalsh(state["factor_out"].numpy()), np.linalg.eigvalsh(state["factor_in"].numpy()))
+    np.testing.assert_allclose(state["scales"].numpy(), np.maximum(moment, kfac_scales), rtol=1e-10,
+                               atol=1e-14 * moment.max())
+    assert (moment < kfac_scales).any() and (moment > kfac_scales).any()  # both sides of the bound are seen
 
 
 def test_the_scales_estimate_the_fisher_in_the_basis_at_the_true_parameter():
     # y = x^T w* + e, e ~ N(0, 1/2), x ~ N(0, Sigma): at w* the gradient of the mean squared error has mean
-    # zero and E[N V V^T] = 2 Sigma, the Fisher (Casella & Berger).  lr=0 keeps w* and one basis (no second
+    # zero and E[N V V^T] = 2 Sigma, the Fisher (Casella & Berger), which the gradient moment estimates.  lr=0 keeps w* and one basis (no second
     # inversion); over 3,000 batches the running average (memory 0.998, ~1,000 batches' worth, each
     # entry a scaled chi-square of variance 2) is within about 5% of diag(Q^T 2 Sigma Q); 25% is > 5 sigma.
     generator = torch.Generator().manual_seed(3)
@@ -117,8 +123,8 @@ def test_the_scales_estimate_the_fisher_in_the_basis_at_the_true_parameter():
     state = next(iter(opt.blocks.values())).state
     basis = np.kron(state["basis_in"].numpy(), state["basis_out"].numpy())
     expected = np.diag(basis.T @ (2.0 * sigma.numpy()) @ basis)
-    got = state["scales"].T.reshape(-1).numpy()
-    print("scales", got, "Fisher in the basis", expected)
+    got = state["gradient_moment"].T.reshape(-1).numpy()
+    print("gradient moment", got, "Fisher in the basis", expected)
     np.testing.assert_allclose(got, expected, rtol=0.25)
 
 

@@ -1,10 +1,10 @@
 """EKFAC's eigenbasis with scales that follow the mini-batch gradient (``structure="ekfac-gradient"``).
 
 The eigenbases ``Q_A``, ``Q_G`` of the Kronecker factors are kept and refreshed as for EKFAC
-(George et al., NeurIPS 2018), but the diagonal scales in the basis ``Q = Q_A (x) Q_G`` are a
-running average, updated on every step, of the squared gradient seen in that basis:
+(George et al., NeurIPS 2018).  In the basis ``Q = Q_A (x) Q_G`` the block keeps a running average,
+updated on every step, of the squared gradient seen in that basis,
 
-    S <- m S + (1 - m) N (Q_G^T V Q_A)^2        (elementwise),
+    M <- m M + (1 - m) N (Q_G^T V Q_A)^2        (elementwise),
 
 with ``V`` the step's gradient matrix and ``N = 1 / mean_n w_n`` the loss's term count
 (``w_n = dL/dl_n``: the batch size for a mean over examples, 1 for a sum).  For a loss
@@ -12,14 +12,19 @@ with ``V`` the step's gradient matrix and ``N = 1 / mean_n w_n`` the loss's term
 so ``N (Q^T V)^2`` estimates the diagonal of ``Q^T F Q`` for ``F = w sum_n g_n g_n^T``, the loss's
 own (empirical) Fisher, plus the squared mean gradient: a gradient that is large against its own
 noise takes shorter steps, as in Adam.  Vyas et al. (ICLR 2025) run Adam's second moment in such a
-Kronecker eigenbasis; here the bases come from the sampled Fisher's factors, the scales feed the
-damped inverse ``(S + lambda)^-1`` as EKFAC's do, and no second pass over the rows in the basis
-is needed at a refresh.
+Kronecker eigenbasis; here the bases come from the sampled Fisher's factors, and no second pass over
+the rows in the basis is needed at a refresh.
 
-When the basis changes, the scales are carried over: the new scales are the exact diagonal of the
-old curvature ``Q_old S Q_old^T`` in the new basis, ``(R_G o R_G) S (R_A o R_A)^T`` with
-``R = Q_new^T Q_old`` (``o``: elementwise).  The first basis starts from K-FAC's scales
-``L_G L_A^T``.
+The curvature is ``S = max(M, L_G L_A^T)``: the moment, but never below K-FAC's own scales in the
+basis, the products of the factors' eigenvalues (a sampled-Fisher estimate).  The empirical Fisher
+shrinks with the residuals near a fit while the Fisher does not (Kunstner et al., NeurIPS 2019): on
+a squared-error autoencoder the moment alone fell far below the Fisher, the Levenberg-Marquardt rule
+raised the damping thirtyfold to make up for it, and the run stalled.  Damping is added to ``S``:
+``(S + lambda)^-1``.
+
+When the basis changes, the moment is carried over: its new value is the exact diagonal of
+``Q_old M Q_old^T`` in the new basis, ``(R_G o R_G) M (R_A o R_A)^T`` with ``R = Q_new^T Q_old``
+(``o``: elementwise).  The first basis starts it from K-FAC's scales.
 """
 from __future__ import annotations
 
@@ -46,8 +51,8 @@ class GradientScaledEigenbasisBlock(EigenbasisBlock):
     projected_keys = ()  # the scales come from the gradient: no second pass over the rows
     loss_weighted_keys = ("factor_out",)
     follows_gradient = True
-    # The eigenvalues only start the first scales (the gradient sets them after): float32 factors are
-    # decomposed in float32, twice as fast as in float64, its rounding far below the damping.
+    # The eigenvalues only start the moment and bound the scales from below: float32 factors are
+    # decomposed in float32, twice as fast as in float64 (rounding about 1e-7 of the largest eigenvalue).
     decomposition_dtype = None
 
     def statistic_shapes(self):
@@ -59,19 +64,23 @@ class GradientScaledEigenbasisBlock(EigenbasisBlock):
         return basis_out.T @ grad_matrix.to(basis_out.dtype) @ basis_in
 
     def gradient_scales(self, view, rotated, term_count: float, memory: float, rebased: bool) -> dict:
-        """``{"scales": m S + (1 - m) N R^2}`` for the gradient ``R`` in the eigenbasis (a new tensor), ``S``
-        carried into the basis when ``rebased``; ``rotated`` None (no gradient): the carried scales alone."""
-        scales = self._scales_in_basis(view, rebased)
-        if rotated is None:
-            return {"scales": scales} if rebased else {}
-        return {"scales": scales.mul(memory).addcmul_(rotated, rotated, value=(1.0 - memory) * term_count)}
+        """The new moment ``m M + (1 - m) N R^2`` for the gradient ``R`` in the eigenbasis (``M`` carried
+        into the basis when ``rebased``; ``rotated`` None, no gradient: ``M`` alone) and the scales
+        ``max(M, L_G L_A^T)`` (new tensors; nothing when neither changes)."""
+        moment = self._moment_in_basis(view, rebased)
+        if rotated is not None:
+            moment = moment.mul(memory).addcmul_(rotated, rotated, value=(1.0 - memory) * term_count)
+        elif not rebased:
+            return {}
+        kfac_scales = torch.outer(view["eigen_out"], view["eigen_in"])
+        return {"gradient_moment": moment, "scales": torch.maximum(moment, kfac_scales)}
 
-    def _scales_in_basis(self, view, rebased: bool) -> torch.Tensor:
-        """The committed scales in the basis of ``view``; K-FAC's ``L_G L_A^T`` for the first basis."""
+    def _moment_in_basis(self, view, rebased: bool) -> torch.Tensor:
+        """The committed moment in the basis of ``view``; K-FAC's ``L_G L_A^T`` for the first basis."""
         if not rebased:
-            return view["scales"]
-        if all(key in self.state for key in self.inverse_keys):
-            return carried_scales(self.state["scales"], self.state["basis_in"], self.state["basis_out"],
+            return view["gradient_moment"]
+        if all(key in self.state for key in ("gradient_moment", "basis_in", "basis_out")):
+            return carried_scales(self.state["gradient_moment"], self.state["basis_in"], self.state["basis_out"],
                                   view["basis_in"], view["basis_out"])
         return torch.outer(view["eigen_out"], view["eigen_in"])
 
