@@ -250,3 +250,26 @@ def test_a_model_where_no_block_can_follow_the_gradient_is_told_so():
         mixed = Mixed()
         ngopt.FisherDescent(mixed, nn.CrossEntropyLoss(), structure="ekfac-gradient").assign_curvature(
             torch.randint(0, 11, (2, 5)))
+
+
+@pytest.mark.parametrize("weight_decay", [0.0, 0.1])
+def test_one_plain_step_is_the_damped_scales_inverse_in_the_basis(weight_decay):
+    # lr=1, no momentum, no bounds: w_new = w - Q_G [(Q_G^T (V + decay W) Q_A) / (S + lambda)] Q_A^T with the
+    # step's basis and scales, computed here in float64 numpy (the gradient reused from the scales' update
+    # without decay, rotated again with it).
+    torch.manual_seed(1)
+    layer = nn.Linear(4, 3).double()
+    x, y = torch.randn(10, 4, dtype=torch.float64), torch.randn(10, 3, dtype=torch.float64)
+    loss_fn = nn.MSELoss()
+    opt = ngopt.FisherDescent(layer, loss_fn, lr=1.0, weight_decay=weight_decay, damping=0.05, loss_floor=None,
+                              **PLAIN)
+    before = torch.cat([layer.weight, layer.bias[:, None]], dim=1).detach().numpy().copy()
+    opt.zero_grad()
+    loss_fn(layer(x), y).backward()
+    gradient = torch.cat([layer.weight.grad, layer.bias.grad[:, None]], dim=1).numpy() + weight_decay * before
+    opt.step()
+    state = next(iter(opt.blocks.values())).state
+    q_in, q_out = state["basis_in"].numpy(), state["basis_out"].numpy()
+    step = q_out @ ((q_out.T @ gradient @ q_in) / (state["scales"].numpy() + 0.05)) @ q_in.T
+    after = torch.cat([layer.weight, layer.bias[:, None]], dim=1).detach().numpy()
+    np.testing.assert_allclose(after, before - step, rtol=1e-10, atol=1e-12)
