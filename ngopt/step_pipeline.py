@@ -237,10 +237,10 @@ def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Calla
             # Memory of a replaced momentum buffer, never the buffer this step still reads.
             spare = scratch.take(block.scratch, "proposal", grad_matrix, avoid=block.state.get("momentum_buffer")) \
                 if block.writes_into else None
-            memory = {"out": spare} if spare is not None else {}
+            keywords = {"out": spare} if spare is not None else {}
             if rotated and block in rotated and not groups[index]["weight_decay"]:
-                memory["rotated"] = rotated[block]
-            proposal = block.precondition(grad_matrix, groups[index]["damping"], view, **memory)
+                keywords["rotated"] = rotated[block]
+            proposal = block.precondition(grad_matrix, groups[index]["damping"], view, **keywords)
         else:
             missing.append(block)
             proposal = grad_matrix.clone()  # a proposal is always the step's own tensor: rules may reuse it
