@@ -273,3 +273,36 @@ def test_one_plain_step_is_the_damped_scales_inverse_in_the_basis(weight_decay):
     step = q_out @ ((q_out.T @ gradient @ q_in) / (state["scales"].numpy() + 0.05)) @ q_in.T
     after = torch.cat([layer.weight, layer.bias[:, None]], dim=1).detach().numpy()
     np.testing.assert_allclose(after, before - step, rtol=1e-10, atol=1e-12)
+
+
+def test_float32_eigendecompositions_of_ill_conditioned_factors_hold_their_stated_accuracy():
+    # Factors of condition 1e8 at the bottom of the damping range (1e-6): the float32 decomposition's basis is
+    # orthonormal to float32 rounding and its eigenvalues match numpy's float64 ones within a few n eps |A|
+    # (the backward error of a symmetric eigensolver, Golub & Van Loan, 4th ed., sec. 8.3), so the bound by
+    # K-FAC's scales is off by at most about 1e-7 of the largest; the preconditioned gradient stays a descent
+    # direction (g^T C^-1 g > 0).
+    generator = torch.Generator().manual_seed(5)
+    layer = nn.Linear(15, 11)
+    opt = ngopt.FisherDescent(layer, nn.MSELoss(), structure="ekfac-gradient", damping=1e-6, seed=0)
+    opt.assign_curvature(torch.randn(4, 15))
+    block = next(iter(opt.blocks.values()))
+    statistics = {}
+    for side, d in (("in", 16), ("out", 11)):
+        q = orthogonal(d, generator)
+        spectrum = torch.logspace(0, -8, d, dtype=torch.float64)
+        statistics[f"factor_{side}"] = (q @ torch.diag(spectrum) @ q.T).float()
+    result, _ = block.prepare_inverse(statistics, 1e-6, False)
+    eps = torch.finfo(torch.float32).eps
+    for side, d in (("in", 16), ("out", 11)):
+        basis = result[f"basis_{side}"].double()
+        assert basis.dtype == torch.float64 and result[f"basis_{side}"].dtype == torch.float32
+        np.testing.assert_allclose((basis.T @ basis).numpy(), np.eye(d), atol=10 * d * eps)
+        exact = np.linalg.eigvalsh(statistics[f"factor_{side}"].double().numpy())
+        got = result[f"eigen_{side}"].double().numpy()
+        assert np.abs(got - np.clip(exact, 0, None)).max() <= 10 * d * eps * exact.max()
+    view = dict(result)
+    gradient = torch.randn(11, 16, generator=generator)
+    rotated = block.rotated(view, gradient)
+    view.update(block.gradient_scales(view, rotated, 8.0, 0.9, rebased=True))
+    direction = block.precondition(gradient, 1e-6, view)
+    assert torch.isfinite(direction).all() and float((direction * gradient).sum()) > 0
