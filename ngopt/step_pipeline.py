@@ -152,12 +152,7 @@ def add_projected_statistics(blocks: Sequence[LayerCurvature], statistics: dict,
         batches = share(batches)
     new = {block: block.blend_projected(batches.get(block), views[block], block in inverses, stats_memory)
            for block in blocks}
-    if not all_finite([t for tensors in new.values() for t in tensors.values()]):
-        return False
-    for block, tensors in new.items():
-        if tensors:
-            statistics.setdefault(block, {}).update(tensors)
-    return True
+    return _add_if_finite(statistics, new)
 
 
 def add_gradient_scales(blocks: Sequence[LayerCurvature], statistics: dict, inverses: dict, term_count: float,
@@ -181,12 +176,17 @@ def add_gradient_scales(blocks: Sequence[LayerCurvature], statistics: dict, inve
             grad_matrix = layer.gradient_matrix(layer.weight.grad, layer.bias.grad if layer.has_bias else None)
             rotated[block] = block.rotated(view, grad_matrix)
         new[block] = block.gradient_scales(view, rotated.get(block), term_count, memory, rebased)
+    return rotated if _add_if_finite(statistics, new) else None
+
+
+def _add_if_finite(statistics: dict, new: dict) -> bool:
+    """Add ``new`` (``{block: tensors}``) to ``statistics`` if every tensor is finite; whether it was."""
     if not all_finite([t for tensors in new.values() for t in tensors.values()]):
-        return None
+        return False
     for block, tensors in new.items():
         if tensors:
             statistics.setdefault(block, {}).update(tensors)
-    return rotated
+    return True
 
 
 def proposals(blocks: Sequence[LayerCurvature], groups: list, group_index: Callable[[torch.Tensor], int],

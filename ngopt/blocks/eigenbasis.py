@@ -37,7 +37,8 @@ class EigenbasisBlock(KroneckerBlock):
 
     def statistic_shapes(self):
         shapes = super().statistic_shapes()
-        shapes["scales"] = (self.layer.out_dim, self.layer.in_dim)
+        if "scales" in self.projected_keys:  # a statistic only where a refresh measures it
+            shapes["scales"] = (self.layer.out_dim, self.layer.in_dim)
         return shapes
 
     # -- the basis ------------------------------------------------------------------------
@@ -91,10 +92,14 @@ class EigenbasisBlock(KroneckerBlock):
         return {"scales": previous.mul(ema).add_(batch["scales"], alpha=1.0 - ema)}
 
     # -- the step -------------------------------------------------------------------------
-    def _in_basis(self, matrix, tensors, damped_scales_op):
-        basis_in, basis_out = tensors["basis_in"], tensors["basis_out"]
-        rotated = basis_out.T @ matrix @ basis_in
-        return basis_out @ damped_scales_op(rotated) @ basis_in.T
+    def rotated(self, view, matrix):
+        """``Q_G^T V Q_A``: a gradient matrix in the eigenbasis of ``view``."""
+        return view["basis_out"].T @ matrix @ view["basis_in"]
+
+    def _in_basis(self, matrix, tensors, damped_scales_op, rotated=None):
+        """``Q op(Q^T vec(matrix))``; ``rotated``: ``matrix`` in the basis already."""
+        rotated = self.rotated(tensors, matrix) if rotated is None else rotated
+        return tensors["basis_out"] @ damped_scales_op(rotated) @ tensors["basis_in"].T
 
     writes_into = False  # its products run in the eigenbasis
 

@@ -26,8 +26,8 @@ _NORM_BLOCKS = {"kfac": NormPairBlock, "ekfac": NormPairBlock, "ekfac-gradient":
 # An elementwise scale or shift by a parameter: the exact diagonal whatever the structure.
 _DIAGONAL_BLOCKS = dict.fromkeys(STRUCTURES, NormDiagonalBlock)
 # Grouped convolutions: a block-diagonal output factor, one input factor shared by the groups (blocks/grouped.py).
-# Under "ekfac-gradient" grouped convolutions keep EKFAC's sampled scales (their block-diagonal basis
-# is not the Kronecker pair the update is written for), and so do embeddings: scales following the
+# Under "ekfac-gradient" grouped convolutions keep EKFAC's sampled scales (scales following the gradient
+# were not built or measured for their per-group bases), and so do embeddings: scales following the
 # gradient there took the benchmark's transformer 1.04-1.10x the steps, seed by seed (README, Choosing the structure).
 _GROUPED_BLOCKS = {"kfac": GroupedKroneckerBlock, "ekfac": GroupedEigenbasisBlock,
                    "ekfac-gradient": GroupedEigenbasisBlock, "diag": GroupedDiagonalBlock}

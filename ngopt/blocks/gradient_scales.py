@@ -31,7 +31,6 @@ from __future__ import annotations
 import torch
 
 from .eigenbasis import EigenbasisBlock
-from .kronecker import KroneckerBlock
 
 
 def carried_scales(scales: torch.Tensor, old_in: torch.Tensor, old_out: torch.Tensor, new_in: torch.Tensor,
@@ -54,14 +53,6 @@ class GradientScaledEigenbasisBlock(EigenbasisBlock):
     # The eigenvalues only start the moment and bound the scales from below: float32 factors are
     # decomposed in float32, twice as fast as in float64 (rounding about 1e-7 of the largest eigenvalue).
     decomposition_dtype = None
-
-    def statistic_shapes(self):
-        return KroneckerBlock.statistic_shapes(self)
-
-    def rotated(self, view, grad_matrix: torch.Tensor) -> torch.Tensor:
-        """``Q_G^T V Q_A``: a gradient matrix in the eigenbasis of ``view``."""
-        basis_in, basis_out = view["basis_in"], view["basis_out"]
-        return basis_out.T @ grad_matrix.to(basis_out.dtype) @ basis_in
 
     def gradient_scales(self, view, rotated, term_count: float, memory: float, rebased: bool) -> dict:
         """The new moment ``m M + (1 - m) N R^2`` for the gradient ``R`` in the eigenbasis (``M`` carried
@@ -87,6 +78,4 @@ class GradientScaledEigenbasisBlock(EigenbasisBlock):
     def precondition(self, grad_matrix, damping, tensors=None, rotated=None):
         """As EKFAC's; ``rotated``: ``grad_matrix`` in the eigenbasis already (from the scales' update)."""
         tensors = self.state if tensors is None else tensors
-        if rotated is None:
-            rotated = self.rotated(tensors, grad_matrix)
-        return tensors["basis_out"] @ (rotated / (tensors["scales"] + damping)) @ tensors["basis_in"].T
+        return self._in_basis(grad_matrix, tensors, lambda r: r / (tensors["scales"] + damping), rotated)
