@@ -19,7 +19,7 @@ The curvature is ``S = max(M, L_G L_A^T)``: the moment, but never below K-FAC's 
 basis, the products of the factors' eigenvalues (a sampled-Fisher estimate).  The empirical Fisher
 shrinks with the residuals near a fit while the Fisher does not (Kunstner et al., NeurIPS 2019): on
 a squared-error autoencoder the moment alone fell far below the Fisher, the Levenberg-Marquardt rule
-raised the damping thirtyfold to make up for it, and the run stalled.  Damping is added to ``S``:
+raised the damping to make up for it, and the run stalled.  Damping is added to ``S``:
 ``(S + lambda)^-1``.
 
 When the basis changes, the moment is carried over: its new value is the exact diagonal of
