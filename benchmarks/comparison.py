@@ -77,6 +77,7 @@ def compare(summaries: dict[str, dict], steps: int, width: Optional[int], batch:
     if method is None:
         return result
     result["curvature_free_time"] = curvature_free_ratio(method, summaries.get(result["best_baseline"]))
+    result["preconditioning_floor_time"] = preconditioning_floor_ratio(method, summaries, result["best_baseline"])
     for name in BASELINES:
         base = summaries.get(name)
         if base is None:
@@ -103,6 +104,27 @@ def curvature_free_ratio(method: dict, best: Optional[dict]) -> Optional[dict]:
     if free is None or best is None:
         return None
     return bounded_ratio(free, method["train_seconds"], best["seconds_to_target"], best["train_seconds"])
+
+
+def preconditioning_floor_ratio(method: dict, summaries: dict[str, dict], best: Optional[str]) -> Optional[dict]:
+    """fisher-descent's time to target had every step cost only the cheapest baseline's median step plus
+    its own preconditioning products, over the best baseline's time.
+
+    A natural-gradient step does at least a first-order step's forward, backward and update, and the
+    products that precondition the gradient.  Above 1, no cheaper curvature, hooks or rules can put it
+    ahead at the steps it took: only fewer steps could.  The ratio, its relation, ``seconds`` (the
+    floor) and ``step_of`` (the baseline whose step it counts).  None where fisher-descent did not reach
+    the target, kept no timers, or no baseline ran.
+    """
+    steps, preconditioning = method.get("steps_to_target"), method.get("precondition_seconds_to_target")
+    steps_of = {name: summary["step_seconds_median"] for name, summary in summaries.items() if name in BASELINES}
+    if steps is None or preconditioning is None or not steps_of or best is None:
+        return None
+    cheapest = min(steps_of, key=steps_of.get)
+    floor = steps * steps_of[cheapest] + preconditioning
+    base = summaries[best]
+    ratio = bounded_ratio(floor, method["train_seconds"], base["seconds_to_target"], base["train_seconds"])
+    return dict(ratio, seconds=floor, step_of=cheapest)
 
 
 def describe_ratio(entry: Optional[dict]) -> str:

@@ -83,6 +83,26 @@ def curvature_free_line(entry: dict) -> Optional[str]:
             f"{ratio['ratio']:.2f}× {best}'s time; {verdict}")
 
 
+def floor_line(entry: dict) -> Optional[str]:
+    """fisher-descent's time to target had each step cost a baseline step plus its preconditioning."""
+    floor = entry["comparison"].get("preconditioning_floor_time")
+    if floor is None or floor["relation"] == "at_least":
+        return None
+    method = entry["summary"][HEADLINE]
+    step = entry["summary"][floor["step_of"]]["step_seconds_median"]
+    best = entry["comparison"]["best_baseline"]
+    if floor["relation"] == "at_most":
+        return (f"had every step cost {floor['step_of']}'s median step ({format_number(step * 1e3)} ms) plus its "
+                f"preconditioning products, {HEADLINE} would have taken {format_number(floor['seconds'])} s "
+                "(no baseline reached the target)")
+    verdict = ("no cheaper curvature, hooks or rules could put it ahead at these steps: only fewer steps could"
+               if floor["ratio"] > 1 else "a cheaper rest of its step could put it ahead, or further ahead, here")
+    return (f"had every step cost {floor['step_of']}'s median step ({format_number(step * 1e3)} ms) plus its "
+            f"preconditioning products ({format_number(method['precondition_seconds_to_target'])} s in all), "
+            f"{HEADLINE} would have taken {format_number(floor['seconds'])} s, {floor['ratio']:.2f}× {best}'s time; "
+            f"{verdict}")
+
+
 def split_line(entry: dict) -> Optional[str]:
     """fisher-descent's mean time per step by part, from FisherDescent's own timers."""
     summary = entry["summary"].get(HEADLINE)
@@ -172,7 +192,7 @@ def task_block(entry: dict, markdown: bool = False, threads: Optional[int] = Non
     headers = [h.format(metric=entry["test_metric"] or "metric") for h in TABLE_HEADERS]
     warning = contention_warning(entry.get("load_average_max"), threads)
     notes = ratio_lines(entry) + [line for line in (
-        step_time_breakdown(entry, "sgd"), curvature_free_line(entry), split_line(entry), coverage_line(entry),
+        step_time_breakdown(entry, "sgd"), curvature_free_line(entry), floor_line(entry), split_line(entry), coverage_line(entry),
         parts_line(entry), memory_line(entry),
         reference_line(entry), progress_line(entry),
         warning and f"warning: {warning}; the runs were interleaved across optimizers to spread the effect",
@@ -218,6 +238,7 @@ def overview_rows(results: dict, entries: list[dict]) -> list[list[str]]:
             *[_time_and_steps(summaries.get(name)) for name in [HEADLINE] + baselines_run(results)],
             best or "-", describe_ratio(comparison["time_to_target"].get(best)).split(" (")[0],
             describe_ratio(comparison.get("curvature_free_time")).split(" (")[0],
+            describe_ratio(comparison.get("preconditioning_floor_time")).split(" (")[0],
             step_time_text(comparison),
         ])
     return rows
@@ -226,6 +247,7 @@ def overview_rows(results: dict, entries: list[dict]) -> list[list[str]]:
 def overview_headers(results: dict) -> list[str]:
     return ["task", "target", f"{HEADLINE} (untuned): time (steps) to target", *baselines_run(results),
             "best baseline", f"time {HEADLINE}/best", f"time {HEADLINE}/best, curvature work free",
+            f"time {HEADLINE}/best, baseline step + preconditioning",
             f"step time {HEADLINE}/sgd"]
 
 

@@ -63,6 +63,7 @@ def run_entry(run: RunResult, role: str, selected: bool) -> dict:
     if run.time_split is not None:
         entry["time_split_seconds"] = run.time_split
         entry["curvature_seconds_to_target"] = run.curvature_seconds_to_target
+        entry["precondition_seconds_to_target"] = run.precondition_seconds_to_target
         entry["skipped_steps"] = run.skipped_steps
     return entry
 

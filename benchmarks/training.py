@@ -72,6 +72,8 @@ class RunResult:
     parameter_coverage: Optional[dict] = None  # FisherDescent only: parameters in blocks / under the fallback rule
     # FisherDescent only: of seconds_to_target, the seconds its curvature work took (CURVATURE_PARTS)
     curvature_seconds_to_target: Optional[float] = None
+    # FisherDescent only: of seconds_to_target, the seconds its preconditioning products took
+    precondition_seconds_to_target: Optional[float] = None
 
 
 def load_average() -> Optional[float]:
@@ -138,12 +140,18 @@ def current_rss_bytes() -> Optional[int]:
 CURVATURE_PARTS = ("capture", "statistics", "statistics_in_backward", "extra_backward", "inversion")
 
 
-def curvature_seconds(optimizer: torch.optim.Optimizer) -> Optional[float]:
-    """The cumulative seconds of :data:`CURVATURE_PARTS` so far; None for an optimizer without those timers."""
+def timer_seconds(optimizer: torch.optim.Optimizer, parts: tuple) -> Optional[float]:
+    """The cumulative seconds of the optimizer's timers ``parts`` so far; None for an optimizer without
+    timers."""
     if not hasattr(optimizer, "diagnostics"):
         return None
     times = optimizer.diagnostics().get("time", {})
-    return sum(float(times.get(key, 0.0)) for key in CURVATURE_PARTS) if times else None
+    return sum(float(times.get(key, 0.0)) for key in parts) if times else None
+
+
+def curvature_seconds(optimizer: torch.optim.Optimizer) -> Optional[float]:
+    """The cumulative seconds of :data:`CURVATURE_PARTS` so far; None for an optimizer without those timers."""
+    return timer_seconds(optimizer, CURVATURE_PARTS)
 
 
 def time_split(optimizer: torch.optim.Optimizer, train_seconds: float) -> tuple[Optional[dict], Optional[int]]:
@@ -181,6 +189,7 @@ class Trace:
     steps_to_target: Optional[int] = None
     seconds_to_target: Optional[float] = None
     curvature_seconds_to_target: Optional[float] = None
+    precondition_seconds_to_target: Optional[float] = None
     target_resolution: Optional[int] = None
     diverged: bool = False
     near_below: float = math.inf  # losses below this count as near the target (set from the first one)
@@ -303,6 +312,7 @@ class TrainingRun:
             trace.record(self.step, self.elapsed, self._evaluate(), self.task.target_loss)
             if trace.steps_to_target == self.step:
                 trace.curvature_seconds_to_target = curvature_seconds(optimizer)
+                trace.precondition_seconds_to_target = timer_seconds(optimizer, ("precondition",))
             self.lowest_batch_loss = None
 
     def finish(self, measure_memory: bool = True) -> RunResult:
@@ -335,6 +345,7 @@ class TrainingRun:
             steps_to_target=trace.steps_to_target,
             seconds_to_target=trace.seconds_to_target,
             curvature_seconds_to_target=trace.curvature_seconds_to_target,
+            precondition_seconds_to_target=trace.precondition_seconds_to_target,
             final_train_loss=None if trace.diverged else trace.curve_losses[-1],
             final_test_metric=metric,
             step_seconds_median=statistics.median(trace.step_seconds),

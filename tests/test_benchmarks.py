@@ -888,8 +888,12 @@ def test_curvature_seconds_to_target_are_the_curvature_timers_when_the_target_fe
     assert natural.curvature_seconds_to_target <= whole * (1 + 1e-12)
     assert curvature_free_seconds(natural) == pytest.approx(natural.seconds_to_target
                                                             - natural.curvature_seconds_to_target)
+    # the preconditioning products' timer the same way, a part of the step outside the curvature work
+    assert 0 < natural.precondition_seconds_to_target < natural.seconds_to_target - natural.curvature_seconds_to_target
+    assert natural.precondition_seconds_to_target <= natural.time_split["precondition"] * (1 + 1e-12)
     plain = train_run(task, OPTIMIZERS["sgd"], 0.3, seed=0, steps=30, schedule=every_step(30))
     assert plain.steps_to_target is not None and plain.curvature_seconds_to_target is None
+    assert plain.precondition_seconds_to_target is None
     assert curvature_free_seconds(plain) is None
 
 
@@ -919,6 +923,48 @@ def test_curvature_free_ratio_and_its_line_say_whether_cheaper_curvature_could_l
     assert row[headers.index(f"time {HEADLINE}/best, curvature work free")] == "1.50"
     unreached = entry(None)
     assert unreached["comparison"]["curvature_free_time"] is None and curvature_free_line(unreached) is None
+
+
+def test_preconditioning_floor_counts_the_cheapest_baseline_step_and_says_whether_only_fewer_steps_help():
+    # floor = steps to target x the cheapest baseline's median step + the preconditioning's seconds to target
+    from benchmarks.comparison import compare
+    from benchmarks.report import floor_line, overview_headers, overview_rows
+
+    def entry(preconditioning, best_seconds=1.0, steps=40):
+        method = dict(summary_of(2.0, tuned=False), steps_to_target=steps, step_seconds_median=0.05,
+                      precondition_seconds_to_target=preconditioning, train_seconds=5.0)
+        summaries = {HEADLINE: method,
+                     "sgd": dict(summary_of(best_seconds), steps_to_target=100, step_seconds_median=0.01,
+                                 train_seconds=3.0),
+                     "adam": dict(summary_of(3.0), steps_to_target=100, step_seconds_median=0.02, train_seconds=3.0)}
+        return {"task": "t", "target_loss": 0.1, "summary": summaries,
+                "comparison": compare(summaries, 100, None, 32)}
+
+    slow = entry(0.8)  # 40 x 0.01 s (sgd's step, the cheaper) + 0.8 s = 1.2 s against sgd's 1 s
+    floor = slow["comparison"]["preconditioning_floor_time"]
+    assert floor["relation"] == "measured" and floor["step_of"] == "sgd"
+    assert floor["seconds"] == pytest.approx(1.2) and floor["ratio"] == pytest.approx(1.2)
+    assert "would have taken 1.2 s, 1.20× sgd's time; no cheaper curvature" in floor_line(slow)
+    assert "sgd's median step (10 ms)" in floor_line(slow) and "(0.8 s in all)" in floor_line(slow)
+    fast = entry(0.3)  # 0.7 s against 1 s
+    assert fast["comparison"]["preconditioning_floor_time"]["ratio"] == pytest.approx(0.7)
+    assert "0.70× sgd's time; a cheaper rest of its step could put it ahead" in floor_line(fast)
+    results = {"settings": {"optimizers": [HEADLINE, "sgd", "adam"]}}
+    row = overview_rows(results, [slow])[0]
+    assert row[overview_headers(results).index(f"time {HEADLINE}/best, baseline step + preconditioning")] == "1.20"
+    # no baseline reached the target: the floor bounds the ratio from above, as the time ratio does
+    unreached = entry(0.8)
+    for name in ("sgd", "adam"):
+        unreached["summary"][name].update(seconds_to_target=None, reached=0)
+    unreached["comparison"] = compare(unreached["summary"], 100, None, 32)
+    assert unreached["comparison"]["preconditioning_floor_time"]["relation"] == "at_most"
+    assert "(no baseline reached the target)" in floor_line(unreached)
+    # fisher-descent did not reach it, or kept no timers: no floor
+    for missing in (dict(steps_to_target=None, seconds_to_target=None), dict(precondition_seconds_to_target=None)):
+        other = entry(0.8)
+        other["summary"][HEADLINE].update(missing)
+        other["comparison"] = compare(other["summary"], 100, None, 32)
+        assert other["comparison"]["preconditioning_floor_time"] is None and floor_line(other) is None
 
 
 def test_setting_step_time_times_every_setting_on_built_in_and_held_out_tasks():
