@@ -185,8 +185,7 @@ def summarize(outcome: OptimizerOutcome) -> dict:
         # With the optimizer's curvature work free (training.CURVATURE_PARTS); None for the baselines.
         "curvature_free_seconds_to_target": median_missing_last([curvature_free_seconds(run) for run in runs]),
         # Of its seconds to target, what its preconditioning products took; None for the baselines.
-        "precondition_seconds_to_target": median_missing_last([run.precondition_seconds_to_target
-                                                               for run in runs if run.steps_to_target is not None]),
+        "precondition_seconds_to_target": median_present([run.precondition_seconds_to_target for run in runs]),
         "target_resolution_max": max((run.target_resolution for run in runs
                                       if run.target_resolution is not None), default=None),
         "final_train_loss": median_missing_last([run.final_train_loss for run in runs]),
